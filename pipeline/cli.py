@@ -1,0 +1,139 @@
+"""The `coreach` command: subcommands run as Hydra apps, so each takes overrides and `-m` for sweeps."""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import time
+import traceback
+from pathlib import Path
+
+from coreach.errors import CoreachError
+
+USAGE = """usage: coreach [--json] [--debug] COMMAND [-m] [key=value ...]
+
+commands:
+  demo      generate demonstrations, train the decoder families briefly, compare them
+  train     train one decoder (e.g. coreach train model=vae trainer.max_epochs=5)
+  plugins   list every registered plugin by kind, with where it came from
+  bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9)
+
+options:
+  -m, --multirun  sweep over comma-separated values (coreach train -m model=linear,vae,cvae)
+  --json          print only a machine-readable summary on stdout
+  --debug         show tracebacks
+  -h, --help      this text; `coreach COMMAND --cfg job` prints the composed config (Hydra)
+"""
+
+# command -> (config name, "module:function" taking the composed config and returning a summary dict)
+HYDRA_COMMANDS = {
+    "train": ("train", "coreach.training.run:train"),
+    "demo": ("demo", "coreach.demo:run_demo"),
+    "bench train": ("bench_train", "coreach.bench.train_bench:run"),
+}
+
+
+def _fail(message: str, code: int = 2) -> int:
+    print(f"coreach: error: {message}", file=sys.stderr)
+    return code
+
+
+def _load(spec: str):
+    import importlib
+
+    module, func = spec.split(":")
+    return getattr(importlib.import_module(module), func)
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = list(sys.argv[1:] if argv is None else argv)
+    as_json = "--json" in args
+    debug = "--debug" in args
+    multirun = "-m" in args or "--multirun" in args
+    rest = [a for a in args if a not in ("--json", "--debug", "-m", "--multirun")]
+    if not rest or rest[0] in ("-h", "--help", "help"):
+        print(USAGE)
+        return 0
+    command, overrides = rest[0], rest[1:]
+    if command == "bench":
+        what = overrides[0] if overrides else "?"
+        command, overrides = f"bench {what}", overrides[1:]
+    if debug:
+        os.environ["HYDRA_FULL_ERROR"] = "1"
+    try:
+        if command == "plugins":
+            from coreach.commands.plugins import show_plugins
+
+            return show_plugins(as_json)
+        if command not in HYDRA_COMMANDS:
+            raise CoreachError(f"command {command!r}", f"unknown; expected one of {sorted([*HYDRA_COMMANDS, 'plugins'])}")
+        summaries = run_hydra(command, overrides, multirun, debug)
+    except CoreachError as exc:
+        if debug:
+            traceback.print_exc()
+        return _fail(str(exc))
+    except KeyboardInterrupt:
+        return _fail("interrupted", 130)
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    except Exception as exc:  # a bug, not bad input: say so, and how to see more
+        if debug:
+            traceback.print_exc()
+            return 1
+        return _fail(f"internal error: {type(exc).__name__}: {exc} (rerun with --debug for the traceback)", 1)
+    from coreach.commands.summaries import print_summary
+
+    print_summary(command, summaries, as_json)
+    return 0
+
+
+def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -> list[dict]:
+    """Run a subcommand through hydra.main (so Hydra's launchers serve sweeps) and collect summaries."""
+    import hydra
+
+    from coreach.config_check import preflight
+    from coreach.plugin_registry import search_path_overrides
+
+    config_name, target = HYDRA_COMMANDS[command]
+    extra = search_path_overrides()
+    if not any(o.startswith(("--cfg", "-c", "--info", "-i", "--help", "-h", "--hydra-help")) for o in overrides):
+        preflight(config_name, extra + overrides, multirun)
+    stamp = f"{time.strftime('%Y-%m-%d_%H-%M-%S')}-{os.getpid()}"
+    sweep_dir = Path(".coreach") / "sweeps" / stamp
+    fixed = [f"hydra.job.name={command.replace(' ', '_')}"]
+    if multirun:
+        fixed.append(f"hydra.sweep.dir={sweep_dir}")
+    task_fn = _load(target)
+    collected: list[dict] = []
+
+    def task(cfg):
+        from coreach.workdirs import output_dir
+
+        try:
+            summary = task_fn(cfg)
+        except CoreachError as exc:
+            if debug:
+                traceback.print_exc()
+            print(f"coreach: error: {exc}", file=sys.stderr)
+            raise SystemExit(2) from None
+        summary = summary or {}
+        (output_dir() / "summary.json").write_text(json.dumps(summary, indent=2, default=str))
+        collected.append(summary)
+        return summary
+
+    app = hydra.main(version_base="1.3", config_path="pkg://coreach.conf", config_name=config_name)(task)
+    saved = sys.argv
+    sys.argv = [f"coreach-{command}"] + (["-m"] if multirun else []) + fixed + extra + overrides
+    try:
+        app()
+    finally:
+        sys.argv = saved
+    if multirun and len(collected) == 0 and sweep_dir.exists():  # jobs ran in other processes
+        for path in sorted(sweep_dir.glob("*/summary.json"), key=lambda p: int(p.parent.name)):
+            collected.append(json.loads(path.read_text()))
+    return collected
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,68 @@
+"""The decoder's context, built in one place for training, vetting and the runtime.
+
+Blocks (in this order in the full context vector):
+- state  [n + 9]: joint positions, tool position, tool orientation as the first two columns of its rotation.
+- belief [G]:     the belief over the layout's goals.
+- goal   [12]:    belief-weighted goal-relative features: vector to the approach point, the fine-motion
+                  displacement, and the differences between goal and tool x- and z-axes. Being relative to
+                  the tool, they let a decoder serve a layout it was not trained on.
+
+Array-API code (numpy or torch).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from array_api_compat import array_namespace
+
+BLOCKS = ("state", "belief", "goal")
+GOAL_WIDTH = 12
+
+
+@dataclass(frozen=True)
+class ContextSpec:
+    """Widths of the context blocks for a robot with `dof` joints and a scenario with `n_goals` goals."""
+
+    dof: int
+    n_goals: int
+
+    @property
+    def widths(self) -> dict[str, int]:
+        return {"state": self.dof + 9, "belief": self.n_goals, "goal": GOAL_WIDTH}
+
+    @property
+    def width(self) -> int:
+        return sum(self.widths.values())
+
+    def columns(self, blocks) -> list[int]:
+        """Indices into the full context of the given blocks, in canonical order."""
+        unknown = set(blocks) - set(BLOCKS)
+        if unknown:
+            raise ValueError(f"unknown context blocks {sorted(unknown)}; known: {list(BLOCKS)}")
+        cols, start = [], 0
+        for name in BLOCKS:
+            w = self.widths[name]
+            if name in blocks:
+                cols += list(range(start, start + w))
+            start += w
+        return cols
+
+    def to_dict(self) -> dict:
+        return {"dof": self.dof, "n_goals": self.n_goals}
+
+
+def build_context(q, ee_pos, ee_rot, belief, goal_targets, goal_rot):
+    """Full raw context [B, C].
+
+    q [B, n]; ee_pos [B, 3]; ee_rot [B, 3, 3]; belief [B, G]; goal_targets [B, G, 2, 3] (approach point, end
+    of fine motion); goal_rot [B, G, 3, 3] (tool orientation on approach).
+    """
+    xp = array_namespace(q, ee_pos, ee_rot, belief, goal_targets, goal_rot)
+    b = belief[..., None]  # [B, G, 1]
+    rot6 = xp.concat([ee_rot[..., :, 0], ee_rot[..., :, 2]], axis=-1)  # [B, 6]
+    to_approach = xp.sum(b * (goal_targets[:, :, 0, :] - ee_pos[:, None, :]), axis=1)
+    fine = xp.sum(b * (goal_targets[:, :, 1, :] - goal_targets[:, :, 0, :]), axis=1)
+    dz = xp.sum(b * (goal_rot[..., :, 2] - ee_rot[:, None, :, 2]), axis=1)
+    dx = xp.sum(b * (goal_rot[..., :, 0] - ee_rot[:, None, :, 0]), axis=1)
+    return xp.concat([q, ee_pos, rot6, belief, to_approach, fine, dz, dx], axis=-1)

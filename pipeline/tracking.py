@@ -1,0 +1,118 @@
+"""MLflow access: an embedded sqlite store in the working directory by default, or a server by URI."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import tempfile
+from importlib import metadata
+from pathlib import Path
+
+from omegaconf import DictConfig, OmegaConf
+
+LIBRARIES = ("coreach", "torch", "lightning", "hydra-core", "mlflow", "numpy", "pytorch-kinematics", "pyarrow")
+
+
+def resolve_uri(uri: str | None) -> str:
+    """`tracking.uri` if set, else MLFLOW_TRACKING_URI, else sqlite:///<cwd>/mlflow.db."""
+    if uri:
+        return str(uri)
+    if os.environ.get("MLFLOW_TRACKING_URI"):
+        return os.environ["MLFLOW_TRACKING_URI"]
+    return f"sqlite:///{Path.cwd() / 'mlflow.db'}"
+
+
+def artifact_root(uri: str, configured: str | None) -> str | None:
+    """Local artifacts beside an embedded store (./mlartifacts); a server decides for itself."""
+    if configured:
+        return Path(configured).resolve().as_uri() if "://" not in configured else configured
+    if uri.startswith("sqlite:"):
+        return (Path.cwd() / "mlartifacts").resolve().as_uri()
+    return None
+
+
+def client(cfg_tracking: DictConfig):
+    """An MlflowClient on the configured store, and the id of the configured experiment (created if new)."""
+    import mlflow
+    from mlflow.tracking import MlflowClient
+
+    uri = resolve_uri(cfg_tracking.get("uri"))
+    mlflow.set_tracking_uri(uri)
+    c = MlflowClient(tracking_uri=uri)
+    name = cfg_tracking.experiment
+    exp = c.get_experiment_by_name(name)
+    if exp is None:
+        try:
+            exp_id = c.create_experiment(name, artifact_location=artifact_root(uri, cfg_tracking.get("artifacts")))
+        except Exception:  # another process of a parallel sweep created it first
+            exp = c.get_experiment_by_name(name)
+            if exp is None:
+                raise
+            exp_id = exp.experiment_id
+    else:
+        exp_id = exp.experiment_id
+    return c, exp_id
+
+
+def flatten(cfg: DictConfig) -> dict[str, str]:
+    """Resolved config as dotted key -> string (MLflow params), skipping hydra's own node."""
+
+    out: dict[str, str] = {}
+
+    def walk(node, prefix):
+        if isinstance(node, dict):
+            for k, v in node.items():
+                walk(v, f"{prefix}{k}.")
+        elif isinstance(node, list) and not any(isinstance(x, (dict, list)) for x in node):
+            out[prefix[:-1]] = json.dumps(node)
+        elif isinstance(node, list):
+            for i, v in enumerate(node):
+                walk(v, f"{prefix}{i}.")
+        else:
+            out[prefix[:-1]] = str(node)
+
+    walk(OmegaConf.to_container(cfg, resolve=True), "")
+    return {k: v[:6000] for k, v in out.items() if not k.startswith("hydra.")}
+
+
+def git_commit() -> str | None:
+    """Commit of the source tree coreach runs from, when it is a git checkout."""
+    here = Path(__file__).resolve().parent
+    try:
+        out = subprocess.run(
+            ["git", "-C", str(here), "rev-parse", "HEAD"], capture_output=True, text=True, timeout=5, check=False
+        )
+    except (OSError, subprocess.TimeoutExpired):
+        return None
+    return out.stdout.strip() or None if out.returncode == 0 else None
+
+
+def library_versions() -> dict[str, str]:
+    versions = {}
+    for lib in LIBRARIES:
+        try:
+            versions[lib] = metadata.version(lib)
+        except metadata.PackageNotFoundError:
+            versions[lib] = "not installed"
+    return versions
+
+
+def log_params_batched(c, run_id: str, params: dict[str, str]) -> None:
+    """Params in batches of 100 (MLflow's per-call limit) so a server sees few round trips."""
+    from mlflow.entities import Param
+
+    items = [Param(k, v) for k, v in sorted(params.items())]
+    for i in range(0, len(items), 100):
+        c.log_batch(run_id, params=items[i : i + 100])
+
+
+def log_json(c, run_id: str, obj, artifact_file: str) -> None:
+    c.log_text(run_id, json.dumps(obj, indent=2, sort_keys=True), artifact_file)
+
+
+def log_folder(c, run_id: str, writer, artifact_path: str) -> None:
+    """Have `writer(folder)` fill a temporary folder, then log it as one artifact directory."""
+    with tempfile.TemporaryDirectory() as tmp:
+        writer(Path(tmp))
+        c.log_artifacts(run_id, tmp, artifact_path)

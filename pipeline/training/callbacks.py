@@ -1,0 +1,39 @@
+"""Lightning callbacks kept apart from the model: per-epoch metric logging to MLflow, and the progress bar."""
+
+from __future__ import annotations
+
+import os
+import sys
+import time
+
+import lightning as L
+from mlflow.entities import Metric
+
+
+class MlflowEpochLogger(L.Callback):
+    """Sends every epoch-level metric (train and val, per loss term) to MLflow in one batch per epoch."""
+
+    def __init__(self, client, run_id: str):
+        self.client, self.run_id = client, run_id
+        self.history: list[dict[str, float]] = []
+
+    def on_train_epoch_end(self, trainer: L.Trainer, pl_module: L.LightningModule) -> None:
+        # In Lightning 2.x validation has already run when this hook fires, so val/* are current.
+        values = {k: float(v) for k, v in trainer.callback_metrics.items() if k.startswith(("train/", "val/"))}
+        self.history.append(values)
+        now = int(time.time() * 1000)
+        metrics = [Metric(k, v, now, trainer.current_epoch) for k, v in sorted(values.items())]
+        self.client.log_batch(self.run_id, metrics=metrics)
+
+
+def interactive() -> bool:
+    """A rich progress bar only for a person at a terminal; CI and pipes get quiet logs."""
+    return sys.stderr.isatty() and not os.environ.get("CI")
+
+
+def progress_callbacks() -> list[L.Callback]:
+    if not interactive():
+        return []
+    from lightning.pytorch.callbacks import RichProgressBar
+
+    return [RichProgressBar(console_kwargs={"stderr": True})]

@@ -1,0 +1,148 @@
+"""Contract checks for every loss-term config shipped under conf/loss/ (found by glob, not by list)."""
+
+from __future__ import annotations
+
+import dataclasses
+import importlib
+import math
+import shutil
+from pathlib import Path
+
+import hydra
+import pytest
+import torch
+from hydra import compose, initialize_config_dir
+from omegaconf import OmegaConf
+
+from coreach.context import ContextSpec
+from coreach.policy import DecoderPolicy
+from coreach.protocols import LossTerm
+from coreach.safety import SafetyLimits
+from coreach.training.terms import TermBatch
+from coreach.plugins.model.cvae import BeliefCVAE
+
+LOSS_DIR = Path(__file__).resolve().parents[1] / "conf" / "loss"
+N_JOINTS, N_GOALS, BATCH = 7, 4, 6
+
+
+def make_batch(seed: int = 0) -> TermBatch:
+    """A batch from a real DecoderPolicy (small stochastic decoder, so every term has something to judge)
+    with the real speed caps; epoch is far past any warm-up so no term is switched off."""
+    g = torch.Generator().manual_seed(seed)
+    spec = ContextSpec(dof=N_JOINTS, n_goals=N_GOALS)
+    torch.manual_seed(seed)
+    decoder = BeliefCVAE(N_JOINTS, len(spec.columns(BeliefCVAE.context_blocks)), hidden=[32, 32])
+    policy = DecoderPolicy(decoder, {}, spec, N_JOINTS)
+    raw_context = torch.randn(BATCH, spec.width, generator=g)
+    context = policy.normalise_context(raw_context)
+    action = torch.randn(BATCH, N_JOINTS, generator=g)
+    post = decoder.encode(action, context)
+    latent = post.mean + torch.exp(0.5 * post.logvar) * torch.randn(post.mean.shape, generator=g)
+    ee_pos = torch.tensor([0.4, 0.0, 0.4]) + 0.05 * torch.randn(BATCH, 3, generator=g)
+    approach = ee_pos[:, None, :] + 0.3 * torch.randn(BATCH, N_GOALS, 3, generator=g)  # [B, G, 3]
+    return TermBatch(
+        action=action,
+        context=context,
+        posterior=post,
+        latent=latent,
+        reconstruction=decoder.decode(latent, context),
+        policy=policy,
+        raw_context=raw_context,
+        jac_lin=0.3 * torch.randn(BATCH, 3, N_JOINTS, generator=g),
+        ee_pos=ee_pos,
+        goal_targets=torch.stack([approach, approach + 0.05], dim=2),  # [B, G, 2, 3]
+        belief=torch.full((BATCH, N_GOALS), 1.0 / N_GOALS),
+        limits=SafetyLimits(qd_max=(1.5,) * N_JOINTS, tcp_speed_max=0.25),
+        dt=0.05,
+        epoch=1000,
+        global_step=7,
+    )
+
+
+def _term(path: Path):
+    return hydra.utils.instantiate(OmegaConf.load(path))
+
+
+def check_protocol(path: Path, composed) -> None:
+    assert isinstance(_term(path), LossTerm)
+
+
+def check_scalar(path: Path, composed) -> None:
+    value = _term(path)(make_batch())
+    assert isinstance(value, torch.Tensor) and value.dim() == 0
+    assert torch.isfinite(value)
+
+
+def check_differentiable(path: Path, composed) -> None:
+    batch = make_batch()
+    _term(path)(batch).backward()
+    grads = [p.grad for p in batch.policy.parameters() if p.grad is not None]
+    assert grads, "no parameter of the policy receives a gradient"
+    assert all(torch.isfinite(g).all() for g in grads)
+    assert any(g.abs().sum() > 0 for g in grads), "all gradients are zero"
+
+
+def check_weight(path: Path, composed) -> None:
+    cfg = OmegaConf.load(path)
+    assert "weight" in cfg, "every loss config states its weight"
+    term = _term(path)
+    assert isinstance(term.weight, float) and math.isfinite(term.weight)
+    assert term.weight == cfg.weight
+
+
+def check_name(path: Path, composed) -> None:
+    # The name is the logging key; it matches the config key loss.<file name> to keep the two aligned.
+    assert _term(path).name == path.stem
+
+
+def check_package(path: Path, composed) -> None:
+    # Selected together with every other loss file, this one lands under loss.<file name> unchanged.
+    assert OmegaConf.to_container(composed.loss[path.stem]) == OmegaConf.to_container(OmegaConf.load(path))
+
+
+def check_config_class(path: Path, composed) -> None:
+    """The module's dataclass config (same _target_) lists exactly the YAML's options."""
+    cfg = OmegaConf.load(path)
+    module = importlib.import_module(cfg._target_.rsplit(".", 1)[0])
+    classes = [
+        c for c in vars(module).values()
+        if dataclasses.is_dataclass(c) and isinstance(c, type)
+        and any(f.name == "_target_" and f.default == cfg._target_ for f in dataclasses.fields(c))
+    ]
+    assert len(classes) == 1, f"expected one dataclass config for {cfg._target_}, found {classes}"
+    assert {f.name for f in dataclasses.fields(classes[0])} == set(cfg.keys())
+    merged = OmegaConf.merge(OmegaConf.structured(classes[0]), cfg)  # types in the YAML fit the schema
+    assert hydra.utils.instantiate(merged).weight == cfg.weight
+
+
+CHECKS = {
+    "protocol": check_protocol,
+    "scalar": check_scalar,
+    "differentiable": check_differentiable,
+    "weight": check_weight,
+    "name": check_name,
+    "package": check_package,
+    "config_class": check_config_class,
+}
+PATHS = sorted(LOSS_DIR.glob("*.yaml"))
+CASES = [pytest.param(path, check, id=f"loss/{path.stem}::{check}") for path in PATHS for check in CHECKS]
+
+
+@pytest.fixture(scope="module")
+def composed(tmp_path_factory):
+    """All loss files selected at once from one group (Hydra multi-select), as a training config does."""
+    root = tmp_path_factory.mktemp("conf")
+    shutil.copytree(LOSS_DIR, root / "loss")
+    names = ", ".join(p.stem for p in PATHS)
+    (root / "main.yaml").write_text(f"defaults:\n  - loss: [{names}]\n  - _self_\n")
+    with initialize_config_dir(config_dir=str(root), version_base="1.3"):
+        return compose("main")
+
+
+def test_loss_configs_found():
+    assert CASES, f"no loss configs under {LOSS_DIR}"
+
+
+@pytest.mark.parametrize("path,check", CASES)
+def test_loss_contract(path: Path, check: str, composed) -> None:
+    CHECKS[check](path, composed)
