@@ -12,6 +12,7 @@ per-joint clamp that keeps q + qd dt inside the joint position limits.
 
 from __future__ import annotations
 
+import inspect
 from dataclasses import dataclass
 
 import numpy as np
@@ -96,7 +97,6 @@ def rollout(
     damping: float = 0.05,
     arrive_tol: float = 0.01,
     approach_rot_tol: float = 0.1,
-    posture_gain: float = 0.0,
 ) -> Rollout:
     """Step all episodes together; see `generate` for the options."""
     if isinstance(scenario, str):
@@ -111,7 +111,6 @@ def rollout(
     for name, val in (("k_p", k_p), ("k_r", k_r), ("v_max", v_max), ("w_max", w_max), ("arrive_tol", arrive_tol)):
         _check(name, val, 1e-9)
     _check("damping", damping, 0.0)
-    _check("posture_gain", posture_gain, 0.0)
 
     E, T_max, dt = int(n_episodes), int(max_steps), float(scenario.dt)
     f64 = torch.float64
@@ -134,7 +133,7 @@ def rollout(
     rec_q = torch.zeros(E, T_max, n, dtype=f64)
     rec_qd = torch.zeros(E, T_max, n, dtype=f64)
     rec_pos = torch.zeros(E, T_max, 3, dtype=f64)
-    rec_quat = torch.zeros(E, T_max, 4, dtype=f64)
+    rec_rot = torch.eye(3, dtype=f64).repeat(E, T_max, 1, 1)  # quaternions made once at the end
     lengths = torch.zeros(E, dtype=torch.long)
     fine_phase = torch.zeros(E, dtype=torch.bool)
     completed = torch.zeros(E, dtype=torch.bool)
@@ -165,23 +164,18 @@ def rollout(
             twist = torch.cat([_cap_norm(k_p * (target - pos), v_max), _cap_norm(k_r * rot_err, w_max)], dim=-1)
             J = robot.jacobian(qa).to(f64)  # [B, 6, n]
             qd = dls_step(J, twist, damping)
-            if posture_gain > 0:
-                # Redundancy: drift toward q_home inside the (damped) null space, common practice.
-                JJt = J @ J.transpose(-1, -2) + damping**2 * torch.eye(6, dtype=f64)
-                J_pinv = J.transpose(-1, -2) @ torch.linalg.inv(JJt)  # [B, n, 6]
-                null = torch.eye(n, dtype=f64) - J_pinv @ J  # [B, n, n]
-                qd = qd + (null @ (posture_gain * (q_home - qa)).unsqueeze(-1)).squeeze(-1)
             qd = qd + noise * qd_max * noise_draw[keep]
             qd = scale_to_speed_limits(qd, qd_max)
             qd = clamp_to_joint_limits(qd, qa, dt, lower, upper)
 
             rec_q[idx, t], rec_qd[idx, t] = qa, qd
-            rec_pos[idx, t], rec_quat[idx, t] = pos, matrix_to_quat(rot)
+            rec_pos[idx, t], rec_rot[idx, t] = pos, rot
             lengths[idx] += 1
             q[idx] = qa + qd * dt
 
     T = int(lengths.max())
-    return Rollout(rec_q[:, :T], rec_qd[:, :T], rec_pos[:, :T], rec_quat[:, :T], lengths, completed, goals, layout, dt)
+    quat = matrix_to_quat(rec_rot[:, :T])
+    return Rollout(rec_q[:, :T], rec_qd[:, :T], rec_pos[:, :T], quat, lengths, completed, goals, layout, dt)
 
 
 def generate(
@@ -197,19 +191,23 @@ def generate(
 
     noise: std of Gaussian joint-velocity noise as a fraction of robot.qd_max; max_steps: cut an episode
     that has not finished by then. Options (keyword): goal_order ("round_robin" | "random"), k_p (1/s),
-    k_r (1/s), v_max (m/s), w_max (rad/s), damping, arrive_tol (m), approach_rot_tol (rad),
-    posture_gain (1/s, null-space pull toward q_home; 0 = off).
+    k_r (1/s), v_max (m/s), w_max (rad/s), damping, arrive_tol (m; also the phase switch at the approach
+    point), approach_rot_tol (rad; orientation needed before the fine motion starts).
     Episodes shorter than 2 steps (goal reached at once) are dropped.
     """
+    allowed = [p.name for p in inspect.signature(rollout).parameters.values() if p.kind is p.KEYWORD_ONLY]
+    for key in options:
+        if key not in allowed:
+            raise ConfigError(f"option {key}", f"unknown demonstrator option; expected one of {allowed}")
     if isinstance(scenario, str):
         scenario = load_scenario(scenario)
     r = rollout(robot, scenario, n_episodes, seed, noise, max_steps, **options)
+    goal_quat = r.layout.approach_quat.numpy()  # [E, G, 4], converted in one batch
     episodes = []
     for i in range(int(n_episodes)):
         T = int(r.lengths[i])
         if T < 2:
             continue
-        pos, quat, fine = r.layout.to_episode(i)
         episodes.append(
             Episode(
                 episode_id=i,
@@ -218,9 +216,9 @@ def generate(
                 qd=r.qd[i, :T].numpy(),
                 ee_pos=r.ee_pos[i, :T].numpy(),
                 ee_quat=r.ee_quat[i, :T].numpy(),
-                goal_pos=pos,
-                goal_quat=quat,
-                goal_fine=fine,
+                goal_pos=r.layout.approach_pos[i].numpy(),
+                goal_quat=goal_quat[i],
+                goal_fine=r.layout.fine[i].numpy(),
             )
         )
     source = (

@@ -36,7 +36,7 @@ import hashlib
 import json
 import math
 import os
-import tempfile
+import uuid
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Iterator
@@ -183,8 +183,9 @@ def save_parquet(episode_set: EpisodeSet, path: str | os.PathLike) -> Path:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     table = to_table(episode_set)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(fd)
+    # A fresh name in the same folder (so os.replace is atomic); created by the writer, so it gets the
+    # usual permissions rather than mkstemp's private 0600.
+    tmp = path.parent / f".{path.name}.{uuid.uuid4().hex}.tmp"
     try:
         pq.write_table(table, tmp)
         os.replace(tmp, path)

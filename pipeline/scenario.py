@@ -60,9 +60,9 @@ class Layout:
         return self.approach_pos.shape[0]
 
     def to_episode(self, i: int) -> EpisodeLayout:
-        """Numpy views of episode i's goals."""
+        """Numpy views of episode i's goals (the quaternions are computed, so a fresh array)."""
         return EpisodeLayout(
-            self.approach_pos[i].numpy(), self.approach_quat[i].numpy(), self.fine[i].numpy()
+            self.approach_pos[i].numpy(), matrix_to_quat(self.approach_rot[i]).numpy(), self.fine[i].numpy()
         )
 
 

@@ -224,6 +224,8 @@ def test_goal_order():
     assert torch.equal(rand.goals, rollout(arm, sc, 300, max_steps=2, goal_order="random", seed=1).goals)
     with pytest.raises(ConfigError, match="goal_order"):
         rollout(arm, sc, 3, goal_order="sorted")
+    with pytest.raises(ConfigError, match="option gain"):
+        generate(arm, sc, 3, gain=2.0)
 
 
 def test_max_steps_cuts_unfinished_episodes():
