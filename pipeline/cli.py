@@ -46,7 +46,17 @@ def _load(spec: str):
     return getattr(importlib.import_module(module), func)
 
 
+def _quiet_library_warnings() -> None:
+    """Deprecation chatter from library internals that a user can do nothing about."""
+    import warnings
+
+    warnings.filterwarnings("ignore", message=r".*LeafSpec.*")
+    warnings.filterwarnings("ignore", message=r".*Checkpoint directory .* exists and is not empty.*")
+    warnings.filterwarnings("ignore", message=r".*does not have many workers.*")
+
+
 def main(argv: list[str] | None = None) -> int:
+    _quiet_library_warnings()
     args = list(sys.argv[1:] if argv is None else argv)
     as_json = "--json" in args
     debug = "--debug" in args
@@ -117,6 +127,11 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
                 traceback.print_exc()
             print(f"coreach: error: {exc}", file=sys.stderr)
             raise SystemExit(2) from None
+        except Exception as exc:  # a bug: one line unless --debug (Hydra would print a traceback)
+            if debug:
+                raise
+            print(f"coreach: error: internal error: {type(exc).__name__}: {exc} (rerun with --debug)", file=sys.stderr)
+            raise SystemExit(1) from None
         summary = summary or {}
         (output_dir() / "summary.json").write_text(json.dumps(summary, indent=2, default=str))
         collected.append(summary)

@@ -11,13 +11,20 @@ from hydra.errors import HydraException
 from omegaconf.errors import OmegaConfBaseException
 
 from coreach.errors import ConfigError
+from coreach.schemas import check_plugins
 
 
 def _one_line(exc: Exception) -> str:
     text = str(exc).strip()
     text = re.sub(r"\s*Set the environment variable HYDRA_FULL_ERROR=1.*", "", text, flags=re.S)
+    text = re.sub(r"\s*Config search path:.*", "", text, flags=re.S)
     lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
-    return " ".join(lines[:3]) if lines else type(exc).__name__
+    if not lines:
+        return type(exc).__name__
+    for i, line in enumerate(lines):
+        if line.endswith(":") and i + 1 < len(lines):  # Hydra lists alternatives one per line
+            return " ".join(lines[: i + 1]) + " " + ", ".join(lines[i + 1 :])
+    return " ".join(lines[:2])
 
 
 def compose_config(config_name: str, overrides: list[str]):
@@ -25,12 +32,14 @@ def compose_config(config_name: str, overrides: list[str]):
     GlobalHydra.instance().clear()
     try:
         with initialize_config_module("coreach.conf", version_base="1.3"):
-            return compose(config_name=config_name, overrides=overrides)
+            cfg = compose(config_name=config_name, overrides=overrides)
     except (HydraException, OmegaConfBaseException, ValueError) as exc:
         bad = _culprit(exc, overrides)
         raise ConfigError(f"option {bad}" if bad else f"config {config_name}", _one_line(exc)) from None
     finally:
         GlobalHydra.instance().clear()
+    check_plugins(cfg)
+    return cfg
 
 
 def _culprit(exc: Exception, overrides: list[str]) -> str | None:

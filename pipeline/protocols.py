@@ -107,10 +107,55 @@ class LossTerm(Protocol):
         """Scalar loss (before weighting) for a `coreach.training.terms.TermBatch`."""
 
 
+@runtime_checkable
+class Interface(Protocol):
+    """What maps the stick to the robot in closed loop: a trained decoder or a baseline, batched.
+
+    An interface may have several modes (direct control switches between axis pairs); the simulated operator
+    evaluates candidate sticks in every mode and pays a time cost when it changes mode.
+    """
+
+    name: str
+
+    @property
+    def n_modes(self) -> int:
+        """Number of modes the operator can choose among (1 for decoders)."""
+
+    def reset(self, n_episodes: int, state: Any) -> None:
+        """Start a batch of episodes (`coreach.vetting.records.LoopState` at step 0)."""
+
+    def act(self, stick: Tensor, state: Any) -> Tensor:
+        """Joint velocities [E, M, K, n] (rad/s, before safety limits) for candidate sticks [K, d] in each
+        of the M modes, in every episode's current state."""
+
+    def authority(self, state: Any) -> Tensor:
+        """Smallest singular value [E] of d(joint velocity)/d(stick) at the current state (rad/s per unit
+        stick), in the current mode: near zero means the stick barely moves the arm."""
+
+
+@runtime_checkable
+class Operator(Protocol):
+    """A simulated user, batched over episodes: it picks one candidate (mode, stick) each step."""
+
+    name: str
+
+    def reset(self, n_episodes: int, generator: Any) -> None:
+        """Start a batch of episodes; `generator` (torch.Generator) is the only source of randomness."""
+
+    def choose(self, value: Tensor, step: int, generator: Any) -> Tensor:
+        """Index [E] into the flattened M*K candidates given each candidate's value [E, M, K] for the
+        operator's current goal (progress toward it after the interface's action and the safety limits)."""
+
+    def perturb(self, stick: Tensor, step: int, generator: Any) -> Tensor:
+        """The stick [E, d] actually sent after the choice (bias, tremor); identity for an ideal user."""
+
+
 KINDS: dict[str, type] = {
     "robot": Robot,
     "dataset": Dataset,
     "belief": BeliefModel,
     "model": Decoder,
     "loss": LossTerm,
+    "interface": Interface,
+    "operator": Operator,
 }

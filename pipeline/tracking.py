@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import subprocess
 import tempfile
 from importlib import metadata
@@ -73,7 +74,12 @@ def flatten(cfg: DictConfig) -> dict[str, str]:
             out[prefix[:-1]] = str(node)
 
     walk(OmegaConf.to_container(cfg, resolve=True), "")
-    return {k: v[:6000] for k, v in out.items() if not k.startswith("hydra.")}
+    return {_param_key(k): v[:6000] for k, v in out.items() if not k.startswith("hydra.")}
+
+
+def _param_key(key: str) -> str:
+    """MLflow accepts only alphanumerics, _ - . space : / in keys."""
+    return re.sub(r"[^A-Za-z0-9_\-. :/]", "_", key)
 
 
 def git_commit() -> str | None:

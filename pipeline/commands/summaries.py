@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import sys
 
 from rich.console import Console
 from rich.table import Table
@@ -13,7 +14,7 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
         payload = summaries[0] if (command == "demo" and len(summaries) == 1) else {"runs": summaries}
         print(json.dumps(payload, indent=2, default=str))
         return
-    console = Console()
+    console = Console(width=None if sys.stdout.isatty() else 160)
     if command == "train":
         console.print(training_table(summaries))
         if summaries:
@@ -34,18 +35,22 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
 
 
 def training_table(runs: list[dict]) -> Table:
-    table = Table(title="trained decoders (lower validation loss is better within a loss recipe)")
-    for col in ("decoder", "val loss", "per term (val, best epoch)", "epochs", "seconds", "MLflow run id"):
-        table.add_column(col)
+    """One row per run; validation values at the best epoch. Totals mix different loss recipes, so the
+    reconstruction column is the one to compare across decoders."""
+    terms = sorted({k for r in runs for k in r.get("metrics", {}) if k.startswith("val/") and k != "val/loss"})
+    table = Table(title="trained decoders: validation losses at the best epoch (compare reconstruction across recipes)")
+    table.add_column("decoder")
+    for t in terms:
+        table.add_column(t.split("/", 1)[1], justify="right")
+    for col in ("total", "epochs", "seconds", "MLflow run id"):
+        table.add_column(col, justify="right" if col != "MLflow run id" else "left", no_wrap=True)
     for r in runs:
         metrics = r.get("metrics", {})
-        terms = ", ".join(
-            f"{k.split('/', 1)[1]}={v:.4g}" for k, v in sorted(metrics.items()) if k.startswith("val/") and k != "val/loss"
-        )
+        cells = [f"{metrics[t]:.4g}" if t in metrics else "-" for t in terms]
         table.add_row(
             str(r.get("label")),
-            f"{r.get('val_loss', float('nan')):.4f}",
-            terms,
+            *cells,
+            f"{r.get('val_loss', float('nan')):.4g}",
             str(r.get("epochs")),
             f"{r.get('seconds', 0):.1f}",
             str(r.get("run_id")),

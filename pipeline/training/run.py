@@ -74,7 +74,7 @@ def train(cfg: DictConfig) -> dict:
 
 
 def _fit_and_log(cfg, client, run_id, system, episodes, train_s, val_s) -> dict:
-    out = output_dir()
+    out = output_dir() / (cfg.get("label") or "train")
     params = tracking.flatten(cfg)
     params["dataset.fingerprint"] = episodes.fingerprint()
     params["dataset.episodes"] = str(len(episodes))

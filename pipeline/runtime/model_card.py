@@ -1,0 +1,105 @@
+"""The MODEL_CARD.md shipped in every release bundle: what the decoder is for, how it was made, its limits."""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+CAUTIONS = (
+    "This is research software. It is not a medical device and has not been certified as one.",
+    "Before any use with people: obtain an ethics review, fit a hardware emergency stop within reach of the "
+    "user and the supervisor, and set speed and force limits per ISO 10218-1/-2 and ISO/TS 15066 "
+    "(and ISO 13482 for personal-care robots).",
+    "Follow your local regulations and the judgement of qualified professionals (clinicians, occupational "
+    "therapists, safety engineers).",
+    "The runtime safety filter (stick box and deadband, non-finite-value fault latch, input watchdog, joint "
+    "speed and tool speed caps, joint position look-ahead, workspace box) is always on and cannot be switched "
+    "off; it reduces risk but does not replace the measures above.",
+)
+
+DEFAULT_LIMITS = (
+    "Trained on scripted demonstrations in simulation; behaviour with real users, real sensors and "
+    "latency has not been established by this bundle.",
+    "Goal inference assumes the goal layout given to the runtime is correct; wrong goal positions "
+    "mislead the belief and the goal-relative context.",
+    "The workspace box is checked on a first-order prediction of the tool position; it does not model "
+    "obstacles, the user's body or the wheelchair.",
+    "Releasing the stick commands zero velocity, but the arm's own controller decides how it stops.",
+)
+
+
+def _fmt(value: Any) -> str:
+    if isinstance(value, float):
+        return "n/a" if not math.isfinite(value) else f"{value:.4g}"
+    if value is None:
+        return "n/a"
+    return str(value)
+
+
+def _metric_row(name: str, value: Any) -> str:
+    """A metric is a number, or a dict with `value` and optionally `low`/`high` (interval), `level`, `unit`."""
+    if isinstance(value, dict):
+        text = _fmt(value.get("value"))
+        if "low" in value and "high" in value:
+            level = value.get("level")  # e.g. 0.95
+            label = f"{level:.0%} " if isinstance(level, (int, float)) and 0 < level <= 1 else ""
+            text += f" ({label}interval {_fmt(value['low'])} to {_fmt(value['high'])})"
+        if value.get("unit"):
+            text += f" {value['unit']}"
+        return f"| {name} | {text} |"
+    return f"| {name} | {_fmt(value)} |"
+
+
+def model_card(meta: dict, gate: dict, metrics: dict) -> str:
+    """Markdown model card from the release metadata, the gate's results and the evaluation metrics.
+
+    meta keys used (all optional): name, robot_name, goal_names, intended_use, dataset_fingerprint,
+    episodes, training_run_id, git_commit, safety (dict), known_limits (list of str).
+    """
+    meta, gate, metrics = meta or {}, gate or {}, metrics or {}
+    safety = meta.get("safety") or {}
+    goals = ", ".join(str(g) for g in meta.get("goal_names", [])) or "n/a"
+    lines = [
+        f"# Model card: {meta.get('name', 'latent-action decoder')}",
+        "",
+        "## Cautions",
+        "",
+        *[f"- {c}" for c in CAUTIONS],
+        "",
+        "## Intended use",
+        "",
+        meta.get(
+            "intended_use",
+            "Maps a 2-axis joystick, the arm's joint positions and the inferred goal to joint velocities of "
+            f"the {meta.get('robot_name', 'robot')} arm, for supervised research sessions on assistive "
+            "manipulation. Not for unsupervised use, not for tasks outside the goal set below.",
+        ),
+        "",
+        f"Goals it was trained for: {goals}.",
+        "",
+        "## Training data",
+        "",
+        f"- Dataset fingerprint: `{_fmt(meta.get('dataset_fingerprint'))}`",
+        f"- Episodes: {_fmt(meta.get('episodes'))}",
+        f"- Training run: `{_fmt(meta.get('training_run_id'))}`",
+        f"- Code version (git commit): `{_fmt(meta.get('git_commit'))}`",
+        "",
+        "## Metrics",
+        "",
+    ]
+    if metrics:
+        lines += ["| metric | value |", "|---|---|", *[_metric_row(k, v) for k, v in metrics.items()]]
+    else:
+        lines.append("No metrics were supplied with this release.")
+    lines += ["", "## Release gate", ""]
+    if gate:
+        lines += ["| check | result |", "|---|---|", *[f"| {k} | {_fmt(v)} |" for k, v in gate.items()]]
+    else:
+        lines.append("No gate results were supplied with this release.")
+    lines += ["", "## Safety filter settings", ""]
+    if safety:
+        lines += [f"- {k}: {_fmt(v) if not isinstance(v, (list, tuple)) else list(v)}" for k, v in safety.items()]
+    else:
+        lines.append("See manifest.json (`safety`).")
+    lines += ["", "## Known limits", "", *[f"- {x}" for x in (meta.get("known_limits") or DEFAULT_LIMITS)], ""]
+    return "\n".join(lines)

@@ -1,0 +1,327 @@
+"""Vetting report: PNG plots (matplotlib, no display needed), one self-contained HTML file, a terminal table."""
+
+from __future__ import annotations
+
+import base64
+import dataclasses
+import html
+import math
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import torch
+from matplotlib.figure import Figure  # a bare Figure renders with Agg: no pyplot, no display, no global state
+from torch import Tensor
+
+from coreach.context import build_context
+
+CAUTION = (
+    "coreach is research software, not a medical device. Nothing in this report shows that an interface is "
+    "fit for use with people. That needs an ethics review, a hardware emergency stop, and speed and force "
+    "limits set per ISO 10218-1/-2 and ISO/TS 15066 (and ISO 13482 for personal-care robots). Follow your "
+    "local regulations and the judgement of qualified professionals."
+)
+SIM_NOTE = (
+    "All figures come from simulated operators in simulation; intervals are 95% Wilson score intervals "
+    "unless stated otherwise, and describe the simulation only."
+)
+
+
+def _save(fig: Figure, path: Path) -> Path:
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".png")
+    os.close(fd)
+    try:
+        fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+    return path
+
+
+# ---- (a) latent action maps ----
+
+
+def states_at_confidence(state, episode: int, goal: int, levels) -> object:
+    """One episode's state copied once per level, with belief `level` on `goal` and the rest spread evenly
+    over the other goals (None = uniform), and the context rebuilt to match. Returns a LoopState [L, ...]."""
+    G = state.belief.shape[-1]
+    rows = []
+    for level in levels:
+        if level is None or G == 1:
+            b = torch.full((G,), 1.0 / G, dtype=state.belief.dtype)
+        else:
+            b = torch.full((G,), (1.0 - float(level)) / (G - 1), dtype=state.belief.dtype)
+            b[goal] = float(level)
+        rows.append(b)
+    L = len(rows)
+
+    def rep(x: Tensor) -> Tensor:
+        return x[episode : episode + 1].expand(L, *x.shape[1:]).clone()
+
+    belief = torch.stack(rows)  # [L, G]
+    q, ee_pos, ee_rot, targets, goal_rot = (rep(x) for x in (state.q, state.ee_pos, state.ee_rot,
+                                                              state.goal_targets, state.goal_rot))  # fmt: skip
+    context = build_context(q, ee_pos, ee_rot, belief.to(q.dtype), targets, goal_rot)
+    return dataclasses.replace(
+        state, q=q, ee_pos=ee_pos, ee_rot=ee_rot, jac=rep(state.jac), belief=belief, goal_targets=targets,
+        goal_rot=goal_rot, context=context.to(state.context.dtype), mode=torch.zeros(L, dtype=torch.long),
+    )  # fmt: skip
+
+
+def plot_action_maps(
+    interface,
+    state,
+    path: Path,
+    *,
+    episode: int = 0,
+    goal: int = 0,
+    levels=(None, 0.6, 0.95),
+    goal_names: list[str] | None = None,
+    grid: int = 7,
+) -> Path:
+    """Tool velocity J_lin @ act(stick) over a grid of the stick box, projected on x-y (top row) and x-z
+    (bottom row), one column per belief level on `goal` (None = uniform); mode 0 for multi-mode interfaces.
+    The red arrow points from the tool to the goal's approach point."""
+    st = states_at_confidence(state, episode, goal, levels)
+    axis = torch.linspace(-1.0, 1.0, grid, dtype=torch.float64)
+    s0, s1 = torch.meshgrid(axis, axis, indexing="xy")
+    stick = torch.stack([s0.reshape(-1), s1.reshape(-1)], dim=-1)  # [K, 2]
+    if hasattr(interface, "reset"):
+        interface.reset(len(levels), st)
+    qd = interface.act(stick, st)[:, 0].to(torch.float64)  # [L, K, n]
+    v = torch.einsum("lij,lkj->lki", st.jac[:, :3].to(torch.float64), qd).numpy()  # [L, K, 3] m/s
+    to_goal = (st.goal_targets[0, goal, 0] - st.ee_pos[0]).to(torch.float64).numpy()
+    spacing = 2.0 / max(grid - 1, 1)
+    top = float(np.linalg.norm(v, axis=-1).max()) or 1.0
+    scale = top / (0.9 * spacing)  # the fastest arrow spans 90% of a grid cell, same scale in every panel
+    name = goal_names[goal] if goal_names else f"goal {goal}"
+
+    fig = Figure(figsize=(3.4 * len(levels), 6.4))
+    axes = fig.subplots(2, len(levels), squeeze=False)
+    for j, level in enumerate(levels):
+        label = "uniform" if level is None else f"{float(level):.2f}"
+        for i, (a, b, plane) in enumerate(((0, 1, "x-y"), (0, 2, "x-z"))):
+            ax = axes[i][j]
+            ax.quiver(stick[:, 0].numpy(), stick[:, 1].numpy(), v[j, :, a], v[j, :, b], angles="xy",
+                      scale_units="xy", scale=scale, width=0.006)  # fmt: skip
+            d = to_goal[[a, b]]
+            if np.linalg.norm(d) > 0:
+                d = d / np.linalg.norm(d) * 0.8
+                ax.annotate("", xy=(d[0], d[1]), xytext=(0, 0), arrowprops={"color": "tab:red", "width": 1.5})
+            ax.set_xlim(-1.25, 1.25)
+            ax.set_ylim(-1.25, 1.25)
+            ax.set_aspect("equal")
+            ax.set_title(f"{plane}, belief on {name}: {label}", fontsize=9)
+            ax.set_xlabel("stick axis 0")
+            ax.set_ylabel("stick axis 1")
+    fig.suptitle(f"{interface.name}: tool velocity over the stick box (longest arrow {top:.3f} m/s)", fontsize=10)
+    return _save(fig, path)
+
+
+# ---- (b)-(d) comparisons across interfaces ----
+
+
+def plot_belief_traces(summaries: dict[str, dict], path: Path) -> Path:
+    """Mean belief on the final goal against time, one line per interface, shaded confidence interval."""
+    fig = Figure(figsize=(6.4, 4.0))
+    ax = fig.subplots()
+    for label, s in summaries.items():
+        b = s["belief"]
+        t = np.arange(len(b["trace_mean"])) * s["dt"]
+        (line,) = ax.plot(t, b["trace_mean"], label=label)
+        ax.fill_between(t, b["trace_lo"], b["trace_hi"], color=line.get_color(), alpha=0.2, linewidth=0)
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel("belief on the final goal")
+    ax.set_ylim(0, 1)
+    ax.legend(fontsize=8)
+    ax.set_title("Goal inference over time (mean, 95% interval of the mean)", fontsize=10)
+    return _save(fig, path)
+
+
+def plot_recovery(summaries: dict[str, dict], path: Path) -> Path:
+    """Success against switch fraction per interface, Wilson error bars; no-switch success dashed."""
+    fig = Figure(figsize=(6.4, 4.0))
+    ax = fig.subplots()
+    n = max(len(summaries), 1)
+    for i, (label, s) in enumerate(summaries.items()):
+        cells = {k: v for k, v in s["recovery"].items() if k != "none"}
+        xs = np.array([float(k) for k in cells])
+        offset = (i - (n - 1) / 2) * 0.008  # side by side, so error bars at one fraction do not hide each other
+        color = f"C{i}"
+        if cells:
+            y = np.array([c["value"] for c in cells.values()])
+            err = np.array([[c["value"] - c["lo"] for c in cells.values()], [c["hi"] - c["value"] for c in cells.values()]])
+            ax.errorbar(xs + offset, y, yerr=err, fmt="o-", capsize=3, color=color, label=label)
+        if "none" in s["recovery"]:
+            ax.axhline(s["recovery"]["none"]["value"], color=color, linestyle="--", linewidth=1,
+                       label=f"{label} (no switch)")  # fmt: skip
+    ax.set_xlabel("goal switch at fraction of the horizon")
+    ax.set_ylabel("success rate")
+    ax.set_ylim(0, 1.05)
+    ax.legend(fontsize=8)
+    ax.set_title("Recovery after a goal switch (95% Wilson intervals)", fontsize=10)
+    return _save(fig, path)
+
+
+def plot_bounds(summaries: dict[str, dict], path: Path) -> Path:
+    """Empirical ultimate bound w/k of the tracking error per belief-confidence bin, per interface."""
+    fig = Figure(figsize=(6.4, 4.0))
+    ax = fig.subplots()
+    bins: list[str] = []
+    for s in summaries.values():
+        bins += [r["bin"] for r in s["ultimate_bound"] if r["bin"] not in bins]
+    x = {b: i for i, b in enumerate(bins)}
+    for i, (label, s) in enumerate(summaries.items()):
+        rows = [r for r in s["ultimate_bound"] if math.isfinite(r["bound"])]
+        if rows:
+            ax.plot([x[r["bin"]] for r in rows], [r["bound"] for r in rows], "o-", color=f"C{i}", label=label)
+    ax.set_xticks(range(len(bins)), bins)
+    ax.set_xlabel("belief confidence (largest goal probability)")
+    ax.set_ylabel("ultimate error bound w/k (m)")
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize=8)
+    ax.set_title("Tracking-error bound against confidence (missing: too few steps, or no decay)", fontsize=10)
+    return _save(fig, path)
+
+
+def standard_plots(summaries: dict[str, dict], out_dir: Path) -> list[Path]:
+    """Plots (b), (c), (d) for a set of summaries, written to out_dir."""
+    out_dir = Path(out_dir)
+    return [
+        plot_belief_traces(summaries, out_dir / "belief_traces.png"),
+        plot_recovery(summaries, out_dir / "recovery.png"),
+        plot_bounds(summaries, out_dir / "ultimate_bound.png"),
+    ]
+
+
+# ---- text ----
+
+
+def fmt_num(value, digits: int = 3) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "–"
+    if isinstance(value, float) and math.isinf(value):
+        return "∞"
+    return f"{value:.{digits}g}" if isinstance(value, float) else str(value)
+
+
+def fmt_rate(r: dict) -> str:
+    return f"{fmt_num(r['value'], 2)} [{fmt_num(r['lo'], 2)}, {fmt_num(r['hi'], 2)}] (n={r['n']})"
+
+
+def _rows(s: dict) -> list[tuple[str, str]]:
+    t, a = s["time_to_success"], s["authority"]
+    flag = " — COLLAPSED" if a["collapsed"] else ""
+    return [
+        ("suite", str(s["suite"])),
+        ("success", fmt_rate(s["success"])),
+        ("time to success, s: median [IQR]", f"{fmt_num(t['median'])} [{fmt_num(t['q25'])}, {fmt_num(t['q75'])}] (n={t['n']})"),
+        ("path efficiency (mean, successes)", f"{fmt_num(s['path_efficiency']['mean'])} (n={s['path_efficiency']['n']})"),
+        ("belief on original goal at switch (mean)", f"{fmt_num(s['belief']['at_switch_original_mean'])} (n={s['belief']['at_switch_n']})"),
+        ("safety interventions: share of steps", fmt_num(s["interventions"]["step_share"])),
+        ("episodes with any intervention", fmt_rate(s["interventions"]["episodes_with_any"])),
+        ("control authority, rad/s per stick: median / 5th pct", f"{fmt_num(a['median'])} / {fmt_num(a['p05'])}{flag}"),
+        ("states where every goal was reachable", fmt_num(s["reachability"]["share"])),
+        ("mode switches per episode (mean)", fmt_num(s["mode_switches"]["mean"])),
+    ]  # fmt: skip
+
+
+def _table(header: list[str], rows: list[list[str]]) -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in r) + "</tr>" for r in rows)
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _image(path: Path) -> str:
+    data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
+    alt = html.escape(Path(path).stem.replace("_", " "))
+    return f'<figure><img alt="{alt}" src="data:image/png;base64,{data}"><figcaption>{alt}</figcaption></figure>'
+
+
+STYLE = (
+    "body{font-family:sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222}"
+    "table{border-collapse:collapse;margin:1em 0}td,th{border:1px solid #bbb;padding:4px 8px;text-align:left;"
+    "font-size:0.9em}th{background:#eee}.caution{border:2px solid #b00;background:#fff4f4;padding:0.8em}"
+    "img{max-width:100%}figure{margin:1em 0}"
+)
+
+
+def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, title: str, meta: dict) -> Path:
+    """One self-contained HTML file (images inlined, no links) at out_dir/report.html."""
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    labels = list(summaries)
+    metrics = [name for name, _ in _rows(next(iter(summaries.values())))] if summaries else []
+    main = _table(["metric"] + labels, [[m] + [dict(_rows(s))[m] for s in summaries.values()] for m in metrics])
+    cells = sorted({c for s in summaries.values() for c in s["recovery"]}, key=lambda c: (c != "none", c))
+    recovery = _table(
+        ["interface"] + [f"switch at {c}" if c != "none" else "no switch" for c in cells],
+        [[k] + [fmt_rate(s["recovery"][c]) if c in s["recovery"] else "–" for c in cells] for k, s in summaries.items()],
+    )
+    bound_rows = [[k, r["bin"], fmt_num(r["k"]), fmt_num(r["w"]), fmt_num(r["bound"]), str(r["n"])]
+                  for k, s in summaries.items() for r in s["ultimate_bound"]]  # fmt: skip
+    bounds = _table(["interface", "confidence", "k (1/s)", "w (m/s)", "bound w/k (m)", "steps"], bound_rows)
+    collapsed = [k for k, s in summaries.items() if s["authority"]["collapsed"]]
+    warn = ""
+    if collapsed:
+        warn = ('<p class="caution">Control authority collapsed (median below threshold; the stick barely moves '
+                f"the arm) for: {html.escape(', '.join(collapsed))}.</p>")  # fmt: skip
+    meta_table = _table(["", ""], [[str(k), str(v)] for k, v in meta.items()])
+    page = f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title><style>{STYLE}</style></head>
+<body>
+<h1>{html.escape(title)}</h1>
+<p class="caution"><strong>Caution.</strong> {html.escape(CAUTION)}</p>
+<p>{html.escape(SIM_NOTE)}</p>
+{warn}
+<h2>Run</h2>{meta_table}
+<h2>Summary</h2>{main}
+<h2>Recovery after a goal switch</h2>{recovery}
+<h2>Ultimate bound of the tracking error by belief confidence</h2>
+<p>Fit of e' = -k e + d with |d| &le; w (w: 95th percentile of the fitted disturbance) on the steps whose
+belief confidence falls in each bin; w/k is where the error settles.</p>{bounds}
+<h2>Plots</h2>
+{"".join(_image(p) for p in plots)}
+</body></html>
+"""
+    path = out_dir / "report.html"
+    fd, tmp = tempfile.mkstemp(dir=out_dir, suffix=".html")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(page)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+    return path
+
+
+def terminal_table(summaries: dict[str, dict]):
+    """The headline metrics, one row per interface, as a rich Table."""
+    from rich.table import Table
+
+    table = Table(title="Closed-loop vetting (simulated operators; 95% Wilson intervals)")
+    for col in ("interface", "suite", "success", "worst recovery", "time to success (s)", "authority", "interventions"):
+        table.add_column(col)
+    for label, s in summaries.items():
+        switched = {k: v for k, v in s["recovery"].items() if k != "none"}
+        worst = min(switched.items(), key=lambda kv: kv[1]["value"] if not math.isnan(kv[1]["value"]) else 2.0) \
+            if switched else None  # fmt: skip
+        a = s["authority"]
+        auth = f"{fmt_num(a['median'])}" + (" [red]collapsed[/red]" if a["collapsed"] else "")
+        table.add_row(
+            label,
+            str(s["suite"]),
+            fmt_rate(s["success"]),
+            f"{fmt_rate(worst[1])} at {worst[0]}" if worst else "–",
+            f"{fmt_num(s['time_to_success']['median'])} [{fmt_num(s['time_to_success']['q25'])}, "
+            f"{fmt_num(s['time_to_success']['q75'])}]",
+            auth,
+            fmt_num(s["interventions"]["step_share"]),
+        )
+    return table
