@@ -101,7 +101,7 @@ def plot_action_maps(
     scale = top / (0.9 * spacing)  # the fastest arrow spans 90% of a grid cell, same scale in every panel
     name = goal_names[goal] if goal_names else f"goal {goal}"
 
-    fig = Figure(figsize=(3.4 * len(levels), 6.4))
+    fig = Figure(figsize=(3.4 * len(levels), 6.4), layout="constrained")
     axes = fig.subplots(2, len(levels), squeeze=False)
     for j, level in enumerate(levels):
         label = "uniform" if level is None else f"{float(level):.2f}"
@@ -116,7 +116,7 @@ def plot_action_maps(
             ax.set_xlim(-1.25, 1.25)
             ax.set_ylim(-1.25, 1.25)
             ax.set_aspect("equal")
-            ax.set_title(f"{plane}, belief on {name}: {label}", fontsize=9)
+            ax.set_title(f"{plane} velocity, belief on {name}: {label}", fontsize=9)
             ax.set_xlabel("stick axis 0")
             ax.set_ylabel("stick axis 1")
     fig.suptitle(f"{interface.name}: tool velocity over the stick box (longest arrow {top:.3f} m/s)", fontsize=10)
@@ -128,7 +128,7 @@ def plot_action_maps(
 
 def plot_belief_traces(summaries: dict[str, dict], path: Path) -> Path:
     """Mean belief on the final goal against time, one line per interface, shaded confidence interval."""
-    fig = Figure(figsize=(6.4, 4.0))
+    fig = Figure(figsize=(6.4, 4.0), layout="constrained")
     ax = fig.subplots()
     for label, s in summaries.items():
         b = s["belief"]
@@ -145,7 +145,7 @@ def plot_belief_traces(summaries: dict[str, dict], path: Path) -> Path:
 
 def plot_recovery(summaries: dict[str, dict], path: Path) -> Path:
     """Success against switch fraction per interface, Wilson error bars; no-switch success dashed."""
-    fig = Figure(figsize=(6.4, 4.0))
+    fig = Figure(figsize=(6.4, 4.0), layout="constrained")
     ax = fig.subplots()
     n = max(len(summaries), 1)
     for i, (label, s) in enumerate(summaries.items()):
@@ -170,7 +170,7 @@ def plot_recovery(summaries: dict[str, dict], path: Path) -> Path:
 
 def plot_bounds(summaries: dict[str, dict], path: Path) -> Path:
     """Empirical ultimate bound w/k of the tracking error per belief-confidence bin, per interface."""
-    fig = Figure(figsize=(6.4, 4.0))
+    fig = Figure(figsize=(6.4, 4.0), layout="constrained")
     ax = fig.subplots()
     bins: list[str] = []
     for s in summaries.values():
@@ -211,7 +211,10 @@ def fmt_num(value, digits: int = 3) -> str:
 
 
 def fmt_rate(r: dict) -> str:
-    return f"{fmt_num(r['value'], 2)} [{fmt_num(r['lo'], 2)}, {fmt_num(r['hi'], 2)}] (n={r['n']})"
+    """Rate, interval and count: 0.80 [0.63, 0.90] (n=30)."""
+    if r["n"] == 0:
+        return "– (n=0)"
+    return f"{r['value']:.2f} [{r['lo']:.2f}, {r['hi']:.2f}] (n={r['n']})"
 
 
 def _rows(s: dict) -> list[tuple[str, str]]:
@@ -271,7 +274,7 @@ def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, t
     if collapsed:
         warn = ('<p class="caution">Control authority collapsed (median below threshold; the stick barely moves '
                 f"the arm) for: {html.escape(', '.join(collapsed))}.</p>")  # fmt: skip
-    meta_table = _table(["", ""], [[str(k), str(v)] for k, v in meta.items()])
+    meta_table = _table(["item", "value"], [[str(k), str(v)] for k, v in meta.items()])
     page = f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title><style>{STYLE}</style></head>
 <body>

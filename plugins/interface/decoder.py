@@ -10,7 +10,7 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
-from coreach.plugins.interface.direct import STICK_DIM, check_stick
+from coreach.plugins.interface.direct import STICK_DIM, episode_sticks
 from coreach.policy import DecoderPolicy
 
 ARTIFACT = "decoder"  # artifact folder written by coreach.training.run
@@ -55,6 +55,8 @@ def load_policy(run: str) -> tuple[DecoderPolicy, str]:
         if missing:
             raise ConfigError(f"{WHERE} ({folder})", f"folder lacks {missing}; expected a decoder saved by coreach")
         return DecoderPolicy.load(folder), str(folder)
+    if not run.startswith("models:/") and ("/" in run or "\\" in run or run.startswith((".", "~"))):
+        raise ConfigError(f"{WHERE} ({run})", "no such folder (run ids have no slashes)")
 
     from mlflow.exceptions import MlflowException
     from mlflow.tracking import MlflowClient
@@ -80,7 +82,7 @@ def load_policy(run: str) -> tuple[DecoderPolicy, str]:
 
 
 class DecoderInterface:
-    """stick [K, 2] -> policy(stick, context) in every episode; one mode. `run`: MLflow run id,
+    """stick [K, 2] (or [E, K, 2]) -> policy(stick, context) in every episode; one mode. `run`: MLflow run id,
     models:/<name>/<version>, models:/<name>@<alias>, or a local folder holding decoder.safetensors and
     decoder.json. The store is MLFLOW_TRACKING_URI, else ./mlflow.db."""
 
@@ -123,13 +125,12 @@ class DecoderInterface:
         self._context(state)
 
     def act(self, stick: Tensor, state) -> Tensor:
-        check_stick(stick, f"interface {self.name}")
         ctx = self._context(state)  # [E, C]
         E, C = ctx.shape
-        K = stick.shape[0]
+        sticks = episode_sticks(stick, E, f"interface {self.name}").to(self.dtype_)  # [E, K, 2]
         with torch.no_grad():
             # One forward over all E*K (episode, candidate) pairs; expand is free, the policy flattens.
-            qd = self.policy_(stick.to(self.dtype_)[None].expand(E, K, STICK_DIM), ctx[:, None].expand(E, K, C))
+            qd = self.policy_(sticks, ctx[:, None].expand(E, sticks.shape[1], C))
         return qd[:, None].to(state.context.dtype)  # [E, 1, K, n]
 
     def stick_jacobian(self, context: Tensor, stick: Tensor | None = None) -> Tensor:

@@ -34,9 +34,16 @@ def check_positive(where: str, value: float, minimum: float = 0.0, strict: bool 
     return out
 
 
-def check_stick(stick: Tensor, where: str) -> None:
-    if stick.ndim != 2 or stick.shape[-1] != STICK_DIM:
-        raise ConfigError(where, f"expected candidate sticks of shape [K, {STICK_DIM}], got {tuple(stick.shape)}")
+def episode_sticks(stick: Tensor, n_episodes: int, where: str) -> Tensor:
+    """Candidate sticks as [E, K, 2]: the same K candidates for every episode ([K, 2], what the operator
+    evaluates) or one set per episode ([E, K, 2], e.g. the perturbed stick actually sent)."""
+    if stick.ndim == 2 and stick.shape[-1] == STICK_DIM:
+        return stick[None].expand(n_episodes, -1, -1)
+    if stick.ndim == 3 and stick.shape[0] == n_episodes and stick.shape[-1] == STICK_DIM:
+        return stick
+    raise ConfigError(
+        where, f"expected sticks of shape [K, {STICK_DIM}] or [{n_episodes}, K, {STICK_DIM}], got {tuple(stick.shape)}"
+    )
 
 
 def switch_steps(seconds: float, dt: float) -> int:
@@ -90,9 +97,9 @@ class DirectControl:
         self.switch_cost_steps = switch_steps(self.switch_cost_s, float(state.dt))
 
     def act(self, stick: Tensor, state) -> Tensor:
-        check_stick(stick, f"interface {self.name}")
-        maps = self.mode_maps(state)
-        return torch.einsum("emnd,kd->emkn", maps, stick.to(maps.dtype))
+        maps = self.mode_maps(state)  # [E, M, n, 2]
+        sticks = episode_sticks(stick, maps.shape[0], f"interface {self.name}").to(maps.dtype)  # [E, K, 2]
+        return torch.einsum("emnd,ekd->emkn", maps, sticks)
 
     def authority(self, state) -> Tensor:
         maps = self.mode_maps(state)  # [E, M, n, 2]

@@ -1,0 +1,272 @@
+"""Closed-loop vetting: a simulated operator drives an interface through a suite, all episodes stepped together.
+
+One control step, for E episodes at once (no Python loop over episodes):
+1. forward kinematics and Jacobian at q (once per episode; candidates use the linearisation);
+2. the belief update on the tool's last motion, then the context from `coreach.context.build_context`, the
+   function training uses;
+3. the interface's command for every candidate stick in every mode, [E, M, K, n], passed through the shared
+   `SafetyLimits` (keep_inside, then cap);
+4. each candidate's value for the operator's current goal: predicted one-step progress toward its current
+   waypoint (dx = J_lin qd dt) plus ORIENTATION_WEIGHT times progress toward the approach orientation
+   (dtheta = J_ang qd dt); candidates in another interface mode pay a switching penalty;
+5. the operator picks one, perturbs its stick (bias, tremor); a perturbed stick is sent through the interface
+   again (one stick per episode) and through the limits; q += qd dt.
+
+Bookkeeping: the operator first seeks the approach pose (position and orientation within the suite's
+tolerances), then the end of the goal's fine motion; completing it with the orientation still within
+tolerance is an arrival. Arriving at the final goal is success; an episode that arrives holds still (zero
+velocity) for the rest of the horizon, including an arm that completed its initial goal and waits for a
+pending goal switch. At the switch step the operator's goal becomes the final goal, its phase restarts, and
+the belief on the original goal at that moment is recorded (FIELD-NOTES pitfall 5).
+"""
+
+from __future__ import annotations
+
+import inspect
+import math
+from typing import Callable
+
+import torch
+from torch import Tensor
+
+from coreach.context import build_context
+from coreach.geometry import rotation_error
+from coreach.vetting.records import LoopState, RolloutRecord
+from coreach.vetting.suite import EpisodePlan, Suite
+
+__all__ = ["rollout", "rollout_per_episode", "ORIENTATION_WEIGHT", "REACH_PROGRESS"]
+
+ORIENTATION_WEIGHT = 0.05  # m per rad: 1 rad of orientation progress is worth 5 cm of position progress
+REACH_PROGRESS = 1e-3  # m per step a candidate must gain toward a goal for that goal to count as reachable
+Progress = Callable[[int, int], None]
+
+
+def _kinematics(robot, q: Tensor, jacobian: bool):
+    """Tool pose (and Jacobian) at q; uses a robot's single-pass `fk_and_jacobian` when it has one."""
+    both = getattr(robot, "fk_and_jacobian", None) if jacobian else None
+    if both is not None:
+        pos, rot, jac = both(q)
+    else:
+        pos, rot = robot.fk(q)
+        jac = robot.jacobian(q) if jacobian else None
+    return pos.to(q.dtype), rot.to(q.dtype), None if jac is None else jac.to(q.dtype)
+
+
+def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, dt: float) -> tuple[Tensor, Tensor]:
+    """Shared safety limits on commands qd [..., n] at q (broadcastable), jac_lin [..., 3, n].
+
+    keep_inside runs first: a uniform scale-down (cap) of a command that keeps q + qd dt inside the joint
+    box keeps it inside (the box is convex and holds q), whereas clipping joints after capping could raise
+    the tool speed above its cap again.
+    """
+    qd, outside = limits.keep_inside(q, qd, dt)
+    qd, fast = limits.cap(qd, jac_lin)
+    return qd, outside | fast
+
+
+def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> None:
+    """Operators that take the control period (e.g. for band-limited tremor) get it as `dt`."""
+    if "dt" in inspect.signature(operator.reset).parameters:
+        operator.reset(n, generator, dt=dt)
+    else:
+        operator.reset(n, generator)
+
+
+def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, plan: EpisodePlan,
+              generator: torch.Generator, progress: Progress | None, authority_every: int,
+              dtype: torch.dtype) -> dict:  # fmt: skip
+    E, T, dt = len(plan), suite.steps, suite.step_dt
+    G = len(plan.layout.names)
+    rows = torch.arange(E)
+    tol_pos, tol_ang = suite.position_tol, suite.orientation_tol
+    grid = suite.stick_grid(dtype)  # [K, 2]
+    K = grid.shape[0]
+    switch_cost = int(getattr(interface, "switch_cost_steps", 0))
+    margin = float(getattr(operator, "mode_switch_margin", 0.0))
+
+    targets = plan.layout.targets.to(dtype)  # [E, G, 2, 3]
+    goal_rot = plan.layout.approach_rot.to(dtype)  # [E, G, 3, 3]
+    approach = targets[:, :, 0, :]  # [E, G, 3]
+    q = plan.q_start.to(dtype).clone()
+    n = q.shape[1]
+    goal = plan.goal_initial.clone()
+    switch_steps = set(plan.switch_step[plan.switch_step >= 0].tolist())
+    pending = plan.switch_step >= 0  # [E] a switch is still to come
+
+    phase1 = torch.zeros(E, dtype=torch.bool)  # approach pose of the current goal reached
+    arrived = torch.zeros(E, dtype=torch.bool)  # current goal's fine motion completed (arm holds still)
+    success = torch.zeros(E, dtype=torch.bool)
+    success_step = torch.full((E,), -1, dtype=torch.long)
+    phase1_step = torch.full((E,), -1, dtype=torch.long)
+    initial_done_step = torch.full((E,), -1, dtype=torch.long)
+    mode = torch.zeros(E, dtype=torch.long)
+    hold = torch.zeros(E, dtype=torch.long)
+    mode_switches = torch.zeros(E, dtype=torch.long)
+    belief_at_switch = torch.full((E,), math.nan, dtype=dtype)
+
+    rec_q = torch.empty(E, T + 1, n, dtype=dtype)
+    rec_qd = torch.zeros(E, T, n, dtype=dtype)
+    rec_pos = torch.empty(E, T + 1, 3, dtype=dtype)
+    rec_belief = torch.empty(E, T + 1, G, dtype=dtype)
+    rec_error = torch.empty(E, T + 1, dtype=dtype)
+    rec_interv = torch.zeros(E, T, dtype=torch.bool)
+    rec_reach = torch.zeros(E, T, dtype=torch.bool)
+    rec_auth = torch.full((E, T), math.nan, dtype=dtype)
+
+    _reset_operator(operator, E, generator, dt)
+    belief = belief_model.initial(E, G, q[:, 0])
+    prev_pos = None
+    for t in range(T + 1):
+        pos, rot, jac = _kinematics(robot, q, jacobian=t < T)
+        if prev_pos is not None:
+            belief = belief_model.update(belief, prev_pos, pos, targets)
+
+        if t in switch_steps:
+            now = plan.switch_step == t  # [E]
+            belief_at_switch = torch.where(now, belief[rows, plan.goal_initial], belief_at_switch)
+            goal = torch.where(now, plan.goal_final, goal)
+            phase1 &= ~now
+            arrived &= ~now
+            pending &= ~now
+
+        # --- where the operator stands with its current goal ---
+        wp = targets[rows, goal]  # [E, 2, 3] approach point, end of fine motion
+        rot_err = rotation_error(goal_rot[rows, goal], rot)  # [E, 3]
+        ang = rot_err.norm(dim=-1)
+        ori_ok = ang < tol_ang
+        at_approach = ((wp[:, 0] - pos).norm(dim=-1) < tol_pos) & ori_ok
+        phase1_step = torch.where(at_approach & ~phase1 & (phase1_step < 0), t, phase1_step)
+        phase1 |= at_approach
+        done = phase1 & ((wp[:, 1] - pos).norm(dim=-1) < tol_pos) & ori_ok & ~arrived
+        arrived |= done
+        initial_done_step = torch.where(done & pending & (initial_done_step < 0), t, initial_done_step)
+        won = done & ~pending
+        success_step = torch.where(won, t, success_step)
+        success |= won
+        waypoint = torch.where(phase1[:, None], wp[:, 1], wp[:, 0])  # [E, 3]
+        to_wp = waypoint - pos
+
+        rec_q[:, t], rec_pos[:, t], rec_belief[:, t] = q, pos, belief
+        rec_error[:, t] = to_wp.norm(dim=-1)
+        if t == T:
+            break
+
+        # --- candidates through the interface and the shared limits ---
+        context = build_context(q, pos, rot, belief, targets, goal_rot)
+        state = LoopState(t, q, pos, rot, jac, belief, targets, goal_rot, context, mode, dt)
+        if t == 0:
+            interface.reset(E, state)
+        raw = interface.act(grid, state).to(dtype)  # [E, M, K, n]
+        M = raw.shape[1]
+        jac_lin = jac[:, :3, :]
+        safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], dt)
+        twist = torch.einsum("eij,emkj->emki", jac, safe) * dt  # [E, M, K, 6] one-step tool motion
+        dx, dth = twist[..., :3], twist[..., 3:]
+        d_after = (to_wp[:, None, None, :] - dx).norm(dim=-1)  # [E, M, K]
+        ang_after = (rot_err[:, None, None, :] - dth).norm(dim=-1)
+        value = (rec_error[:, t, None, None] - d_after) + ORIENTATION_WEIGHT * (ang[:, None, None] - ang_after)
+        if M > 1:
+            # A switch forfeits `switch_cost` steps of the best progress the current mode offers, plus the
+            # operator's own hysteresis margin.
+            best_here = value[rows, mode].amax(dim=-1).clamp_min(0.0)  # [E]
+            penalty = switch_cost * best_here + margin
+            other = torch.arange(M)[None, :] != mode[:, None]  # [E, M]
+            value = value - other[:, :, None] * penalty[:, None, None]
+
+        # reachable: for every goal, some candidate makes real progress toward its approach point
+        d0 = (pos[:, None, :] - approach).norm(dim=-1)  # [E, G]
+        moved = pos[:, None, None, :] + dx.reshape(E, M * K, 1, 3)  # [E, MK, 1, 3]
+        gain = (d0[:, None, :] - (moved - approach[:, None]).norm(dim=-1)).amax(dim=1)  # [E, G]
+        rec_reach[:, t] = ((gain > REACH_PROGRESS) | (d0 < tol_pos)).all(dim=-1)
+        if authority_every and t % authority_every == 0:
+            rec_auth[:, t] = interface.authority(state).to(dtype)
+
+        # --- the operator's choice, perturbed, limited, applied ---
+        idx = operator.choose(value, t, generator).long()  # [E], -1 = no input
+        no_input = idx < 0
+        pick = idx.clamp_min(0)
+        m_pick = pick // K
+        stick = torch.where(no_input[:, None], torch.zeros_like(grid[:1]), grid[pick % K])  # [E, 2]
+        sent = operator.perturb(stick, t, generator)
+        if sent is stick or torch.equal(sent, stick):
+            qd = safe.reshape(E, M * K, n)[rows, pick]
+            hit = flags.reshape(E, M * K)[rows, pick]
+        else:
+            again = interface.act(sent[:, None, :].to(dtype), state).to(dtype)  # [E, M, 1, n]
+            qd, hit = _limit(limits, q, again[rows, m_pick, 0], jac_lin, dt)
+
+        holding = hold > 0
+        hold = (hold - 1).clamp_min(0)
+        active = ~arrived & ~holding & ~no_input
+        switching = active & (m_pick != mode)
+        mode = torch.where(switching, m_pick, mode)
+        mode_switches += switching
+        if switch_cost > 0:
+            hold = torch.where(switching, switch_cost - 1, hold)  # this step is the first of the hold
+            active &= ~switching
+        qd = torch.where(active[:, None], qd, 0.0)
+        rec_qd[:, t] = qd
+        rec_interv[:, t] = hit & active
+        prev_pos = pos
+        q = q + qd * dt
+        if progress is not None:
+            progress(t + 1, T)
+
+    return dict(
+        success=success, success_step=success_step, ee_path=rec_pos, belief=rec_belief,
+        belief_at_switch=belief_at_switch, error=rec_error, interventions=rec_interv, reachable=rec_reach,
+        authority=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, phase1_step=phase1_step,
+        initial_done_step=initial_done_step,
+    )  # fmt: skip
+
+
+def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: dict) -> RolloutRecord:
+    extras = {
+        "q": out.pop("q"),  # [E, T+1, n] joint positions
+        "qd": out.pop("qd"),  # [E, T, n] applied joint velocities (after limits; zero when holding)
+        "phase1_step": out.pop("phase1_step"),  # [E] first step at the final goal's approach pose, -1 never
+        "initial_done_step": out.pop("initial_done_step"),  # [E] initial goal completed before its switch
+        "goal_targets": plan.layout.targets,  # [E, G, 2, 3]
+        "operator": operator.name,
+        "robot": robot.name,
+        "seed": suite.seed,
+    }
+    return RolloutRecord(
+        interface=interface.name, suite=suite.name, goal_names=list(plan.layout.names), dt=suite.step_dt,
+        goal_initial=plan.goal_initial, goal_final=plan.goal_final, switch_step=plan.switch_step,
+        switch_fraction=plan.switch_fraction, extras=extras, **out,
+    )  # fmt: skip
+
+
+def rollout(robot, interface, operator, suite: Suite, belief_model, limits, generator: torch.Generator,
+            progress: Progress | None = None, *, authority_every: int = 10,
+            dtype: torch.dtype = torch.float64) -> RolloutRecord:  # fmt: skip
+    """Run every episode of `suite` with `interface` driven by `operator`, all episodes as one batch.
+
+    `generator` is the only source of randomness: the episode plan is drawn from it first, then the
+    operator's choices and perturbations. Give every interface a fresh `suite.generator()` so all of them
+    meet the same episodes. `progress(step, total)` is called after every control step.
+    """
+    plan = suite.episodes_plan(generator, robot)
+    with torch.no_grad():
+        out = _simulate(robot, interface, operator, suite, belief_model, limits, plan, generator, progress,
+                        authority_every, dtype)  # fmt: skip
+    return _record(robot, interface, operator, suite, plan, out)
+
+
+def rollout_per_episode(robot, interface, operator, suite: Suite, belief_model, limits,
+                        generator: torch.Generator, progress: Progress | None = None, *,
+                        authority_every: int = 10, dtype: torch.dtype = torch.float64) -> RolloutRecord:  # fmt: skip
+    """The same rollouts one episode at a time (a plain Python loop): the reference `coreach bench vet`
+    measures the batched loop against. Same plan as `rollout` for the same generator; with a
+    deterministic operator (e.g. greedy) the outcomes are identical."""
+    plan = suite.episodes_plan(generator, robot)
+    parts = []
+    E, T = len(plan), suite.steps
+    with torch.no_grad():
+        for e in range(E):
+            step = None if progress is None else (lambda t, _T, e=e: progress(e * T + t, E * T))
+            parts.append(_simulate(robot, interface, operator, suite, belief_model, limits, plan.select([e]),
+                                   generator, step, authority_every, dtype))  # fmt: skip
+    out = {k: torch.cat([p[k] for p in parts]) for k in parts[0]}
+    return _record(robot, interface, operator, suite, plan, out)

@@ -1,0 +1,35 @@
+"""Shared fixtures: small training configs that run in seconds, each in its own working folder."""
+
+from __future__ import annotations
+
+import os
+
+import pytest
+
+# Small enough for seconds on 2 cores, large enough that every goal appears in both splits.
+FAST = ["trainer.max_epochs=2", "data.batch_size=128"]
+SMALL = ["dataset.episodes=40", *FAST]
+
+
+@pytest.fixture
+def workdir(tmp_path, monkeypatch):
+    """A fresh working folder: MLflow store, caches and run folders land here."""
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("MLFLOW_TRACKING_URI", raising=False)
+    return tmp_path
+
+
+@pytest.fixture
+def small_cfg(workdir):
+    from coreach.config_check import compose_config
+
+    def make(*overrides: str):
+        return compose_config("train", [*SMALL, *overrides])
+
+    return make
+
+
+def cli_env(**extra: str) -> dict:
+    env = {k: v for k, v in os.environ.items() if k != "MLFLOW_TRACKING_URI"}
+    env.update(CI="true", **extra)
+    return env

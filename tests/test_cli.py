@@ -1,0 +1,115 @@
+"""The `coreach` command as a user runs it: JSON on stdout, sweeps, plugins, and one-line errors."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+from conftest import FAST, SMALL, cli_env
+from mlflow.tracking import MlflowClient
+
+COREACH = str(Path(sys.executable).parent / "coreach")
+
+
+def run(args, cwd, **env):
+    return subprocess.run([COREACH, *args], cwd=cwd, capture_output=True, text=True, env=cli_env(**env), timeout=600)
+
+
+def test_train_json_prints_only_json(workdir):
+    res = run(["--json", "train", *SMALL, "model=linear", "loss=[reconstruction]"], workdir)
+    assert res.returncode == 0, res.stderr
+    payload = json.loads(res.stdout)  # nothing but JSON on stdout
+    (summary,) = payload["runs"]
+    assert summary["label"] == "LinearDecoder" and len(summary["run_id"]) == 32
+    assert (workdir / "mlflow.db").exists()
+
+
+def test_multirun_tags_runs_as_one_sweep(workdir):
+    res = run(["--json", "train", "-m", *SMALL, "model=linear,vae", "loss=[reconstruction]"], workdir)
+    assert res.returncode == 0, res.stderr
+    runs = json.loads(res.stdout)["runs"]
+    assert len(runs) == 2
+    client = MlflowClient(f"sqlite:///{workdir / 'mlflow.db'}")
+    tags = {client.get_run(r["run_id"]).data.tags.get("coreach.sweep") for r in runs}
+    assert len(tags) == 1 and None not in tags
+    assert {client.get_run(r["run_id"]).data.params["model._target_"].rsplit(".", 1)[1] for r in runs} == {
+        "LinearDecoder",
+        "StateVAE",
+    }
+
+
+def test_plugins_lists_every_kind_with_origin(workdir):
+    res = run(["--json", "plugins"], workdir)
+    assert res.returncode == 0, res.stderr
+    found = {(p["kind"], p["name"]): p for p in json.loads(res.stdout)}
+    for key in [("robot", "reach7"), ("dataset", "parquet_file"), ("belief", "boltzmann"), ("model", "cvae"),
+                ("loss", "goal_entropy")]:
+        assert found[key]["origin"] == "built-in"
+
+
+def _bad_dataset(workdir: Path) -> Path:
+    """A copy of a generated dataset with one NaN joint velocity in episode 3."""
+    from coreach.config_check import compose_config
+    from coreach.training.run import build_plugin
+
+    cfg = compose_config("train", SMALL)
+    robot = build_plugin(cfg.robot, "robot")
+    src = Path(build_plugin(cfg.dataset, "dataset").cache_path(robot))
+    build_plugin(cfg.dataset, "dataset").load(robot)
+    table = pq.read_table(src)
+    qd = table.column("qd").to_pylist()
+    episodes = np.array(table.column("episode").to_pylist())
+    row = int(np.flatnonzero(episodes == 3)[2])
+    qd[row][1] = float("nan")
+    import pyarrow as pa
+
+    idx = table.schema.get_field_index("qd")
+    table = table.set_column(idx, table.schema.field("qd"), pa.array(qd, type=table.schema.field("qd").type))
+    bad = workdir / "bad.parquet"
+    pq.write_table(table, bad)
+    return bad
+
+
+BAD_INPUTS = {
+    "unknown plugin": (["model=transformer"], "model=transformer"),
+    "bad option type": (["model.hidden=abc"], "model.hidden"),
+    "unknown option": (["+model.lattent=3"], "model.lattent"),
+    "missing urdf": (["robot.urdf=/nonexistent/arm.urdf"], "/nonexistent/arm.urdf"),
+}
+BAD_DATA_OPTIONS = {
+    "mandatory path": (["dataset=parquet_file"], "dataset.path"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(BAD_INPUTS) + sorted(BAD_DATA_OPTIONS))
+def test_bad_input_gives_one_line_and_nonzero_exit(workdir, case):
+    if case in BAD_INPUTS:
+        overrides, needle = BAD_INPUTS[case]
+        overrides = [*SMALL, *overrides]
+    else:
+        overrides, needle = BAD_DATA_OPTIONS[case]
+        overrides = [*FAST, *overrides]
+    res = run(["train", *overrides], workdir)
+    assert res.returncode == 2
+    lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1, res.stderr
+    assert lines[0].startswith("coreach: error:") and needle in lines[0]
+    assert "Traceback" not in res.stderr and res.stdout == ""
+    assert not (workdir / "mlflow.db").exists()  # nothing written for a run that never started
+
+
+def test_nan_in_dataset_names_file_episode_and_column(workdir):
+    bad = _bad_dataset(workdir)
+    res = run(["train", *FAST, "dataset=parquet_file", f"dataset.path={bad}"], workdir)
+    assert res.returncode == 2
+    (line,) = [ln for ln in res.stderr.splitlines() if ln.strip()]
+    assert "bad.parquet" in line and "episode 3" in line and "qd" in line
+    assert not (workdir / "mlflow.db").exists()
+    # with --debug the traceback is shown
+    res = run(["--debug", "train", *FAST, "dataset=parquet_file", f"dataset.path={bad}"], workdir)
+    assert res.returncode == 2 and "Traceback" in res.stderr

@@ -1,0 +1,132 @@
+"""Vetting report: valid PNG plots read back by matplotlib, one self-contained HTML file, the terminal table."""
+
+from __future__ import annotations
+
+import base64
+import io
+import math
+import re
+
+import matplotlib.image as mpimg
+import pytest
+import torch
+from rich.console import Console
+
+from coreach.context import ContextSpec, build_context
+from coreach.plugins.interface.decoder import DecoderInterface
+from coreach.plugins.interface.direct import DirectControl
+from coreach.plugins.robot.urdf_arm import UrdfArm
+from coreach.policy import DecoderPolicy
+from coreach.scenario import load_scenario
+from coreach.vetting.metrics import summarise
+from coreach.vetting.records import LoopState, RolloutRecord
+from coreach.vetting.report import (
+    plot_action_maps,
+    standard_plots,
+    states_at_confidence,
+    terminal_table,
+    write_report,
+)
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # the PNG file signature (PNG specification, section 5.2)
+
+
+def record(name: str, seed: int, E: int = 30, T: int = 40) -> RolloutRecord:
+    """A random but well-formed record (3 goals, switch cells none / 0.3 / 0.7)."""
+    g = torch.Generator().manual_seed(seed)
+    success = torch.rand(E, generator=g) < 0.7
+    success_step = torch.where(success, torch.randint(10, T, (E,), generator=g), torch.full((E,), -1))
+    sf = torch.tensor([float("nan"), 0.3, 0.7]).repeat(E // 3)
+    belief = torch.softmax(torch.cumsum(torch.randn(E, T + 1, 3, generator=g, dtype=torch.float64), 1), -1)
+    error = torch.exp(-0.1 * torch.arange(T + 1, dtype=torch.float64))[None] + 0.01 * torch.rand(E, T + 1, generator=g)
+    return RolloutRecord(
+        interface=name, suite="unit", goal_names=["a", "b", "c"], dt=0.1,
+        goal_initial=torch.zeros(E, dtype=torch.long), goal_final=torch.arange(E) % 3,
+        switch_step=torch.full((E,), -1), switch_fraction=sf, success=success, success_step=success_step,
+        ee_path=torch.cumsum(0.01 * torch.rand(E, T + 1, 3, generator=g, dtype=torch.float64), 1), belief=belief,
+        belief_at_switch=torch.where(torch.isnan(sf), float("nan"), 0.5), error=error,
+        interventions=torch.rand(E, T, generator=g) < 0.05, reachable=torch.rand(E, T, generator=g) < 0.9,
+        authority=0.3 + 0.1 * torch.rand(E, T, generator=g, dtype=torch.float64), mode_switches=torch.zeros(E),
+    )  # fmt: skip
+
+
+@pytest.fixture(scope="module")
+def summaries():
+    return {"cvae": summarise(record("cvae", 0)), "direct": summarise(record("direct", 1))}
+
+
+@pytest.fixture(scope="module")
+def state():
+    robot = UrdfArm()
+    layout = load_scenario("bedside_shelf").sample_layouts(2, torch.Generator().manual_seed(0))
+    q = robot.q_home.to(torch.float64).expand(2, -1).clone()
+    pos, rot = robot.fk(q)
+    belief = torch.full((2, 4), 0.25, dtype=torch.float64)
+    ctx = build_context(q, pos, rot, belief, layout.targets, layout.approach_rot)
+    return LoopState(0, q, pos, rot, robot.jacobian(q), belief, layout.targets, layout.approach_rot, ctx,
+                     torch.zeros(2, dtype=torch.long), 0.1)  # fmt: skip
+
+
+def read_png(path) -> None:
+    data = path.read_bytes()
+    assert data.startswith(PNG_SIGNATURE)
+    img = mpimg.imread(path)  # matplotlib decodes it: a valid image
+    assert img.ndim == 3 and img.shape[0] > 100 and img.shape[1] > 100
+
+
+def test_standard_plots_are_valid_pngs(summaries, tmp_path):
+    paths = standard_plots(summaries, tmp_path / "plots")
+    assert [p.name for p in paths] == ["belief_traces.png", "recovery.png", "ultimate_bound.png"]
+    for p in paths:
+        read_png(p)
+    assert sorted(x.name for x in (tmp_path / "plots").iterdir()) == sorted(p.name for p in paths)  # no temp left
+
+
+def test_states_at_confidence_rebuild_the_context(state):
+    st = states_at_confidence(state, episode=1, goal=2, levels=(None, 0.6, 0.95))
+    assert torch.allclose(st.belief[:, 2], torch.tensor([0.25, 0.6, 0.95], dtype=torch.float64))
+    assert torch.allclose(st.belief.sum(-1), torch.ones(3, dtype=torch.float64))
+    cols = ContextSpec(dof=7, n_goals=4).columns(["belief"])
+    assert torch.equal(st.context[:, cols], st.belief)
+    assert torch.equal(st.q[0], state.q[1]) and st.context.shape == (3, state.context.shape[1])
+
+
+def test_action_maps_for_decoder_and_direct(state, tmp_path):
+    torch.manual_seed(0)
+    policy = DecoderPolicy.build(
+        {"_target_": "coreach.plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [32, 32]},
+        ContextSpec(dof=7, n_goals=4), 7,
+    )  # fmt: skip
+    for iface in (DecoderInterface.from_policy(policy, "cvae"), DirectControl()):
+        path = plot_action_maps(iface, state, tmp_path / f"map_{iface.name}.png", goal=1, goal_names=list("abcd"))
+        read_png(path)
+
+
+def test_report_is_one_self_contained_html_file(summaries, tmp_path):
+    plots = standard_plots(summaries, tmp_path / "plots")
+    out = tmp_path / "report"
+    path = write_report(summaries, plots, out, "Vetting <unit>", {"suite": "unit", "seed": 0})
+    assert path.parent == out and [p.name for p in out.iterdir()] == ["report.html"]
+    text = path.read_text(encoding="utf-8")
+    srcs = re.findall(r'src="([^"]*)"', text)
+    assert len(srcs) == len(plots) and all(s.startswith("data:image/png;base64,") for s in srcs)
+    for s in srcs:
+        data = base64.b64decode(s.split(",", 1)[1])
+        assert data.startswith(PNG_SIGNATURE)
+        assert mpimg.imread(io.BytesIO(data), format="png").ndim == 3
+    assert "href=" not in text and "<link" not in text and "<script" not in text
+    assert "Vetting &lt;unit&gt;" in text  # the title is escaped, not injected
+    for phrase in ("not a medical device", "ISO 10218-1/-2", "ISO/TS 15066", "ethics review", "emergency stop"):
+        assert phrase in text
+    r = summaries["cvae"]["success"]
+    assert f"{r['value']:.2f} [{r['lo']:.2f}, {r['hi']:.2f}] (n={r['n']})" in text  # intervals appear beside the rates
+
+
+def test_terminal_table(summaries):
+    table = terminal_table(summaries)
+    assert table.row_count == 2
+    console = Console(record=True, width=220)
+    console.print(table)
+    out = console.export_text()
+    assert "cvae" in out and "direct" in out and "n=30" in out
+    assert not math.isnan(summaries["cvae"]["success"]["value"])
