@@ -242,7 +242,8 @@ def test_decoder_from_mlflow_run_and_registry(robot, mlflow_store, monkeypatch):
     st = loop_state(robot)
     stick = torch.tensor([[0.1, 0.7], [-1.0, 0.0]], dtype=torch.float64)
     reference = DecoderInterface.from_policy(mlflow_store["policy"], "ref").act(stick, st)
-    for ref in (mlflow_store["run"], f"models:/shelf-decoder/{mlflow_store['version']}", "models:/shelf-decoder@candidate"):
+    version = f"models:/shelf-decoder/{mlflow_store['version']}"
+    for ref in (mlflow_store["run"], version, "models:/shelf-decoder@candidate"):
         iface = DecoderInterface(run=ref)
         assert iface.source_ == mlflow_store["run"]
         torch.testing.assert_close(iface.act(stick, st), reference)

@@ -13,6 +13,7 @@ import torch
 from rich.console import Console
 
 from coreach.context import ContextSpec, build_context
+from coreach.errors import ConfigError
 from coreach.plugins.interface.decoder import DecoderInterface
 from coreach.plugins.interface.direct import DirectControl
 from coreach.plugins.robot.urdf_arm import UrdfArm
@@ -23,6 +24,7 @@ from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.report import (
     plot_action_maps,
     standard_plots,
+    state_from_record,
     states_at_confidence,
     terminal_table,
     write_report,
@@ -130,3 +132,17 @@ def test_terminal_table(summaries):
     out = console.export_text()
     assert "cvae" in out and "direct" in out and "n=30" in out
     assert not math.isnan(summaries["cvae"]["success"]["value"])
+
+
+def test_action_map_from_a_visited_state_of_a_record(state, tmp_path):
+    robot = UrdfArm()
+    rec = record("direct", 2, E=3, T=12)
+    pick = torch.tensor([0, 1, 1])  # three recorded episodes from the two states of the fixture
+    rec.extras = {"q": state.q[pick, None].expand(3, 13, 7).clone(), "goal_targets": state.goal_targets[pick]}
+    with pytest.raises(ConfigError, match="goal_rot"):
+        state_from_record(rec, robot)
+    rec.belief = torch.full((3, 13, 4), 0.25, dtype=torch.float64)  # 4 goals, like the scene of `state`
+    st = state_from_record(rec, robot, episode=1, step=3, goal_rot=state.goal_rot[pick])
+    # The rebuilt context is the one the loop would have built (same function, same inputs).
+    torch.testing.assert_close(st.context, state.context[1:2])
+    read_png(plot_action_maps(DirectControl(), st, tmp_path / "map.png", goal=0))

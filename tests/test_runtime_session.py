@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
-from hypothesis import given, settings
+from hypothesis import event, given, settings
 from hypothesis import strategies as st
 
 from coreach.context import ContextSpec
@@ -203,7 +203,7 @@ def test_belief_follows_bayes_rule_from_the_anchor(session, reference):
     goals = np.array([p1 + 3 * (p1 - p0), p0 - 0.2 * np.array([0, 1.0, 0]), [0.6, 0.3, 0.6], [0.2, -0.3, 0.1]])
     s.set_goals(goals, np.tile([1.0, 0, 0, 0], (4, 1)), np.zeros((4, 3)))
     # many small steps, each shorter than min_motion (1 mm): the anchor makes them add up
-    n = 40
+    n = 100
     for i in range(n + 1):
         q = q0 + (q1 - q0) * i / n
         s.step((0.0, 0.0), q, i * 0.01)
@@ -213,7 +213,7 @@ def test_belief_follows_bayes_rule_from_the_anchor(session, reference):
     post /= post.sum()
     # the last update happened at the last anchor, within min_motion of p1
     np.testing.assert_allclose(s.belief, post, atol=0.05)
-    assert np.argmax(s.belief) == 0 and s.belief[0] > 0.5
+    assert np.argmax(s.belief) == 0 and s.belief[0] > 0.4  # prior 0.25: moving toward goal 0 raised it
 
 
 # --------------------------------------------------------------------------------------- safety filter
@@ -259,25 +259,27 @@ def test_tool_speed_cap_scales_to_exactly_the_cap(session, reference):
     q = s.manifest.q_home
     qd = s.step((1.0, 1.0), q, 0.0)
     assert s.last.speed_capped
-    raw_pos, jac = _pin_pos_jac(reference, q)
+    _, jac = _pin_pos_jac(reference, q)
     # uniform scaling keeps the direction of what the decoder asked for
     raw = s.last.qd_decoder
     cos = raw @ qd / (np.linalg.norm(raw) * np.linalg.norm(qd))
-    if not (s.last.position_limited or s.last.workspace_limited):
-        assert cos == pytest.approx(1.0, abs=1e-12)
-        ratio = max(np.max(np.abs(qd) / s.manifest.qd_max), np.linalg.norm(jac @ qd) / s.manifest.tcp_speed_max)
-        assert ratio == pytest.approx(1.0, abs=1e-9)
+    assert not (s.last.position_limited or s.last.workspace_limited)  # home is far from limits and walls
+    assert cos == pytest.approx(1.0, abs=1e-12)
+    ratio = max(np.max(np.abs(qd) / s.manifest.qd_max), np.linalg.norm(jac @ qd) / s.manifest.tcp_speed_max)
+    assert ratio == pytest.approx(1.0, abs=1e-9)
 
 
 finite = st.floats(-4.0, 4.0)
 wild = st.one_of(st.just(math.nan), st.just(math.inf), st.just(-math.inf), st.floats(-1e300, 1e300),
                  st.floats(allow_nan=True, allow_infinity=True))
-stick_st = st.lists(st.one_of(st.floats(-1.5, 1.5), st.floats(-0.1, 0.1), wild), min_size=2, max_size=2)
+# Mostly plausible values with some wild ones, so a stream both faults and spends steps un-faulted.
+stick_st = st.lists(st.one_of(st.floats(-1.5, 1.5), st.floats(-1.5, 1.5), st.floats(-0.1, 0.1), wild),
+                    min_size=2, max_size=2)
 event_st = st.tuples(
     stick_st,
-    st.one_of(st.just("inside"), st.just("edge"), st.just("wild")),  # how q is drawn
+    st.sampled_from(["inside", "inside", "inside", "edge", "wild"]),  # how q is drawn
     st.lists(st.floats(0.0, 1.0), min_size=7, max_size=7),  # position within the limits
-    st.one_of(st.none(), st.floats(-0.1, 0.5), wild),  # stick age (s); None = read now
+    st.one_of(st.none(), st.floats(0.0, 0.15), st.floats(-0.1, 0.5), wild),  # stick age (s); None = read now
     st.floats(0.0, 0.05),  # time step (s)
     st.booleans(),  # operator resets a latched fault before this step
 )
@@ -312,12 +314,15 @@ def test_no_limit_is_ever_exceeded_on_arbitrary_streams(session, reference, even
         if faulted or s.fault is not None:  # latched: zero until reset_fault
             faulted = True
             assert np.all(qd == 0) and s.last.fault is not None
+            event("latched fault")
             continue
         stale = age is not None and not 0.0 <= now - t_stick <= timeout
         if stale:
             assert np.all(qd == 0) and s.last.stale
+            event("stale")
             continue
         _check_limits(s, reference, q, qd)
+        event("limits checked, filter acted" if s.last.intervened else "limits checked")
 
 
 # ---------------------------------------------------------------------------------------------- bench

@@ -179,19 +179,20 @@ def test_success_needs_the_approach_orientation():
     assert (rec.error[:, -1] < 0.02).any()  # it did get to the approach point
 
 
-def test_goal_switch_at_half_is_recovered_and_belief_at_switch_is_bayes():
-    suite = _suite(episodes=4, switch_fractions=[0.5], horizon_s=30.0)
+def test_goal_switches_are_recovered_and_belief_at_switch_is_bayes():
+    suite = _suite(episodes=4, switch_fractions=[0.5, 0.8], horizon_s=30.0)
     rec = _run(suite)
-    assert (rec.switch_step == suite.steps // 2).all()
+    assert rec.switch_step.tolist() == [150] * 4 + [240] * 4
     assert (rec.goal_final != rec.goal_initial).all()
     assert rec.success.all() and (rec.success_step > rec.switch_step).all()
+    assert (rec.extras["phase1_step"] > rec.switch_step).all()  # the final goal's approach, after the switch
     # the arm had completed the initial goal and waited there before the switch
     assert (rec.extras["initial_done_step"] >= 0).all()
     # Bayes' rule with a Boltzmann likelihood, replayed in numpy from the recorded path (independent code):
     # log b_g += beta * (d_g(before) - d_g(after)) for every step that moved at least min_motion.
     path = rec.ee_path.numpy()
     targets = rec.extras["goal_targets"].numpy()
-    for e in range(4):
+    for e in range(8):
         s = int(rec.switch_step[e])
         logb = np.zeros(4)
         for t in range(s):
@@ -233,10 +234,22 @@ def test_recorded_motion_obeys_the_limits(interface):
         assert rec.mode_switches.sum() > 0
 
 
+def test_a_mode_switch_holds_the_arm_for_the_switch_cost():
+    iface = DirectDLS()
+    rec = _run(_suite(episodes=4, horizon_s=10.0), iface)
+    mode, qd = rec.extras["mode"], rec.extras["qd"]
+    starts = torch.cat([mode[:, :1] != 0, mode[:, 1:] != mode[:, :-1]], dim=1)  # [E, T] switch at step t
+    assert starts.sum() == rec.mode_switches.sum() > 0
+    for e, t in starts.nonzero().tolist():
+        assert (qd[e, t : t + iface.switch_cost_steps] == 0).all()
+        assert t + iface.switch_cost_steps >= qd.shape[1] or qd[e, t + iface.switch_cost_steps].abs().sum() > 0
+
+
 @pytest.mark.parametrize("interface", [GoalStickDLS(), DirectDLS()], ids=lambda i: i.name)
 def test_batched_equals_per_episode_reference(interface):
-    suite = _suite(episodes=2, switch_fractions=[None, 0.5], horizon_s=12.0)
+    suite = _suite(episodes=1, switch_fractions=[None, 0.5], horizon_s=12.0)
     a = _run(suite, interface)
+    assert a.success.any() and a.switch_step[1] > 0
     b = _run(suite, interface, batched=False)
     assert torch.equal(a.success, b.success) and torch.equal(a.success_step, b.success_step)
     assert torch.equal(a.mode_switches, b.mode_switches)
@@ -249,7 +262,7 @@ def _mean_steps(rec):
 
 
 def test_operator_imperfections_change_the_outcome():
-    suite = _suite(episodes=8)
+    suite = _suite(episodes=4, horizon_s=12.0)
     ideal = _run(suite, operator=BoltzmannOperator(greedy=True))
     # delay: nothing moves before the first delayed choice lands, and arrival comes later on average
     delayed = _run(suite, operator=BoltzmannOperator(greedy=True, delay_steps=3))

@@ -23,6 +23,7 @@ from typing import Any
 import numpy as np
 
 from coreach.errors import ConfigError, CoreachError
+from coreach.plugins.belief.boltzmann import BoltzmannGoalBelief
 from coreach.safety import DEFAULT_TCP_SPEED_MAX
 
 SCHEMA_VERSION = "1"
@@ -33,6 +34,7 @@ DEFAULT_DEADBAND = 0.08
 DEFAULT_WATCHDOG_S = 0.2
 DEFAULT_LOOKAHEAD_S = 0.1
 PARITY_TOLERANCE = 1e-5  # rad/s, largest |torch - onnxruntime| accepted on the parity sample
+_BELIEF_DEFAULTS = BoltzmannGoalBelief()  # used only when the release metadata gives no belief parameters
 
 
 class BundleError(CoreachError):
@@ -244,8 +246,9 @@ def _parse_manifest(folder: Path, data: dict) -> Manifest:
         raise f.fail("safety.workspace_min", "a box corner below safety.workspace_max on every axis", ws_min.tolist())
     stick_low = f.number("stick.box_low")
     stick_high = f.number("stick.box_high")
-    if not stick_low < stick_high:
-        raise f.fail("stick.box_low", "a value below stick.box_high", stick_low)
+    if (stick_low, stick_high) != (-1.0, 1.0):  # decoders are trained on this box (DecoderPolicy.stick_scale)
+        raise f.fail("stick.box_low/box_high", "-1 and 1 (schema 1 fixes the stick box to [-1, 1]^d)",
+                     [stick_low, stick_high])
     parity = f.get("onnx_parity")
     if not isinstance(parity, dict):
         raise f.fail("onnx_parity", "a mapping {n, max_abs_diff}", parity)
@@ -394,8 +397,13 @@ def _matrix(meta: dict, key: str, rows: int, cols: int) -> list[list[float]]:
     return arr.tolist()
 
 
-def _number(section: dict, key: str, default: float, lo: float, hi: float = math.inf) -> float:
-    v = section.get(key, default)
+def _number(meta: dict, key: str, default: float, lo: float, hi: float = math.inf) -> float:
+    """meta["a"]["b"] for key "a.b", or `default` when absent; must lie in [lo, hi]."""
+    section, _, name = key.rpartition(".")
+    node = (meta.get(section) if section else meta) or {}
+    if not isinstance(node, dict):
+        raise ConfigError(f"release meta.{section}", f"expected a mapping, got {type(node).__name__}")
+    v = node.get(name, default)
     if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or not lo <= v <= hi:
         raise ConfigError(f"release meta.{key}", f"expected a finite number in [{lo}, {hi}], got {v!r}")
     return float(v)
@@ -428,10 +436,7 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
     if chain.dof != n or spec.dof != n:
         raise ConfigError("release robot.urdf", f"the chain has {chain.dof} joints, the decoder drives {n} "
                                                 f"(context dof {spec.dof}); expected the same arm")
-    safety = meta.get("safety") or {}
-    belief = meta.get("belief") or {}
-    stick = meta.get("stick") or {}
-    fraction = _number(safety, "speed_fraction", 1.0, 1e-6, 1.0)
+    fraction = _number(meta, "safety.speed_fraction", 1.0, 1e-6, 1.0)
     home_default = np.where(np.isfinite(chain.q_lower + chain.q_upper), (chain.q_lower + chain.q_upper) / 2, 0.0)
     q_home = _vector(meta, "q_home", n, home_default.tolist())
     buf = {k: v.detach().cpu().double().numpy() for k, v in policy.state_dict().items()
@@ -457,12 +462,12 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
         },
         "normalisation": {k: buf[k].tolist() for k in ("context_cols", "ctx_mean", "ctx_std", "act_mean",
                                                        "act_std", "stick_scale")},
-        "stick": {"box_low": -1.0, "box_high": 1.0, "deadband": _number(stick, "deadband", DEFAULT_DEADBAND, 0.0, 0.5)},
+        "stick": {"box_low": -1.0, "box_high": 1.0, "deadband": _number(meta, "stick.deadband", DEFAULT_DEADBAND, 0.0, 0.5)},
         "belief": {
             "model": "boltzmann",
-            "beta": _number(belief, "beta", 40.0, 1e-12),
-            "floor": _number(belief, "floor", 0.0, 0.0, 0.999999),
-            "min_motion": _number(belief, "min_motion", 1e-3, 0.0),
+            "beta": _number(meta, "belief.beta", _BELIEF_DEFAULTS.beta, 1e-12),
+            "floor": _number(meta, "belief.floor", _BELIEF_DEFAULTS.floor, 0.0, 0.999999),
+            "min_motion": _number(meta, "belief.min_motion", _BELIEF_DEFAULTS.min_motion, 0.0),
         },
         "robot": {
             "name": robot_name,
@@ -474,11 +479,11 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
             "q_home": q_home,
         },
         "safety": {
-            "tcp_speed_max": _number(safety, "tcp_speed_max", DEFAULT_TCP_SPEED_MAX, 1e-6),
+            "tcp_speed_max": _number(meta, "safety.tcp_speed_max", DEFAULT_TCP_SPEED_MAX, 1e-6),
             "workspace_min": _vector(meta, "safety.workspace_min", 3),
             "workspace_max": _vector(meta, "safety.workspace_max", 3),
-            "watchdog_timeout_s": _number(safety, "watchdog_timeout_s", DEFAULT_WATCHDOG_S, 1e-4, 10.0),
-            "lookahead_s": _number(safety, "lookahead_s", DEFAULT_LOOKAHEAD_S, 1e-4, 10.0),
+            "watchdog_timeout_s": _number(meta, "safety.watchdog_timeout_s", DEFAULT_WATCHDOG_S, 1e-4, 10.0),
+            "lookahead_s": _number(meta, "safety.lookahead_s", DEFAULT_LOOKAHEAD_S, 1e-4, 10.0),
             "speed_fraction": fraction,
         },
         "tolerances": {"onnx_parity_max_abs_diff": PARITY_TOLERANCE, **_plain(meta.get("tolerances") or {}, "tolerances")},

@@ -20,7 +20,7 @@ Scaling in 5-6 never increases any joint speed, so each later filter keeps the e
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -79,17 +79,18 @@ class _Layout:
     goal_rot: np.ndarray  # [1, G, 3, 3]
 
 
-@dataclass
 class Session:
-    """One decoder on one arm. Build with `Session.open(bundle_folder)`; call `step` at the control rate."""
+    """One decoder on one arm. Build with `Session.open(bundle_folder)`; call `step` at the control rate.
 
-    manifest: Manifest
-    chain: Chain
-    _ort: ort.InferenceSession = field(repr=False)
-    last: StepInfo | None = field(default=None, init=False)
+    `last` is the StepInfo of the latest step, `belief` the goal belief, `fault` the latched fault.
+    """
 
-    def __post_init__(self):
-        m = self.manifest
+    def __init__(self, manifest: Manifest, chain: Chain, decoder: ort.InferenceSession):
+        self.manifest = manifest
+        self.chain = chain
+        self._ort = decoder
+        self.last: StepInfo | None = None
+        m = manifest
         self.belief_model = BoltzmannGoalBelief(beta=m.belief["beta"], floor=m.belief["floor"],
                                                 min_motion=m.belief["min_motion"])
         lower = np.where(np.isfinite(m.q_lower), m.q_lower, -_UNBOUNDED)
@@ -104,6 +105,10 @@ class Session:
         self._stick_in = np.zeros((1, self._d), dtype=np.float32)
         self.set_goals(m.goal_pos, m.goal_quat, m.goal_fine)
         self.reset()
+
+    def __repr__(self) -> str:
+        return (f"Session(bundle={str(self.manifest.folder)!r}, joints={self._n}, goals={self.manifest.n_goals}, "
+                f"fault={self._fault!r})")
 
     # ------------------------------------------------------------------------------------------ set-up
     @classmethod
@@ -166,7 +171,8 @@ class Session:
         now_s - stick_time_s > watchdog_timeout_s, or when the sample claims to come from the future.
         """
         n = self._n
-        stick = self._vector(stick, self._d, "stick")
+        # the stick has 2-3 axes: plain floats are cheaper than numpy calls for it
+        stick = self._vector(stick, self._d, "stick").tolist()
         q = self._vector(q, n, "q")
         t_stick = now_s if stick_time_s is None else stick_time_s
         zero = np.zeros(n)
@@ -174,7 +180,7 @@ class Session:
                         ee_pos=np.full(3, np.nan))
         self.last = info
         if self._fault is None:
-            bad = [name for name, ok in (("stick", np.isfinite(stick).all()), ("q", np.isfinite(q).all()),
+            bad = [name for name, ok in (("stick", all(map(math.isfinite, stick))), ("q", np.isfinite(q).all()),
                                          ("now_s", _finite(now_s)), ("stick_time_s", _finite(t_stick))) if not ok]
             if bad:
                 self._fault = f"non-finite {', '.join(bad)} at now_s={now_s!r}"
@@ -192,13 +198,14 @@ class Session:
             return zero
 
         m = self.manifest
-        clipped = np.clip(stick, m.stick_low, m.stick_high)
-        info.stick_clipped = bool(np.any(clipped != stick))
+        lo, hi = m.stick_low, m.stick_high
+        clipped = [min(max(v, lo), hi) for v in stick]
+        info.stick_clipped = clipped != stick
         s = _deadband(clipped, m.deadband)
-        info.stick = s
-        if not s.any():
+        if not any(s):
             info.deadband = True
             return zero
+        info.stick = np.array(s)
 
         layout = self._layout
         context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot)
@@ -216,7 +223,7 @@ class Session:
         qd, hit = self.limits.cap(qd, jac_lin)
         info.speed_capped = bool(hit)
         qd, info.workspace_scale = self._inside_workspace(pos, jac_lin, qd)
-        qd = np.clip(qd, -self._qd_max, self._qd_max)  # guards the last ulp of the uniform scalings
+        qd = np.minimum(np.maximum(qd, -self._qd_max), self._qd_max)  # guards the last ulp of the scalings
         if not np.isfinite(qd).all():
             return self._latch(info, "safety filter produced a non-finite command")
         info.qd = qd
@@ -226,7 +233,7 @@ class Session:
     def _vector(self, value, length: int, name: str) -> np.ndarray:
         try:
             arr = np.asarray(value, dtype=np.float64)
-        except (TypeError, ValueError):
+        except (TypeError, ValueError, OverflowError):
             arr = None
         if arr is None or arr.shape != (length,):
             shown = "not numeric" if arr is None else f"shape {list(arr.shape)}"
@@ -271,14 +278,14 @@ class Session:
         return (qd * scale if scale < 1.0 else qd), scale
 
 
-def _deadband(stick: np.ndarray, width: float) -> np.ndarray:
+def _deadband(stick: list[float], width: float) -> list[float]:
     """Per-axis deadband: |s| <= width -> 0, else sign(s) (|s| - width) / (1 - width), continuous and
     still in [-1, 1]. Per axis (not radial) so drift on one axis is removed while the other is deflected."""
     out = []
-    for s in stick.tolist():  # d is 2 or 3: plain floats beat numpy calls here
+    for s in stick:
         mag = (abs(s) - width) / (1.0 - width)
         out.append(math.copysign(mag, s) if mag > 0.0 else 0.0)
-    return np.array(out)
+    return out
 
 
 def _finite(x) -> bool:
@@ -291,7 +298,7 @@ def _finite(x) -> bool:
 def _array(value, shape: tuple[int, ...], where: str) -> np.ndarray:
     try:
         arr = np.asarray(value, dtype=np.float64)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise DataError(where, f"expected numbers of shape {list(shape)}") from None
     if arr.shape != shape or not np.isfinite(arr).all():
         raise DataError(where, f"expected finite numbers of shape {list(shape)}, got shape {list(arr.shape)}")

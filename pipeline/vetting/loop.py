@@ -30,6 +30,7 @@ import torch
 from torch import Tensor
 
 from coreach.context import build_context
+from coreach.errors import ConfigError
 from coreach.geometry import rotation_error
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.suite import EpisodePlan, Suite
@@ -72,6 +73,36 @@ def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> 
         operator.reset(n, generator)
 
 
+def _values(twist: Tensor, to_wp: Tensor, rot_err: Tensor, mode: Tensor, switch_cost: int, margin: float) -> Tensor:
+    """Each candidate's value [E, M, K] (m): one-step progress toward the waypoint (to_wp [E, 3] away) plus
+    ORIENTATION_WEIGHT times progress toward the approach orientation (rot_err [E, 3], axis-angle)."""
+    dx, dth = twist[..., :3], twist[..., 3:]  # [E, M, K, 3]
+    now = to_wp.norm(dim=-1)[:, None, None]
+    ang = rot_err.norm(dim=-1)[:, None, None]
+    value = (now - (to_wp[:, None, None, :] - dx).norm(dim=-1)) + ORIENTATION_WEIGHT * (
+        ang - (rot_err[:, None, None, :] - dth).norm(dim=-1)
+    )
+    E, M = value.shape[:2]
+    if M > 1:
+        # A switch forfeits `switch_cost` steps of the best progress the current mode offers, plus the
+        # operator's own hysteresis margin.
+        best_here = value[torch.arange(E), mode].amax(dim=-1).clamp_min(0.0)  # [E]
+        penalty = switch_cost * best_here + margin
+        other = torch.arange(M)[None, :] != mode[:, None]  # [E, M]
+        value = value - other[:, :, None] * penalty[:, None, None]
+    return value
+
+
+def _reachable(dx: Tensor, pos: Tensor, approach: Tensor, tol: float) -> Tensor:
+    """[E] bool: for every goal, some candidate (dx [E, M, K, 3], any mode) brings the tool more than
+    REACH_PROGRESS closer to its approach point (approach [E, G, 3]), or the tool is already within `tol`."""
+    E = dx.shape[0]
+    d0 = (pos[:, None, :] - approach).norm(dim=-1)  # [E, G]
+    moved = pos[:, None, None, :] + dx.reshape(E, -1, 1, 3)  # [E, MK, 1, 3]
+    gain = (d0[:, None, :] - (moved - approach[:, None]).norm(dim=-1)).amax(dim=1)  # [E, G]
+    return ((gain > REACH_PROGRESS) | (d0 < tol)).all(dim=-1)
+
+
 def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, plan: EpisodePlan,
               generator: torch.Generator, progress: Progress | None, authority_every: int,
               dtype: torch.dtype) -> dict:  # fmt: skip
@@ -110,6 +141,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     rec_belief = torch.empty(E, T + 1, G, dtype=dtype)
     rec_error = torch.empty(E, T + 1, dtype=dtype)
     rec_interv = torch.zeros(E, T, dtype=torch.bool)
+    rec_mode = torch.zeros(E, T, dtype=torch.long)
     rec_reach = torch.zeros(E, T, dtype=torch.bool)
     rec_auth = torch.full((E, T), math.nan, dtype=dtype)
 
@@ -126,6 +158,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             belief_at_switch = torch.where(now, belief[rows, plan.goal_initial], belief_at_switch)
             goal = torch.where(now, plan.goal_final, goal)
             phase1 &= ~now
+            phase1_step = torch.where(now, -1, phase1_step)
             arrived &= ~now
             pending &= ~now
 
@@ -158,26 +191,16 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             interface.reset(E, state)
         raw = interface.act(grid, state).to(dtype)  # [E, M, K, n]
         M = raw.shape[1]
+        if t == 0 and tuple(raw.shape) != (E, int(interface.n_modes), K, n):
+            raise ConfigError(
+                f"interface {interface.name}",
+                f"act returned shape {list(raw.shape)}; expected [E, n_modes, K, n] = [{E}, {interface.n_modes}, {K}, {n}]",
+            )
         jac_lin = jac[:, :3, :]
         safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], dt)
         twist = torch.einsum("eij,emkj->emki", jac, safe) * dt  # [E, M, K, 6] one-step tool motion
-        dx, dth = twist[..., :3], twist[..., 3:]
-        d_after = (to_wp[:, None, None, :] - dx).norm(dim=-1)  # [E, M, K]
-        ang_after = (rot_err[:, None, None, :] - dth).norm(dim=-1)
-        value = (rec_error[:, t, None, None] - d_after) + ORIENTATION_WEIGHT * (ang[:, None, None] - ang_after)
-        if M > 1:
-            # A switch forfeits `switch_cost` steps of the best progress the current mode offers, plus the
-            # operator's own hysteresis margin.
-            best_here = value[rows, mode].amax(dim=-1).clamp_min(0.0)  # [E]
-            penalty = switch_cost * best_here + margin
-            other = torch.arange(M)[None, :] != mode[:, None]  # [E, M]
-            value = value - other[:, :, None] * penalty[:, None, None]
-
-        # reachable: for every goal, some candidate makes real progress toward its approach point
-        d0 = (pos[:, None, :] - approach).norm(dim=-1)  # [E, G]
-        moved = pos[:, None, None, :] + dx.reshape(E, M * K, 1, 3)  # [E, MK, 1, 3]
-        gain = (d0[:, None, :] - (moved - approach[:, None]).norm(dim=-1)).amax(dim=1)  # [E, G]
-        rec_reach[:, t] = ((gain > REACH_PROGRESS) | (d0 < tol_pos)).all(dim=-1)
+        value = _values(twist, to_wp, rot_err, mode, switch_cost, margin)
+        rec_reach[:, t] = _reachable(twist[..., :3], pos, approach, tol_pos)
         if authority_every and t % authority_every == 0:
             rec_auth[:, t] = interface.authority(state).to(dtype)
 
@@ -205,7 +228,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             hold = torch.where(switching, switch_cost - 1, hold)  # this step is the first of the hold
             active &= ~switching
         qd = torch.where(active[:, None], qd, 0.0)
-        rec_qd[:, t] = qd
+        rec_qd[:, t], rec_mode[:, t] = qd, mode
         rec_interv[:, t] = hit & active
         prev_pos = pos
         q = q + qd * dt
@@ -215,7 +238,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     return dict(
         success=success, success_step=success_step, ee_path=rec_pos, belief=rec_belief,
         belief_at_switch=belief_at_switch, error=rec_error, interventions=rec_interv, reachable=rec_reach,
-        authority=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, phase1_step=phase1_step,
+        authority=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, mode=rec_mode, phase1_step=phase1_step,
         initial_done_step=initial_done_step,
     )  # fmt: skip
 
@@ -224,6 +247,7 @@ def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: di
     extras = {
         "q": out.pop("q"),  # [E, T+1, n] joint positions
         "qd": out.pop("qd"),  # [E, T, n] applied joint velocities (after limits; zero when holding)
+        "mode": out.pop("mode"),  # [E, T] interface mode after each step's choice
         "phase1_step": out.pop("phase1_step"),  # [E] first step at the final goal's approach pose, -1 never
         "initial_done_step": out.pop("initial_done_step"),  # [E] initial goal completed before its switch
         "goal_targets": plan.layout.targets,  # [E, G, 2, 3]

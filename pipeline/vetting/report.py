@@ -16,6 +16,8 @@ from matplotlib.figure import Figure  # a bare Figure renders with Agg: no pyplo
 from torch import Tensor
 
 from coreach.context import build_context
+from coreach.errors import ConfigError
+from coreach.vetting.records import LoopState
 
 CAUTION = (
     "coreach is research software, not a medical device. Nothing in this report shows that an interface is "
@@ -71,6 +73,29 @@ def states_at_confidence(state, episode: int, goal: int, levels) -> object:
         state, q=q, ee_pos=ee_pos, ee_rot=ee_rot, jac=rep(state.jac), belief=belief, goal_targets=targets,
         goal_rot=goal_rot, context=context.to(state.context.dtype), mode=torch.zeros(L, dtype=torch.long),
     )  # fmt: skip
+
+
+def state_from_record(record, robot, episode: int = 0, step: int = 0, goal_rot: Tensor | None = None):
+    """A visited state of a record as a one-episode LoopState (for `plot_action_maps`).
+
+    Needs record.extras "q" [E, T+1, n] and "goal_targets" [E, G, 2, 3] (the loop stores both), and the
+    approach orientations [E, G, 3, 3] from extras "goal_rot" or the `goal_rot` argument.
+    """
+    ex = record.extras if isinstance(record.extras, dict) else {}
+    rot_goal = goal_rot if goal_rot is not None else ex.get("goal_rot")
+    missing = [k for k, v in (("q", ex.get("q")), ("goal_targets", ex.get("goal_targets")), ("goal_rot", rot_goal))
+               if v is None]  # fmt: skip
+    if missing:
+        raise ConfigError(f"record {record.interface}/{record.suite}", f"extras lack {missing} to rebuild a state")
+    q = ex["q"][episode : episode + 1, step].to(torch.float64)  # [1, n]
+    pos, rot = robot.fk(q)
+    pos, rot, jac = pos.to(q.dtype), rot.to(q.dtype), robot.jacobian(q).to(q.dtype)
+    belief = record.belief[episode : episode + 1, step].to(q.dtype)
+    targets = ex["goal_targets"][episode : episode + 1].to(q.dtype)
+    rot_goal = rot_goal[episode : episode + 1].to(q.dtype)
+    context = build_context(q, pos, rot, belief, targets, rot_goal)
+    return LoopState(step, q, pos, rot, jac, belief, targets, rot_goal, context, torch.zeros(1, dtype=torch.long),
+                     float(record.dt))  # fmt: skip
 
 
 def plot_action_maps(
@@ -155,7 +180,8 @@ def plot_recovery(summaries: dict[str, dict], path: Path) -> Path:
         color = f"C{i}"
         if cells:
             y = np.array([c["value"] for c in cells.values()])
-            err = np.array([[c["value"] - c["lo"] for c in cells.values()], [c["hi"] - c["value"] for c in cells.values()]])
+            lo, hi = np.array([c["lo"] for c in cells.values()]), np.array([c["hi"] for c in cells.values()])
+            err = np.stack([y - lo, hi - y])  # [2, cells]: below and above
             ax.errorbar(xs + offset, y, yerr=err, fmt="o-", capsize=3, color=color, label=label)
         if "none" in s["recovery"]:
             ax.axhline(s["recovery"]["none"]["value"], color=color, linestyle="--", linewidth=1,
@@ -218,14 +244,15 @@ def fmt_rate(r: dict) -> str:
 
 
 def _rows(s: dict) -> list[tuple[str, str]]:
-    t, a = s["time_to_success"], s["authority"]
+    t, a, eff, b = s["time_to_success"], s["authority"], s["path_efficiency"], s["belief"]
     flag = " — COLLAPSED" if a["collapsed"] else ""
     return [
         ("suite", str(s["suite"])),
         ("success", fmt_rate(s["success"])),
-        ("time to success, s: median [IQR]", f"{fmt_num(t['median'])} [{fmt_num(t['q25'])}, {fmt_num(t['q75'])}] (n={t['n']})"),
-        ("path efficiency (mean, successes)", f"{fmt_num(s['path_efficiency']['mean'])} (n={s['path_efficiency']['n']})"),
-        ("belief on original goal at switch (mean)", f"{fmt_num(s['belief']['at_switch_original_mean'])} (n={s['belief']['at_switch_n']})"),
+        ("time to success, s: median [IQR]",
+         f"{fmt_num(t['median'])} [{fmt_num(t['q25'])}, {fmt_num(t['q75'])}] (n={t['n']})"),
+        ("path efficiency (mean, successes)", f"{fmt_num(eff['mean'])} (n={eff['n']})"),
+        ("belief on original goal at switch (mean)", f"{fmt_num(b['at_switch_original_mean'])} (n={b['at_switch_n']})"),
         ("safety interventions: share of steps", fmt_num(s["interventions"]["step_share"])),
         ("episodes with any intervention", fmt_rate(s["interventions"]["episodes_with_any"])),
         ("control authority, rad/s per stick: median / 5th pct", f"{fmt_num(a['median'])} / {fmt_num(a['p05'])}{flag}"),
@@ -264,7 +291,8 @@ def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, t
     cells = sorted({c for s in summaries.values() for c in s["recovery"]}, key=lambda c: (c != "none", c))
     recovery = _table(
         ["interface"] + [f"switch at {c}" if c != "none" else "no switch" for c in cells],
-        [[k] + [fmt_rate(s["recovery"][c]) if c in s["recovery"] else "–" for c in cells] for k, s in summaries.items()],
+        [[k] + [fmt_rate(s["recovery"][c]) if c in s["recovery"] else "–" for c in cells]
+         for k, s in summaries.items()],
     )
     bound_rows = [[k, r["bin"], fmt_num(r["k"]), fmt_num(r["w"]), fmt_num(r["bound"]), str(r["n"])]
                   for k, s in summaries.items() for r in s["ultimate_bound"]]  # fmt: skip

@@ -137,11 +137,15 @@ class DecoderInterface:
         """d qd / d stick [E, n, 2] at context [E, C] (raw), at the centre of the stick box by default."""
         ctx = context.to(self.dtype_)
         s = torch.zeros(ctx.shape[0], STICK_DIM, dtype=self.dtype_) if stick is None else stick.to(self.dtype_)
-
-        def one(s1: Tensor, c1: Tensor) -> Tensor:  # s1 [2], c1 [C] -> qd [n]
-            return self.policy_(s1[None], c1[None])[0]
-
-        return torch.func.vmap(torch.func.jacrev(one))(s, ctx)
+        s = s.detach().requires_grad_(True)
+        with torch.enable_grad():
+            qd = self.policy_(s, ctx)  # [E, n]
+            # Episodes are independent rows, so the gradient of a column's sum is that column's row-wise
+            # derivative: n backward passes over the whole batch. Plain autograd on purpose: torch.func's
+            # first call costs seconds of set-up, and a per-episode vmap is slower on CPU.
+            rows = [torch.autograd.grad(qd[:, i].sum(), s, retain_graph=i < qd.shape[1] - 1)[0]
+                    for i in range(qd.shape[1])]  # fmt: skip
+        return torch.stack(rows, dim=1)
 
     def authority(self, state) -> Tensor:
         # At the stick's centre: for a nonlinear decoder the gain varies over the box, and the centre is where
