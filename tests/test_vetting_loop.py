@@ -115,7 +115,8 @@ class DirectDLS:
 
     def authority(self, s):
         P, _ = self._parts(s)
-        cols = torch.tensor([[[1.0, 0.0], [0.0, 1.0], [0.0, 0.0]], [[0.0, 0.0], [0.0, 0.0], [1.0, 0.0]]], dtype=s.q.dtype)
+        xy, z = [[1.0, 0.0], [0.0, 1.0], [0.0, 0.0]], [[0.0, 0.0], [0.0, 0.0], [1.0, 0.0]]
+        cols = torch.tensor([xy, z], dtype=s.q.dtype)  # [M, 3, 2] tool axes driven by the stick per mode
         B = cols[s.mode] * self.v_max  # [E, 3, 2] tool velocity per unit stick in the current mode
         return torch.linalg.svdvals(P[:, :, :3] @ B)[:, -1]
 

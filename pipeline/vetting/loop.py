@@ -194,7 +194,8 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         if t == 0 and tuple(raw.shape) != (E, int(interface.n_modes), K, n):
             raise ConfigError(
                 f"interface {interface.name}",
-                f"act returned shape {list(raw.shape)}; expected [E, n_modes, K, n] = [{E}, {interface.n_modes}, {K}, {n}]",
+                f"act returned shape {list(raw.shape)}; expected [E, n_modes, K, n] = "
+                f"[{E}, {interface.n_modes}, {K}, {n}]",
             )
         jac_lin = jac[:, :3, :]
         safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], dt)

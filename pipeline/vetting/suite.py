@@ -1,4 +1,4 @@
-"""Vetting suites: which episodes a closed-loop test runs (scene, layouts, starts, operator, goal switches), read from YAML."""
+"""Vetting suites read from YAML: the episodes a closed-loop test runs (scene, layouts, starts, operator, switches)."""
 
 from __future__ import annotations
 
@@ -112,6 +112,18 @@ class Suite:
     @property
     def orientation_tol(self) -> float:
         return math.radians(self.orientation_tol_deg)
+
+    @property
+    def tolerances(self) -> dict[str, float]:
+        return {"position_m": self.position_tol, "orientation_deg": self.orientation_tol_deg}
+
+    def to_dict(self) -> dict:
+        """The suite as plain data with the YAML's keys (for run records and reports)."""
+        keys = [k for k in _KEYS if k != "tolerances"]
+        out = {k: getattr(self, k) for k in keys}
+        out["layout_offset"] = list(self.layout_offset)
+        out["tolerances"] = self.tolerances
+        return out
 
     def stick_grid(self, dtype: torch.dtype = torch.float64) -> Tensor:
         """Candidate sticks [K, 2], K = candidates_per_axis^2, on a regular grid over [-1, 1]^2
@@ -276,7 +288,9 @@ def load_operator_config(name: str, where: str = "option operator") -> dict:
 
     res = files("coreach.conf") / "operator" / f"{name}.yaml"
     if not res.is_file():
-        raise ConfigError(where, f"unknown operator {name!r}; expected one of {_builtin_operators()} or a mapping with _target_")
+        raise ConfigError(
+            where, f"unknown operator {name!r}; expected one of {_builtin_operators()} or a mapping with _target_"
+        )
     return dict(yaml.safe_load(res.read_text(encoding="utf-8")))
 
 
@@ -324,7 +338,9 @@ def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
     goals = d.get("goals")
     if goals is not None:
         if not isinstance(goals, list) or not goals:
-            raise ConfigError(f"{where}, option goals", f"expected null (all goals) or a list of goal names, got {goals!r}")
+            raise ConfigError(
+                f"{where}, option goals", f"expected null (all goals) or a list of goal names, got {goals!r}"
+            )
         for i, g in enumerate(goals):
             if g not in scene.goal_names:
                 raise ConfigError(
@@ -341,7 +357,9 @@ def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
 
     start = d.get("start", "home")
     if start != "home" and not (isinstance(start, list) and start and all(_is_number(v) for v in start)):
-        raise ConfigError(f"{where}, option start", f"expected 'home' or a list of joint positions (rad), got {start!r}")
+        raise ConfigError(
+            f"{where}, option start", f"expected 'home' or a list of joint positions (rad), got {start!r}"
+        )
     start_jitter = _number(d, "start_jitter", where, 0.0, 0.0, math.pi, "rad")
 
     operator = d.get("operator", "expert")
@@ -355,7 +373,9 @@ def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
 
     fractions = d.get("switch_fractions", [None])
     if not isinstance(fractions, list) or not fractions:
-        raise ConfigError(f"{where}, option switch_fractions", f"expected a non-empty list (null = no switch), got {fractions!r}")
+        raise ConfigError(
+            f"{where}, option switch_fractions", f"expected a non-empty list (null = no switch), got {fractions!r}"
+        )
     for i, f in enumerate(fractions):
         if f is not None and not (_is_number(f) and 0.0 < f < 1.0):
             raise ConfigError(
@@ -382,19 +402,23 @@ def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
     bad = [k for k in tol if k not in _TOL_KEYS]
     if bad:
         raise ConfigError(f"{where}, option tolerances.{bad[0]}", f"unknown option; expected one of {list(_TOL_KEYS)}")
-    pos_tol = _number(tol, "position_m", where, DEFAULT_POSITION_TOL, 1e-6, 1.0, "m", prefix="tolerances.")
-    ori_tol = _number(tol, "orientation_deg", where, DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg", prefix="tolerances.")
+    at = "tolerances."
+    pos_tol = _number(tol, "position_m", where, DEFAULT_POSITION_TOL, 1e-6, 1.0, "m", prefix=at)
+    ori_tol = _number(tol, "orientation_deg", where, DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg", prefix=at)
     cpa = _integer(d, "candidates_per_axis", where, 5, 2, " (stick grid points per axis)")
     suite = Suite(
-        name=name, scenario=scenario, operator=dict(operator), goals=goals, layout_offset=tuple(float(v) for v in offset),
-        layout_jitter=jitter, start=start, start_jitter=start_jitter, switch_fractions=list(fractions),
-        switch_to=switch_to, episodes=episodes, seed=seed, horizon_s=horizon, dt=dt, position_tol=pos_tol,
+        name=name, scenario=scenario, operator=dict(operator), goals=goals,
+        layout_offset=tuple(float(v) for v in offset), layout_jitter=jitter, start=start,
+        start_jitter=start_jitter, switch_fractions=list(fractions), switch_to=switch_to, episodes=episodes, seed=seed, horizon_s=horizon, dt=dt, position_tol=pos_tol,
         orientation_tol_deg=ori_tol, candidates_per_axis=cpa, path=where, scenario_obj=scene,
     )  # fmt: skip
     steps = suite.steps
     for i, f in enumerate(fractions):
         if f is not None and not 1 <= round(f * steps) <= steps - 1:
-            raise ConfigError(f"{where}, option switch_fractions[{i}]", f"switch at step {round(f * steps)} of {steps}; expected inside the horizon")
+            raise ConfigError(
+                f"{where}, option switch_fractions[{i}]",
+                f"switch at step {round(f * steps)} of {steps}; expected a step inside the horizon",
+            )
     return suite
 
 
@@ -415,7 +439,9 @@ def load_suite(name_or_path: str | Path, **overrides) -> Suite:
     else:
         res = files("coreach.conf") / "suite" / f"{text_path}.yaml"
         if not res.is_file():
-            raise ConfigError("option suite", f"unknown suite {text_path!r}; expected one of {builtin_suites()} or a .yaml path")
+            raise ConfigError(
+                "option suite", f"unknown suite {text_path!r}; expected one of {builtin_suites()} or a .yaml path"
+            )
         where, text, stem = f"suite/{text_path}.yaml", res.read_text(encoding="utf-8"), text_path
     try:
         data = yaml.safe_load(text)

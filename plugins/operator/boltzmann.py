@@ -1,4 +1,4 @@
-"""Operator plugin: a simulated user who picks stick inputs with Boltzmann rationality, with optional bias, tremor and delay.
+"""Operator plugin: a simulated user choosing stick inputs with Boltzmann rationality, plus bias, tremor, delay.
 
 Choice rule (Boltzmann rationality; Baker, Saxe & Tenenbaum 2009): among the M*K candidates (mode, stick) of
 an episode, candidate i is chosen with probability exp(beta * value_i) / sum_j exp(beta * value_j), value
@@ -124,7 +124,9 @@ class BoltzmannOperator:
         if any(self.bias):
             bias = torch.tensor(self.bias, dtype=stick.dtype)
             if bias.shape[0] != stick.shape[-1]:
-                raise ConfigError("operator.bias", f"expected {stick.shape[-1]} values (one per stick axis), got {self.bias}")
+                raise ConfigError(
+                    "operator.bias", f"expected {stick.shape[-1]} values (one per stick axis), got {self.bias}"
+                )
             out = out + bias
         if self.tremor_std:
             a = self.tremor_pole
