@@ -53,7 +53,8 @@ def _stages(session: Session, q: np.ndarray, stick: np.ndarray) -> dict[str, flo
     jac_lin = jac[:3]
     return {
         "kinematics": _median_us(lambda: session.chain.fk_jacobian(q)),
-        "belief_update": _median_us(lambda: session.belief_model.update(belief, pos[None], moved[None], layout.targets)),
+        "belief_update": _median_us(
+            lambda: session.belief_model.update(belief, pos[None], moved[None], layout.targets)),
         "context": _median_us(lambda: build_context(q[None], pos[None], rot[None], belief, layout.targets,
                                                     layout.goal_rot)),
         "decoder": _median_us(lambda: session._ort.run(session._out_names, feeds)),

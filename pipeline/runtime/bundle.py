@@ -23,8 +23,6 @@ from typing import Any
 import numpy as np
 
 from coreach.errors import ConfigError, CoreachError
-from coreach.plugins.belief.boltzmann import BoltzmannGoalBelief
-from coreach.safety import DEFAULT_TCP_SPEED_MAX
 
 SCHEMA_VERSION = "1"
 MANIFEST = "manifest.json"
@@ -34,7 +32,6 @@ DEFAULT_DEADBAND = 0.08
 DEFAULT_WATCHDOG_S = 0.2
 DEFAULT_LOOKAHEAD_S = 0.1
 PARITY_TOLERANCE = 1e-5  # rad/s, largest |torch - onnxruntime| accepted on the parity sample
-_BELIEF_DEFAULTS = BoltzmannGoalBelief()  # used only when the release metadata gives no belief parameters
 
 
 class BundleError(CoreachError):
@@ -182,7 +179,8 @@ class _Fields:
 
     def strings(self, dotted: str, length: int | None = None) -> tuple[str, ...]:
         v = self.get(dotted)
-        if not isinstance(v, list) or not all(isinstance(s, str) for s in v) or (length is not None and len(v) != length):
+        wrong_length = length is not None and isinstance(v, list) and len(v) != length
+        if not isinstance(v, list) or not all(isinstance(s, str) for s in v) or wrong_length:
             raise self.fail(dotted, "a list of strings" if length is None else f"a list of {length} strings", v)
         return tuple(v)
 
@@ -428,10 +426,16 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
     meta (optional): tool_link, q_home, belief {beta, floor, min_motion}, safety {tcp_speed_max,
     watchdog_timeout_s, lookahead_s, speed_fraction}, stick {deadband}, tolerances {...}.
     """
+    # defaults for what the metadata leaves out; imported here so verify_bundle needs no more than numpy
+    from coreach.plugins.belief.boltzmann import BoltzmannGoalBelief
+    from coreach.safety import DEFAULT_TCP_SPEED_MAX
+
+    belief_defaults = BoltzmannGoalBelief()
     spec = policy.spec
     n, g, d = policy.action_dim, spec.n_goals, policy.latent_dim
     goal_names = meta.get("goal_names")
-    if not isinstance(goal_names, (list, tuple)) or len(goal_names) != g or not all(isinstance(s, str) for s in goal_names):
+    if (not isinstance(goal_names, (list, tuple)) or len(goal_names) != g
+            or not all(isinstance(s, str) for s in goal_names)):
         raise ConfigError("release meta.goal_names", f"expected {g} goal names (the decoder's n_goals)")
     if chain.dof != n or spec.dof != n:
         raise ConfigError("release robot.urdf", f"the chain has {chain.dof} joints, the decoder drives {n} "
@@ -462,12 +466,13 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
         },
         "normalisation": {k: buf[k].tolist() for k in ("context_cols", "ctx_mean", "ctx_std", "act_mean",
                                                        "act_std", "stick_scale")},
-        "stick": {"box_low": -1.0, "box_high": 1.0, "deadband": _number(meta, "stick.deadband", DEFAULT_DEADBAND, 0.0, 0.5)},
+        "stick": {"box_low": -1.0, "box_high": 1.0,
+                  "deadband": _number(meta, "stick.deadband", DEFAULT_DEADBAND, 0.0, 0.5)},
         "belief": {
             "model": "boltzmann",
-            "beta": _number(meta, "belief.beta", _BELIEF_DEFAULTS.beta, 1e-12),
-            "floor": _number(meta, "belief.floor", _BELIEF_DEFAULTS.floor, 0.0, 0.999999),
-            "min_motion": _number(meta, "belief.min_motion", _BELIEF_DEFAULTS.min_motion, 0.0),
+            "beta": _number(meta, "belief.beta", belief_defaults.beta, 1e-12),
+            "floor": _number(meta, "belief.floor", belief_defaults.floor, 0.0, 0.999999),
+            "min_motion": _number(meta, "belief.min_motion", belief_defaults.min_motion, 0.0),
         },
         "robot": {
             "name": robot_name,
@@ -486,8 +491,9 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
             "lookahead_s": _number(meta, "safety.lookahead_s", DEFAULT_LOOKAHEAD_S, 1e-4, 10.0),
             "speed_fraction": fraction,
         },
-        "tolerances": {"onnx_parity_max_abs_diff": PARITY_TOLERANCE, **_plain(meta.get("tolerances") or {}, "tolerances")},
-        "gate": _plain(gate or {}, "gate"),
+        "tolerances": {"onnx_parity_max_abs_diff": PARITY_TOLERANCE,
+                       **_plain(meta.get("tolerances") or {}, "release meta.tolerances")},
+        "gate": _plain(gate or {}, "release gate"),
         "dataset_fingerprint": _text(meta, "dataset_fingerprint"),
         "training_run_id": _text(meta, "training_run_id"),
         "git_commit": _text(meta, "git_commit"),

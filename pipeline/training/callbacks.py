@@ -25,6 +25,13 @@ class MlflowEpochLogger(L.Callback):
         metrics = [Metric(k, v, now, trainer.current_epoch) for k, v in sorted(values.items())]
         self.client.log_batch(self.run_id, metrics=metrics)
 
+    # The history travels in Lightning checkpoints, so a resumed run knows its earlier epochs.
+    def state_dict(self) -> dict:
+        return {"history": list(self.history)}
+
+    def load_state_dict(self, state_dict: dict) -> None:
+        self.history = list(state_dict.get("history", []))
+
 
 def interactive() -> bool:
     """A rich progress bar only for a person at a terminal; CI and pipes get quiet logs."""

@@ -12,7 +12,7 @@ import lightning as L
 import numpy as np
 import torch
 from torch import Tensor
-from torch.utils.data import BatchSampler, DataLoader, RandomSampler, SequentialSampler
+from torch.utils.data import DataLoader, Sampler
 
 from coreach.context import ContextSpec, build_context
 from coreach.episodes import EpisodeSet
@@ -124,6 +124,32 @@ class _Batches(torch.utils.data.Dataset):
         return self.samples.batch(idx)
 
 
+class EpochBatches(Sampler):
+    """Batches of row indices whose order depends only on (seed, epoch).
+
+    Lightning calls set_epoch before every epoch, so a run resumed from a checkpoint sees exactly the batches
+    an uninterrupted run would have seen.
+    """
+
+    def __init__(self, n: int, batch_size: int, seed: int, shuffle: bool):
+        self.n, self.batch_size, self.seed, self.shuffle = n, batch_size, seed, shuffle
+        self.epoch = 0
+
+    def set_epoch(self, epoch: int) -> None:
+        self.epoch = epoch
+
+    def __len__(self) -> int:
+        return (self.n + self.batch_size - 1) // self.batch_size
+
+    def __iter__(self):
+        if self.shuffle:
+            g = torch.Generator().manual_seed(self.seed * 100_003 + self.epoch)
+            order = torch.randperm(self.n, generator=g)
+        else:
+            order = torch.arange(self.n)
+        yield from order.split(self.batch_size)
+
+
 class DemoDataModule(L.LightningDataModule):
     """Train/validation loaders over pre-built samples; shuffling is seeded for reproducible runs."""
 
@@ -133,12 +159,7 @@ class DemoDataModule(L.LightningDataModule):
         self.batch_size, self.seed = batch_size, seed
 
     def _loader(self, samples: Samples, shuffle: bool) -> DataLoader:
-        base = (
-            RandomSampler(range(len(samples)), generator=torch.Generator().manual_seed(self.seed))
-            if shuffle
-            else SequentialSampler(range(len(samples)))
-        )
-        sampler = BatchSampler(base, batch_size=self.batch_size, drop_last=False)
+        sampler = EpochBatches(len(samples), self.batch_size, self.seed, shuffle)
         return DataLoader(_Batches(samples), sampler=sampler, batch_size=None, num_workers=0)
 
     def train_dataloader(self) -> DataLoader:

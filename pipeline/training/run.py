@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import sys
 import time
 from pathlib import Path
 
@@ -10,11 +11,13 @@ import hydra
 import lightning as L
 import torch
 from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
+from lightning.pytorch.utilities.exceptions import SIGTERMException
 from mlflow.entities import Metric
 from omegaconf import DictConfig, OmegaConf
 
 from coreach import tracking
 from coreach.context import ContextSpec
+from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin, build_terms
 from coreach.policy import DecoderPolicy
 from coreach.safety import SafetyLimits
@@ -42,7 +45,7 @@ def build_system(cfg: DictConfig, robot, episodes, train_s) -> DecoderSystem:
     policy = DecoderPolicy.build(model_cfg, spec, robot.dof)
     policy.set_normalisation(train_s.context, train_s.action)
     limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
-    return DecoderSystem(policy, build_terms(cfg.loss), limits, episodes.dt, cfg.trainer.lr)
+    return DecoderSystem(policy, build_terms(cfg.loss), limits, episodes.dt, cfg.trainer.lr, seed=cfg.seed)
 
 
 def train(cfg: DictConfig) -> dict:
@@ -55,16 +58,30 @@ def train(cfg: DictConfig) -> dict:
 
     client, exp_id = tracking.client(cfg.tracking)
     model_name = cfg.get("label") or hydra.utils.get_class(cfg.model._target_).__name__
-    tags = {"coreach.stage": "train", "coreach.label": str(model_name), "coreach.dataset": episodes.fingerprint()}
-    if sweep_tag():
-        tags["coreach.sweep"] = sweep_tag()
-    commit = tracking.git_commit()
-    if commit:
-        tags["mlflow.source.git.commit"] = commit
-    run = client.create_run(exp_id, run_name=cfg.get("run_name") or str(model_name), tags=tags)
-    run_id = run.info.run_id
+    if cfg.get("resume"):
+        run_id, out = resume_target(client, str(cfg.resume), cfg)
+    else:
+        tags = {"coreach.stage": "train", "coreach.label": str(model_name), "coreach.dataset": episodes.fingerprint()}
+        if sweep_tag():
+            tags["coreach.sweep"] = sweep_tag()
+        commit = tracking.git_commit()
+        if commit:
+            tags["mlflow.source.git.commit"] = commit
+        out = (output_dir() / str(model_name).replace("/", "_")).resolve()
+        tags["coreach.output_dir"] = str(out)
+        run = client.create_run(exp_id, run_name=cfg.get("run_name") or str(model_name), tags=tags)
+        run_id = run.info.run_id
     try:
-        summary = _fit_and_log(cfg, client, run_id, system, episodes, train_s, val_s)
+        summary = _fit_and_log(cfg, client, run_id, system, episodes, train_s, val_s, out)
+    except SIGTERMException:
+        client.set_tag(run_id, "coreach.preempted", "true")
+        client.set_terminated(run_id, status="KILLED")
+        print(
+            f"coreach: training stopped by SIGTERM; checkpoints in {out / 'checkpoints'}; "
+            f"continue with: coreach train resume={run_id} (and the same overrides)",
+            file=sys.stderr,
+        )
+        raise SystemExit(143) from None
     except BaseException:
         client.set_terminated(run_id, status="FAILED")
         raise
@@ -73,20 +90,70 @@ def train(cfg: DictConfig) -> dict:
     return summary
 
 
-def _fit_and_log(cfg, client, run_id, system, episodes, train_s, val_s) -> dict:
-    out = output_dir() / (cfg.get("label") or "train")
+def run_params(cfg: DictConfig, episodes, train_s, val_s) -> dict[str, str]:
     params = tracking.flatten(cfg)
+    params.pop("resume", None)
     params["dataset.fingerprint"] = episodes.fingerprint()
     params["dataset.episodes"] = str(len(episodes))
     params["dataset.train_samples"] = str(len(train_s))
     params["dataset.val_samples"] = str(len(val_s))
-    tracking.log_params_batched(client, run_id, params)
-    client.log_text(run_id, OmegaConf.to_yaml(cfg, resolve=True), "config.yaml")
-    tracking.log_json(client, run_id, tracking.library_versions(), "environment/libraries.json")
+    return params
+
+
+def resume_target(client, run_id: str, cfg: DictConfig) -> tuple[str, Path]:
+    """The run to continue and its output folder; refuses a run that cannot be continued as configured."""
+    from mlflow.exceptions import MlflowException
+
+    try:
+        run = client.get_run(run_id)
+    except MlflowException:
+        raise ConfigError("option resume", f"no run {run_id!r} in {tracking.resolve_uri(cfg.tracking.get('uri'))}") from None
+    if run.info.status == "FINISHED":
+        raise ConfigError("option resume", f"run {run_id} already finished; nothing to resume")
+    out = Path(run.data.tags.get("coreach.output_dir", ""))
+    if not (out / "checkpoints" / "last.ckpt").exists():
+        raise ConfigError("option resume", f"run {run_id} has no checkpoint at {out / 'checkpoints' / 'last.ckpt'}")
+    logged = run.data.params
+    now = tracking.flatten(cfg)
+    now.pop("resume", None)
+    differs = sorted(k for k, v in now.items() if k in logged and logged[k] != v)
+    if differs:
+        k = differs[0]
+        raise ConfigError("option resume", f"config differs from run {run_id} at {k} ({logged[k]!r} was logged, now {now[k]!r}); resume with the same overrides")
+    return run_id, out
+
+
+class _CheckpointOnSigterm(L.Callback):
+    """The cluster's SIGTERM: keep the partial epoch's weights too (checkpoints/preempted.ckpt). Resuming uses
+    the last completed epoch (last.ckpt), which continues bit for bit like an uninterrupted run."""
+
+    def __init__(self, folder: Path):
+        self.folder = folder
+
+    def on_exception(self, trainer, pl_module, exception):
+        if isinstance(exception, SIGTERMException):
+            trainer.save_checkpoint(self.folder / "preempted.ckpt")
+
+
+def _fit_and_log(cfg, client, run_id, system, episodes, train_s, val_s, out: Path) -> dict:
+    resuming = bool(cfg.get("resume"))
+    if not resuming:
+        tracking.log_params_batched(client, run_id, run_params(cfg, episodes, train_s, val_s))
+        client.log_text(run_id, OmegaConf.to_yaml(cfg, resolve=True), "config.yaml")
+        tracking.log_json(client, run_id, tracking.library_versions(), "environment/libraries.json")
 
     metric_logger = MlflowEpochLogger(client, run_id)
-    checkpoint = ModelCheckpoint(dirpath=out / "checkpoints", monitor="val/loss", save_top_k=1, save_last=True)
-    callbacks = [metric_logger, checkpoint, EarlyStopping(monitor="val/loss", patience=cfg.trainer.patience)]
+    # saved at the end of each training epoch, after the metric logger (checkpoint callbacks run last), so a
+    # checkpoint's copy of the history always includes its own epoch
+    checkpoint = ModelCheckpoint(
+        dirpath=out / "checkpoints", monitor="val/loss", save_top_k=1, save_last=True, save_on_train_epoch_end=True
+    )
+    callbacks = [
+        metric_logger,
+        checkpoint,
+        EarlyStopping(monitor="val/loss", patience=cfg.trainer.patience),
+        _CheckpointOnSigterm(out / "checkpoints"),
+    ]
     trainer = L.Trainer(
         accelerator="cpu",
         devices=1,
@@ -100,7 +167,7 @@ def _fit_and_log(cfg, client, run_id, system, episodes, train_s, val_s) -> dict:
         default_root_dir=str(out),
     )
     data = DemoDataModule(train_s, val_s, cfg.data.batch_size, cfg.seed)
-    trainer.fit(system, datamodule=data)
+    trainer.fit(system, datamodule=data, ckpt_path=str(out / "checkpoints" / "last.ckpt") if resuming else None)
 
     best_path = checkpoint.best_model_path
     if best_path:

@@ -13,8 +13,11 @@ from coreach.training.terms import TermBatch
 class DecoderSystem(L.LightningModule):
     """Combines a DecoderPolicy with loss terms; logs every term under `<stage>/<term name>`."""
 
-    def __init__(self, policy: DecoderPolicy, terms: list, limits: SafetyLimits, dt: float, lr: float = 1e-3):
+    def __init__(
+        self, policy: DecoderPolicy, terms: list, limits: SafetyLimits, dt: float, lr: float = 1e-3, seed: int = 0
+    ):
         super().__init__()
+        self.seed = seed
         self.policy = policy
         self.terms = terms
         self.limits = limits
@@ -28,7 +31,10 @@ class DecoderSystem(L.LightningModule):
         posterior = policy.decoder.encode(action, context)
         latent = posterior.mean
         if posterior.logvar is not None and self.training:
-            latent = latent + torch.randn_like(latent) * torch.exp(0.5 * posterior.logvar)
+            # noise drawn from (seed, step) alone, so a resumed run draws what an uninterrupted one would
+            g = torch.Generator().manual_seed(self.seed * 1_000_003 + self.global_step)
+            noise = torch.randn(latent.shape, generator=g, dtype=latent.dtype)
+            latent = latent + noise * torch.exp(0.5 * posterior.logvar)
         return TermBatch(
             action=action,
             context=context,

@@ -112,7 +112,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     tol_pos, tol_ang = suite.position_tol, suite.orientation_tol
     grid = suite.stick_grid(dtype)  # [K, 2]
     K = grid.shape[0]
-    switch_cost = int(getattr(interface, "switch_cost_steps", 0))
+    switch_cost = 0
     margin = float(getattr(operator, "mode_switch_margin", 0.0))
 
     targets = plan.layout.targets.to(dtype)  # [E, G, 2, 3]
@@ -189,6 +189,8 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         state = LoopState(t, q, pos, rot, jac, belief, targets, goal_rot, context, mode, dt)
         if t == 0:
             interface.reset(E, state)
+            # read after reset: an interface may count its switch cost in steps of the loop's dt
+            switch_cost = int(getattr(interface, "switch_cost_steps", 0))
         raw = interface.act(grid, state).to(dtype)  # [E, M, K, n]
         M = raw.shape[1]
         if t == 0 and tuple(raw.shape) != (E, int(interface.n_modes), K, n):
