@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import fcntl
 import json
 import os
 import re
@@ -33,14 +35,46 @@ def artifact_root(uri: str, configured: str | None) -> str | None:
     return None
 
 
+def sqlite_path(uri: str) -> Path | None:
+    """The database file of a `sqlite:///` URI (None for other stores and in-memory sqlite)."""
+    if not uri.startswith("sqlite:///"):
+        return None
+    path = uri[len("sqlite:///") :].split("?", 1)[0]
+    return Path(path) if path and path != ":memory:" else None
+
+
+@contextlib.contextmanager
+def _store_lock(uri: str):
+    """Serialise the first use of an embedded store across processes: several processes creating a fresh
+    sqlite store at once race in its schema migration (tables already exist, version row mismatch)."""
+    db = sqlite_path(uri)
+    if db is None:
+        yield
+        return
+    db.parent.mkdir(parents=True, exist_ok=True)
+    with open(db.with_name(db.name + ".lock"), "a") as fh:
+        fcntl.flock(fh, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(fh, fcntl.LOCK_UN)
+
+
 def client(cfg_tracking: DictConfig):
     """An MlflowClient on the configured store, and the id of the configured experiment (created if new)."""
     import mlflow
     from mlflow.tracking import MlflowClient
 
+    # stdout belongs to `--json`: MLflow would print a "View run at" link there for a server URI
+    os.environ.setdefault("MLFLOW_SUPPRESS_PRINTING_URL_TO_STDOUT", "true")
     uri = resolve_uri(cfg_tracking.get("uri"))
     mlflow.set_tracking_uri(uri)
-    c = MlflowClient(tracking_uri=uri)
+    with _store_lock(uri):
+        c = MlflowClient(tracking_uri=uri)
+        return c, _experiment_id(c, uri, cfg_tracking)
+
+
+def _experiment_id(c, uri: str, cfg_tracking: DictConfig) -> str:
     name = cfg_tracking.experiment
     exp = c.get_experiment_by_name(name)
     if exp is None:
@@ -53,7 +87,7 @@ def client(cfg_tracking: DictConfig):
             exp_id = exp.experiment_id
     else:
         exp_id = exp.experiment_id
-    return c, exp_id
+    return exp_id
 
 
 def flatten(cfg: DictConfig) -> dict[str, str]:

@@ -31,15 +31,15 @@ def _start(workdir):
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
 
 
-def _wait_for_epochs(client, n, proc, timeout=600):
-    """Run id of the running training, once it has logged n epochs."""
+def _wait_for_epochs(client, n, proc, exclude, timeout=600):
+    """Run id of the running training (not `exclude`), once it has logged n epochs."""
     t0 = time.time()
     while time.time() - t0 < timeout:
         assert proc.poll() is None, proc.stderr.read()
         exp = client.get_experiment_by_name("coreach")
         runs = client.search_runs([exp.experiment_id]) if exp else []
         for r in runs:
-            if len(client.get_metric_history(r.info.run_id, "val/loss")) >= n:
+            if r.info.run_id != exclude and len(client.get_metric_history(r.info.run_id, "val/loss")) >= n:
                 return r.info.run_id
         time.sleep(0.2)
     raise AssertionError("training did not reach the expected epoch in time")
@@ -54,7 +54,7 @@ def test_killed_training_resumes_to_identical_metrics(workdir, sig):
 
     client = MlflowClient(f"sqlite:///{workdir / 'mlflow.db'}")
     proc = _start(workdir)
-    run_id = _wait_for_epochs(client, 2, proc)
+    run_id = _wait_for_epochs(client, 2, proc, exclude=ref["run_id"])
     proc.send_signal(sig)
     code = proc.wait(timeout=120)
     if sig == signal.SIGTERM:
