@@ -16,6 +16,7 @@ USAGE = """usage: coreach [--json] [--debug] COMMAND [-m] [key=value ...]
 commands:
   demo      generate demonstrations, train the decoder families briefly, compare them
   train     train one decoder (e.g. coreach train model=vae trainer.max_epochs=5)
+  vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
   plugins   list every registered plugin by kind, with where it came from
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9)
 
@@ -30,6 +31,7 @@ options:
 HYDRA_COMMANDS = {
     "train": ("train", "coreach.training.run:train"),
     "demo": ("demo", "coreach.demo:run_demo"),
+    "vet": ("vet", "coreach.vetting.stage:vet"),
     "bench train": ("bench_train", "coreach.bench.train_bench:run"),
 }
 
@@ -53,6 +55,8 @@ def _quiet_library_warnings() -> None:
     warnings.filterwarnings("ignore", message=r".*LeafSpec.*")
     warnings.filterwarnings("ignore", message=r".*Checkpoint directory .* exists and is not empty.*")
     warnings.filterwarnings("ignore", message=r".*does not have many workers.*")
+    warnings.filterwarnings("ignore", message=r".*validation_step.*no `val_dataloader`.*")
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -52,7 +52,8 @@ class SafetyLimits:
         upper = xp.asarray(self.q_upper, dtype=qd.dtype)
         lo = (lower - q) / dt
         hi = (upper - q) / dt
-        clipped = xp.minimum(xp.maximum(qd, xp.minimum(lo, 0.0 * lo)), xp.maximum(hi, 0.0 * hi))
+        zero = xp.zeros_like(lo)  # not 0 * lo: continuous joints have infinite limits, and 0 * inf is NaN
+        clipped = xp.minimum(xp.maximum(qd, xp.minimum(lo, zero)), xp.maximum(hi, zero))
         intervened = xp.any(clipped != qd, axis=-1)
         return clipped, intervened
 

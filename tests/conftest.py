@@ -32,4 +32,13 @@ def small_cfg(workdir):
 def cli_env(**extra: str) -> dict:
     env = {k: v for k, v in os.environ.items() if k != "MLFLOW_TRACKING_URI"}
     env.update(CI="true", **extra)
+    if os.environ.get("PYTEST_XDIST_WORKER"):
+        env.setdefault("OMP_NUM_THREADS", "1")
     return env
+
+
+# Two xdist workers on two cores: one torch thread each, or they fight over the cores.
+if os.environ.get("PYTEST_XDIST_WORKER"):
+    import torch
+
+    torch.set_num_threads(1)

@@ -295,3 +295,15 @@ def test_batched_fk_of_ten_thousand_configurations_is_finite():
     reach = sum(math.dist(o, (0, 0, 0)) for o in origins[2:])
     assert (pos - shoulder).norm(dim=1).max() <= reach + 1e-5
     assert math.isclose(float(torch.linalg.det(rot.double()).mean()), 1.0, abs_tol=1e-5)
+
+
+def test_fk_and_jacobian_in_one_pass_matches_separate_calls():
+    from coreach.plugins.robot.urdf_arm import UrdfArm
+
+    arm = UrdfArm()
+    q = torch.rand(20, arm.dof, dtype=torch.float64) - 0.5
+    pos, rot, jac = arm.fk_and_jacobian(q)
+    p2, r2 = arm.fk(q)
+    torch.testing.assert_close(pos, p2)
+    torch.testing.assert_close(rot, r2)
+    torch.testing.assert_close(jac, arm.jacobian(q))

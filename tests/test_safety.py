@@ -42,3 +42,9 @@ def test_keep_inside_stops_at_the_position_limit():
     assert np.all(nxt <= 1.0 + 1e-12) and np.all(nxt >= -1.0 - 1e-12)
     np.testing.assert_allclose(out, [[0.5, -0.5, 0.3]])
     assert hit.all()
+
+
+def test_keep_inside_with_unlimited_joint_has_no_nan():
+    limits = SafetyLimits(qd_max=(1.0, 1.0), q_lower=(-np.inf, -1.0), q_upper=(np.inf, 1.0))
+    out, _ = limits.keep_inside(np.array([[100.0, 0.99]]), np.array([[0.7, 1.0]]), dt=0.1)
+    np.testing.assert_allclose(out, [[0.7, 0.1]])

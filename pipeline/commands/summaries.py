@@ -11,7 +11,8 @@ from rich.table import Table
 
 def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     if as_json:
-        payload = summaries[0] if (command == "demo" and len(summaries) == 1) else {"runs": summaries}
+        single = command in ("demo", "vet") and len(summaries) == 1
+        payload = summaries[0] if single else {"runs": summaries}
         print(json.dumps(payload, indent=2, default=str))
         return
     console = Console(width=None if sys.stdout.isatty() else 160)
@@ -19,6 +20,9 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
         console.print(training_table(summaries))
         if summaries:
             console.print(f"MLflow: {mlflow_hint()}")
+    elif command == "vet":
+        for s in summaries:
+            print_vetting(console, s)
     elif command.startswith("bench"):
         for s in summaries:
             table = Table(title=command)
@@ -30,6 +34,8 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "demo":
         for s in summaries:
             console.print(training_table(s.get("runs", [])))
+            if s.get("vetting"):
+                print_vetting(console, s["vetting"])
             for line in s.get("next_steps", []):
                 console.print(line)
 
@@ -65,3 +71,12 @@ def mlflow_hint() -> str:
     if uri.startswith("sqlite:"):
         return f"runs are in {uri}; browse them with: .venv/bin/mlflow ui --backend-store-uri {uri}"
     return f"runs are on {uri}"
+
+
+def print_vetting(console, result: dict) -> None:
+    from coreach.vetting.report import terminal_table
+
+    console.print(terminal_table(result["summaries"]))
+    console.print(f"report: {result['report']}")
+    if result.get("vet_runs"):
+        console.print("vetting runs in MLflow: " + ", ".join(f"{k}={v}" for k, v in result["vet_runs"].items()))

@@ -303,5 +303,10 @@ class UrdfArm:
     def jacobian(self, q: Tensor) -> Tensor:
         return self._chain_for(q).jacobian(q)
 
+    def fk_and_jacobian(self, q: Tensor) -> tuple[Tensor, Tensor, Tensor]:
+        """Pose and Jacobian from one kinematics pass (closed loops need both every step)."""
+        jac, m = self._chain_for(q).jacobian(q, ret_eef_pose=True)
+        return m[:, :3, 3], m[:, :3, :3], jac
+
     def __repr__(self) -> str:
         return f"UrdfArm(name={self.name!r}, dof={self.dof}, urdf={self.urdf or SHIPPED_URDF!r})"
