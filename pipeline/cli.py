@@ -18,7 +18,20 @@ commands:
   train     train one decoder (e.g. coreach train model=vae trainer.max_epochs=5)
   vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
   plugins   list every registered plugin by kind, with where it came from
+  compare   leaderboard of an experiment's runs: table, CSV and PNG
+            (coreach compare --experiment NAME --sweep TAG --out DIR)
+  release   gate a trained decoder and, if it passes, bundle, register and mark it vetted
+            (coreach release run=<run id> [name=bedside-shelf-decoder]; refusal: gate table, exit 3)
+  drive     replay a release bundle's ONNX decoder through a suite and compare with its vetting
+            (coreach drive bundle=releases/<name>/v<version> suite=held-out)
+  promote   field a vetted version (coreach promote NAME VERSION) or restore the previous one
+            (coreach promote NAME --back)
+  releases  registered versions, aliases and gate results (coreach releases [NAME])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9)
+  bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)
+  bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
+                (coreach bench runtime bundle=<folder>; goals: p99 <= 100 us and <= 2x the bare call)
+  bench vet     closed-loop throughput: batched loop against a per-episode loop and a bare decoder pass
 
 options:
   -m, --multirun  sweep over comma-separated values (coreach train -m model=linear,vae,cvae)
@@ -33,6 +46,16 @@ HYDRA_COMMANDS = {
     "demo": ("demo", "coreach.demo:run_demo"),
     "vet": ("vet", "coreach.vetting.stage:vet"),
     "bench train": ("bench_train", "coreach.bench.train_bench:run"),
+    "bench sweep": ("bench_sweep", "coreach.bench.sweep_bench:run"),
+    "release": ("release", "coreach.release.stage:release"),
+    "drive": ("drive", "coreach.release.drive:drive"),
+    "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
+    "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
+}
+# Hydra-free commands: name -> "module:function" taking (arguments, as_json) and returning the exit code
+PLAIN_COMMANDS = {
+    "promote": "coreach.release.registry:promote_command",
+    "releases": "coreach.release.registry:releases_command",
 }
 
 
@@ -55,7 +78,11 @@ def _quiet_library_warnings() -> None:
     warnings.filterwarnings("ignore", message=r".*LeafSpec.*")
     warnings.filterwarnings("ignore", message=r".*Checkpoint directory .* exists and is not empty.*")
     warnings.filterwarnings("ignore", message=r".*does not have many workers.*")
+    # submitit (the SLURM launcher) logs to stdout by default, which belongs to --json; let its records
+    # go through the root logger (stderr) instead
+    os.environ.setdefault("SUBMITIT_LOG_LEVEL", "NOCONFIG")
     warnings.filterwarnings("ignore", message=r".*validation_step.*no `val_dataloader`.*")
+    warnings.filterwarnings("ignore", message=r".*The `srun` command is available on your system.*")
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
 
 
@@ -80,8 +107,15 @@ def main(argv: list[str] | None = None) -> int:
             from coreach.commands.plugins import show_plugins
 
             return show_plugins(as_json)
+        if command == "compare":
+            from coreach.commands.compare import compare_command
+
+            return compare_command(overrides, as_json)
+        if command in PLAIN_COMMANDS:
+            return _load(PLAIN_COMMANDS[command])(overrides, as_json)
         if command not in HYDRA_COMMANDS:
-            raise CoreachError(f"command {command!r}", f"unknown; expected one of {sorted([*HYDRA_COMMANDS, 'plugins'])}")
+            known = sorted([*HYDRA_COMMANDS, *PLAIN_COMMANDS, "plugins", "compare"])
+            raise CoreachError(f"command {command!r}", f"unknown; expected one of {known}")
         summaries = run_hydra(command, overrides, multirun, debug)
     except CoreachError as exc:
         if debug:
@@ -99,7 +133,9 @@ def main(argv: list[str] | None = None) -> int:
     from coreach.commands.summaries import print_summary
 
     print_summary(command, summaries, as_json)
-    return 0
+    # a command that ran fine but reached a negative verdict (a refused release, a replay that does not
+    # match its vetting) says so with its own exit code
+    return max([0, *(int(s.get("exit_code", 0)) for s in summaries if isinstance(s, dict))])
 
 
 def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -> list[dict]:

@@ -44,8 +44,9 @@ class DecoderPolicy(nn.Module):
     def set_normalisation(self, raw_context: Tensor, action: Tensor) -> None:
         """Fit normalisation on the training split only: raw_context [N, C], action [N, n]."""
         ctx = raw_context[:, self.context_cols]
-        self.ctx_mean.copy_(ctx.mean(0))
-        self.ctx_std.copy_(ctx.std(0).clamp_min(STD_FLOOR))
+        if ctx.shape[1]:  # a context-free decoder (linear) has nothing to normalise
+            self.ctx_mean.copy_(ctx.mean(0))
+            self.ctx_std.copy_(ctx.std(0).clamp_min(STD_FLOOR))
         self.act_mean.copy_(action.mean(0))
         self.act_std.copy_(action.std(0).clamp_min(STD_FLOOR))
 

@@ -23,7 +23,7 @@ ROBOT = UrdfArm()
 def test_shipped_suites_load_and_validate_on_reach7(name):
     suite = load_suite(name)
     suite.validate(ROBOT, spec_n_goals=4)
-    assert suite.seed >= MIN_SEED and suite.path == f"suite/{name}.yaml"
+    assert suite.seed >= MIN_SEED and suite.path == f"suites/{name}.yaml"
     assert suite.candidates_per_axis**2 == suite.stick_grid().shape[0] == 25
 
 
@@ -136,7 +136,7 @@ def test_a_decoder_for_another_number_of_goals_is_refused(tmp_path):
 
 
 def test_unknown_override_and_unknown_name():
-    with pytest.raises(ConfigError, match="suite/nominal.yaml, override episode:"):
+    with pytest.raises(ConfigError, match="suites/nominal.yaml, override episode:"):
         load_suite("nominal", episode=3)
     with pytest.raises(ConfigError, match="unknown suite 'nominl'"):
         load_suite("nominl")

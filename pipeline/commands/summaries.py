@@ -11,9 +11,12 @@ from rich.table import Table
 
 def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     if as_json:
-        single = command in ("demo", "vet") and len(summaries) == 1
+        single = command in ("demo", "vet", "release", "drive") and len(summaries) == 1
         payload = summaries[0] if single else {"runs": summaries}
         print(json.dumps(payload, indent=2, default=str))
+        for s in summaries:
+            if command == "release" and not s.get("released", True):
+                print(refusal_line(s), file=sys.stderr)
         return
     console = Console(width=None if sys.stdout.isatty() else 160)
     if command == "train":
@@ -23,6 +26,12 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "vet":
         for s in summaries:
             print_vetting(console, s)
+    elif command == "release":
+        for s in summaries:
+            print_release(console, s)
+    elif command == "drive":
+        for s in summaries:
+            print_drive(console, s)
     elif command.startswith("bench"):
         for s in summaries:
             table = Table(title=command)
@@ -36,6 +45,8 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
             console.print(training_table(s.get("runs", [])))
             if s.get("vetting"):
                 print_vetting(console, s["vetting"])
+            if s.get("release"):
+                print_demo_release(console, s["release"])
             for line in s.get("next_steps", []):
                 console.print(line)
 
@@ -80,3 +91,66 @@ def print_vetting(console, result: dict) -> None:
     console.print(f"report: {result['report']}")
     if result.get("vet_runs"):
         console.print("vetting runs in MLflow: " + ", ".join(f"{k}={v}" for k, v in result["vet_runs"].items()))
+
+
+def refusal_line(s: dict) -> str:
+    return (f"coreach: release refused: {len(s['failed'])} of {len(s['gates'])} gates failed "
+            f"({', '.join(s['failed'])}); nothing was written (no bundle, no MLflow run, no registry version)")
+
+
+def print_cautions(console) -> None:
+    from coreach.runtime.model_card import CAUTIONS
+
+    console.print("[bold]Cautions[/bold]")
+    for c in CAUTIONS:
+        console.print(f"  - {c}")
+
+
+def print_release(console, s: dict) -> None:
+    """The gate table, then what was published (and the cautions), or why nothing was."""
+    from coreach.release.gate import gate_table
+
+    verdict = "released" if s["released"] else "REFUSED"
+    console.print(gate_table(s["gates"], f"release gate: {s['label']} (training run {s['training_run']}): {verdict}"))
+    if not s["released"]:
+        print(refusal_line(s), file=sys.stderr)
+        return
+    console.print(f"released {s['name']} version {s['version']} (@{', @'.join(s.get('aliases', []))}): {s['bundle']}")
+    console.print(f"release run {s['release_run']} in {s['tracking']}")
+    console.print(f"replay it: coreach drive bundle={s['bundle']} suite={next(iter(s['vetting']), 'held-out')}")
+    console.print(f"field it:  coreach promote {s['name']} {s['version']}")
+    print_cautions(console)
+
+
+def print_drive(console, s: dict) -> None:
+    """The vetting table of the replay, the limit checks and the comparison with the bundle's vetting."""
+    from coreach.vetting.report import terminal_table
+
+    console.print(terminal_table(s["summaries"]))
+    v = s["violations"]
+    console.print("limit violations in the replay: " + ", ".join(f"{k.replace('_', ' ')} {n}" for k, n in v.items()
+                                                                  if k != "steps") + f" (of {v['steps']} steps)")
+    c = s.get("comparison")
+    if not c:
+        console.print(f"no comparison with vetting: {s['comparison_source']}")
+    elif not c["comparable"]:
+        console.print(f"no comparison with vetting: {c['note']}")
+    else:
+        table = Table(title=f"replay against vetting ({s['comparison_source']}; {c['note']})")
+        for col in ("metric", "vetted", "replay", "|difference|", "tolerance", "ok"):
+            table.add_column(col)
+        for r in c["rows"]:
+            table.add_row(r["metric"], f"{r['vetted']:.4g}", f"{r['replay']:.4g}", f"{r['diff']:.3g}",
+                          f"{r['tolerance']:.3g}", "yes" if r["ok"] else "[bold red]NO[/bold red]")
+        console.print(table)
+        console.print("replay MATCHES vetting" if c["match"] else "[bold red]replay does NOT match vetting[/bold red]")
+    console.print(f"({s['note']})")
+
+
+def print_demo_release(console, r: dict) -> None:
+    for attempt in r.get("attempts", []):
+        print_release(console, attempt)
+    if r.get("release") is None:
+        console.print("no demo decoder passed the release gate at demo size; nothing was released")
+    if r.get("drive"):
+        print_drive(console, r["drive"])

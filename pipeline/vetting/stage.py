@@ -92,7 +92,9 @@ def vet(cfg: DictConfig) -> dict:
     t0 = time.perf_counter()
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
     os.environ["MLFLOW_TRACKING_URI"] = uri  # decoder interfaces read runs from the same store
-    overrides = {k: cfg[k] for k in ("episodes", "operator") if cfg.get(k) is not None}
+    overrides = {"episodes": cfg.episodes} if cfg.get("episodes") is not None else {}
+    if cfg.get("operator_preset"):
+        overrides["operator"] = cfg.operator_preset
     suite = load_suite(str(cfg.suite), **overrides)
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")

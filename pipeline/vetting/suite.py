@@ -272,8 +272,8 @@ class _StartAt:
 
 # ----- reading YAML -----
 def builtin_suites() -> list[str]:
-    """Names of the suites shipped in coreach.conf/suite."""
-    folder = files("coreach.conf") / "suite"
+    """Names of the suites shipped in coreach.conf/suites."""
+    folder = files("coreach.conf") / "suites"
     return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
 
 
@@ -423,7 +423,7 @@ def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
 
 
 def load_suite(name_or_path: str | Path, **overrides) -> Suite:
-    """Read a suite: a shipped name (conf/suite/<name>.yaml, e.g. "goal-switch") or a path to a YAML file.
+    """Read a suite: a shipped name (conf/suites/<name>.yaml, e.g. "goal-switch") or a path to a YAML file.
 
     `overrides` replace top-level options before checking (e.g. episodes=20); they are checked like the file.
     """
@@ -437,12 +437,12 @@ def load_suite(name_or_path: str | Path, **overrides) -> Suite:
             raise ConfigError(f"suite {text_path}", "file not found; expected a YAML suite file")
         where, text, stem = str(path), path.read_text(encoding="utf-8"), path.stem
     else:
-        res = files("coreach.conf") / "suite" / f"{text_path}.yaml"
+        res = files("coreach.conf") / "suites" / f"{text_path}.yaml"
         if not res.is_file():
             raise ConfigError(
                 "option suite", f"unknown suite {text_path!r}; expected one of {builtin_suites()} or a .yaml path"
             )
-        where, text, stem = f"suite/{text_path}.yaml", res.read_text(encoding="utf-8"), text_path
+        where, text, stem = f"suites/{text_path}.yaml", res.read_text(encoding="utf-8"), text_path
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as e:

@@ -1,0 +1,88 @@
+"""`coreach bench sweep`: the same sweep serially and on local joblib workers; wall times and efficiency.
+
+Both passes run as a user would run them, `coreach --json train -m ...` in a child process, so each
+wall time includes what a real sweep pays: the command's start-up and, for the parallel pass, the workers'
+start-up. Parallel efficiency = serial wall / (workers x parallel wall); 1.0 is perfect scaling.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+from omegaconf import DictConfig
+
+from coreach.errors import CoreachError
+
+
+def _user_overrides() -> list[str]:
+    """The overrides this command was given, minus the bench's own: they apply to every run of both sweeps."""
+    try:
+        from hydra.core.hydra_config import HydraConfig
+
+        task = list(HydraConfig.get().overrides.task)
+    except ValueError:  # not inside a Hydra run
+        return []
+    return [o for o in task if not o.lstrip("+~").startswith(("bench.", "hydra."))]
+
+
+def _coreach() -> list[str]:
+    return [sys.executable, "-m", "coreach.cli"]
+
+
+def _sweep(args: list[str], env: dict) -> tuple[float, list[dict]]:
+    t0 = time.perf_counter()
+    res = subprocess.run([*_coreach(), "--json", "train", "-m", *args], capture_output=True, text=True, env=env)
+    wall = time.perf_counter() - t0
+    if res.returncode != 0:
+        tail = " | ".join(res.stderr.strip().splitlines()[-3:])
+        raise CoreachError("bench sweep", f"a sweep failed (exit {res.returncode}): {tail}")
+    return wall, json.loads(res.stdout)["runs"]
+
+
+def run(cfg: DictConfig) -> dict:
+    from coreach.config_check import compose_config
+    from coreach.training.run import prepare
+
+    b = cfg.bench
+    if int(b.runs) < 2 or int(b.workers) < 2:
+        raise CoreachError("bench.runs / bench.workers", "expected at least 2 runs and 2 workers")
+    train_overrides = [*b.train, *_user_overrides()]
+    stamp = time.strftime("%Y%m%d-%H%M%S")
+    scratch = (Path(".coreach") / "bench" / f"sweep-{stamp}-{os.getpid()}").resolve()
+    scratch.mkdir(parents=True, exist_ok=True)
+    if b.tracking == "scratch":
+        train_overrides += [f"tracking.uri=sqlite:///{scratch / 'mlflow.db'}", f"tracking.artifacts={scratch / 'mlartifacts'}"]
+    elif b.tracking != "configured":
+        raise CoreachError("bench.tracking", f"expected scratch or configured, got {b.tracking!r}")
+    # demonstrations generated once, before timing: both passes then read the same cache
+    prepare(compose_config("train", train_overrides))
+
+    seeds = "seed=" + ",".join(str(i) for i in range(int(b.runs)))
+    env = {**os.environ, "CI": os.environ.get("CI", "true")}  # no progress bars in the children
+    serial_wall, serial_runs = _sweep([*train_overrides, "hydra/launcher=basic", seeds], env)
+    parallel_args = [*train_overrides, "hydra/launcher=joblib", f"hydra.launcher.n_jobs={int(b.workers)}", seeds]
+    parallel_wall, parallel_runs = _sweep(parallel_args, env)
+    for name, runs in (("serial", serial_runs), ("parallel", parallel_runs)):
+        if len(runs) != int(b.runs):
+            raise CoreachError("bench sweep", f"the {name} sweep returned {len(runs)} runs, expected {b.runs}")
+    efficiency = serial_wall / (int(b.workers) * parallel_wall)
+    return {
+        "runs_per_sweep": int(b.runs),
+        "workers": int(b.workers),
+        "cpu_count": os.cpu_count(),
+        "training": " ".join(train_overrides[: len(b.train)]),
+        "serial_wall_s": serial_wall,
+        "parallel_wall_s": parallel_wall,
+        "speedup": serial_wall / parallel_wall,
+        "parallel_efficiency": efficiency,
+        "goal_efficiency": float(b.goal_efficiency),
+        "meets_goal": efficiency >= float(b.goal_efficiency),
+        "mean_run_s_serial": sum(r["seconds"] for r in serial_runs) / len(serial_runs),
+        "mean_run_s_parallel": sum(r["seconds"] for r in parallel_runs) / len(parallel_runs),
+        "tracking": "scratch store " + str(scratch / "mlflow.db") if b.tracking == "scratch" else "configured",
+    }

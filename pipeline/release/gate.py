@@ -1,0 +1,198 @@
+"""The release gate: thresholds from conf, limit-violation counts from a rollout, and one verdict per check.
+
+Rates are gated on their Wilson LOWER bounds, not on the point estimates: the spread between trainings and
+between seeds is large (FIELD-NOTES pitfall 6), so a release must show evidence, and thin evidence (few
+episodes) fails honestly instead of passing on luck. A safety intervention (a limit scaling a command down)
+is the filter doing its job and is not a violation; a violation is a recorded state or command beyond the
+limits, which the shared limits should make impossible.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass
+
+import torch
+
+from coreach.errors import ConfigError
+
+# Recorded values may exceed a limit by rounding only: the caps scale by 1/ratio, the look-ahead lands on
+# the bound, each up to a few ulps off.
+REL_SLACK = 1e-9
+ABS_SLACK = 1e-12
+_CHUNK = 8192  # states per Jacobian call when re-checking the tool speed
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """What a decoder must show to be released (see conf/release.yaml `gates`)."""
+
+    success_lo: float
+    recovery_lo: float
+    max_violations: int
+    authority_median: float
+    parity_max_abs: float
+    latency_p99_us: float
+
+    @classmethod
+    def from_config(cls, node, parity_ceiling: float) -> Thresholds:
+        """Checked thresholds; `parity_ceiling` is the bundle writer's own limit (a gate may only tighten it)."""
+        try:
+            items = dict(node)
+        except (TypeError, ValueError):
+            raise ConfigError("option gates", f"expected a mapping of thresholds, got {node!r}") from None
+        names = [f for f in cls.__dataclass_fields__]
+        unknown = sorted(set(items) - set(names))
+        if unknown:
+            raise ConfigError(f"option gates.{unknown[0]}", f"unknown gate; expected one of {names}")
+        missing = [n for n in names if n not in items]
+        if missing:
+            raise ConfigError(f"option gates.{missing[0]}", "missing; every gate needs a threshold")
+
+        def number(key: str, lo: float, hi: float) -> float:
+            v = items[key]
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or not lo <= v <= hi:
+                raise ConfigError(f"option gates.{key}", f"expected a number in [{lo}, {hi}], got {v!r}")
+            return float(v)
+
+        viol = items["max_violations"]
+        if isinstance(viol, bool) or not isinstance(viol, int) or viol < 0:
+            raise ConfigError("option gates.max_violations", f"expected an integer >= 0, got {viol!r}")
+        return cls(
+            success_lo=number("success_lo", 0.0, 1.0),
+            recovery_lo=number("recovery_lo", 0.0, 1.0),
+            max_violations=viol,
+            authority_median=number("authority_median", 0.0, math.inf),
+            parity_max_abs=number("parity_max_abs", 0.0, parity_ceiling),
+            latency_p99_us=number("latency_p99_us", 1e-3, 1e9),
+        )
+
+
+@dataclass(frozen=True)
+class GateResult:
+    """One check: the measured value against its threshold (`op` reads "value op threshold" when passed)."""
+
+    name: str
+    what: str
+    value: float | None  # None when it could not be measured (fails)
+    threshold: float
+    op: str  # ">=" or "<="
+    passed: bool
+    detail: str = ""
+
+
+def _check(name: str, what: str, value, threshold: float, op: str, detail: str = "") -> GateResult:
+    ok = value is not None and math.isfinite(value) and (value >= threshold if op == ">=" else value <= threshold)
+    return GateResult(name, what, None if value is None else float(value), float(threshold), op, bool(ok), detail)
+
+
+def _rate_text(r: dict) -> str:
+    return f"{r['value']:.3f} [{r['lo']:.3f}, {r['hi']:.3f}], n={r['n']}"
+
+
+def latest_switch(summary: dict) -> str | None:
+    """The recovery cell of the latest goal switch ("0.8"), or None when the suite has no switch."""
+    cells = [c for c in summary["recovery"] if c != "none"]
+    return max(cells, key=float) if cells else None
+
+
+def suite_gates(suite: str, summary: dict, violations: dict, th: Thresholds) -> list[GateResult]:
+    """Success, late-switch recovery, limit violations and control authority of one suite's rollout."""
+    out = [_check(f"success[{suite}]", "success rate, Wilson lower bound", summary["success"]["lo"], th.success_lo,
+                  ">=", _rate_text(summary["success"]))]  # fmt: skip
+    cell = latest_switch(summary)
+    if cell is not None:
+        r = summary["recovery"][cell]
+        out.append(_check(f"recovery@{cell}[{suite}]", f"success after a switch at {cell} of the horizon, Wilson "
+                          "lower bound", r["lo"], th.recovery_lo, ">=", _rate_text(r)))  # fmt: skip
+    parts = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in violations.items() if k != "steps")
+    out.append(_check(f"violations[{suite}]", "steps beyond the limits (interventions are not violations)",
+                      violations["total"], th.max_violations, "<=", f"{parts} of {violations['steps']} steps"))
+    a = summary["authority"]
+    auth = _check(f"authority[{suite}]", "control authority, median (rad/s per unit stick), not collapsed",
+                  a["median"], th.authority_median, ">=",
+                  f"5th pct {a['p05']:.4g}, n={a['n']}" + (", COLLAPSED" if a["collapsed"] else ""))  # fmt: skip
+    if a["collapsed"]:  # below vetting's own collapse threshold: never released, whatever the gate says
+        auth = GateResult(**{**asdict(auth), "passed": False})
+    out.append(auth)
+    return out
+
+
+def artifact_gates(parity: float | None, parity_n: int, latency: dict | None, th: Thresholds) -> list[GateResult]:
+    """ONNX parity with torch and the runtime session's per-step latency on the staged bundle."""
+    lat = None if latency is None else latency.get("session_p99_us")
+    lat_detail = "not measured" if latency is None else (
+        f"p50 {latency['session_p50_us']:.1f} us, bare onnxruntime p99 {latency['bare_p99_us']:.1f} us, "
+        f"{latency['steps']} steps")  # fmt: skip
+    return [
+        _check("onnx_parity", f"max |onnxruntime - torch| over {parity_n} contexts (rad/s)", parity,
+               th.parity_max_abs, "<=", "" if parity is not None else "export failed"),
+        _check("latency_p99", "runtime session step, p99 (us)", lat, th.latency_p99_us, "<=", lat_detail),
+    ]  # fmt: skip
+
+
+def count_violations(record, robot, limits, workspace: tuple | None = None) -> dict:
+    """Recorded steps [E, T] beyond the shared limits: joint speed, joint position (after the step), tool
+    speed (|J_lin(q) qd|, the quantity the cap bounds) and, when given, the workspace box (min, max) [3]."""
+    q = record.extras["q"].to(torch.float64)  # [E, T+1, n]
+    qd = record.extras["qd"].to(torch.float64)  # [E, T, n]
+    E, T, n = qd.shape
+    qd_max = torch.tensor(limits.qd_max, dtype=torch.float64)
+    speed = (qd.abs() > qd_max * (1 + REL_SLACK) + ABS_SLACK).any(-1)  # [E, T]
+    position = torch.zeros(E, T, dtype=torch.bool)
+    if limits.q_lower:
+        lo = torch.tensor(limits.q_lower, dtype=torch.float64)
+        hi = torch.tensor(limits.q_upper, dtype=torch.float64)
+        after = q[:, 1:]  # the state each step led to
+        position = ((after < lo - 1e-9) | (after > hi + 1e-9)).any(-1)
+    tool = torch.zeros(E * T, dtype=torch.bool)
+    moving = qd.reshape(-1, n).abs().amax(-1) > 0  # held steps (zero command) cannot exceed a cap
+    idx = moving.nonzero().squeeze(-1)
+    flat_q, flat_qd = q[:, :-1].reshape(-1, n), qd.reshape(-1, n)
+    for start in range(0, idx.numel(), _CHUNK):
+        rows = idx[start : start + _CHUNK]
+        jac = robot.jacobian(flat_q[rows]).to(torch.float64)[:, :3]  # [B, 3, n]
+        v = torch.einsum("bij,bj->bi", jac, flat_qd[rows]).norm(dim=-1)
+        tool[rows] = v > limits.tcp_speed_max * (1 + REL_SLACK) + ABS_SLACK
+    tool = tool.reshape(E, T)
+    out = {"joint_speed": int(speed.sum()), "joint_position": int(position.sum()), "tool_speed": int(tool.sum())}
+    any_step = speed | position | tool
+    if workspace is not None:
+        lo, hi = (torch.tensor(v, dtype=torch.float64) for v in workspace)
+        path = record.ee_path.to(torch.float64)[:, 1:]  # [E, T, 3] tool position each step led to
+        box = ((path < lo - 1e-9) | (path > hi + 1e-9)).any(-1)
+        out["workspace"] = int(box.sum())
+        any_step = any_step | box
+    out["total"] = int(any_step.sum())
+    out["steps"] = E * T
+    return out
+
+
+def passed(results: list[GateResult]) -> bool:
+    return bool(results) and all(r.passed for r in results)
+
+
+def as_json(results: list[GateResult]) -> dict:
+    """Gate name -> {value, threshold, op, passed, what, detail}; plain JSON (None for unmeasured)."""
+    return {r.name: {k: v for k, v in asdict(r).items() if k != "name"} for r in results}
+
+
+def gate_table(results, title: str):
+    """A rich Table of every gate (accepts GateResults or their as_json mapping)."""
+    from rich.markup import escape
+    from rich.table import Table
+
+    rows = results.items() if isinstance(results, dict) else [(r.name, asdict(r)) for r in results]
+    table = Table(title=title)
+    for col in ("gate", "measured", "threshold", "result", "what / detail"):
+        table.add_column(col, no_wrap=col in ("gate", "result"))
+    for name, r in rows:
+        value = "n/a" if r["value"] is None else f"{r['value']:.4g}"
+        verdict = "[green]pass[/green]" if r["passed"] else "[bold red]FAIL[/bold red]"
+        detail = r["what"] + (f" — {r['detail']}" if r.get("detail") else "")
+        table.add_row(escape(name), value, f"{r['op']} {r['threshold']:.4g}", verdict, escape(detail))
+    return table
+
+
+__all__ = ["Thresholds", "GateResult", "suite_gates", "artifact_gates", "count_violations", "passed", "as_json",
+           "gate_table", "latest_switch"]
