@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
+import hashlib
 import json
 import os
 import re
@@ -46,18 +47,21 @@ def sqlite_path(uri: str) -> Path | None:
 @contextlib.contextmanager
 def _store_lock(uri: str):
     """Serialise the first use of an embedded store across processes: several processes creating a fresh
-    sqlite store at once race in its schema migration (tables already exist, version row mismatch)."""
+    sqlite store at once race in its schema migration (tables already exist, version row mismatch). Covers
+    processes on one machine (joblib workers, parallel `coreach train`), which is where sqlite belongs."""
     db = sqlite_path(uri)
     if db is None:
         yield
         return
-    db.parent.mkdir(parents=True, exist_ok=True)
-    with open(db.with_name(db.name + ".lock"), "a") as fh:
-        fcntl.flock(fh, fcntl.LOCK_EX)
-        try:
-            yield
-        finally:
-            fcntl.flock(fh, fcntl.LOCK_UN)
+    # the lock lives in the temp folder, keyed by the store's path, so no stray file sits beside the store
+    key = hashlib.sha256(str(db.resolve()).encode()).hexdigest()[:16]
+    # read-only is enough for flock, and lets another user's process share a lock file it did not create
+    fd = os.open(Path(tempfile.gettempdir()) / f"coreach-store-{key}.lock", os.O_RDONLY | os.O_CREAT, 0o666)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(fd)  # closing releases the lock
 
 
 def client(cfg_tracking: DictConfig):

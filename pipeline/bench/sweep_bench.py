@@ -2,7 +2,8 @@
 
 Both passes run as a user would run them, `coreach --json train -m ...` in a child process, so each
 wall time includes what a real sweep pays: the command's start-up and, for the parallel pass, the workers'
-start-up. Parallel efficiency = serial wall / (workers x parallel wall); 1.0 is perfect scaling.
+start-up. Parallel efficiency = serial wall / (workers x parallel wall); 1.0 is perfect scaling. Every run uses the
+same number of torch threads in both passes (bench.threads_per_run), so the serial pass is one worker.
 """
 
 from __future__ import annotations
@@ -63,7 +64,11 @@ def run(cfg: DictConfig) -> dict:
     prepare(compose_config("train", train_overrides))
 
     seeds = "seed=" + ",".join(str(i) for i in range(int(b.runs)))
-    env = {**os.environ, "CI": os.environ.get("CI", "true")}  # no progress bars in the children
+    # no progress bars in the children; the same torch thread count per run in both passes (joblib's loky
+    # workers would otherwise get cores/workers threads and the serial run all cores, which on a shared
+    # 2-core machine measured 5x slower per run than one thread: spinning threads, not work)
+    threads = str(int(b.threads_per_run))
+    env = {**os.environ, "CI": os.environ.get("CI", "true"), "OMP_NUM_THREADS": threads, "MKL_NUM_THREADS": threads}
     serial_wall, serial_runs = _sweep([*train_overrides, "hydra/launcher=basic", seeds], env)
     parallel_args = [*train_overrides, "hydra/launcher=joblib", f"hydra.launcher.n_jobs={int(b.workers)}", seeds]
     parallel_wall, parallel_runs = _sweep(parallel_args, env)
@@ -74,6 +79,7 @@ def run(cfg: DictConfig) -> dict:
     return {
         "runs_per_sweep": int(b.runs),
         "workers": int(b.workers),
+        "threads_per_run": int(b.threads_per_run),
         "cpu_count": os.cpu_count(),
         "training": " ".join(train_overrides[: len(b.train)]),
         "serial_wall_s": serial_wall,

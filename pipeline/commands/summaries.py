@@ -117,7 +117,7 @@ def print_release(console, s: dict) -> None:
         return
     console.print(f"released {s['name']} version {s['version']} (@{', @'.join(s.get('aliases', []))}): {s['bundle']}")
     console.print(f"release run {s['release_run']} in {s['tracking']}")
-    console.print(f"replay it: coreach drive bundle={s['bundle']} suite={next(iter(s['vetting']), 'held-out')}")
+    console.print(f"replay it: coreach drive bundle={s['bundle']} suite={(s.get('suite_refs') or ['held-out'])[0]}")
     console.print(f"field it:  coreach promote {s['name']} {s['version']}")
     print_cautions(console)
 

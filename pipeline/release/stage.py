@@ -37,14 +37,19 @@ log = logging.getLogger("coreach.release")
 REFUSED_EXIT = 3  # distinct from 2 (bad input): the input was fine, the decoder did not pass
 
 
-def _suites(cfg) -> list:
+def suite_refs(cfg) -> list[str]:
+    """The suites option as given: shipped names or YAML paths."""
     names = cfg.suites
     names = [str(s) for s in names] if isinstance(names, (list, ListConfig)) else [s for s in str(names).split(",")]
     names = [s.strip() for s in names if s and s.strip()]
     if not names:
         raise ConfigError("option suites", "expected at least one suite name (e.g. [held-out])")
+    return names
+
+
+def _suites(cfg) -> list:
     overrides = {"episodes": int(cfg.episodes)} if cfg.get("episodes") is not None else {}
-    return [load_suite(s, **overrides) for s in names]
+    return [load_suite(s, **overrides) for s in suite_refs(cfg)]
 
 
 def _training_run(client, ref: str):
@@ -52,8 +57,8 @@ def _training_run(client, ref: str):
     from coreach.plugins.interface.decoder import load_policy
 
     if Path(str(ref)).expanduser().exists():
-        raise ConfigError("option run", f"{ref} is a folder; release needs the MLflow training run (its dataset "
-                                        "fingerprint, commit and decoder artifact are part of the release)")  # fmt: skip
+        raise ConfigError("option run", f"{ref} is a folder; release needs the MLflow training run (its "
+                                        "dataset fingerprint, commit and decoder artifact are part of it)")  # fmt: skip
     policy, run_id = load_policy(str(ref))
     run = client.get_run(run_id)
     if "coreach.dataset" not in run.data.tags:
@@ -291,6 +296,7 @@ def release(cfg: DictConfig) -> dict:
             "gates": G.as_json(ev["results"]),
             "failed": [r.name for r in ev["results"] if not r.passed],
             "vetting": _vetting_view(ev["summaries"]),
+            "suite_refs": suite_refs(cfg),
             "latency": ev["latency"],
             "cautions": list(CAUTIONS),
             "tracking": uri,
@@ -332,7 +338,7 @@ def release_best(demo_result: dict, cfg: DictConfig) -> dict:
 
     node = (cfg.get("demo") or {}).get("release") or {}
     overrides = [str(o) for o in node.get("overrides", ["episodes=10", "latency.steps=1500"])]
-    max_tries = int(node.get("max_tries", 4))
+    max_tries = int(node.get("max_tries", 2))
     attempts, best = [], None
     for r in _ranked(demo_result)[:max_tries]:
         rcfg = compose(config_name="release", overrides=[f"run={r['run_id']}", *overrides])
@@ -345,7 +351,7 @@ def release_best(demo_result: dict, cfg: DictConfig) -> dict:
     out = {"attempts": attempts, "release": best, "drive": None}
     if best is not None:
         episodes = next((o.split("=", 1)[1] for o in overrides if o.startswith("episodes=")), "null")
-        suite = next(iter(best["vetting"]))
+        suite = best["suite_refs"][0]
         dcfg = compose(config_name="drive", overrides=[f"bundle={best['bundle']}", f"suite={suite}",
                                                        f"episodes={episodes}"])  # fmt: skip
         out["drive"] = drive(dcfg)

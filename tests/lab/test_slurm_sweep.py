@@ -37,7 +37,8 @@ def test_sweep_through_slurm_lands_every_run_in_tracking(workdir):
     # the runs really were SLURM jobs: submitit's folders are named by job id (`<array id>_<task>`), and
     # SLURM itself reports those array tasks as completed (finished jobs stay listed for MinJobAge = 60 s)
     sweep_dir = Path(runs[0]["output_dir"]).parents[1]
-    job_dirs = sorted(p.name for p in (sweep_dir / ".submitit").iterdir() if p.is_dir())
+    # (plus a folder named by the bare array id, where submitit keeps the array's submission script)
+    job_dirs = sorted(p.name for p in (sweep_dir / ".submitit").iterdir() if p.is_dir() and "_" in p.name)
     assert len(job_dirs) == len(SEEDS) and len({d.split("_")[0] for d in job_dirs}) == 1, job_dirs
     array_id = job_dirs[0].split("_")[0]
     shown = subprocess.run(["scontrol", "show", "job", array_id], capture_output=True, text=True, env=env, timeout=30)

@@ -1,0 +1,301 @@
+"""Release pieces in process: gate thresholds and verdicts, limit-violation counts, the ONNX bundle interface
+against the torch decoder in the vetting loop, the replay comparison, and fielding through the registry."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+import torch
+from mlflow.tracking import MlflowClient
+from omegaconf import OmegaConf
+
+from coreach.context import ContextSpec
+from coreach.errors import ConfigError, CoreachError
+from coreach.plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.plugins.interface.decoder import DecoderInterface
+from coreach.plugins.interface.onnx_bundle import OnnxBundleInterface
+from coreach.plugins.robot.planar3 import Planar3
+from coreach.plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
+from coreach.policy import DecoderPolicy
+from coreach.release import gate as G
+from coreach.release import registry
+from coreach.release.drive import bundle_limits, compare, drive
+from coreach.runtime.bundle import MANIFEST, BundleError, write_bundle
+from coreach.safety import SafetyLimits
+from coreach.vetting.loop import rollout
+from coreach.vetting.metrics import wilson_interval
+from coreach.vetting.suite import load_suite
+
+GATES = {"success_lo": 0.6, "recovery_lo": 0.5, "max_violations": 0, "authority_median": 0.02,
+         "parity_max_abs": 1e-5, "latency_p99_us": 2000.0}  # fmt: skip
+SHELF_GOALS = ["lamp_switch", "bottle", "book", "drawer_knob"]
+
+
+# ------------------------------------------------------------------------------------------ thresholds
+def test_thresholds_read_and_checked():
+    th = G.Thresholds.from_config(GATES, parity_ceiling=1e-5)
+    assert th.max_violations == 0 and th.latency_p99_us == 2000.0
+    with pytest.raises(ConfigError, match=r"gates\.speed"):
+        G.Thresholds.from_config({**GATES, "speed": 1}, 1e-5)
+    with pytest.raises(ConfigError, match=r"gates\.recovery_lo"):
+        G.Thresholds.from_config({k: v for k, v in GATES.items() if k != "recovery_lo"}, 1e-5)
+    with pytest.raises(ConfigError, match=r"gates\.parity_max_abs"):  # a gate may tighten the writer's limit only
+        G.Thresholds.from_config({**GATES, "parity_max_abs": 1e-3}, 1e-5)
+    with pytest.raises(ConfigError, match=r"gates\.max_violations"):
+        G.Thresholds.from_config({**GATES, "max_violations": 0.5}, 1e-5)
+
+
+def _rate(k: int, n: int) -> dict:
+    lo, hi = wilson_interval(k, n)
+    return {"value": k / n, "lo": lo, "hi": hi, "n": n}
+
+
+def _summary(success=(45, 50), recovery=None, authority=0.3, collapsed=False) -> dict:
+    recovery = recovery or {"none": (20, 20), "0.5": (15, 15), "0.8": (10, 15)}
+    return {"success": _rate(*success), "recovery": {c: _rate(*kn) for c, kn in recovery.items()},
+            "authority": {"median": authority, "p05": authority / 2, "n": 100, "collapsed": collapsed}}  # fmt: skip
+
+
+NO_VIOLATIONS = {"joint_speed": 0, "joint_position": 0, "tool_speed": 0, "total": 0, "steps": 100}
+
+
+def test_rates_are_gated_on_the_wilson_lower_bound():
+    th = G.Thresholds.from_config(GATES, 1e-5)
+    # 45/50 = 0.9 but its 95% Wilson lower bound is about 0.786 (Wilson 1927; worked with z = 1.96);
+    # 10/15 at the latest switch (0.8) is 0.667 with a lower bound near 0.417, below 0.5, although the
+    # earlier switch (15/15) would pass: the gate looks at the latest switch.
+    results = {r.name: r for r in G.suite_gates("s", _summary(), NO_VIOLATIONS, th)}
+    assert results["success[s]"].value == pytest.approx(0.7864, abs=1e-3) and results["success[s]"].passed
+    rec = results["recovery@0.8[s]"]
+    assert rec.value == pytest.approx(0.4171, abs=1e-3) and not rec.passed
+    assert "recovery@0.5[s]" not in results
+    assert results["violations[s]"].passed and results["authority[s]"].passed
+
+
+def test_thin_evidence_fails_even_at_a_perfect_rate():
+    th = G.Thresholds.from_config(GATES, 1e-5)
+    # 3 successes in 3 episodes: the Wilson lower bound at p = 1 is n / (n + z^2) = 3 / 6.84 = 0.44 < 0.6
+    # (Wilson 1927, with z = 1.96 for 95%)
+    r = G.suite_gates("s", _summary(success=(3, 3), recovery={"none": (3, 3)}), NO_VIOLATIONS, th)[0]
+    assert r.value == pytest.approx(3 / (3 + 1.96**2), abs=1e-3) and not r.passed
+
+
+def test_collapsed_authority_and_any_violation_fail():
+    th = G.Thresholds.from_config(GATES, 1e-5)
+    bad = {**NO_VIOLATIONS, "tool_speed": 1, "total": 1}
+    results = {r.name: r for r in G.suite_gates("s", _summary(authority=0.5, collapsed=True), bad, th)}
+    assert not results["authority[s]"].passed  # above the gate's threshold, but vetting flagged it collapsed
+    assert not results["violations[s]"].passed and results["violations[s]"].value == 1
+    assert not G.passed(list(results.values()))
+
+
+def test_unmeasured_artifact_gates_fail():
+    th = G.Thresholds.from_config(GATES, 1e-5)
+    parity, latency = G.artifact_gates(None, 10_000, None, th)
+    assert not parity.passed and not latency.passed and parity.value is None
+    ok = G.artifact_gates(2e-7, 10_000, {"session_p99_us": 150.0, "session_p50_us": 50.0, "bare_p99_us": 30.0,
+                                         "steps": 100}, th)  # fmt: skip
+    assert all(r.passed for r in ok)
+    assert json.loads(json.dumps(G.as_json(ok)))["latency_p99"]["threshold"] == 2000.0
+
+
+# ------------------------------------------------------------------------------------------ violations
+def test_count_violations_against_hand_computed_planar_arm():
+    robot = Planar3()  # links 0.35, 0.30, 0.15: at q = 0 the tool moves along y at 0.8 qd0 + 0.45 qd1 + 0.15 qd2
+    limits = SafetyLimits(qd_max=(1.0, 1.0, 1.0), tcp_speed_max=0.25, q_lower=(-1.0,) * 3, q_upper=(1.0,) * 3)
+    T = 5
+    q = torch.zeros(1, T + 1, 3, dtype=torch.float64)
+    qd = torch.zeros(1, T, 3, dtype=torch.float64)
+    qd[0, 0] = torch.tensor([0.1, 0.0, 0.0])  # tool 0.08 m/s: fine
+    qd[0, 1] = torch.tensor([0.0, 0.0, 1.2])  # joint 3 at 1.2 > 1 rad/s; tool 0.18 m/s: fine
+    qd[0, 2] = torch.tensor([0.4, 0.0, 0.0])  # tool 0.32 > 0.25 m/s
+    qd[0, 3] = torch.tensor([0.3125, 0.0, 0.0])  # tool exactly 0.25 m/s: at the limit is not beyond it
+    q[0, 5] = torch.tensor([0.0, 0.0, 1.2])  # step 4 ends beyond the joint limit
+    path = torch.zeros(1, T + 1, 3, dtype=torch.float64)
+    path[0, 3] = torch.tensor([2.0, 0.0, 0.0])  # step 2 ends outside the box
+    record = SimpleNamespace(extras={"q": q, "qd": qd}, ee_path=path)
+    out = G.count_violations(record, robot, limits, ([-1.0] * 3, [1.0] * 3))
+    assert out == {"joint_speed": 1, "joint_position": 1, "tool_speed": 1, "workspace": 1, "total": 3, "steps": 5}
+
+
+# ------------------------------------------------------------------------------------------ bundles
+def _policy(seed: int = 0) -> DecoderPolicy:
+    torch.manual_seed(seed)
+    policy = DecoderPolicy.build({"_target_": "coreach.plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
+                                  "hidden": [32, 32]}, ContextSpec(dof=7, n_goals=4), 7)  # fmt: skip
+    # actions of ~0.3 rad/s so the arm moves and the caps act now and then
+    policy.set_normalisation(torch.randn(400, policy.spec.width) * 0.5, torch.randn(400, 7) * 0.3)
+    return policy.eval()
+
+
+def _meta(run_id: str) -> dict:
+    return {
+        "goal_names": SHELF_GOALS,
+        "nominal_layout": {"goal_pos": [[0.56, 0.24, 0.30], [0.60, -0.22, 0.06], [0.55, 0.14, -0.08],
+                                        [0.62, -0.08, -0.17]],
+                           "goal_quat": [[0.7071068, 0.0, 0.7071068, 0.0]] * 4,
+                           "goal_fine": [[0.03, 0, 0], [0, 0, 0.06], [0, 0.08, 0], [-0.07, 0, 0]]},
+        "dataset_fingerprint": "sha256:test", "training_run_id": run_id, "git_commit": "0" * 40,
+        "q_home": list(REACH7_HOME), "parity_n": 1000,
+        "safety": {"workspace_min": [0.15, -0.45, -0.35], "workspace_max": [0.85, 0.45, 0.60]},
+    }  # fmt: skip
+
+
+@pytest.fixture(scope="module")
+def store(tmp_path_factory):
+    """A sqlite store with one training-like run that bundles can name."""
+    root = tmp_path_factory.mktemp("store")
+    client = MlflowClient(f"sqlite:///{root / 'mlflow.db'}")
+    exp = client.create_experiment("t", artifact_location=(root / "art").as_uri())
+    run = client.create_run(exp)
+    client.log_text(run.info.run_id, "{}", "decoder/decoder.json")
+    return SimpleNamespace(root=root, client=client, run_id=run.info.run_id)
+
+
+@pytest.fixture(scope="module")
+def bundle(store) -> Path:
+    return write_bundle(store.root / "bundle", _policy(), shipped_urdf(), _meta(store.run_id), {}, {"ok": True})
+
+
+def test_onnx_bundle_interface_drives_the_loop_like_the_torch_decoder(bundle):
+    robot = UrdfArm()
+    belief = BoltzmannGoalBelief()
+    limits = SafetyLimits.for_robot(robot)
+    suite = load_suite("goal-switch", episodes=1, horizon_s=3.0)  # 4 episodes x 30 steps
+    onnx = OnnxBundleInterface(str(bundle))
+    torch_dec = DecoderInterface.from_policy(_policy(), "torch")
+    a = rollout(robot, torch_dec, suite.build_operator(), suite, belief, limits, suite.generator())
+    b = rollout(robot, onnx, suite.build_operator(), suite, belief, limits, suite.generator())
+    torch.testing.assert_close(b.extras["q"], a.extras["q"], rtol=0, atol=1e-5)
+    assert float(a.extras["qd"].abs().max()) > 1e-3  # the arm really moved
+    assert torch.equal(a.success, b.success)
+    # authority: central differences on the graph against autograd on the torch module
+    fin = torch.isfinite(a.authority)
+    torch.testing.assert_close(b.authority[fin], a.authority[fin], rtol=1e-3, atol=1e-5)
+
+
+def test_onnx_bundle_interface_refuses_an_altered_bundle(bundle, tmp_path):
+    copy = Path(shutil.copytree(bundle, tmp_path / "b"))
+    data = bytearray((copy / "decoder.onnx").read_bytes())
+    data[len(data) // 2] ^= 0x01
+    (copy / "decoder.onnx").write_bytes(bytes(data))
+    with pytest.raises(BundleError, match="sha256"):
+        OnnxBundleInterface(str(copy))
+
+
+def test_drive_without_a_vetting_record_reports_and_passes(bundle, tmp_path):
+    cfg = OmegaConf.create({"bundle": str(bundle), "suite": "nominal", "episodes": 1, "threads": 1,
+                            "tracking": {"uri": f"sqlite:///{tmp_path / 'absent.db'}"},
+                            "tolerance": {"rate_episodes": 2, "median_rel": 0.01}, "fail_on_mismatch": True})
+    out = drive(cfg)
+    assert out["comparison"] is None and "no tracking store" in out["comparison_source"]
+    assert not (tmp_path / "absent.db").exists()  # looking for a record must not create a store
+    assert "exit_code" not in out and set(out["violations"]) >= {"joint_speed", "tool_speed", "workspace"}
+    limits = bundle_limits(OnnxBundleInterface(str(bundle)).manifest_)
+    assert limits.tcp_speed_max == 0.25 and len(limits.qd_max) == 7
+
+
+def test_replay_comparison_tolerances():
+    tol = OmegaConf.create({"rate_episodes": 2, "median_rel": 0.01})
+    summary = _summary(success=(30, 50), recovery={"none": (10, 25), "0.8": (20, 25)}, authority=0.30)
+    vetted = {"success/value": 0.6, "success/n": 50, "recovery/none/value": 0.4, "recovery/0.8/value": 0.8,
+              "authority/median": 0.301}  # fmt: skip
+    same = compare(summary, vetted, tol)
+    assert same["comparable"] and same["match"] and len(same["rows"]) == 4
+    off = compare(summary, {**vetted, "recovery/0.8/value": 0.8 + 3 / 25}, tol)  # 3 episodes apart in a cell of 25
+    assert off["comparable"] and not off["match"]
+    assert [r["metric"] for r in off["rows"] if not r["ok"]] == ["recovery/0.8/value"]
+    other_size = compare(summary, {**vetted, "success/n": 150}, tol)
+    assert not other_size["comparable"] and "150" in other_size["note"]
+    assert compare(summary, None, tol) is None
+
+
+# ------------------------------------------------------------------------------------------ registry
+GATE_OK = {"success[s]": {"value": 0.9, "threshold": 0.6, "op": ">=", "passed": True, "what": "", "detail": ""}}
+
+
+def _vetted_version(store, bundle: Path, name: str) -> str:
+    mv, _ = registry.register(store.client, name, store.run_id, "test")
+    registry.mark_vetted(store.client, name, str(mv.version), bundle, GATE_OK, "release-run")
+    return str(mv.version)
+
+
+def test_promote_fields_and_back_restores(store, bundle):
+    c, name = store.client, "promote-back"
+    v1 = _vetted_version(store, bundle, name)
+    v2 = _vetted_version(store, bundle, name)
+    assert {k: str(v) for k, v in c.get_registered_model(name).aliases.items()} == {"vetted": v2}
+    first = registry.promote(c, name, v1)
+    assert first["fielded"] == v1 and first["previous"] is None
+    second = registry.promote(c, name, v2)
+    assert second["previous"] == v1 and second["history"] == [v1, v2]
+    assert str(c.get_model_version_by_alias(name, "fielded").version) == v2
+    back = registry.promote_back(c, name)
+    assert back["fielded"] == v1 and back["previous"] == v2
+    assert str(c.get_model_version_by_alias(name, "fielded").version) == v1
+    with pytest.raises(CoreachError, match="no earlier fielded version"):
+        registry.promote_back(c, name)
+    rows = {r["version"]: r for r in registry.list_releases(c, name)}
+    assert rows[v1]["aliases"] == ["fielded"] and rows[v2]["aliases"] == ["vetted"]
+    assert rows[v1]["vetted"] and rows[v1]["bundle_status"] == "ok" and rows[v1]["gates_passed"] == 1
+
+
+def test_promote_refuses_an_unvetted_version(store, bundle):
+    c, name = store.client, "unvetted"
+    mv, _ = registry.register(c, name, store.run_id, "registered by hand, never gated")
+    with pytest.raises(CoreachError, match="not vetted"):
+        registry.promote(c, name, str(mv.version))
+    assert "fielded" not in (c.get_registered_model(name).aliases or {})
+
+
+def _flip_byte(b: Path):
+    data = bytearray((b / "decoder.onnx").read_bytes())
+    data[100] ^= 0x01
+    (b / "decoder.onnx").write_bytes(bytes(data))
+
+
+def _reformat_manifest(b: Path):  # same content, other bytes: hashes of the files still match
+    (b / MANIFEST).write_text(json.dumps(json.loads((b / MANIFEST).read_text()), indent=1))
+
+
+def _escape(b: Path):
+    data = json.loads((b / MANIFEST).read_text())
+    data["files"]["../outside.txt"] = "0" * 64
+    (b / MANIFEST).write_text(json.dumps(data))
+
+
+TAMPER = {
+    "changed byte": (_flip_byte, "does not verify"),
+    "missing file": (lambda b: (b / "MODEL_CARD.md").unlink(), "does not verify"),
+    "extra file": (lambda b: (b / "notes.txt").write_text("x"), "does not verify"),
+    "path escape": (_escape, "does not verify"),
+    "replaced manifest": (_reformat_manifest, "manifest other than the one released"),
+}
+
+
+@pytest.mark.parametrize("case", list(TAMPER))
+def test_promote_refuses_a_tampered_bundle(store, bundle, tmp_path, case):
+    c, name = store.client, f"tamper-{case.replace(' ', '-')}"
+    copy = Path(shutil.copytree(bundle, tmp_path / "b"))
+    good = _vetted_version(store, copy, name)
+    registry.promote(c, name, good)  # fine before the change
+    bad = _vetted_version(store, copy, name)
+    alter, message = TAMPER[case]
+    alter(copy)
+    with pytest.raises(CoreachError, match=message):
+        registry.promote(c, name, bad)
+    assert str(c.get_model_version_by_alias(name, "fielded").version) == good  # fielding unchanged
+    status = {r["version"]: r["bundle_status"] for r in registry.list_releases(c, name)}
+    assert status[bad].startswith("FAILS")
+
+
+def test_model_names_are_checked():
+    assert registry.check_name("bedside-shelf-decoder") == "bedside-shelf-decoder"
+    for bad in ("../x", "a/b", "", "x" * 200):
+        with pytest.raises(ConfigError, match="option name"):
+            registry.check_name(bad)
