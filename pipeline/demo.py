@@ -39,5 +39,11 @@ def run_demo(cfg: DictConfig) -> dict:
         steps.append(
             "vet at full size: .venv/bin/coreach vet 'candidates=[<run id>,direct,blend]' suite=held-out"
         )
+        if cfg.demo.release.enabled:
+            from coreach.release.stage import release_best
+
+            result["release"] = release_best(result, cfg)
+            if result["release"]["release"] is None:
+                steps.append("no demo decoder passed the release gate (tables above); nothing was released")
     result["next_steps"] = steps
     return result

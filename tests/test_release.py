@@ -20,7 +20,8 @@ NAME = "test-decoder"
 # Small but real: held-out with a 10 s horizon (written by the `trained` fixture), 1 episode per switch cell
 # (3 episodes x 100 steps), fewer latency steps.
 SUITE = "held-out-short"
-QUICK = [f"suites=[{SUITE}.yaml]", "episodes=1", "latency.steps=300", "latency.warmup=20", f"name={NAME}"]
+QUICK = [f"gate_suites=[{SUITE}.yaml]", "episodes=1", "latency.steps=300", "latency.warmup=20",
+         f"name={NAME}"]
 HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "suites" / "held-out.yaml"
 # Thresholds a barely trained decoder can meet, so the publishing path runs; parity stays at 1e-5.
 PERMISSIVE = ["gates.success_lo=0", "gates.recovery_lo=0", "gates.max_violations=1000000",
@@ -199,3 +200,21 @@ def test_bench_vet_reports_all_three_rates(tmp_path):
     assert out["speedup_over_per_episode"] == pytest.approx(
         out["loop_episode_steps_per_s"] / out["per_episode_episode_steps_per_s"])
     assert out["share_of_bare"] == pytest.approx(out["loop_episode_steps_per_s"] / out["bare_episode_steps_per_s"])
+
+
+@pytest.mark.parametrize(
+    "args, needle",
+    [
+        (["release"], "option run"),
+        (["release", "run=0123456789abcdef0123456789abcdef"], "0123456789abcdef0123456789abcdef"),
+        (["drive", "bundle=no/such/folder"], "no/such/folder"),
+        (["promote", NAME], "usage"),
+    ],
+    ids=["release without run", "release unknown run", "drive missing bundle", "promote usage"],
+)
+def test_bad_input_is_one_line(tmp_path, args, needle):
+    res = run(args, tmp_path)
+    assert res.returncode == 2
+    lines = [ln for ln in res.stderr.splitlines() if ln.strip() and "INFO" not in ln]
+    assert len(lines) == 1 and lines[0].startswith("coreach: error:") and needle in lines[0], res.stderr
+    assert not (tmp_path / "releases").exists()

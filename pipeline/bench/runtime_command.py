@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from omegaconf import DictConfig
+from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
 
@@ -13,8 +13,8 @@ def run(cfg: DictConfig) -> dict:
     """Latency of `cfg.bundle`'s runtime session against a bare onnxruntime call, in one run."""
     from coreach.bench.runtime_bench import run_runtime_bench
 
-    bundle = str(cfg.bundle)
-    if bundle in ("???", "") or not Path(bundle).expanduser().is_dir():
+    bundle = "" if OmegaConf.is_missing(cfg, "bundle") else str(cfg.bundle)
+    if not bundle or not Path(bundle).expanduser().is_dir():
         raise ConfigError("option bundle", f"expected a release bundle folder (releases/<name>/v<version>), got "
                                            f"{bundle!r}")  # fmt: skip
     for key in ("steps", "warmup"):

@@ -69,6 +69,7 @@ def run(cfg: DictConfig) -> dict:
     # 2-core machine measured 5x slower per run than one thread: spinning threads, not work)
     threads = str(int(b.threads_per_run))
     env = {**os.environ, "CI": os.environ.get("CI", "true"), "OMP_NUM_THREADS": threads, "MKL_NUM_THREADS": threads}
+    load_before = os.getloadavg()[0]
     serial_wall, serial_runs = _sweep([*train_overrides, "hydra/launcher=basic", seeds], env)
     parallel_args = [*train_overrides, "hydra/launcher=joblib", f"hydra.launcher.n_jobs={int(b.workers)}", seeds]
     parallel_wall, parallel_runs = _sweep(parallel_args, env)
@@ -90,5 +91,8 @@ def run(cfg: DictConfig) -> dict:
         "meets_goal": efficiency >= float(b.goal_efficiency),
         "mean_run_s_serial": sum(r["seconds"] for r in serial_runs) / len(serial_runs),
         "mean_run_s_parallel": sum(r["seconds"] for r in parallel_runs) / len(parallel_runs),
+        # other work on the machine takes cores from the parallel pass: read the figures beside the load
+        "load_avg_1m_before": load_before,
+        "load_avg_1m_after": os.getloadavg()[0],
         "tracking": "scratch store " + str(scratch / "mlflow.db") if b.tracking == "scratch" else "configured",
     }

@@ -273,8 +273,10 @@ def compare(uri: str, experiment: str, sweep: str | None, out: Path, sort: str |
         rows = rows[:limit]
     title = f"{experiment}" + (f" / sweep {sweep}" if sweep else "") + f": ranked by {key}"
     csv_path, png_path = out / "leaderboard.csv", out / "leaderboard.png"
-    _atomic_write(csv_path, csv_text(rows).encode())
-    _atomic_write(png_path, png_bytes(rows, key, title))
+    # both rendered before either is written: a failure leaves the previous pair as it was
+    csv_data, png_data = csv_text(rows).encode(), png_bytes(rows, key, title)
+    _atomic_write(csv_path, csv_data)
+    _atomic_write(png_path, png_data)
     return {"rows": rows, "sort": key, "title": title, "csv": str(csv_path), "png": str(png_path)}
 
 

@@ -16,7 +16,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from omegaconf import DictConfig
+from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
 from coreach.release.gate import count_violations
@@ -114,7 +114,7 @@ def drive(cfg: DictConfig) -> dict:
     from coreach.tracking import resolve_uri
 
     t0 = time.perf_counter()
-    if str(cfg.bundle) in ("???", ""):
+    if OmegaConf.is_missing(cfg, "bundle") or not str(cfg.bundle):
         raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>)")
     folder = Path(str(cfg.bundle)).expanduser()
     interface = OnnxBundleInterface(str(folder), name=f"bundle {folder.resolve().parent.name}/{folder.name}",

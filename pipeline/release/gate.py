@@ -123,7 +123,7 @@ def artifact_gates(parity: float | None, parity_n: int, latency: dict | None, th
     lat = None if latency is None else latency.get("session_p99_us")
     lat_detail = "not measured" if latency is None else (
         f"p50 {latency['session_p50_us']:.1f} us, bare onnxruntime p99 {latency['bare_p99_us']:.1f} us, "
-        f"{latency['steps']} steps")  # fmt: skip
+        f"{latency['steps']} steps" + (f", quietest of {latency['rounds']} rounds" if latency.get("rounds") else ""))
     return [
         _check("onnx_parity", f"max |onnxruntime - torch| over {parity_n} contexts (rad/s)", parity,
                th.parity_max_abs, "<=", "" if parity is not None else "export failed"),

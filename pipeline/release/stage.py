@@ -38,12 +38,12 @@ REFUSED_EXIT = 3  # distinct from 2 (bad input): the input was fine, the decoder
 
 
 def suite_refs(cfg) -> list[str]:
-    """The suites option as given: shipped names or YAML paths."""
-    names = cfg.suites
+    """The gate_suites option as given: shipped names or YAML paths."""
+    names = cfg.gate_suites
     names = [str(s) for s in names] if isinstance(names, (list, ListConfig)) else [s for s in str(names).split(",")]
     names = [s.strip() for s in names if s and s.strip()]
     if not names:
-        raise ConfigError("option suites", "expected at least one suite name (e.g. [held-out])")
+        raise ConfigError("option gate_suites", "expected at least one suite name (e.g. [held-out])")
     return names
 
 
@@ -56,10 +56,16 @@ def _training_run(client, ref: str):
     """Policy, training run id and run of `ref` (a run id or models:/...); folders cannot be released."""
     from coreach.plugins.interface.decoder import load_policy
 
+    if not ref:
+        raise ConfigError("option run", "missing; expected the MLflow run id of a training run (coreach release "
+                                        "run=<run id>)")  # fmt: skip
     if Path(str(ref)).expanduser().exists():
         raise ConfigError("option run", f"{ref} is a folder; release needs the MLflow training run (its "
                                         "dataset fingerprint, commit and decoder artifact are part of it)")  # fmt: skip
-    policy, run_id = load_policy(str(ref))
+    try:
+        policy, run_id = load_policy(str(ref))
+    except ConfigError as exc:  # name the option of this command, not the interface's
+        raise ConfigError("option run", exc.problem) from None
     run = client.get_run(run_id)
     if "coreach.dataset" not in run.data.tags:
         raise ConfigError("option run", f"run {run_id} has no coreach.dataset tag; was it logged by coreach train?")
@@ -109,8 +115,9 @@ def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
     scene = suites[0].scene
     for s in suites[1:]:
         if s.goal_names != scene.goal_names:
-            raise ConfigError("option suites", f"suite {s.name} has goals {s.goal_names}, suite {suites[0].name} "
-                                               f"{scene.goal_names}; a bundle serves one goal set")  # fmt: skip
+            raise ConfigError("option gate_suites", f"suite {s.name} has goals {s.goal_names}, suite "
+                                                    f"{suites[0].name} {scene.goal_names}; a bundle serves one goal "
+                                                    "set")  # fmt: skip
     rt = cfg.runtime
     tags = run.data.tags
     return {
@@ -148,9 +155,21 @@ def _workspace(cfg) -> tuple[list[float], list[float]]:
     return lo, hi
 
 
+def _latency(bundle: Path, node) -> dict:
+    """Runtime latency on the staged bundle: the round (of `rounds`) with the lowest p99. Other jobs on the
+    machine only ever add time, so the quietest round is the best estimate of what the decoder and runtime
+    cost; a single busy round on a shared computer measured 8.7 ms p99 against 0.5 ms for the next one."""
+    from coreach.bench.runtime_bench import run_runtime_bench
+
+    rounds = max(1, int(node.get("rounds", 3)))
+    steps = max(50, int(node.steps) // rounds)
+    results = [run_runtime_bench(bundle, steps=steps, warmup=int(node.warmup)) for _ in range(rounds)]
+    best = min(results, key=lambda r: r["session_p99_us"])
+    return {**best, "rounds": rounds, "p99_by_round_us": [r["session_p99_us"] for r in results]}
+
+
 def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
     """Every gate on `policy`; builds the vetting report and a staged bundle inside `staging`."""
-    from coreach.bench.runtime_bench import run_runtime_bench
     from coreach.plugins.interface.decoder import DecoderInterface
 
     th = G.Thresholds.from_config(cfg.gates, PARITY_TOLERANCE)
@@ -192,7 +211,7 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
     try:
         staged = write_bundle(staging / "bundle", policy, urdf, meta, {"report.html": report}, gate={})
         parity = float(verify_bundle(staged).onnx_parity["max_abs_diff"])
-        latency = run_runtime_bench(staged, steps=int(cfg.latency.steps), warmup=int(cfg.latency.warmup))
+        latency = _latency(staged, cfg.latency)
     except BundleError as exc:  # parity beyond the writer's own limit: measure it for the table
         from coreach.runtime.export import export_onnx, onnx_parity
 
@@ -281,7 +300,7 @@ def release(cfg: DictConfig) -> dict:
     os.environ["MLFLOW_TRACKING_URI"] = uri  # load_policy reads runs from the same store
     registry.check_name(str(cfg.name))
     client = registry.client_for(uri)
-    policy, run_id, run = _training_run(client, str(cfg.run))
+    policy, run_id, run = _training_run(client, "" if OmegaConf.is_missing(cfg, "run") else str(cfg.run))
     label = run.data.tags.get("coreach.label") or f"decoder-{run_id[:8]}"
 
     staging = Path(tempfile.mkdtemp(prefix="coreach-release-"))
@@ -328,9 +347,12 @@ def _ranked(demo_result: dict) -> list[dict]:
 def release_best(demo_result: dict, cfg: DictConfig) -> dict:
     """Release the best demo decoder that passes the gate, then drive its bundle with the runtime.
 
-    Candidates are tried best first (by the demo's own vetting) until one passes; each try runs the release
-    gate at the demo's size (cfg.demo.release: overrides of conf/release.yaml, default a few episodes per
-    cell). Returns {"attempts": [release summaries], "release": the passing one or None, "drive": replay}.
+    Candidates are tried best first (by the demo's own vetting: success lower bound) until one passes, at
+    most cfg.demo.release.max_tries (default 2) of them; each try is the release gate at demo size,
+    cfg.demo.release.overrides of conf/release.yaml (default episodes=10, i.e. 30 held-out episodes, and
+    latency.steps=1500; about 15-45 s a try on 2 cores). The gate's thresholds stay the release defaults, so
+    thin demo evidence may well be refused: that is the honest outcome, and the refusal tables are the result.
+    Returns {"attempts": [release summaries], "release": the passing one or None, "drive": its replay}.
     """
     from hydra import compose
 

@@ -21,7 +21,7 @@ EPOCH_KEYS = ["train/loss", "train/reconstruction", "val/loss", "val/reconstruct
 
 @pytest.fixture(scope="module")
 def server_sweep(tmp_path_factory):
-    """One 3-run sweep through `coreach train -m hydra/launcher=joblib tracking=server`, shared by the tests."""
+    """One 3-run sweep through `coreach train -m hydra/launcher=local tracking=server`, shared by the tests."""
     uri = tracking_server()
     cwd = tmp_path_factory.mktemp("server-sweep")
     experiment = unique_experiment("lab-sweep")
@@ -29,7 +29,7 @@ def server_sweep(tmp_path_factory):
     warm_dataset(cwd, overrides)
     env = {**os.environ, "COREACH_TRACKING_URI": uri}
     seeds = "seed=" + ",".join(map(str, SEEDS))
-    payload = cli_json(["train", "-m", "hydra/launcher=joblib", *overrides, seeds], cwd, env)
+    payload = cli_json(["train", "-m", "hydra/launcher=local", *overrides, seeds], cwd, env)
     return {"uri": uri, "experiment": experiment, "runs": payload["runs"], "cwd": cwd, "env": env}
 
 
