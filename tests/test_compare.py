@@ -28,8 +28,10 @@ RUNS = {
 }
 
 
-@pytest.fixture
-def store(workdir):
+@pytest.fixture(scope="module")
+def store(tmp_path_factory):
+    """One store for the module (creating an MLflow sqlite store takes seconds); tests only read it."""
+    workdir = tmp_path_factory.mktemp("compare-store")
     uri = f"sqlite:///{workdir / 'mlflow.db'}"
     client = MlflowClient(uri)
     exp = client.create_experiment("lab", artifact_location=(workdir / "mlartifacts").as_uri())
@@ -60,8 +62,8 @@ def store(workdir):
     return {"uri": uri, "ids": ids, "dir": workdir}
 
 
-def test_ranks_by_reconstruction_and_filters_by_sweep(store):
-    out = store["dir"] / "cmp"
+def test_ranks_by_reconstruction_and_filters_by_sweep(store, tmp_path):
+    out = tmp_path / "cmp"
     res = cmp.compare(store["uri"], "lab", "s1", out)
     assert res["sort"] == "best/val/reconstruction"
     expected = sorted((v[4], k) for k, v in RUNS.items() if v[0] == "s1")  # lower is better
@@ -76,15 +78,15 @@ def test_ranks_by_reconstruction_and_filters_by_sweep(store):
     assert b["run_id"] == store["ids"]["b"]
 
 
-def test_vetting_intervals_shown_where_they_exist(store):
-    res = cmp.compare(store["uri"], "lab", None, store["dir"] / "cmp")
+def test_vetting_intervals_shown_where_they_exist(store, tmp_path):
+    res = cmp.compare(store["uri"], "lab", None, tmp_path / "cmp")
     rows = {r.label: r for r in res["rows"]}
     assert rows["b"].vet["vet/nominal/success"] == cmp.Interval(0.8, 0.6, 0.9)
     assert rows["c"].vet["vet/nominal/success"] == cmp.Interval(0.5, 0.3, 0.7)
     assert rows["c"].vet["vet/nominal/path"] == cmp.Interval(1.4, None, None)
     assert "vet/nominal/success/n" not in rows["b"].vet and rows["a"].vet == {}
     assert rows["b"].vet["vet/nominal/success"].text() == "0.8 [0.6, 0.9]"
-    with open(store["dir"] / "cmp" / "leaderboard.csv") as fh:
+    with open(tmp_path / "cmp" / "leaderboard.csv") as fh:
         csv_rows = {r["label"]: r for r in csv.DictReader(fh)}
     c = csv_rows["c"]
     assert (float(c["vet/nominal/success"]), float(c["vet/nominal/success_lo"]),
@@ -92,29 +94,29 @@ def test_vetting_intervals_shown_where_they_exist(store):
     assert csv_rows["a"]["vet/nominal/success"] == ""  # nothing invented for an unvetted run
 
 
-def test_sort_by_any_metric_and_limit(store):
-    res = cmp.compare(store["uri"], "lab", None, store["dir"] / "cmp", sort="best/val/loss", limit=2)
+def test_sort_by_any_metric_and_limit(store, tmp_path):
+    res = cmp.compare(store["uri"], "lab", None, tmp_path / "cmp", sort="best/val/loss", limit=2)
     by_loss = sorted(RUNS, key=lambda k: RUNS[k][5])
     assert [r.label for r in res["rows"]] == by_loss[:2]
     # a vetting metric ranks too; runs without it come last
-    res = cmp.compare(store["uri"], "lab", None, store["dir"] / "cmp", sort="vet/nominal/success")
+    res = cmp.compare(store["uri"], "lab", None, tmp_path / "cmp", sort="vet/nominal/success")
     assert [r.label for r in res["rows"]][:2] == ["c", "b"]
     with pytest.raises(ConfigError, match="--sort"):
-        cmp.compare(store["uri"], "lab", None, store["dir"] / "cmp", sort="best/val/nothing")
+        cmp.compare(store["uri"], "lab", None, tmp_path / "cmp", sort="best/val/nothing")
 
 
-def test_png_is_an_image_of_the_ranking(store):
+def test_png_is_an_image_of_the_ranking(store, tmp_path):
     import matplotlib.image
 
-    out = store["dir"] / "cmp"
+    out = tmp_path / "cmp"
     cmp.compare(store["uri"], "lab", None, out)
     img = matplotlib.image.imread(out / "leaderboard.png")
     assert img.ndim == 3 and img.shape[0] > 100 and img.shape[1] > 500  # two panels: ranking and vetting
     assert not [p for p in out.iterdir() if p.name.startswith(".")]  # no temporary files left behind
 
 
-def test_files_are_replaced_whole_or_not_at_all(store, monkeypatch):
-    out = store["dir"] / "cmp"
+def test_files_are_replaced_whole_or_not_at_all(store, monkeypatch, tmp_path):
+    out = tmp_path / "cmp"
     cmp.compare(store["uri"], "lab", None, out)
     before = [(out / f).read_bytes() for f in ("leaderboard.csv", "leaderboard.png")]
 
@@ -139,15 +141,15 @@ def test_unknown_experiment_empty_sweep_and_missing_store(store, tmp_path):
     assert not missing.exists()  # reading never creates a store
 
 
-def test_cli_json_and_one_line_errors(store):
-    run = lambda *a: subprocess.run([COREACH, *a], cwd=store["dir"], capture_output=True, text=True,  # noqa: E731
+def test_cli_json_and_one_line_errors(store, tmp_path):
+    run = lambda *a: subprocess.run([COREACH, *a], cwd=tmp_path, capture_output=True, text=True,  # noqa: E731
                                     env=cli_env(), timeout=300)  # fmt: skip
-    res = run("--json", "compare", "--experiment", "lab", "--sweep", "s2", "--out", "o")
+    res = run("--json", "compare", "--uri", store["uri"], "--experiment", "lab", "--sweep", "s2", "--out", "o")
     assert res.returncode == 0, res.stderr
     payload = json.loads(res.stdout)
     assert [r["label"] for r in payload["runs"]] == ["d"]
-    assert Path(store["dir"] / "o" / "leaderboard.csv").exists()
+    assert (tmp_path / "o" / "leaderboard.csv").exists()
     res = run("compare", "--experiment", "lab", "--frobnicate")
     assert res.returncode == 2 and res.stderr.count("\n") == 1 and "--frobnicate" in res.stderr
-    res = run("compare", "--experiment", "nope")
+    res = run("compare", "--uri", store["uri"], "--experiment", "nope")
     assert res.returncode == 2 and "nope" in res.stderr and "Traceback" not in res.stderr

@@ -47,7 +47,8 @@ def tracking_server() -> str:
     """URI of the MLflow tracking server for the tests, checked with /health."""
     uri = os.environ.get("COREACH_TRACKING_URI") or _env_file_value("postgres-mlflow.env", "COREACH_TRACKING_URI")
     if not uri:
-        missing("the MLflow tracking server", "run `.ci/services/postgres-mlflow.sh start` (or set COREACH_TRACKING_URI)")
+        missing("the MLflow tracking server",
+                "run `.ci/services/postgres-mlflow.sh start` (or set COREACH_TRACKING_URI)")  # fmt: skip
     try:
         with urllib.request.urlopen(f"{uri}/health", timeout=10) as resp:
             assert resp.status == 200

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import re
 import subprocess
+import time
 from pathlib import Path
 
 import pytest
@@ -41,7 +42,15 @@ def test_sweep_through_slurm_lands_every_run_in_tracking(workdir):
     job_dirs = sorted(p.name for p in (sweep_dir / ".submitit").iterdir() if p.is_dir() and "_" in p.name)
     assert len(job_dirs) == len(SEEDS) and len({d.split("_")[0] for d in job_dirs}) == 1, job_dirs
     array_id = job_dirs[0].split("_")[0]
-    shown = subprocess.run(["scontrol", "show", "job", array_id], capture_output=True, text=True, env=env, timeout=30)
-    assert shown.returncode == 0, shown.stderr
-    states = re.findall(r"JobState=(\w+)", shown.stdout)
+    # submitit returns once a task's result file exists; SLURM may still be wrapping the task up
+    deadline = time.monotonic() + 60
+    while True:
+        shown = subprocess.run(["scontrol", "show", "job", array_id], capture_output=True, text=True, env=env,
+                               timeout=30)  # fmt: skip
+        assert shown.returncode == 0, shown.stderr
+        states = re.findall(r"JobState=(\w+)", shown.stdout)
+        if states == ["COMPLETED"] * len(SEEDS) or time.monotonic() > deadline:
+            break
+        assert set(states) <= {"COMPLETED", "RUNNING", "COMPLETING"}, shown.stdout
+        time.sleep(1)
     assert states == ["COMPLETED"] * len(SEEDS), shown.stdout
