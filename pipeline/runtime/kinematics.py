@@ -43,7 +43,8 @@ def quat_to_matrix(quat) -> np.ndarray:
     return np.stack(rows, axis=-1).reshape(*q.shape[:-1], 3, 3)
 
 
-def _floats(text, default: tuple[float, ...], where: str, what: str) -> tuple[float, ...]:
+def urdf_floats(text, default: tuple[float, ...], where: str, what: str) -> tuple[float, ...]:
+    """A URDF attribute such as xyz="0 0 0.1" as floats (`default` when absent); ConfigError if malformed."""
     if text is None:
         return default
     try:
@@ -116,11 +117,11 @@ def parse_chain(text: str, tool_link: str, where: str = "robot.urdf") -> list[Jo
         if el.find("mimic") is not None:
             raise ConfigError(jwhere, "mimic joints between the root and the tool link are unsupported")
         origin = el.find("origin")
-        xyz = _floats(None if origin is None else origin.get("xyz"), (0.0, 0.0, 0.0), jwhere, "origin xyz")
-        rpy = _floats(None if origin is None else origin.get("rpy"), (0.0, 0.0, 0.0), jwhere, "origin rpy")
+        xyz = urdf_floats(None if origin is None else origin.get("xyz"), (0.0, 0.0, 0.0), jwhere, "origin xyz")
+        rpy = urdf_floats(None if origin is None else origin.get("rpy"), (0.0, 0.0, 0.0), jwhere, "origin rpy")
         axis_el = el.find("axis")
         # the URDF specification's default axis is x
-        axis = np.array(_floats(None if axis_el is None else axis_el.get("xyz"), (1.0, 0.0, 0.0), jwhere, "axis xyz"))
+        axis = np.array(urdf_floats(None if axis_el is None else axis_el.get("xyz"), (1.0, 0.0, 0.0), jwhere, "axis xyz"))
         lower, upper, velocity = -math.inf, math.inf, math.inf
         if kind in MOVABLE:
             norm = float(np.linalg.norm(axis))
@@ -130,12 +131,12 @@ def parse_chain(text: str, tool_link: str, where: str = "robot.urdf") -> list[Jo
             limit = el.find("limit")
             if limit is None or limit.get("velocity") is None:
                 raise ConfigError(jwhere, "no velocity limit; expected <limit velocity=...> (rad/s or m/s)")
-            (velocity,) = _floats(limit.get("velocity"), (0.0,), jwhere, "limit velocity")
+            (velocity,) = urdf_floats(limit.get("velocity"), (0.0,), jwhere, "limit velocity")
             if velocity <= 0:
                 raise ConfigError(jwhere, f"limit velocity must be > 0, got {velocity}")
             if kind != "continuous":
-                (lower,) = _floats(limit.get("lower"), (math.nan,), jwhere, "limit lower")
-                (upper,) = _floats(limit.get("upper"), (math.nan,), jwhere, "limit upper")
+                (lower,) = urdf_floats(limit.get("lower"), (math.nan,), jwhere, "limit lower")
+                (upper,) = urdf_floats(limit.get("upper"), (math.nan,), jwhere, "limit upper")
                 if not lower < upper:  # also catches missing bounds (nan)
                     raise ConfigError(jwhere, f"expected <limit lower=... upper=...> with lower < upper, got "
                                               f"lower={limit.get('lower')} upper={limit.get('upper')}")

@@ -15,6 +15,7 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
+from coreach.runtime.kinematics import urdf_floats  # numpy-only: one reading of URDF numbers
 
 SHIPPED_URDF = "reach7.urdf"
 # Elbow bent 129 deg, tool 0.35 m in front of the base at z = 0.27 m, approach axis tilted 56 deg below
@@ -56,18 +57,6 @@ class _JointSpec:
     lower: float
     upper: float
     velocity: float
-
-
-def _floats(text: str | None, default: tuple[float, ...], where: str, what: str) -> tuple[float, ...]:
-    if text is None:
-        return default
-    try:
-        values = tuple(float(v) for v in text.split())
-    except ValueError:
-        values = ()
-    if len(values) != len(default) or not all(math.isfinite(v) for v in values):
-        raise ConfigError(where, f"{what} must be {len(default)} finite numbers, got {text!r}")
-    return values
 
 
 def _parse_path(where: str, text: str, tool_link: str) -> list[_JointSpec]:
@@ -114,11 +103,11 @@ def _parse_path(where: str, text: str, tool_link: str) -> list[_JointSpec]:
         if joint.find("mimic") is not None:
             raise ConfigError(jwhere, "mimic joints between the base and the tool link are unsupported")
         origin = joint.find("origin")
-        xyz = _floats(None if origin is None else origin.get("xyz"), (0.0, 0.0, 0.0), jwhere, "origin xyz")
-        rpy = _floats(None if origin is None else origin.get("rpy"), (0.0, 0.0, 0.0), jwhere, "origin rpy")
+        xyz = urdf_floats(None if origin is None else origin.get("xyz"), (0.0, 0.0, 0.0), jwhere, "origin xyz")
+        rpy = urdf_floats(None if origin is None else origin.get("rpy"), (0.0, 0.0, 0.0), jwhere, "origin rpy")
         axis_el = joint.find("axis")
         # URDF default axis is x (pytorch_kinematics would assume z; we follow the URDF specification)
-        axis = _floats(None if axis_el is None else axis_el.get("xyz"), (1.0, 0.0, 0.0), jwhere, "axis xyz")
+        axis = urdf_floats(None if axis_el is None else axis_el.get("xyz"), (1.0, 0.0, 0.0), jwhere, "axis xyz")
         lower, upper, velocity = -math.inf, math.inf, math.inf
         if kind in _MOVABLE:
             if math.hypot(*axis) < 1e-9:
@@ -127,12 +116,12 @@ def _parse_path(where: str, text: str, tool_link: str) -> list[_JointSpec]:
             vel = None if limit is None else limit.get("velocity")
             if vel is None:
                 raise ConfigError(jwhere, "no velocity limit; expected <limit velocity=...> (rad/s or m/s)")
-            (velocity,) = _floats(vel, (0.0,), jwhere, "limit velocity")
+            (velocity,) = urdf_floats(vel, (0.0,), jwhere, "limit velocity")
             if velocity <= 0:
                 raise ConfigError(jwhere, f"limit velocity must be > 0, got {velocity}")
             if kind != "continuous":
-                lo = _floats(limit.get("lower"), (math.nan,), jwhere, "limit lower")[0]  # type: ignore[union-attr]
-                hi = _floats(limit.get("upper"), (math.nan,), jwhere, "limit upper")[0]  # type: ignore[union-attr]
+                lo = urdf_floats(limit.get("lower"), (math.nan,), jwhere, "limit lower")[0]  # type: ignore[union-attr]
+                hi = urdf_floats(limit.get("upper"), (math.nan,), jwhere, "limit upper")[0]  # type: ignore[union-attr]
                 if not lo < hi:  # also catches missing bounds (nan)
                     raise ConfigError(jwhere, f"expected <limit lower=... upper=...> with lower < upper, "
                                               f"got lower={limit.get('lower')} upper={limit.get('upper')}")  # type: ignore[union-attr]
