@@ -13,19 +13,22 @@ per-joint clamp that keeps q + qd dt inside the joint position limits.
 from __future__ import annotations
 
 import inspect
+import math
 from dataclasses import dataclass
 
 import numpy as np
 import torch
 from torch import Tensor
 
+from coreach.arrival import DEFAULT_MIN_ARRIVAL, arrival_by_goal, check_arrival
 from coreach.episodes import Episode, EpisodeSet
 from coreach.errors import ConfigError
 from coreach.geometry import matrix_to_quat, rotation_error
 from coreach.protocols import Robot
 from coreach.scenario import Layout, Scenario, load_scenario
 
-__all__ = ["dls_step", "scale_to_speed_limits", "clamp_to_joint_limits", "Rollout", "rollout", "generate", "completed_mask"]
+__all__ = ["dls_step", "scale_to_speed_limits", "clamp_to_joint_limits", "Rollout", "rollout", "generate", "completed_mask",
+           "expert_twist", "expert_action"]
 
 
 def dls_step(J: Tensor, twist: Tensor, damping: float) -> Tensor:
@@ -61,17 +64,20 @@ def clamp_to_joint_limits(qd: Tensor, q: Tensor, dt: float, lower: Tensor, upper
 
 @dataclass
 class Rollout:
-    """Raw batched result of `rollout` (float64 tensors padded to the longest episode)."""
+    """Raw batched result of `rollout` (float64 tensors padded to the longest recorded episode)."""
 
-    q: Tensor  # [E, T, n] joint positions before each step
+    q: Tensor  # [E, T, n] joint positions before each recorded step
     qd: Tensor  # [E, T, n] commanded velocities (zero after an episode ends)
     ee_pos: Tensor  # [E, T, 3]
     ee_quat: Tensor  # [E, T, 4]
     lengths: Tensor  # [E] recorded steps per episode
     completed: Tensor  # [E] bool: ended within arrive_tol of the end of the fine motion
-    goals: Tensor  # [E] goal index
+    goals: Tensor  # [E] goal index (the goal the episode ends at)
     layout: Layout
     dt: float
+    fine_phase: Tensor | None = None  # [E] bool: the approach pose of the goal was reached
+    q_end: Tensor | None = None  # [E, n] joint positions where each episode ended
+    via_goals: Tensor | None = None  # [E] goal first headed for (-1: none), see `via_share`
 
 
 def _check(name: str, value: float, lo: float, hi: float = float("inf")) -> float:
@@ -79,6 +85,54 @@ def _check(name: str, value: float, lo: float, hi: float = float("inf")) -> floa
     if not lo <= value <= hi:
         raise ConfigError(f"option {name}", f"expected a number in [{lo}, {hi}], got {value}")
     return value
+
+
+def _start_poses(robot: Robot, E: int, gen: torch.Generator, start_jitter: float, spread_share: float,
+                 start_spread: float) -> Tensor:  # fmt: skip
+    """[E, n] start poses: home plus U(-start_jitter, start_jitter) per joint; a `spread_share` of the
+    episodes (the first ones of a seeded permutation) use the wider `start_spread` instead, so the data
+    also covers states away from the path home -> goal that closed loop visits. Clipped to the limits."""
+    f64 = torch.float64
+    n = robot.dof
+    home, lower, upper = robot.q_home.to(f64), robot.q_lower.to(f64), robot.q_upper.to(f64)
+    width = torch.full((E,), float(start_jitter), dtype=f64)
+    spread = torch.randperm(E, generator=gen)[: int(round(spread_share * E))]
+    width[spread] = float(start_spread)
+    noise = torch.rand(E, n, generator=gen, dtype=f64) * 2 - 1
+    return torch.minimum(torch.maximum(home + width[:, None] * noise, lower), upper)
+
+
+def _via_plan(E: int, G: int, goals: Tensor, gen: torch.Generator, via_share: float,
+              via_steps: tuple[int, int]) -> tuple[Tensor, Tensor]:  # fmt: skip
+    """([E] goal first headed for or -1, [E] steps spent heading there): a `via_share` of the episodes
+    first move toward another goal for a uniform number of steps in via_steps, as an operator who changes
+    their mind part-way would leave the arm."""
+    pick = torch.randperm(E, generator=gen)[: int(round(via_share * E))]
+    other = (goals + torch.randint(1, max(G, 2), (E,), generator=gen)) % G
+    lo, hi = int(via_steps[0]), int(via_steps[1])
+    steps = torch.randint(lo, hi + 1, (E,), generator=gen)
+    via = torch.full((E,), -1, dtype=torch.long)
+    left = torch.zeros(E, dtype=torch.long)
+    if G > 1:
+        via[pick], left[pick] = other[pick], steps[pick]
+    return via, left
+
+
+def expert_twist(pos: Tensor, rot: Tensor, target: Tensor, target_rot: Tensor, k_p: float, k_r: float,
+                 v_max: float, w_max: float) -> Tensor:  # fmt: skip
+    """The demonstrator's tool twist [B, 6] toward a target position and orientation: proportional, each
+    part capped in norm (resolved-rate control)."""
+    rot_err = rotation_error(target_rot, rot)
+    return torch.cat([_cap_norm(k_p * (target - pos), v_max), _cap_norm(k_r * rot_err, w_max)], dim=-1)
+
+
+def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, damping: float) -> Tensor:
+    """Noise-free joint velocity [B, n] for a twist: damped least squares, then the speed and position
+    limits the recorded demonstrations obey (shared by `rollout` and the aggregation labels)."""
+    f64 = torch.float64
+    qd = dls_step(J, twist, damping)
+    qd = scale_to_speed_limits(qd, robot.qd_max.to(f64))
+    return clamp_to_joint_limits(qd, q, dt, robot.q_lower.to(f64), robot.q_upper.to(f64))
 
 
 def rollout(
@@ -97,6 +151,12 @@ def rollout(
     damping: float = 0.05,
     arrive_tol: float = 0.01,
     approach_rot_tol: float = 0.1,
+    start_jitter: float = 0.0,
+    spread_share: float = 0.0,
+    start_spread: float = 0.5,
+    via_share: float = 0.0,
+    via_steps: tuple[int, int] | list[int] = (5, 30),
+    record_via: bool = True,
 ) -> Rollout:
     """Step all episodes together; see `generate` for the options."""
     if isinstance(scenario, str):
@@ -111,8 +171,18 @@ def rollout(
     for name, val in (("k_p", k_p), ("k_r", k_r), ("v_max", v_max), ("w_max", w_max), ("arrive_tol", arrive_tol)):
         _check(name, val, 1e-9)
     _check("damping", damping, 0.0)
+    for name, val in (("start_jitter", start_jitter), ("start_spread", start_spread)):
+        _check(name, val, 0.0, math.pi)
+    for name, val in (("spread_share", spread_share), ("via_share", via_share)):
+        _check(name, val, 0.0, 1.0)
+    try:
+        via_lo, via_hi = (int(v) for v in via_steps)
+    except (TypeError, ValueError):
+        raise ConfigError("option via_steps", f"expected [min, max] steps, got {via_steps!r}") from None
+    if not 0 <= via_lo <= via_hi:
+        raise ConfigError("option via_steps", f"expected 0 <= min <= max, got {list(via_steps)}")
 
-    E, T_max, dt = int(n_episodes), int(max_steps), float(scenario.dt)
+    E, dt = int(n_episodes), float(scenario.dt)
     f64 = torch.float64
     gen = torch.Generator().manual_seed(int(seed))
     layout = scenario.sample_layouts(E, gen)
@@ -125,11 +195,23 @@ def rollout(
     p_app = layout.approach_pos[rows, goals]  # [E, 3]
     R_app = layout.approach_rot[rows, goals]  # [E, 3, 3]
     p_end = p_app + layout.fine[rows, goals]
+    # Draws for the new start options come after every draw the original demonstrator made, and only when
+    # used, so settings without them reproduce earlier datasets exactly.
+    uses_starts = start_jitter > 0 or spread_share > 0
+    via, via_left = _via_plan(E, G, goals, gen, via_share, (via_lo, via_hi)) if via_share > 0 else (
+        torch.full((E,), -1, dtype=torch.long), torch.zeros(E, dtype=torch.long))  # fmt: skip
+    has_via = via >= 0
+    p_via = layout.approach_pos[rows, via.clamp_min(0)]
+    R_via = layout.approach_rot[rows, via.clamp_min(0)]
+    T_max = int(max_steps) + int(via_left.max())  # heading elsewhere first must not eat the episode's budget
 
     n = robot.dof
     lower, upper = robot.q_lower.to(f64), robot.q_upper.to(f64)
-    qd_max, q_home = robot.qd_max.to(f64), robot.q_home.to(f64)
-    q = q_home.expand(E, n).clone()
+    qd_max = robot.qd_max.to(f64)
+    if uses_starts:
+        q = _start_poses(robot, E, gen, start_jitter, spread_share, start_spread)
+    else:
+        q = robot.q_home.to(f64).expand(E, n).clone()
     rec_q = torch.zeros(E, T_max, n, dtype=f64)
     rec_qd = torch.zeros(E, T_max, n, dtype=f64)
     rec_pos = torch.zeros(E, T_max, 3, dtype=f64)
@@ -145,9 +227,10 @@ def rollout(
             qa = q[idx]
             pos, rot = robot.fk(qa)
             pos, rot = pos.to(f64), rot.to(f64)
+            heading_via = via_left[idx] > 0  # [B] still heading for the other goal: no arrival yet
             rot_err = rotation_error(R_app[idx], rot)  # [B, 3]
             at_approach = ((p_app[idx] - pos).norm(dim=-1) < arrive_tol) & (rot_err.norm(dim=-1) < approach_rot_tol)
-            phase = fine_phase[idx] | at_approach
+            phase = (fine_phase[idx] | at_approach) & ~heading_via
             fine_phase[idx] = phase
             arrived = phase & ((p_end[idx] - pos).norm(dim=-1) < arrive_tol)
             completed[idx[arrived]] = True
@@ -156,26 +239,34 @@ def rollout(
             if t == T_max:
                 break
             keep = ~arrived
-            idx, qa, pos, rot, rot_err, phase = idx[keep], qa[keep], pos[keep], rot[keep], rot_err[keep], phase[keep]
+            idx, qa, pos, rot, phase = idx[keep], qa[keep], pos[keep], rot[keep], phase[keep]
+            heading_via = heading_via[keep]
             if idx.numel() == 0:
                 break
 
             target = torch.where(phase.unsqueeze(-1), p_end[idx], p_app[idx])
-            twist = torch.cat([_cap_norm(k_p * (target - pos), v_max), _cap_norm(k_r * rot_err, w_max)], dim=-1)
+            target = torch.where(heading_via[:, None], p_via[idx], target)
+            target_rot = torch.where(heading_via[:, None, None], R_via[idx], R_app[idx])
+            twist = expert_twist(pos, rot, target, target_rot, k_p, k_r, v_max, w_max)
             J = robot.jacobian(qa).to(f64)  # [B, 6, n]
             qd = dls_step(J, twist, damping)
             qd = qd + noise * qd_max * noise_draw[keep]
             qd = scale_to_speed_limits(qd, qd_max)
             qd = clamp_to_joint_limits(qd, qa, dt, lower, upper)
 
-            rec_q[idx, t], rec_qd[idx, t] = qa, qd
-            rec_pos[idx, t], rec_rot[idx, t] = pos, rot
-            lengths[idx] += 1
+            record = idx[~heading_via | bool(record_via)]
+            slot = lengths[record]
+            sel = ~heading_via | bool(record_via)
+            rec_q[record, slot], rec_qd[record, slot] = qa[sel], qd[sel]
+            rec_pos[record, slot], rec_rot[record, slot] = pos[sel], rot[sel]
+            lengths[record] += 1
+            via_left[idx] = (via_left[idx] - 1).clamp_min(0)
             q[idx] = qa + qd * dt
 
-    T = int(lengths.max())
+    T = max(int(lengths.max()), 1)
     quat = matrix_to_quat(rec_rot[:, :T])
-    return Rollout(rec_q[:, :T], rec_qd[:, :T], rec_pos[:, :T], quat, lengths, completed, goals, layout, dt)
+    return Rollout(rec_q[:, :T], rec_qd[:, :T], rec_pos[:, :T], quat, lengths, completed, goals, layout, dt,
+                   fine_phase=fine_phase, q_end=q, via_goals=torch.where(has_via, via, -1))  # fmt: skip
 
 
 def generate(
@@ -185,6 +276,9 @@ def generate(
     seed: int = 0,
     noise: float = 0.02,
     max_steps: int = 80,
+    *,
+    min_arrival: float = DEFAULT_MIN_ARRIVAL,
+    keep_incomplete: bool = False,
     **options,
 ) -> EpisodeSet:
     """Scripted demonstrations on `robot` in `scenario` (a Scenario or a shipped name), deterministic in `seed`.
@@ -192,21 +286,32 @@ def generate(
     noise: std of Gaussian joint-velocity noise as a fraction of robot.qd_max; max_steps: cut an episode
     that has not finished by then. Options (keyword): goal_order ("round_robin" | "random"), k_p (1/s),
     k_r (1/s), v_max (m/s), w_max (rad/s), damping, arrive_tol (m; also the phase switch at the approach
-    point), approach_rot_tol (rad; orientation needed before the fine motion starts).
-    Episodes shorter than 2 steps (goal reached at once) are dropped.
+    point), approach_rot_tol (rad; orientation needed before the fine motion starts); start_jitter (rad,
+    uniform per joint around home), spread_share + start_spread (a share of episodes starting from a wider
+    spread of poses), via_share + via_steps + record_via (a share of episodes that first head for another
+    goal for a number of steps, recorded or not).
+
+    Self-check: every goal must be reached in at least `min_arrival` of its episodes, else DataError names
+    the goal, its rate and the likely cause. Episodes that missed are dropped (kept with keep_incomplete),
+    so a decoder is never trained on motions that stop short; episodes shorter than 2 steps are dropped.
+    The per-goal arrival is in the returned set's `arrival`.
     """
     allowed = [p.name for p in inspect.signature(rollout).parameters.values() if p.kind is p.KEYWORD_ONLY]
     for key in options:
         if key not in allowed:
             raise ConfigError(f"option {key}", f"unknown demonstrator option; expected one of {allowed}")
+    min_arrival = _check("min_arrival", min_arrival, 0.0, 1.0)
     if isinstance(scenario, str):
         scenario = load_scenario(scenario)
     r = rollout(robot, scenario, n_episodes, seed, noise, max_steps, **options)
+    report = arrival_by_goal(r, robot, scenario.goal_names)
+    check_arrival(report, min_arrival, f"demonstrations of scenario {scenario.name} on {robot.name}",
+                  float(options.get("arrive_tol", 0.01)), float(options.get("approach_rot_tol", 0.1)))  # fmt: skip
     goal_quat = r.layout.approach_quat.numpy()  # [E, G, 4], converted in one batch
     episodes = []
     for i in range(int(n_episodes)):
         T = int(r.lengths[i])
-        if T < 2:
+        if T < 2 or not (keep_incomplete or bool(r.completed[i])):
             continue
         episodes.append(
             Episode(
@@ -225,7 +330,9 @@ def generate(
         f"scripted:{scenario.name} robot={robot.name} episodes={n_episodes} seed={seed} noise={noise} "
         f"max_steps={max_steps}" + "".join(f" {k}={v}" for k, v in sorted(options.items()))
     )
-    return EpisodeSet(episodes, scenario.goal_names, list(robot.joint_names), r.dt, source=source)
+    out = EpisodeSet(episodes, scenario.goal_names, list(robot.joint_names), r.dt, source=source)
+    out.arrival = {a.goal: a.to_dict() for a in report}
+    return out
 
 
 def completed_mask(episode_set: EpisodeSet, robot: Robot, tol: float = 0.01) -> np.ndarray:

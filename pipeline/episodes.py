@@ -90,6 +90,7 @@ class EpisodeSet:
     joint_names: list[str]
     dt: float
     source: str = ""  # where the episodes came from; not part of the fingerprint
+    arrival: dict | None = None  # per-goal arrival of the demonstrator that made them (coreach.arrival)
 
     def __len__(self) -> int:
         return len(self.episodes)

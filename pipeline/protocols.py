@@ -150,6 +150,18 @@ class Operator(Protocol):
         """The stick [E, d] actually sent after the choice (bias, tremor); identity for an ideal user."""
 
 
+@runtime_checkable
+class Labeller(Protocol):
+    """Who says what the right action was at states closed loop visited (data aggregation): the scripted
+    demonstrator, or later a lab's recorded corrections."""
+
+    name: str
+
+    def label(self, robot: Robot, visits: Any) -> Tensor:
+        """Joint velocities [N, n] (rad/s) for the N states of a `coreach.aggregation.visits.Visits`, each
+        toward the goal the operator wanted at that state."""
+
+
 KINDS: dict[str, type] = {
     "robot": Robot,
     "dataset": Dataset,
@@ -158,4 +170,5 @@ KINDS: dict[str, type] = {
     "loss": LossTerm,
     "interface": Interface,
     "operator": Operator,
+    "labeller": Labeller,
 }

@@ -15,7 +15,7 @@ from omegaconf.errors import OmegaConfBaseException
 
 from coreach.errors import ConfigError
 
-PLUGIN_NODES = ("robot", "dataset", "belief", "model", "interface", "operator")
+PLUGIN_NODES = ("robot", "dataset", "belief", "model", "interface", "operator", "labeller")
 # passed by the trainer at build time, never written in a config
 INJECTED = {"action_dim", "context_dim"}
 

@@ -97,6 +97,8 @@ def run_params(cfg: DictConfig, episodes, train_s, val_s) -> dict[str, str]:
     params["dataset.episodes"] = str(len(episodes))
     params["dataset.train_samples"] = str(len(train_s))
     params["dataset.val_samples"] = str(len(val_s))
+    for goal, a in (getattr(episodes, "arrival", None) or {}).items():  # the demonstrator's self-check
+        params[f"dataset.arrival.{goal}"] = f"{a['rate']:.3f}"
     return params
 
 

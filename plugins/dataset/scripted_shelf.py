@@ -7,6 +7,7 @@ import json
 from dataclasses import asdict
 from pathlib import Path
 
+from coreach.arrival import DEFAULT_MIN_ARRIVAL
 from coreach.demonstrator import generate
 from coreach.episodes import SCHEMA_VERSION, EpisodeSet, load_parquet, save_parquet
 from coreach.errors import ConfigError
@@ -14,7 +15,7 @@ from coreach.protocols import Robot
 from coreach.scenario import load_scenario
 
 # Bump when the demonstrator's behaviour changes so stale caches are not reused.
-GENERATOR_VERSION = 1
+GENERATOR_VERSION = 2
 
 
 class ScriptedShelf:
@@ -32,6 +33,13 @@ class ScriptedShelf:
         noise: float = 0.02,
         max_steps: int = 80,
         cache_dir: str = "data",
+        start_jitter: float = 0.0,
+        spread_share: float = 0.0,
+        start_spread: float = 0.5,
+        via_share: float = 0.0,
+        via_steps: list[int] | tuple[int, int] = (5, 30),
+        record_via: bool = True,
+        min_arrival: float = DEFAULT_MIN_ARRIVAL,
     ):
         if int(episodes) < 1:
             raise ConfigError("dataset.episodes", f"expected at least 1 episode, got {episodes}")
@@ -42,6 +50,11 @@ class ScriptedShelf:
         self.scenario = str(scenario)
         self.episodes, self.seed, self.noise = int(episodes), int(seed), float(noise)
         self.max_steps, self.cache_dir = int(max_steps), Path(cache_dir)
+        # where episodes start and whether some head for another goal first (coreach.demonstrator.generate)
+        self.starts = {"start_jitter": float(start_jitter), "spread_share": float(spread_share),
+                       "start_spread": float(start_spread), "via_share": float(via_share),
+                       "via_steps": [int(v) for v in via_steps], "record_via": bool(record_via)}  # fmt: skip
+        self.min_arrival = float(min_arrival)
 
     def cache_path(self, robot: Robot) -> Path:
         """Where the demonstrations for `robot` are (or will be) cached."""
@@ -54,6 +67,7 @@ class ScriptedShelf:
             "seed": self.seed,
             "noise": self.noise,
             "max_steps": self.max_steps,
+            "starts": self.starts,
             "robot": robot.name,
             "joints": list(robot.joint_names),
             # Limits and home pose shape the demonstrations, so an edited robot gets a fresh cache.
@@ -65,6 +79,27 @@ class ScriptedShelf:
     def load(self, robot: Robot) -> EpisodeSet:
         path = self.cache_path(robot)
         if not path.is_file():
-            demos = generate(robot, load_scenario(self.scenario), self.episodes, self.seed, self.noise, self.max_steps)
+            demos = generate(robot, load_scenario(self.scenario), self.episodes, self.seed, self.noise, self.max_steps,
+                             min_arrival=self.min_arrival, **self.starts)  # fmt: skip
             save_parquet(demos, path)
-        return load_parquet(path, robot=robot)
+            _write_arrival(path, demos.arrival)
+        out = load_parquet(path, robot=robot)
+        out.arrival = _read_arrival(path)
+        return out
+
+
+def _arrival_path(path: Path) -> Path:
+    return path.with_suffix(".arrival.json")
+
+
+def _write_arrival(path: Path, arrival: dict) -> None:
+    """The demonstrator's per-goal arrival beside the cache (temp file, then rename)."""
+    target = _arrival_path(path)
+    tmp = target.with_name(f".{target.name}.tmp")
+    tmp.write_text(json.dumps(arrival, indent=2, default=float))
+    tmp.replace(target)
+
+
+def _read_arrival(path: Path) -> dict | None:
+    target = _arrival_path(path)
+    return json.loads(target.read_text()) if target.is_file() else None
