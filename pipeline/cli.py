@@ -16,7 +16,11 @@ USAGE = """usage: coreach [--json] [--debug] COMMAND [-m] [key=value ...]
 commands:
   demo      generate demonstrations, train the decoder families briefly, compare them
   train     train one decoder (e.g. coreach train model=vae trainer.max_epochs=5)
+  aggregate train, then retrain on closed-loop states labelled by the demonstrator (DAgger rounds)
+            (coreach aggregate +experiment=cvae_entropy 'aggregate.rollout_seeds=[1,2,3]')
   vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
+  recipes   train each recipe over several seeds, vet them with the baselines, one table
+            (coreach recipes 'select=[cvae,cvae+entropy]' 'seeds=[0,1,2]' 'train_overrides=["trainer.max_epochs=5"]')
   plugins   list every registered plugin by kind, with where it came from
   compare   leaderboard of an experiment's runs: table, CSV and PNG
             (coreach compare --experiment NAME --sweep TAG --out DIR)
@@ -45,12 +49,14 @@ HYDRA_COMMANDS = {
     "train": ("train", "coreach.training.run:train"),
     "demo": ("demo", "coreach.demo:run_demo"),
     "vet": ("vet", "coreach.vetting.stage:vet"),
+    "aggregate": ("aggregate", "coreach.aggregation.stage:aggregate"),
     "bench train": ("bench_train", "coreach.bench.train_bench:run"),
     "bench sweep": ("bench_sweep", "coreach.bench.sweep_bench:run"),
     "release": ("release", "coreach.release.stage:release"),
     "drive": ("drive", "coreach.release.drive:drive"),
     "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
     "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
+    "recipes": ("recipes", "coreach.commands.recipes:recipes"),
 }
 # Hydra-free commands: name -> "module:function" taking (arguments, as_json) and returning the exit code
 PLAIN_COMMANDS = {

@@ -17,7 +17,7 @@ from coreach.demonstrator import (
     rollout,
     scale_to_speed_limits,
 )
-from coreach.errors import ConfigError
+from coreach.errors import ConfigError, DataError
 from coreach.geometry import angle_between, quat_to_matrix
 from coreach.protocols import Robot
 from coreach.scenario import Scenario, load_scenario
@@ -194,7 +194,7 @@ def test_demonstrations_reach_their_goals():
 
 def test_recording_is_consistent_and_within_limits():
     arm = PlanarArm(limits=1.4)  # tight limits so the clamp is exercised
-    demos = generate(arm, flat_scenario(), 30, seed=3, noise=0.5)
+    demos = generate(arm, flat_scenario(), 30, seed=3, noise=0.5, min_arrival=0.0, keep_incomplete=True)
     for e in demos:
         assert (np.abs(e.qd) <= 1.5 + 1e-12).all()
         assert (np.abs(e.q) <= 1.4 + 1e-12).all() and (np.abs(e.q[-1] + e.qd[-1] * demos.dt) <= 1.4 + 1e-12).all()
@@ -229,7 +229,7 @@ def test_goal_order():
 
 
 def test_max_steps_cuts_unfinished_episodes():
-    demos = generate(PlanarArm(), flat_scenario(), 6, seed=0, max_steps=5)
+    demos = generate(PlanarArm(), flat_scenario(), 6, seed=0, max_steps=5, min_arrival=0.0, keep_incomplete=True)
     assert all(len(e) == 5 for e in demos)
     assert not completed_mask(demos, PlanarArm()).any()
 
@@ -348,3 +348,49 @@ def test_scripted_shelf_plugin_caches_through_the_parquet_loader(tmp_path, monke
     ).cache_path(robot)
     with pytest.raises(ConfigError, match="episodes"):
         Shelf(episodes=0)
+
+
+def test_refuses_a_dataset_whose_goal_is_missed_naming_goal_rate_and_cause():
+    # The planar arm reaches at most 0.80 m; a goal at 1.2 m cannot be reached from any pose.
+    sc = Scenario.from_dict({"name": "far", "jitter": 0.0, "dt": 0.1, "goals": [
+        {"name": "near", "position": [0.45, 0.25, 0.0], "approach_rpy_deg": [0, 0, 40]},
+        {"name": "far_shelf", "position": [1.2, 0.0, 0.0], "approach_rpy_deg": [0, 0, 0]},
+    ]})
+    with pytest.raises(DataError) as err:
+        generate(PlanarArm(), sc, 8, seed=0, noise=0.0)
+    msg = str(err.value)
+    assert "goal far_shelf" in msg and "reached in 0 of 4" in msg and "expected at least 95%" in msg
+    assert "out of reach" in msg or "joint limits" in msg
+    # asked to keep going, the misses are dropped (never trained on) and the rates are reported
+    demos = generate(PlanarArm(), sc, 8, seed=0, noise=0.0, min_arrival=0.0)
+    assert {demos.goal_names[e.goal] for e in demos} == {"near"}
+    assert demos.arrival["far_shelf"]["rate"] == 0.0 and demos.arrival["near"]["rate"] == 1.0
+
+
+def test_arrival_cause_fine_motion_when_the_budget_ends_after_the_approach():
+    from coreach.arrival import GoalArrival
+
+    a = GoalArrival("g", 10, 2, 0.004, 3.0, 0.0, "", 1.0)
+    assert a.rate == 0.2 and a.cause(0.01, 0.1).startswith("fine motion")
+    b = GoalArrival("g", 10, 2, 0.004, 30.0, 0.0, "", 0.0)
+    assert b.cause(0.01, 0.1).startswith("orientation not reachable")
+    c = GoalArrival("g", 10, 2, 0.2, 3.0, 0.9, "j1", 0.0)
+    assert c.cause(0.01, 0.1).startswith("joint limits: j1")
+
+
+def test_spread_and_via_starts_cover_more_states_and_still_arrive():
+    arm, sc = PlanarArm(), flat_scenario()
+    plain = rollout(arm, sc, 60, seed=2, noise=0.0)
+    wide = rollout(arm, sc, 60, seed=2, noise=0.0, start_jitter=0.05, spread_share=0.5, start_spread=0.4,
+                   via_share=0.5, via_steps=(5, 10))
+    starts = wide.q[:, 0]
+    assert float(plain.q[:, 0].std(0).max()) == 0.0  # every plain episode starts at home
+    assert float(starts.std(0).min()) > 0.05
+    assert int((wide.via_goals >= 0).sum()) == 30 and bool((wide.via_goals != wide.goals).all())
+    assert bool(wide.completed.all())
+    # a recorded via part heads for the other goal first: the first steps bring the tool closer to it
+    e = int((wide.via_goals >= 0).nonzero()[0])
+    other = wide.layout.approach_pos[e, wide.via_goals[e]]
+    pos, _ = arm.fk(wide.q[e, :6])
+    d = (pos - other).norm(dim=-1)
+    assert float(d[-1]) < float(d[0])
