@@ -11,7 +11,7 @@ from rich.table import Table
 
 def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     if as_json:
-        single = command in ("demo", "vet", "release", "drive") and len(summaries) == 1
+        single = command in ("demo", "vet", "release", "drive", "recipes") and len(summaries) == 1
         payload = summaries[0] if single else {"runs": summaries}
         print(json.dumps(payload, indent=2, default=str))
         for s in summaries:
@@ -32,6 +32,9 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "drive":
         for s in summaries:
             print_drive(console, s)
+    elif command == "recipes":
+        for s in summaries:
+            print_recipes(console, s)
     elif command.startswith("bench"):
         for s in summaries:
             table = Table(title=command)
@@ -145,6 +148,17 @@ def print_drive(console, s: dict) -> None:
         console.print(table)
         console.print("replay MATCHES vetting" if c["match"] else "[bold red]replay does NOT match vetting[/bold red]")
     console.print(f"({s['note']})")
+
+
+def print_recipes(console, s: dict) -> None:
+    """The recipes table, where its files went, and the MLflow run that holds them."""
+    from coreach.commands.recipes import terminal_table
+
+    console.print(terminal_table(s))
+    # paths and overrides are full of [brackets], which rich would read as markup
+    console.print(f"written: {', '.join(s['files'].values())}", markup=False)
+    console.print(f"recipes run in MLflow: {s['parent_run']} ({s['tracking']})", markup=False)
+    console.print(f"reproduce with: {s['command']}", markup=False, soft_wrap=True)
 
 
 def print_demo_release(console, r: dict) -> None:
