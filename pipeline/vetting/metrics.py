@@ -33,7 +33,7 @@ class Rate:
 @dataclass(frozen=True)
 class Tolerances:
     """Thresholds of the summary. collapse_authority: median control authority (rad/s per unit stick)
-    below which the latent counts as collapsed (FIELD-NOTES pitfall 1); confidence: level of every interval;
+    below which the latent counts as collapsed (measured in an earlier experiment on this machine); confidence: level of every interval;
     bins: edges of the belief-confidence bins of the ultimate bound."""
 
     collapse_authority: float = 0.02
