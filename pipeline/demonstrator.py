@@ -126,11 +126,15 @@ def expert_twist(pos: Tensor, rot: Tensor, target: Tensor, target_rot: Tensor, k
     return torch.cat([_cap_norm(k_p * (target - pos), v_max), _cap_norm(k_r * rot_err, w_max)], dim=-1)
 
 
-def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, damping: float) -> Tensor:
-    """Noise-free joint velocity [B, n] for a twist: damped least squares, then the speed and position
-    limits the recorded demonstrations obey (shared by `rollout` and the aggregation labels)."""
+def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, damping: float,
+                  noise: Tensor | None = None) -> Tensor:  # fmt: skip
+    """Joint velocity [B, n] for a twist: damped least squares, plus `noise` [B, n] (rad/s) when given, then
+    the speed and position limits the recorded demonstrations obey (shared by `rollout` and the
+    aggregation labels, which pass no noise)."""
     f64 = torch.float64
     qd = dls_step(J, twist, damping)
+    if noise is not None:
+        qd = qd + noise
     qd = scale_to_speed_limits(qd, robot.qd_max.to(f64))
     return clamp_to_joint_limits(qd, q, dt, robot.q_lower.to(f64), robot.q_upper.to(f64))
 
@@ -206,7 +210,6 @@ def rollout(
     T_max = int(max_steps) + int(via_left.max())  # heading elsewhere first must not eat the episode's budget
 
     n = robot.dof
-    lower, upper = robot.q_lower.to(f64), robot.q_upper.to(f64)
     qd_max = robot.qd_max.to(f64)
     if uses_starts:
         q = _start_poses(robot, E, gen, start_jitter, spread_share, start_spread)
@@ -249,14 +252,11 @@ def rollout(
             target_rot = torch.where(heading_via[:, None, None], R_via[idx], R_app[idx])
             twist = expert_twist(pos, rot, target, target_rot, k_p, k_r, v_max, w_max)
             J = robot.jacobian(qa).to(f64)  # [B, 6, n]
-            qd = dls_step(J, twist, damping)
-            qd = qd + noise * qd_max * noise_draw[keep]
-            qd = scale_to_speed_limits(qd, qd_max)
-            qd = clamp_to_joint_limits(qd, qa, dt, lower, upper)
+            qd = expert_action(robot, qa, J, twist, dt, damping, noise * qd_max * noise_draw[keep])
 
-            record = idx[~heading_via | bool(record_via)]
+            sel = ~heading_via | bool(record_via)  # heading elsewhere first is recorded only with record_via
+            record = idx[sel]
             slot = lengths[record]
-            sel = ~heading_via | bool(record_via)
             rec_q[record, slot], rec_qd[record, slot] = qa[sel], qd[sel]
             rec_pos[record, slot], rec_rot[record, slot] = pos[sel], rot[sel]
             lengths[record] += 1

@@ -64,7 +64,10 @@ def rollout_suites(cfg: DictConfig, robot) -> list[Suite]:
     for op in operators:
         data = {**base, "name": f"aggregate-{op}", "operator": op, "seed": MIN_SEED}
         suite = suite_from_dict(data, f"{WHERE}.rollout")
-        suite.validate(robot, where=f"{WHERE}.rollout (operator {op})")
+        if suites:  # the reach check does not depend on the operator: run the demonstrator once
+            suite.build_operator()
+        else:
+            suite.validate(robot, where=f"{WHERE}.rollout (operator {op})")
         suites.append(suite)
     return suites
 
@@ -135,8 +138,8 @@ def aggregate(cfg: DictConfig) -> dict:
     limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
     suites = rollout_suites(cfg, robot)
     start = opts.get("start_run")
-    if start:
-        _decoder(str(start))  # refuse a run that is not a decoder before anything is written
+    # refuse a run that is not a decoder before anything is written; round 1 rolls this one out
+    interface = _decoder(str(start)) if start else None
     base = build_plugin(cfg.dataset, "dataset").load(robot)
     label = str(cfg.get("label") or "decoder")
 
@@ -164,7 +167,7 @@ def aggregate(cfg: DictConfig) -> dict:
                            "val_loss": first["val_loss"]})  # fmt: skip
         data = list(base.episodes)
         for r, seed in enumerate(seeds, start=1):
-            interface = _decoder(current)
+            interface = interface if r == 1 and interface is not None else _decoder(current)
             fig = figure(robot, interface, suites, int(opts.figure_seed), belief, limits)
             rounds[-1]["figure"] = fig
             _log_round(client, parent, r - 1, fig)
