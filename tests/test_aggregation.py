@@ -95,3 +95,20 @@ def test_one_round_adds_labelled_closed_loop_states_and_records_the_lineage(work
     pos, _ = arm.fk(torch.as_tensor(e.q))
     np.testing.assert_allclose(e.ee_pos, pos.double().numpy(), atol=1e-9)
     assert np.abs(e.qd).max() <= float(arm.qd_max.max()) + 1e-9
+
+
+def test_table_output_names_every_round_and_how_to_vet_the_result():
+    from rich.console import Console
+
+    from coreach.commands.summaries import print_aggregate
+
+    summary = {"label": "cvae", "parent_run": "p" * 32, "run_id": "b" * 32, "rounds": [
+        {"round": 0, "run_id": "a" * 32, "episodes": 40, "figure": {"success": 0.25, "episodes": 16}},
+        {"round": 1, "run_id": "b" * 32, "episodes": 56, "added": {"episodes": 16, "states": 3200},
+         "figure": {"success": 0.5, "episodes": 16}},
+    ]}  # fmt: skip
+    console = Console(record=True, width=250)
+    print_aggregate(console, summary)
+    text = console.export_text()
+    assert "a" * 32 in text and "3200" in text and "0.25 (n=16)" in text and "0.50 (n=16)" in text
+    assert f"candidates=[{'b' * 32},direct,blend]" in text

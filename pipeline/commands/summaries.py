@@ -35,6 +35,9 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "recipes":
         for s in summaries:
             print_recipes(console, s)
+    elif command == "aggregate":
+        for s in summaries:
+            print_aggregate(console, s)
     elif command.startswith("bench"):
         for s in summaries:
             table = Table(title=command)
@@ -159,6 +162,22 @@ def print_recipes(console, s: dict) -> None:
     console.print(f"written: {', '.join(s['files'].values())}", markup=False)
     console.print(f"recipes run in MLflow: {s['parent_run']} ({s['tracking']})", markup=False)
     console.print(f"reproduce with: {s['command']}", markup=False, soft_wrap=True)
+
+
+def print_aggregate(console, s: dict) -> None:
+    """One row per aggregation round: its decoder, dataset size, what it added, and its closed-loop figure."""
+    table = Table(title=f"data aggregation: {s['label']} (MLflow parent run {s['parent_run']})")
+    for col in ("round", "training run", "episodes", "added episodes", "added states", "success (figure episodes)"):
+        table.add_column(col)
+    for r in s["rounds"]:
+        added = r.get("added") or {}
+        fig = r.get("figure") or {}
+        success = f"{fig['success']:.2f} (n={fig['episodes']})" if fig else "-"
+        table.add_row(str(r["round"]), r["run_id"], str(r["episodes"]), str(added.get("episodes", "-")),
+                      str(added.get("states", "-")), success)  # fmt: skip
+    console.print(table)
+    console.print("the figure episodes are training-side rollouts, not a vetting suite; vet the last round with: "
+                  f".venv/bin/coreach vet 'candidates=[{s['run_id']},direct,blend]' suite=goal-switch", markup=False)  # fmt: skip
 
 
 def print_demo_release(console, r: dict) -> None:
