@@ -93,7 +93,15 @@ def mlflow_hint() -> str:
 def print_vetting(console, result: dict) -> None:
     from coreach.vetting.report import terminal_table
 
+    from coreach.vetting.diagnosis_report import cause_table, goal_table
+
     console.print(terminal_table(result["summaries"]))
+    if any(s.get("diagnosis") for s in result["summaries"].values()):
+        console.print(goal_table(result["summaries"]))
+        console.print(cause_table(result["summaries"]))
+        for label, s in result["summaries"].items():
+            for line in (s.get("diagnosis") or {}).get("advice", []):
+                console.print(f"{label}: {line}", markup=False)
     console.print(f"report: {result['report']}")
     if result.get("vet_runs"):
         console.print("vetting runs in MLflow: " + ", ".join(f"{k}={v}" for k, v in result["vet_runs"].items()))

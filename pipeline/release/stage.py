@@ -30,7 +30,8 @@ from coreach.runtime.model_card import CAUTIONS
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import flat_metrics, summarise
-from coreach.vetting.report import plot_action_maps, standard_plots, state_from_record, write_report
+from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots
+from coreach.vetting.report import standard_plots, write_report
 from coreach.vetting.suite import load_suite
 
 log = logging.getLogger("coreach.release")
@@ -195,16 +196,15 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
         summaries[suite.name] = summarise(record, suite.tolerances)
         violations = G.count_violations(record, robot, limits, workspace)
         results += G.suite_gates(suite.name, summaries[suite.name], violations, th)
-        if not plots:  # one action map is enough to show what the stick does
-            goal_rot = suite.episodes_plan(suite.generator(), robot).layout.approach_rot
-            state = state_from_record(record, robot, episode=0, step=0, goal_rot=goal_rot)
-            plots.append(plot_action_maps(interface, state, report_dir / "action-map.png",
-                                          goal=int(record.goal_initial[0]), goal_names=record.goal_names))  # fmt: skip
+        goal_rot = suite.episodes_plan(suite.generator(), robot).layout.approach_rot
+        plots += diagnosis_plots(f"{label} on {suite.name}", record, interface, robot, goal_rot,
+                                 summaries[suite.name], report_dir)  # fmt: skip
     keyed = {f"{label} on {k}": v for k, v in summaries.items()}
     plots = standard_plots(keyed, report_dir) + plots
     report = write_report(keyed, plots, report_dir, f"coreach release gate: {label}",
                           {"training run": run.info.run_id, "suites": ", ".join(summaries),
-                           "episodes": ", ".join(str(s["n_episodes"]) for s in summaries.values())})  # fmt: skip
+                           "episodes": ", ".join(str(s["n_episodes"]) for s in summaries.values())},
+                          sections=diagnosis_html(keyed))  # fmt: skip
     meta = release_meta(cfg, robot, suites, run, label, summaries)
 
     parity, latency = None, None

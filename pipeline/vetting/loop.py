@@ -35,9 +35,11 @@ from coreach.geometry import rotation_error
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.suite import EpisodePlan, Suite
 
-__all__ = ["rollout", "rollout_per_episode", "ORIENTATION_WEIGHT", "REACH_PROGRESS"]
+__all__ = ["rollout", "rollout_per_episode", "ORIENTATION_WEIGHT", "REACH_PROGRESS", "JOINT_LIMIT", "SPEED_CAP"]
 
 ORIENTATION_WEIGHT = 0.05  # m per rad: 1 rad of orientation progress is worth 5 cm of position progress
+# Which safety limit changed a command: a speed cap only shortens it, a joint-position limit can turn it.
+JOINT_LIMIT, SPEED_CAP = 1, 2
 REACH_PROGRESS = 1e-3  # m per step a candidate must gain toward a goal for that goal to count as reachable
 Progress = Callable[[int, int], None]
 
@@ -54,7 +56,8 @@ def _kinematics(robot, q: Tensor, jacobian: bool):
 
 
 def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, dt: float) -> tuple[Tensor, Tensor]:
-    """Shared safety limits on commands qd [..., n] at q (broadcastable), jac_lin [..., 3, n].
+    """Shared safety limits on commands qd [..., n] at q (broadcastable), jac_lin [..., 3, n] -> (limited qd,
+    which limits acted [...]: JOINT_LIMIT | SPEED_CAP bits, 0 = none).
 
     keep_inside runs first: a uniform scale-down (cap) of a command that keeps q + qd dt inside the joint
     box keeps it inside (the box is convex and holds q), whereas clipping joints after capping could raise
@@ -62,7 +65,7 @@ def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, dt: float) -> tuple[T
     """
     qd, outside = limits.keep_inside(q, qd, dt)
     qd, fast = limits.cap(qd, jac_lin)
-    return qd, outside | fast
+    return qd, outside.to(torch.uint8) * JOINT_LIMIT | fast.to(torch.uint8) * SPEED_CAP
 
 
 def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> None:
@@ -94,13 +97,13 @@ def _values(twist: Tensor, to_wp: Tensor, rot_err: Tensor, mode: Tensor, switch_
 
 
 def _reachable(dx: Tensor, pos: Tensor, approach: Tensor, tol: float) -> Tensor:
-    """[E] bool: for every goal, some candidate (dx [E, M, K, 3], any mode) brings the tool more than
-    REACH_PROGRESS closer to its approach point (approach [E, G, 3]), or the tool is already within `tol`."""
+    """[E, G] bool: some candidate (dx [E, M, K, 3], any mode) brings the tool more than REACH_PROGRESS
+    closer to goal g's approach point (approach [E, G, 3]), or the tool is already within `tol` of it."""
     E = dx.shape[0]
     d0 = (pos[:, None, :] - approach).norm(dim=-1)  # [E, G]
     moved = pos[:, None, None, :] + dx.reshape(E, -1, 1, 3)  # [E, MK, 1, 3]
     gain = (d0[:, None, :] - (moved - approach[:, None]).norm(dim=-1)).amax(dim=1)  # [E, G]
-    return ((gain > REACH_PROGRESS) | (d0 < tol)).all(dim=-1)
+    return (gain > REACH_PROGRESS) | (d0 < tol)
 
 
 def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, plan: EpisodePlan,
@@ -140,9 +143,10 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     rec_pos = torch.empty(E, T + 1, 3, dtype=dtype)
     rec_belief = torch.empty(E, T + 1, G, dtype=dtype)
     rec_error = torch.empty(E, T + 1, dtype=dtype)
-    rec_interv = torch.zeros(E, T, dtype=torch.bool)
+    rec_limits = torch.zeros(E, T, dtype=torch.uint8)
     rec_mode = torch.zeros(E, T, dtype=torch.long)
-    rec_reach = torch.zeros(E, T, dtype=torch.bool)
+    rec_reach = torch.zeros(E, T, G, dtype=torch.bool)
+    rec_ori = torch.empty(E, T + 1, dtype=dtype)
     rec_auth = torch.full((E, T), math.nan, dtype=dtype)
 
     _reset_operator(operator, E, generator, dt)
@@ -181,6 +185,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
 
         rec_q[:, t], rec_pos[:, t], rec_belief[:, t] = q, pos, belief
         rec_error[:, t] = to_wp.norm(dim=-1)
+        rec_ori[:, t] = ang
         if t == T:
             break
 
@@ -232,7 +237,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             active &= ~switching
         qd = torch.where(active[:, None], qd, 0.0)
         rec_qd[:, t], rec_mode[:, t] = qd, mode
-        rec_interv[:, t] = hit & active
+        rec_limits[:, t] = hit * active
         prev_pos = pos
         q = q + qd * dt
         if progress is not None:
@@ -240,7 +245,8 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
 
     return dict(
         success=success, success_step=success_step, ee_path=rec_pos, belief=rec_belief,
-        belief_at_switch=belief_at_switch, error=rec_error, interventions=rec_interv, reachable=rec_reach,
+        belief_at_switch=belief_at_switch, error=rec_error, interventions=rec_limits > 0, limits=rec_limits,
+        reachable=rec_reach.all(dim=-1), reach_goal=rec_reach, orientation_error=rec_ori,
         authority=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, mode=rec_mode, phase1_step=phase1_step,
         initial_done_step=initial_done_step,
     )  # fmt: skip
@@ -253,6 +259,11 @@ def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: di
         "mode": out.pop("mode"),  # [E, T] interface mode after each step's choice
         "phase1_step": out.pop("phase1_step"),  # [E] first step at the final goal's approach pose, -1 never
         "initial_done_step": out.pop("initial_done_step"),  # [E] initial goal completed before its switch
+        "limits": out.pop("limits"),  # [E, T] uint8: JOINT_LIMIT | SPEED_CAP bits of the applied command
+        "reach_goal": out.pop("reach_goal"),  # [E, T, G] some candidate stick made progress toward goal g
+        "orientation_error": out.pop("orientation_error"),  # [E, T+1] rad to the current goal's approach rotation
+        "position_tol": suite.position_tol,  # m, the suite's arrival tolerances (diagnosis reads them)
+        "orientation_tol": suite.orientation_tol,  # rad
         "goal_targets": plan.layout.targets,  # [E, G, 2, 3]
         "operator": operator.name,
         "robot": robot.name,

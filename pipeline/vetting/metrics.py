@@ -273,7 +273,18 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
                          "n": int(reach.numel())},  # fmt: skip
         "mode_switches": {"mean": float(record.mode_switches.to(torch.float64).mean())},
         "ultimate_bound": bound_by_confidence(record, tol.bins),
+        "diagnosis": _diagnosis(record, level),
     }
+
+
+def _diagnosis(record: RolloutRecord, level: float) -> dict | None:
+    """Why episodes failed (coreach.vetting.diagnosis), when the record carries the loop's extras."""
+    from coreach.vetting.diagnosis import diagnose  # it builds on this module's rates: imported late
+
+    needed = ("goal_targets", "phase1_step", "orientation_error", "position_tol")
+    if not isinstance(record.extras, dict) or any(k not in record.extras for k in needed):
+        return None
+    return diagnose(record, level)
 
 
 def flat_metrics(summary: dict) -> dict[str, float]:
@@ -297,4 +308,9 @@ def flat_metrics(summary: dict) -> dict[str, float]:
     for row in summary["ultimate_bound"]:
         for k in ("k", "w", "bound", "n"):
             put(f"ultimate_bound/{row['bin']}/{k}", row[k])
+    if summary.get("diagnosis"):
+        from coreach.vetting.diagnosis import flat_diagnosis
+
+        for k, v in flat_diagnosis(summary["diagnosis"]).items():
+            put(k, v)
     return out

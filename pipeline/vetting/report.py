@@ -98,6 +98,45 @@ def state_from_record(record, robot, episode: int = 0, step: int = 0, goal_rot: 
                      float(record.dt))  # fmt: skip
 
 
+def tool_velocities(interface, states, grid: int = 7) -> tuple[np.ndarray, np.ndarray]:
+    """Stick points [K, 2] on a grid x grid lattice of the stick box, and the tool velocity J_lin @ act(stick)
+    [L, K, 3] (m/s) at each of the L states in `states` (mode 0 for multi-mode interfaces)."""
+    axis = torch.linspace(-1.0, 1.0, grid, dtype=torch.float64)
+    s0, s1 = torch.meshgrid(axis, axis, indexing="xy")
+    stick = torch.stack([s0.reshape(-1), s1.reshape(-1)], dim=-1)  # [K, 2]
+    if hasattr(interface, "reset"):
+        interface.reset(int(states.q.shape[0]), states)
+    qd = interface.act(stick, states)[:, 0].to(torch.float64)  # [L, K, n]
+    v = torch.einsum("lij,lkj->lki", states.jac[:, :3].to(torch.float64), qd)  # [L, K, 3]
+    return stick.numpy(), v.numpy()
+
+
+def draw_stick_panel(ax, stick: np.ndarray, v: np.ndarray, to_goal: np.ndarray, plane: tuple[int, int],
+                     scale: float, title: str) -> None:  # fmt: skip
+    """One projection of a velocity field over the stick box (v [K, 3]); the red arrow points to the goal."""
+    a, b = plane
+    ax.quiver(stick[:, 0], stick[:, 1], v[:, a], v[:, b], angles="xy", scale_units="xy", scale=scale, width=0.006)
+    d = to_goal[[a, b]]
+    if np.linalg.norm(d) > 0:
+        d = d / np.linalg.norm(d) * 0.8
+        ax.annotate("", xy=(d[0], d[1]), xytext=(0, 0), arrowprops={"color": "tab:red", "width": 1.5})
+    ax.set_xlim(-1.25, 1.25)
+    ax.set_ylim(-1.25, 1.25)
+    ax.set_aspect("equal")
+    ax.set_title(title, fontsize=9)
+    ax.set_xlabel("stick axis 0")
+    ax.set_ylabel("stick axis 1")
+
+
+def arrow_scale(v: np.ndarray, grid: int) -> tuple[float, float]:
+    """(longest speed, quiver scale): the fastest arrow spans 90% of a grid cell, the same in every panel."""
+    top = float(np.linalg.norm(v, axis=-1).max()) or 1.0
+    return top, top / (0.9 * 2.0 / max(grid - 1, 1))
+
+
+PLANES = ((0, 1, "x-y"), (0, 2, "x-z"))
+
+
 def plot_action_maps(
     interface,
     state,
@@ -113,37 +152,18 @@ def plot_action_maps(
     (bottom row), one column per belief level on `goal` (None = uniform); mode 0 for multi-mode interfaces.
     The red arrow points from the tool to the goal's approach point."""
     st = states_at_confidence(state, episode, goal, levels)
-    axis = torch.linspace(-1.0, 1.0, grid, dtype=torch.float64)
-    s0, s1 = torch.meshgrid(axis, axis, indexing="xy")
-    stick = torch.stack([s0.reshape(-1), s1.reshape(-1)], dim=-1)  # [K, 2]
-    if hasattr(interface, "reset"):
-        interface.reset(len(levels), st)
-    qd = interface.act(stick, st)[:, 0].to(torch.float64)  # [L, K, n]
-    v = torch.einsum("lij,lkj->lki", st.jac[:, :3].to(torch.float64), qd).numpy()  # [L, K, 3] m/s
+    stick, v = tool_velocities(interface, st, grid)
     to_goal = (st.goal_targets[0, goal, 0] - st.ee_pos[0]).to(torch.float64).numpy()
-    spacing = 2.0 / max(grid - 1, 1)
-    top = float(np.linalg.norm(v, axis=-1).max()) or 1.0
-    scale = top / (0.9 * spacing)  # the fastest arrow spans 90% of a grid cell, same scale in every panel
+    top, scale = arrow_scale(v, grid)
     name = goal_names[goal] if goal_names else f"goal {goal}"
 
     fig = Figure(figsize=(3.4 * len(levels), 6.4), layout="constrained")
     axes = fig.subplots(2, len(levels), squeeze=False)
     for j, level in enumerate(levels):
         label = "uniform" if level is None else f"{float(level):.2f}"
-        for i, (a, b, plane) in enumerate(((0, 1, "x-y"), (0, 2, "x-z"))):
-            ax = axes[i][j]
-            ax.quiver(stick[:, 0].numpy(), stick[:, 1].numpy(), v[j, :, a], v[j, :, b], angles="xy",
-                      scale_units="xy", scale=scale, width=0.006)  # fmt: skip
-            d = to_goal[[a, b]]
-            if np.linalg.norm(d) > 0:
-                d = d / np.linalg.norm(d) * 0.8
-                ax.annotate("", xy=(d[0], d[1]), xytext=(0, 0), arrowprops={"color": "tab:red", "width": 1.5})
-            ax.set_xlim(-1.25, 1.25)
-            ax.set_ylim(-1.25, 1.25)
-            ax.set_aspect("equal")
-            ax.set_title(f"{plane} velocity, belief on {name}: {label}", fontsize=9)
-            ax.set_xlabel("stick axis 0")
-            ax.set_ylabel("stick axis 1")
+        for i, (a, b, plane) in enumerate(PLANES):
+            draw_stick_panel(axes[i][j], stick, v[j], to_goal, (a, b), scale,
+                             f"{plane} velocity, belief on {name}: {label}")  # fmt: skip
     fig.suptitle(f"{interface.name}: tool velocity over the stick box (longest arrow {top:.3f} m/s)", fontsize=10)
     return _save(fig, path)
 
@@ -281,8 +301,10 @@ STYLE = (
 )
 
 
-def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, title: str, meta: dict) -> Path:
-    """One self-contained HTML file (images inlined, no links) at out_dir/report.html."""
+def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, title: str, meta: dict,
+                 sections: str = "") -> Path:  # fmt: skip
+    """One self-contained HTML file (images inlined, no links) at out_dir/report.html; `sections` is more
+    HTML placed before the plots (the failure diagnosis)."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     labels = list(summaries)
@@ -316,6 +338,7 @@ def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, t
 <h2>Ultimate bound of the tracking error by belief confidence</h2>
 <p>Fit of e' = -k e + d with |d| &le; w (w: 95th percentile of the fitted disturbance) on the steps whose
 belief confidence falls in each bin; w/k is where the error settles.</p>{bounds}
+{sections}
 <h2>Plots</h2>
 {"".join(_image(p) for p in plots)}
 </body></html>

@@ -15,9 +15,10 @@ from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin
 from coreach.safety import SafetyLimits
 from coreach.training.callbacks import interactive
+from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import flat_metrics, summarise
-from coreach.vetting.report import plot_action_maps, standard_plots, state_from_record, write_report
+from coreach.vetting.report import standard_plots, write_report
 from coreach.vetting.suite import load_suite
 
 log = logging.getLogger("coreach.vet")
@@ -125,11 +126,9 @@ def vet(cfg: DictConfig) -> dict:
         progress.close()
 
     plots += standard_plots(summaries, out)
+    plots += [p for p in [plot_reach_by_goal(summaries, out / "reach_by_goal.png")] if p]
     for label, (record, interface, _) in records.items():
-        state = state_from_record(record, robot, episode=0, step=0, goal_rot=goal_rot)
-        goal = int(record.goal_initial[0])
-        plots.append(plot_action_maps(interface, state, out / f"action-map-{_slug(label)}.png", goal=goal,
-                                      goal_names=record.goal_names))  # fmt: skip
+        plots += diagnosis_plots(label, record, interface, robot, goal_rot, summaries[label], out)
     meta = {
         "suite": suite.name,
         "episodes": suite.n_episodes,
@@ -139,7 +138,8 @@ def vet(cfg: DictConfig) -> dict:
         "tracking": uri,
         "candidates": ", ".join(f"{k} ({v[2] or 'baseline'})" for k, v in records.items()),
     }
-    report = write_report(summaries, plots, out, f"coreach vetting: {suite.name}", meta)
+    report = write_report(summaries, plots, out, f"coreach vetting: {suite.name}", meta,
+                          sections=diagnosis_html(summaries))  # fmt: skip
     (out / "summary.json").write_text(json.dumps(summaries, indent=2, default=str))
 
     vet_runs = {}
@@ -189,10 +189,6 @@ def _unique(label: str, taken: dict) -> str:
     while out in taken:
         out, i = f"{label}#{i}", i + 1
     return out
-
-
-def _slug(label: str) -> str:
-    return "".join(c if c.isalnum() or c in "-_" else "_" for c in label)
 
 
 __all__ = ["vet", "build_candidate", "candidate_list"]
