@@ -220,7 +220,16 @@ def test_two_recipes_two_seeds_end_to_end(workdir):
     assert sum(ln.startswith(("| lin |", "| cvae |")) for ln in md) == 6  # 2 x (2 seeds + spread)
     assert json.loads((folder / "results.json").read_text())["rows"] == out["rows"]
     rows = list(csv.DictReader((folder / "results.csv").open()))
-    assert len([r for r in rows if r["kind"] == "seed"]) == 4 and len([r for r in rows if r["kind"] == "spread"]) == 2
+    # a no-switch suite gets a success column per goal its episodes ended at (2 episodes: 2 goals), from the
+    # vetting diagnosis; each seed row's goal rates pool back to its overall success
+    goal_cols = [c for c in out["columns"] if c["metric"] == "goal"]
+    assert len(goal_cols) == 2
+    for r in out["rows"]:
+        per_goal = r["suites"]["tiny"]["per_goal"]
+        assert sum(g["value"] * g["n"] for g in per_goal.values()) == pytest.approx(r["suites"]["tiny"]["success"]["value"] * 2)
+    per_row = 1 + len(goal_cols)
+    assert len([r for r in rows if r["kind"] == "seed"]) == 4 * per_row
+    assert len([r for r in rows if r["kind"] == "spread"]) == 2 * per_row
 
     # MLflow: a parent run with the files; every training and vetting run nested under it
     client = MlflowClient(f"sqlite:///{workdir / 'mlflow.db'}")

@@ -19,6 +19,7 @@ from omegaconf import DictConfig, ListConfig, OmegaConf
 from coreach import tracking
 from coreach.commands.compare import _atomic_write
 from coreach.errors import ConfigError, CoreachError
+from coreach.vetting.diagnosis import without_episodes
 
 log = logging.getLogger("coreach.recipes")
 
@@ -347,7 +348,7 @@ def _cell(summary: dict, vet_run: str | None) -> dict:
     out = {"success": _rate(summary["success"]), "recovery": summary.get("recovery", {}),
            "per_goal": per_goal(summary), "vetting_run": vet_run}  # fmt: skip
     if summary.get("diagnosis") is not None:
-        out["diagnosis"] = summary["diagnosis"]  # cause shares and the rest, as the vetting stage wrote them
+        out["diagnosis"] = without_episodes(summary["diagnosis"])  # cause shares, per goal and cell, advice
     return out
 
 

@@ -93,18 +93,24 @@ def mlflow_hint() -> str:
 def print_vetting(console, result: dict) -> None:
     from coreach.vetting.report import terminal_table
 
-    from coreach.vetting.diagnosis_report import cause_table, goal_table
-
     console.print(terminal_table(result["summaries"]))
-    if any(s.get("diagnosis") for s in result["summaries"].values()):
-        console.print(goal_table(result["summaries"]))
-        console.print(cause_table(result["summaries"]))
-        for label, s in result["summaries"].items():
-            for line in (s.get("diagnosis") or {}).get("advice", []):
-                console.print(f"{label}: {line}", markup=False)
+    print_diagnosis(console, result["summaries"])
     console.print(f"report: {result['report']}")
     if result.get("vet_runs"):
         console.print("vetting runs in MLflow: " + ", ".join(f"{k}={v}" for k, v in result["vet_runs"].items()))
+
+
+def print_diagnosis(console, summaries: dict) -> None:
+    """Success per goal, the causes of failed episodes, and what they point to (summaries with a diagnosis)."""
+    from coreach.vetting.diagnosis_report import cause_table, goal_table
+
+    if not any(s.get("diagnosis") for s in summaries.values()):
+        return
+    console.print(goal_table(summaries))
+    console.print(cause_table(summaries))
+    for label, s in summaries.items():
+        for line in (s.get("diagnosis") or {}).get("advice", []):
+            console.print(f"{label}: {line}", markup=False)
 
 
 def refusal_line(s: dict) -> str:
@@ -127,6 +133,7 @@ def print_release(console, s: dict) -> None:
     verdict = "released" if s["released"] else "REFUSED"
     console.print(gate_table(s["gates"], f"release gate: {s['label']} (training run {s['training_run']}): {verdict}"))
     if not s["released"]:
+        print_diagnosis(console, {f"{s['label']} on {k}": v for k, v in s.get("vetting", {}).items()})
         print(refusal_line(s), file=sys.stderr)
         return
     console.print(f"released {s['name']} version {s['version']} (@{', @'.join(s.get('aliases', []))}): {s['bundle']}")

@@ -30,6 +30,7 @@ from coreach.runtime.model_card import CAUTIONS
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import flat_metrics, summarise
+from coreach.vetting.diagnosis import without_episodes
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots
 from coreach.vetting.report import standard_plots, write_report
 from coreach.vetting.suite import load_suite
@@ -289,7 +290,8 @@ def _vetting_view(summaries: dict) -> dict:
     out = {}
     for suite, s in summaries.items():
         out[suite] = {"success": s["success"], "recovery": s["recovery"], "authority_median": s["authority"]["median"],
-                      "time_to_success_median": s["time_to_success"]["median"], "n_episodes": s["n_episodes"]}
+                      "time_to_success_median": s["time_to_success"]["median"], "n_episodes": s["n_episodes"],
+                      "diagnosis": without_episodes(s.get("diagnosis"))}
     return out
 
 

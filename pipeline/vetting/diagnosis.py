@@ -33,7 +33,7 @@ from coreach.vetting.loop import JOINT_LIMIT, SPEED_CAP
 from coreach.vetting.metrics import rate, visited_steps
 from coreach.vetting.records import RolloutRecord
 
-__all__ = ["CAUSES", "STAGES", "DiagnosisRules", "classify", "diagnose", "advice", "flat_diagnosis"]
+__all__ = ["CAUSES", "STAGES", "DiagnosisRules", "classify", "diagnose", "advice", "flat_diagnosis", "without_episodes"]
 
 # cause key -> what a report says
 CAUSES = {
@@ -55,8 +55,9 @@ STAGES = {
 # What each cause usually points to: data (what the demonstrations cover), model (capacity, epochs, stick
 # scaling), loss (KL and entropy-term weights), or the scene and limits. A reading aid, not a verdict.
 _FIXES = {
-    "limited": ("limits / data", "decoded speeds run into the shared caps or joint limits: check demonstration "
-                "speeds and joint margins at these goals, or the caps in conf/safety"),
+    "limited": ("data", "the arm ends pressed against a joint limit: the decoder drove it out of the region the "
+                "demonstrations cover and offers no way back (start spread, `coreach aggregate`); check the "
+                "goals' joint margins with the demonstrator"),
     "no_way": ("data / loss", "where these episodes end, every stick input leads away from the goal: the arm "
                "left the states the demonstrations cover (start spread, `coreach aggregate`), or the entropy "
                "term's weight is too low to keep the goal reachable"),
@@ -203,6 +204,8 @@ def diagnose(record: RolloutRecord, level: float = 0.95, rules=None) -> dict:
                 row[c] = asdict(rate(record.success[pick], level))
         by_cell[name] = row
 
+    per_goal = {name: asdict(rate(record.success[record.goal_final == g], level)) for g, name in enumerate(names)
+                if bool((record.goal_final == g).any())}  # fmt: skip
     failed = [e for e in range(record.n_episodes) if out["cause"][e]]
     counts = {k: sum(out["cause"][e] == k for e in failed) for k in CAUSES}
     stages = {k: sum(out["stage"][e] == k for e in failed) for k in STAGES}
@@ -223,6 +226,7 @@ def diagnose(record: RolloutRecord, level: float = 0.95, rules=None) -> dict:
     } for e in failed]  # fmt: skip
     result = {
         "rules": asdict(rules),
+        "per_goal": per_goal,  # success per final goal over all switch cells
         "by_goal_cell": by_cell,
         "failures": len(failed),
         "causes": counts,
@@ -267,3 +271,8 @@ def flat_diagnosis(diag: dict) -> dict[str, float]:
         if math.isfinite(share):
             out[f"diagnosis/reach/{goal}"] = float(share)
     return out
+
+
+def without_episodes(diag: dict | None) -> dict | None:
+    """A diagnosis without its per-episode rows: what a release summary or a table needs."""
+    return None if diag is None else {k: v for k, v in diag.items() if k != "episodes"}

@@ -180,10 +180,8 @@ def goal_table(summaries: dict[str, dict]):
     """Rich table: per interface, success per final goal over all switch cells, with the goal's reach."""
     from rich.table import Table
 
-    from coreach.vetting.metrics import wilson_interval
-
     diags = {k: s["diagnosis"] for k, s in summaries.items() if s.get("diagnosis")}
-    goals = list(next(iter(diags.values()))["by_goal_cell"]) if diags else []
+    goals = list(next(iter(diags.values()))["per_goal"]) if diags else []
     table = Table(title="success per final goal, all switch cells (reach: visited states with a stick toward it)")
     table.add_column("interface")
     for g in goals:
@@ -191,11 +189,7 @@ def goal_table(summaries: dict[str, dict]):
     for k, d in diags.items():
         row = []
         for g in goals:
-            cells = d["by_goal_cell"][g].values()
-            n = sum(c["n"] for c in cells)
-            wins = sum(round(c["value"] * c["n"]) for c in cells)
-            lo, hi = wilson_interval(wins, n)
-            reach = d["reach_by_goal"].get(g, float("nan"))
-            row.append(f"{wins / n:.2f} [{lo:.2f}, {hi:.2f}] reach {reach:.2f}" if n else "-")
+            r, reach = d["per_goal"].get(g), d["reach_by_goal"].get(g, float("nan"))
+            row.append(f"{r['value']:.2f} [{r['lo']:.2f}, {r['hi']:.2f}] reach {reach:.2f}" if r else "-")
         table.add_row(k, *row)
     return table
