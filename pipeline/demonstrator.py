@@ -161,6 +161,7 @@ def rollout(
     via_share: float = 0.0,
     via_steps: tuple[int, int] | list[int] = (5, 30),
     record_via: bool = True,
+    label_clean: bool = False,
 ) -> Rollout:
     """Step all episodes together; see `generate` for the options."""
     if isinstance(scenario, str):
@@ -253,11 +254,14 @@ def rollout(
             twist = expert_twist(pos, rot, target, target_rot, k_p, k_r, v_max, w_max)
             J = robot.jacobian(qa).to(f64)  # [B, 6, n]
             qd = expert_action(robot, qa, J, twist, dt, damping, noise * qd_max * noise_draw[keep])
+            # label_clean: the noise moves the arm off the expert's path, the recorded label is the expert's
+            # own correction from there (noise injection, Laskey et al. 2017, DART)
+            label = expert_action(robot, qa, J, twist, dt, damping) if label_clean else qd
 
             sel = ~heading_via | bool(record_via)  # heading elsewhere first is recorded only with record_via
             record = idx[sel]
             slot = lengths[record]
-            rec_q[record, slot], rec_qd[record, slot] = qa[sel], qd[sel]
+            rec_q[record, slot], rec_qd[record, slot] = qa[sel], label[sel]
             rec_pos[record, slot], rec_rot[record, slot] = pos[sel], rot[sel]
             lengths[record] += 1
             via_left[idx] = (via_left[idx] - 1).clamp_min(0)
@@ -289,7 +293,8 @@ def generate(
     point), approach_rot_tol (rad; orientation needed before the fine motion starts); start_jitter (rad,
     uniform per joint around home), spread_share + start_spread (a share of episodes starting from a wider
     spread of poses), via_share + via_steps + record_via (a share of episodes that first head for another
-    goal for a number of steps, recorded or not).
+    goal for a number of steps, recorded or not); label_clean (execute the noisy action, record the
+    noise-free expert action at the state it led to: the labels correct the drift the noise causes).
 
     Self-check: every goal must be reached in at least `min_arrival` of its episodes, else DataError names
     the goal, its rate and the likely cause. Episodes that missed are dropped (kept with keep_incomplete),

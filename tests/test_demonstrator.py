@@ -394,3 +394,27 @@ def test_spread_and_via_starts_cover_more_states_and_still_arrive():
     pos, _ = arm.fk(wide.q[e, :6])
     d = (pos - other).norm(dim=-1)
     assert float(d[-1]) < float(d[0])
+
+
+def test_label_clean_records_the_noise_free_correction_at_the_state_the_noise_led_to():
+    from coreach.demonstrator import expert_action, expert_twist
+
+    arm, sc = PlanarArm(), flat_scenario()
+    noisy = rollout(arm, sc, 12, seed=4, noise=0.3)
+    clean = rollout(arm, sc, 12, seed=4, noise=0.3, label_clean=True)
+    # the same noisy motion is executed (same states), only the recorded labels differ
+    torch.testing.assert_close(clean.q, noisy.q, rtol=0, atol=0)
+    assert float((clean.qd - noisy.qd).abs().max()) > 0.01
+    # each clean label is the damped-least-squares expert at that state, with no noise: recompute it for
+    # the first step of every episode from the demonstrator's own velocity law
+    q0 = clean.q[:, 0]
+    pos, rot = arm.fk(q0)
+    rows = torch.arange(12)
+    target = clean.layout.approach_pos[rows, clean.goals]
+    target_rot = clean.layout.approach_rot[rows, clean.goals]
+    twist = expert_twist(pos, rot, target, target_rot, 2.0, 2.0, 0.15, 1.0)
+    want = expert_action(arm, q0, arm.jacobian(q0), twist, sc.dt, 0.05)
+    torch.testing.assert_close(clean.qd[:, 0], want, rtol=1e-10, atol=1e-12)
+    # without noise the option changes nothing
+    torch.testing.assert_close(rollout(arm, sc, 12, seed=4, noise=0.0, label_clean=True).qd,
+                               rollout(arm, sc, 12, seed=4, noise=0.0).qd, rtol=0, atol=0)

@@ -39,6 +39,7 @@ class ScriptedShelf:
         via_share: float = 0.0,
         via_steps: list[int] | tuple[int, int] = (5, 30),
         record_via: bool = True,
+        label_clean: bool = False,
         min_arrival: float = DEFAULT_MIN_ARRIVAL,
     ):
         if int(episodes) < 1:
@@ -54,6 +55,8 @@ class ScriptedShelf:
         self.starts = {"start_jitter": float(start_jitter), "spread_share": float(spread_share),
                        "start_spread": float(start_spread), "via_share": float(via_share),
                        "via_steps": [int(v) for v in via_steps], "record_via": bool(record_via)}  # fmt: skip
+        if label_clean:  # only when set, so the cache names of earlier settings stay as they were
+            self.starts["label_clean"] = True
         self.min_arrival = float(min_arrival)
 
     def cache_path(self, robot: Robot) -> Path:
