@@ -31,7 +31,8 @@ commands:
   promote   field a vetted version (coreach promote NAME VERSION) or restore the previous one
             (coreach promote NAME --back)
   releases  registered versions, aliases and gate results (coreach releases [NAME])
-  bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9)
+  bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
+                cVAE with and without goal_entropy (goal: <= 2x the time); bench.threads=1 on shared cores
   bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)
   bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
                 (coreach bench runtime bundle=<folder>; goals: p99 <= 100 us and <= 2x the bare call)

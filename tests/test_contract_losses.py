@@ -15,6 +15,7 @@ from hydra import compose, initialize_config_dir
 from omegaconf import OmegaConf
 
 from coreach.context import ContextSpec
+from coreach.errors import ConfigError
 from coreach.policy import DecoderPolicy
 from coreach.protocols import LossTerm
 from coreach.safety import SafetyLimits
@@ -115,6 +116,16 @@ def check_config_class(path: Path, composed) -> None:
     assert hydra.utils.instantiate(merged).weight == cfg.weight
 
 
+def check_options_validated(path: Path, composed) -> None:
+    """Every option refuses a value of the wrong kind with a ConfigError naming loss.<name>.<option>."""
+    cfg = OmegaConf.to_container(OmegaConf.load(path))
+    target = hydra.utils.get_class(cfg.pop("_target_"))
+    for option in cfg:
+        with pytest.raises(ConfigError) as err:
+            target(**{**cfg, option: "not-a-number"})
+        assert err.value.where == f"loss.{path.stem}.{option}"
+
+
 CHECKS = {
     "protocol": check_protocol,
     "scalar": check_scalar,
@@ -123,6 +134,7 @@ CHECKS = {
     "name": check_name,
     "package": check_package,
     "config_class": check_config_class,
+    "options_validated": check_options_validated,
 }
 PATHS = sorted(LOSS_DIR.glob("*.yaml"))
 CASES = [pytest.param(path, check, id=f"loss/{path.stem}::{check}") for path in PATHS for check in CHECKS]

@@ -9,6 +9,7 @@ import pytest
 import scipy.special
 import scipy.stats
 import torch
+from torch import Tensor
 from torch.distributions import Normal, kl_divergence
 
 from coreach.context import ContextSpec
@@ -199,6 +200,101 @@ def test_reachability_cannot_gain_from_speed():
     torch.testing.assert_close(term(fast), term(faster))
     slow = make_batch(scale_output=1e-3)  # far below the caps: progress scales with speed
     assert not torch.allclose(term(slow), term(fast))
+
+
+# --- the context subset and the cost-saving paths ------------------------------------------------
+
+
+def _reachability_decoding_every_copy(term: GoalReachability, batch: TermBatch) -> Tensor:
+    """The term as first written (before contexts existed, copies made explicit): what the current code
+    must reproduce whenever it judges the whole batch."""
+    raw = batch.raw_context
+    B, C = raw.shape
+    K, d, n = term.samples, batch.latent.shape[-1], batch.jac_lin.shape[-1]
+    stick = stratified_sticks(B, K, d, term._generator(raw.device, batch.global_step), dtype=raw.dtype)
+    qd = batch.policy(stick, raw[:, None, :].expand(B, K, C).contiguous())
+    qd, _ = batch.limits.cap(qd, batch.jac_lin[:, None].expand(B, K, 3, n).contiguous())
+    dx = torch.einsum("bij,bkj->bki", batch.jac_lin, qd) * term.horizon
+    progress = goal_progress(batch.ee_pos, dx, batch.goal_targets[:, :, 0, :])
+    return -stick_goal_information(progress, term.sharpness).mean()
+
+
+@pytest.mark.parametrize("contexts", [None, 40, 500])
+def test_reachability_on_every_context_matches_the_first_computation(contexts):
+    # contexts >= batch or null: nothing is left out, so value and gradient must be the old ones (1e-6)
+    batch = make_batch(batch=40)
+    params = list(batch.policy.decoder.parameters())
+    new = GoalReachability(contexts=contexts)(batch)
+    new_grad = torch.autograd.grad(new, params, allow_unused=True)
+    old = _reachability_decoding_every_copy(GoalReachability(), batch)
+    old_grad = torch.autograd.grad(old, params, allow_unused=True)
+    torch.testing.assert_close(new, old, rtol=0, atol=1e-6)
+    for a, b in zip(new_grad, old_grad):
+        assert (a is None) == (b is None)
+        if a is not None:
+            torch.testing.assert_close(a, b, rtol=0, atol=1e-6)
+
+
+def test_context_subset_is_a_mean_over_distinct_rows():
+    term = GoalReachability(contexts=8)
+    batch = make_batch(batch=40)
+    rows = term.rows(batch)
+    assert rows is not None and rows.shape == (8,) and len(set(rows.tolist())) == 8
+    assert 0 <= rows.min() and rows.max() < 40
+    # a context decodes the same sticks whether or not the others are judged too
+    params = list(batch.policy.decoder.decoder.parameters())
+    value = term(batch)
+    grad = torch.autograd.grad(value, params)
+    every = term.information(batch)
+    ref = -every[rows].mean()
+    torch.testing.assert_close(value, ref, rtol=0, atol=1e-6)
+    for a, b in zip(grad, torch.autograd.grad(ref, params)):
+        torch.testing.assert_close(a, b, rtol=0, atol=1e-6)
+
+
+def test_context_subset_is_uniform_over_steps():
+    # Reference: scipy.stats.chisquare against equal counts; over 400 steps each of 40 rows is drawn
+    # 400 * 8 / 40 = 80 times on average when the draw is uniform.
+    term = GoalReachability(contexts=8)
+    batch = make_batch(batch=40)
+    counts = np.zeros(40)
+    for step in range(400):
+        batch.global_step = step
+        counts[term.rows(batch).numpy()] += 1
+    assert counts.sum() == 400 * 8
+    assert scipy.stats.chisquare(counts).pvalue > 1e-3
+
+
+def test_context_subset_reproducible_and_leaves_global_rng_alone():
+    term = GoalReachability(contexts=8)
+    batch = make_batch(batch=40)
+    torch.manual_seed(11)
+    a, rows_a = term(batch), term.rows(batch)
+    after_term = torch.rand(3)
+    torch.manual_seed(11)
+    b, rows_b = term(batch), term.rows(batch)
+    torch.manual_seed(11)
+    untouched = torch.rand(3)
+    torch.manual_seed(12)
+    rows_c = term.rows(batch)
+    assert torch.equal(a, b) and torch.equal(rows_a, rows_b)
+    assert not torch.equal(rows_a, rows_c)  # the subset follows torch's seed
+    assert torch.equal(after_term, untouched)
+
+
+def test_validation_judges_every_context():
+    term = GoalReachability(contexts=8)
+    batch = make_batch(batch=40)
+    batch.policy.eval()
+    assert term.rows(batch) is None
+    torch.testing.assert_close(term(batch), _reachability_decoding_every_copy(term, batch), rtol=0, atol=1e-6)
+
+
+@pytest.mark.parametrize("bad", [0, -3, 2.5, True, "64"])
+def test_bad_contexts_raise_config_error(bad):
+    with pytest.raises(ConfigError) as err:
+        GoalReachability(contexts=bad)
+    assert err.value.where == "loss.goal_entropy.contexts"
 
 
 def test_bad_options_raise_config_error():
