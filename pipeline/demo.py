@@ -4,36 +4,36 @@ from __future__ import annotations
 
 import logging
 
-from hydra import compose
-from hydra.core.hydra_config import HydraConfig
 from omegaconf import DictConfig
 
+from coreach.commands.recipes import _compose, _stage, user_overrides
 from coreach.commands.summaries import mlflow_hint
-from coreach.training.run import train
 
 log = logging.getLogger("coreach.demo")
 
 
 def run_demo(cfg: DictConfig) -> dict:
-    """Train each decoder family of `demo.variants` on the same demonstrations, then vet them with the
-    baselines in closed loop."""
-    user = [o for o in HydraConfig.get().overrides.task if not o.startswith("hydra.")]
+    """Train each variant of `demo.variants` (a stage, train or aggregate, and its overrides) on the same
+    demonstrations, vet them with the baselines in closed loop, then release the best one that passes the
+    real gate, field it, step it in a runtime session and replay it against its vetting."""
+    user = [o for o in user_overrides() if not o.lstrip("+~").startswith("demo.")]  # the demo's own options
+    extra = [str(o) for o in cfg.demo.get("overrides", [])]
     runs = []
     for label, variant in cfg.demo.variants.items():
-        log.info("training %s", label)
-        sub = compose(config_name="demo", overrides=[*user, *variant, f"label='{label}'"])
-        runs.append(train(sub))
+        config_name, fn = _stage(str(variant.command), f"option demo.variants.{label}.command")
+        sub = _compose(config_name, [*extra, *user, *map(str, variant.overrides), f"label='{label}'"],
+                       f"demo variant {label}")  # fmt: skip
+        log.info("%s %s", variant.command, label)
+        summary = fn(sub)
+        runs.append({**summary, "label": label, "command": str(variant.command)})
     result = {"runs": runs}
     steps = [f"MLflow: {mlflow_hint()}"]
     if cfg.demo.vet.enabled:
         from coreach.vetting.stage import vet
 
         candidates = [r["run_id"] for r in runs] + list(cfg.demo.vet.baselines)
-        vet_cfg = compose(
-            config_name="vet",
-            overrides=[f"candidates=[{','.join(candidates)}]", f"suite={cfg.demo.vet.suite}",
-                       f"episodes={cfg.demo.vet.episodes}"],  # fmt: skip
-        )
+        vet_cfg = _compose("vet", [f"candidates=[{','.join(candidates)}]", f"suite={cfg.demo.vet.suite}",
+                                   f"episodes={cfg.demo.vet.episodes}"], "option demo.vet")  # fmt: skip
         result["vetting"] = vet(vet_cfg)
         steps.append(f"vetting report (open in a browser): {result['vetting']['report']}")
         steps.append(

@@ -189,6 +189,15 @@ def test_release_best_releases_a_demo_decoder_and_drives_it(trained, monkeypatch
     assert out["release"] is not None and out["release"]["released"]
     assert Path(out["release"]["bundle"]).parent.name == "demo-decoder"
     assert out["drive"]["comparison"]["match"], out["drive"]["comparison"]
+    # fielded in the registry, and stepped through the runtime session that ships
+    from mlflow import MlflowClient
+
+    assert out["fielded"]["fielded"] == out["release"]["version"]
+    model = MlflowClient(f"sqlite:///{cwd / 'mlflow.db'}").get_registered_model("demo-decoder")
+    assert model.aliases["fielded"] == out["release"]["version"]
+    t = out["tryout"]
+    assert t["steps"] == 300 and t["fault"] is None and t["tool_moved_m"] > 0.01
+    assert sum(t["belief"].values()) == pytest.approx(1.0, abs=1e-6)
 
 
 def test_bench_vet_reports_all_three_rates(tmp_path):

@@ -299,3 +299,20 @@ def test_model_names_are_checked():
     for bad in ("../x", "a/b", "", "x" * 200):
         with pytest.raises(ConfigError, match="option name"):
             registry.check_name(bad)
+
+
+def test_demo_ranks_decoders_by_their_own_vetting_even_when_labels_differ():
+    # an aggregated decoder is vetted under its round label (<label>/agg<r>); the demo must still find its
+    # summary, through the training run id vetting recorded
+    from coreach.release.stage import _ranked
+
+    def summary(lo, value):
+        return {"success": {"lo": lo, "value": value}}
+
+    demo = {
+        "runs": [{"run_id": "a" * 32, "label": "cvae"}, {"run_id": "b" * 32, "label": "cvae+entropy+agg"},
+                 {"run_id": "c" * 32, "label": "unvetted"}],
+        "vetting": {"summaries": {"cvae": summary(0.3, 0.4), "cvae+entropy+agg/agg3": summary(0.96, 1.0)},
+                    "sources": {"cvae": "a" * 32, "cvae+entropy+agg/agg3": "b" * 32}},
+    }
+    assert [r["label"] for r in _ranked(demo)] == ["cvae+entropy+agg", "cvae", "unvetted"]

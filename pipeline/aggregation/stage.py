@@ -154,13 +154,14 @@ def aggregate(cfg: DictConfig) -> dict:
     client.log_text(parent, OmegaConf.to_yaml(cfg, resolve=True), "config.yaml")
     cache = Path(str(opts.cache_dir)) / parent
     rounds: list[dict] = []
+    last: dict = {}
     try:
         if start:
             current = str(start)
             rounds.append({"round": 0, "run_id": current, "dataset": base.fingerprint(), "episodes": len(base)})
         else:
             log.info("aggregation round 0: training on the demonstrations")
-            first = train(_round_config(cfg, None, f"{label}/agg0"))
+            first = last = train(_round_config(cfg, None, f"{label}/agg0"))
             current = first["run_id"]
             _tag_round(client, current, parent, 0, None)
             rounds.append({"round": 0, "run_id": current, "dataset": base.fingerprint(), "episodes": len(base),
@@ -179,7 +180,7 @@ def aggregate(cfg: DictConfig) -> dict:
             path = save_parquet(merged, cache / f"round-{r}.parquet")
             log.info("aggregation round %d: +%d episodes (%d states); retraining on %d episodes", r,
                      counts["episodes"], counts["states"], len(merged))  # fmt: skip
-            summary = train(_round_config(cfg, path, f"{label}/agg{r}"))
+            summary = last = train(_round_config(cfg, path, f"{label}/agg{r}"))
             _tag_round(client, summary["run_id"], parent, r, current)
             current = summary["run_id"]
             rounds.append({"round": r, "run_id": current, "dataset": merged.fingerprint(), "episodes": len(merged),
@@ -193,7 +194,9 @@ def aggregate(cfg: DictConfig) -> dict:
         client.set_terminated(parent, status="FAILED")
         raise
     client.set_terminated(parent)
-    return {"run_id": current, "parent_run": parent, "rounds": rounds, "label": label,
+    # the last round's training figures (validation losses, epochs), as `coreach train` reports them
+    trained = {k: last[k] for k in ("metrics", "val_loss", "epochs", "best_epoch") if k in last}
+    return {"run_id": current, "parent_run": parent, "rounds": rounds, "label": label, **trained,
             "seconds": time.perf_counter() - t0}  # fmt: skip
 
 

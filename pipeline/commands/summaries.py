@@ -200,5 +200,15 @@ def print_demo_release(console, r: dict) -> None:
         print_release(console, attempt)
     if r.get("release") is None:
         console.print("no demo decoder passed the release gate at demo size; nothing was released")
+    if r.get("fielded"):
+        f = r["fielded"]
+        console.print(f"fielded {f['name']} version {f['fielded']} (alias @fielded): {f['bundle']}", markup=False)
+    if r.get("tryout"):
+        t = r["tryout"]
+        acted = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in t["filters"].items())
+        belief = ", ".join(f"{g} {b:.2f}" for g, b in t["belief"].items())
+        console.print(f"runtime session (the bundle's numpy + onnxruntime code): {t['steps']} steps of stick "
+                      f"{t['stick']} at 100 Hz moved the tool {t['tool_moved_m'] * 100:.1f} cm; belief {belief}; "
+                      f"filters acted: {acted}; fault: {t['fault'] or 'none'}", markup=False)  # fmt: skip
     if r.get("drive"):
         print_drive(console, r["drive"])
