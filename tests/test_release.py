@@ -192,9 +192,9 @@ def test_release_best_releases_a_demo_decoder_and_drives_it(trained, monkeypatch
     # fielded in the registry, and stepped through the runtime session that ships
     from mlflow import MlflowClient
 
-    assert out["fielded"]["fielded"] == out["release"]["version"]
+    assert out["fielded"]["fielded"] == str(out["release"]["version"])
     model = MlflowClient(f"sqlite:///{cwd / 'mlflow.db'}").get_registered_model("demo-decoder")
-    assert model.aliases["fielded"] == out["release"]["version"]
+    assert str(model.aliases["fielded"]) == str(out["release"]["version"])
     t = out["tryout"]
     assert t["steps"] == 300 and t["fault"] is None and t["tool_moved_m"] > 0.01
     assert sum(t["belief"].values()) == pytest.approx(1.0, abs=1e-6)
