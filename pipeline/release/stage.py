@@ -353,7 +353,8 @@ def _ranked(demo_result: dict) -> list[dict]:
 def runtime_tryout(bundle: str, seconds: float, stick=(0.6, 0.3), dt: float = 0.01) -> dict:
     """Step the bundle's runtime Session (verified on open; numpy + onnxruntime, what ships to a robot) for
     `seconds` of a constant simulated stick at a 100 Hz control rate (dt, common practice for arm velocity
-    control), integrating q += qd dt from the home pose. Returns where the tool went, the belief at the end and how often each filter acted."""
+    control), integrating q += qd dt from the home pose. Returns how far the tool went, the belief at the
+    end and on how many steps each filter acted."""
     import numpy as np
 
     from coreach.runtime.session import Session
