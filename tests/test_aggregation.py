@@ -72,6 +72,9 @@ def test_one_round_adds_labelled_closed_loop_states_and_records_the_lineage(work
     assert summary["run_id"] == second["run_id"] != first["run_id"]
     added = second["added"]
     assert second["episodes"] == first["episodes"] + added["episodes"] and added["states"] > 0
+    # the summary carries the last round's training figures, as `coreach train` reports them
+    assert summary["val_loss"] == pytest.approx(second["val_loss"]) and summary["epochs"] >= 1
+    assert "val/reconstruction" in summary["metrics"]
 
     client = MlflowClient(f"sqlite:///{workdir / 'mlflow.db'}")
     parent = client.get_run(summary["parent_run"])

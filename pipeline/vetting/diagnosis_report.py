@@ -144,9 +144,11 @@ def diagnosis_html(summaries: dict[str, dict]) -> str:
         [[k, f"{d['failures']} of {summaries[k]['n_episodes']}"]
          + [f"{d['cause_share'][c]:.2f} ({d['causes'][c]})" for c in CAUSES] for k, d in diags.items()],
     )  # fmt: skip
+    rules = ", ".join(f"{k} {v:g}" for k, v in next(iter(diags.values()))["rules"].items())
     parts = ["<h2>Why episodes failed</h2>",
-             "<p>One cause per failed episode, read from its last seconds (rules and thresholds: "
-             f"{html.escape(str(next(iter(diags.values()))['rules']))}); share of failures (count).</p>", causes]  # fmt: skip
+             "<p>One cause per failed episode, read from its last seconds, first matching rule in this order "
+             "(coreach.vetting.diagnosis); thresholds: " + html.escape(rules) + ". Share of failures (count).</p>",
+             causes]  # fmt: skip
     for label, d in diags.items():
         cells = sorted({c for row in d["by_goal_cell"].values() for c in row}, key=lambda c: (c != "none", c))
         grid = _table(
