@@ -156,6 +156,10 @@ def _fit_and_log(cfg, client, run_id, system, episodes, train_s, val_s, out: Pat
         EarlyStopping(monitor="val/loss", patience=cfg.trainer.patience),
         _CheckpointOnSigterm(out / "checkpoints"),
     ]
+    # Lightning sets its own loggers to INFO when imported, after the job's logging config: its accelerator
+    # lines and product tips on every fit would bury coreach's own lines
+    for name in ("lightning.pytorch", "lightning.fabric"):
+        logging.getLogger(name).setLevel(logging.WARNING)
     trainer = L.Trainer(
         accelerator="cpu",
         devices=1,
