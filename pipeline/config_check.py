@@ -43,10 +43,20 @@ def compose_config(config_name: str, overrides: list[str]):
 
 
 def _culprit(exc: Exception, overrides: list[str]) -> str | None:
+    """The override to blame: the first that does not parse on its own, else the first whose key the
+    message names as a whole word (a bare substring test blamed `out=...` for a typo in `rollout_seeds`)."""
+    import re
+
+    parser = OverridesParser.create()
+    for o in overrides:
+        try:
+            parser.parse_overrides([o])
+        except Exception:  # noqa: BLE001 - any parse failure marks this override
+            return o
     text = str(exc)
     for o in overrides:
         key = o.split("=", 1)[0].lstrip("+~")
-        if key and key in text:
+        if key and re.search(rf"(?<![\w.]){re.escape(key)}(?![\w])", text):
             return o
     return None
 

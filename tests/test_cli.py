@@ -113,3 +113,14 @@ def test_nan_in_dataset_names_file_episode_and_column(workdir):
     # with --debug the traceback is shown
     res = run(["--debug", "train", *FAST, "dataset=parquet_file", f"dataset.path={bad}"], workdir)
     assert res.returncode == 2 and "Traceback" in res.stderr
+
+
+def test_a_bad_override_is_blamed_not_a_neighbour_whose_key_it_contains():
+    from coreach.config_check import _culprit
+
+    given = ["train_overrides=[aggregate.rollout_seeds=[1,2]]", "out=/tmp/x"]
+    message = "no viable alternative at input '[aggregate.rollout_seeds='"
+    assert _culprit(ValueError(message), given) == given[0]  # it does not parse on its own
+    # a well-formed override is named by its whole key only: 'out' inside 'rollout' does not count
+    assert _culprit(ValueError("Could not override 'aggregate.rollout'"), ["out=1", "aggregate.rollout=2"]) == \
+        "aggregate.rollout=2"
