@@ -35,7 +35,10 @@ def compose_config(config_name: str, overrides: list[str]):
             cfg = compose(config_name=config_name, overrides=overrides)
     except (HydraException, OmegaConfBaseException, ValueError) as exc:
         bad = _culprit(exc, overrides)
-        raise ConfigError(f"option {bad}" if bad else f"config {config_name}", _one_line(exc)) from None
+        problem = _one_line(exc)
+        if bad and re.search(r"=\[[^\]\"']*=", bad):  # key=[a.b=1]: Hydra reads a list item, not an override
+            problem += ' (overrides inside a list need quotes: key=["a.b=1","c=2"])'
+        raise ConfigError(f"option {bad}" if bad else f"config {config_name}", problem) from None
     finally:
         GlobalHydra.instance().clear()
     check_plugins(cfg)
@@ -45,8 +48,6 @@ def compose_config(config_name: str, overrides: list[str]):
 def _culprit(exc: Exception, overrides: list[str]) -> str | None:
     """The override to blame: the first that does not parse on its own, else the first whose key the
     message names as a whole word (a bare substring test blamed `out=...` for a typo in `rollout_seeds`)."""
-    import re
-
     parser = OverridesParser.create()
     for o in overrides:
         try:

@@ -124,3 +124,11 @@ def test_a_bad_override_is_blamed_not_a_neighbour_whose_key_it_contains():
     # a well-formed override is named by its whole key only: 'out' inside 'rollout' does not count
     assert _culprit(ValueError("Could not override 'aggregate.rollout'"), ["out=1", "aggregate.rollout=2"]) == \
         "aggregate.rollout=2"
+
+
+def test_unquoted_overrides_inside_a_list_get_a_hint(tmp_path):
+    res = run(["recipes", "train_overrides=[trainer.max_epochs=5]"], tmp_path)
+    assert res.returncode == 2
+    lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
+    assert len(lines) == 1 and lines[0].startswith("coreach: error: option train_overrides=")
+    assert 'need quotes: key=["a.b=1","c=2"]' in lines[0]
