@@ -33,7 +33,9 @@ from coreach.vetting.loop import JOINT_LIMIT, SPEED_CAP
 from coreach.vetting.metrics import rate, visited_steps
 from coreach.vetting.records import RolloutRecord
 
-__all__ = ["CAUSES", "STAGES", "DiagnosisRules", "classify", "diagnose", "advice", "flat_diagnosis", "without_episodes"]
+NEEDED = ("goal_targets", "phase1_step", "position_tol")  # the vetting loop's extras a diagnosis reads
+
+__all__ = ["NEEDED", "CAUSES", "STAGES", "DiagnosisRules", "classify", "diagnose", "advice", "flat_diagnosis", "without_episodes"]
 
 # cause key -> what a report says
 CAUSES = {
@@ -113,12 +115,12 @@ def _final_segment_start(record: RolloutRecord) -> Tensor:
 def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict[str, Tensor | list]:
     """Cause and stage of every episode ('' for successes), plus the window measures they were read from.
 
-    Needs the loop's extras: goal_targets [E, G, 2, 3], phase1_step [E], orientation_error [E, T+1] and
-    position_tol (m).
+    Needs the loop's extras goal_targets [E, G, 2, 3], phase1_step [E] and position_tol (m); reads limits
+    [E, T] (which safety limit acted) and reach_goal [E, T, G] when present.
     """
     rules = rules or DiagnosisRules()
     ex = record.extras
-    missing = [k for k in ("goal_targets", "phase1_step", "orientation_error", "position_tol") if k not in ex]
+    missing = [k for k in NEEDED if k not in ex]
     if missing:
         raise ConfigError(f"record {record.interface}/{record.suite}", f"extras lack {missing} for a diagnosis")
     E, T = record.interventions.shape
@@ -146,7 +148,7 @@ def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict
     else:
         no_way = torch.zeros(E, dtype=torch.float64)
     err = record.error.to(torch.float64)
-    drop = err[rows, begin] - err[rows, T]  # [E] m; the waypoint may move on to the fine motion (rule 3 too)
+    drop = err[rows, begin] - err[rows, T]  # [E] m; a jump to the fine motion's waypoint is rule 2's other half
     phase1 = ex["phase1_step"]
     reached_in_window = phase1 >= begin
 

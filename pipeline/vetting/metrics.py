@@ -279,10 +279,9 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
 
 def _diagnosis(record: RolloutRecord, level: float) -> dict | None:
     """Why episodes failed (coreach.vetting.diagnosis), when the record carries the loop's extras."""
-    from coreach.vetting.diagnosis import diagnose  # it builds on this module's rates: imported late
+    from coreach.vetting.diagnosis import NEEDED, diagnose  # it builds on this module's rates: imported late
 
-    needed = ("goal_targets", "phase1_step", "orientation_error", "position_tol")
-    if not isinstance(record.extras, dict) or any(k not in record.extras for k in needed):
+    if not isinstance(record.extras, dict) or any(k not in record.extras for k in NEEDED):
         return None
     return diagnose(record, level)
 
