@@ -335,7 +335,8 @@ def release(cfg: DictConfig) -> dict:
 
 # ------------------------------------------------------------------------------------------- demo
 def _ranked(demo_result: dict) -> list[dict]:
-    """Trained runs, best first by the demo's vetting: success lower bound, then success rate."""
+    """Trained runs, best first by the demo's vetting: success lower bound, then success rate; equals keep the
+    order of demo.variants (sorted is stable)."""
     runs = [r for r in demo_result.get("runs", []) if r.get("run_id")]
     vetting = demo_result.get("vetting") or {}
     vetted = vetting.get("summaries", {})
