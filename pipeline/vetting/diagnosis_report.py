@@ -1,4 +1,5 @@
-"""Pictures of why episodes fail: failed tool paths by cause, action maps where failures end, reach per goal."""
+"""Why episodes fail, shown: failed tool paths by cause, action maps where failures end, reach per goal, and the
+HTML sections and terminal tables of the diagnosis."""
 
 from __future__ import annotations
 
