@@ -6,7 +6,7 @@ import logging
 
 from omegaconf import DictConfig
 
-from coreach.commands.recipes import _compose, _stage, user_overrides
+from coreach.commands.recipes import compose_stage, stage_command, user_overrides
 from coreach.commands.summaries import mlflow_hint
 
 log = logging.getLogger("coreach.demo")
@@ -20,8 +20,8 @@ def run_demo(cfg: DictConfig) -> dict:
     extra = [str(o) for o in cfg.demo.get("overrides", [])]
     runs = []
     for label, variant in cfg.demo.variants.items():
-        config_name, fn = _stage(str(variant.command), f"option demo.variants.{label}.command")
-        sub = _compose(config_name, [*extra, *user, *map(str, variant.overrides), f"label='{label}'"],
+        config_name, fn = stage_command(str(variant.command), f"option demo.variants.{label}.command")
+        sub = compose_stage(config_name, [*extra, *user, *map(str, variant.overrides), f"label='{label}'"],
                        f"demo variant {label}")  # fmt: skip
         log.info("%s %s", variant.command, label)
         summary = fn(sub)
@@ -32,7 +32,7 @@ def run_demo(cfg: DictConfig) -> dict:
         from coreach.vetting.stage import vet
 
         candidates = [r["run_id"] for r in runs] + list(cfg.demo.vet.baselines)
-        vet_cfg = _compose("vet", [f"candidates=[{','.join(candidates)}]", f"suite={cfg.demo.vet.suite}",
+        vet_cfg = compose_stage("vet", [f"candidates=[{','.join(candidates)}]", f"suite={cfg.demo.vet.suite}",
                                    f"episodes={cfg.demo.vet.episodes}"], "option demo.vet")  # fmt: skip
         result["vetting"] = vet(vet_cfg)
         steps.append(f"vetting report (open in a browser): {result['vetting']['report']}")

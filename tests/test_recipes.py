@@ -143,9 +143,9 @@ def test_recipe_commands_go_through_the_cli_registry(monkeypatch):
 
     monkeypatch.delitem(cli.HYDRA_COMMANDS, "aggregate", raising=False)
     with pytest.raises(ConfigError, match="'aggregate' is not available"):
-        rc._stage("aggregate", "option recipes.x.command")
+        rc.stage_command("aggregate", "option recipes.x.command")
     monkeypatch.setitem(cli.HYDRA_COMMANDS, "aggregate", ("train", "coreach.training.run:train"))
-    assert rc._stage("aggregate", "w") == ("train", train)
+    assert rc.stage_command("aggregate", "w") == ("train", train)
 
 
 @pytest.mark.parametrize(

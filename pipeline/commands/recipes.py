@@ -139,7 +139,7 @@ def _shipped_baselines() -> list[str]:
     return sorted(p.name[:-5] for p in folder.iterdir() if p.name.endswith(".yaml") and p.name != "decoder.yaml")
 
 
-def _stage(command: str, where: str):
+def stage_command(command: str, where: str):
     """(config name, function) of a registered Hydra command; a recipe may name one not installed yet."""
     from coreach.cli import HYDRA_COMMANDS, _load
 
@@ -149,7 +149,7 @@ def _stage(command: str, where: str):
     return config_name, _load(target)
 
 
-def _compose(config_name: str, overrides: list[str], where: str) -> DictConfig:
+def compose_stage(config_name: str, overrides: list[str], where: str) -> DictConfig:
     """Compose a sub-stage's config inside the running Hydra app; failures name the recipe or option."""
     from hydra import compose
     from hydra.errors import HydraException
@@ -211,7 +211,7 @@ def recipes(cfg: DictConfig) -> dict:
     plan = plan_from(cfg)
     given = user_overrides()
     forward = _tracking_overrides(given)
-    vet_cfgs = [_compose("vet", [*forward, *plan.vet_overrides], "option vet_overrides") for _ in plan.suites]
+    vet_cfgs = [compose_stage("vet", [*forward, *plan.vet_overrides], "option vet_overrides") for _ in plan.suites]
     robot = build_plugin(vet_cfgs[0].robot, "robot")
     suites = []  # every suite is read and checked before the first training: a typo costs seconds, not hours
     for ref in plan.suites:
@@ -224,9 +224,9 @@ def recipes(cfg: DictConfig) -> dict:
     _distinct(tuple(suites), "option vet_suites (suite names)")
     jobs = []
     for r in plan.recipes:
-        config_name, fn = _stage(r.command, f"option recipes.{r.label}.command")
+        config_name, fn = stage_command(r.command, f"option recipes.{r.label}.command")
         for seed in plan.seeds:
-            sub = _compose(config_name, [*forward, *r.overrides, *plan.train_overrides, f"seed={seed}"],
+            sub = compose_stage(config_name, [*forward, *r.overrides, *plan.train_overrides, f"seed={seed}"],
                            f"recipe {r.label} (seed {seed})")  # fmt: skip
             if "label" in sub:  # one folder and one vetting label per training
                 sub.label = f"{r.label}-s{seed}"
@@ -545,4 +545,4 @@ def terminal_table(result: dict):
     return table
 
 
-__all__ = ["recipes", "plan_from", "assemble", "spread", "markdown", "csv_text", "terminal_table", "command_line"]
+__all__ = ["recipes", "plan_from", "stage_command", "compose_stage", "user_overrides", "assemble", "spread", "markdown", "csv_text", "terminal_table", "command_line"]
