@@ -11,7 +11,7 @@ TORCH := torch==2.13.0
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
 
-$(STAMP): pyproject.toml setup.py | $(BIN)/python
+$(STAMP): pyproject.toml | $(BIN)/python
 	$(BIN)/python -m pip install --quiet $(TORCH)
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	touch $(STAMP)

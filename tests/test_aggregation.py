@@ -17,7 +17,7 @@ from mlflow.tracking import MlflowClient
 from coreach.aggregation.visits import Visits
 from coreach.demonstrator import rollout as scripted
 from coreach.episodes import load_parquet
-from coreach.plugins.labeller.scripted import ScriptedLabeller
+from coreach_plugins.labeller.scripted import ScriptedLabeller
 from test_demonstrator import PlanarArm, flat_scenario
 
 COREACH = str(Path(sys.executable).parent / "coreach")
@@ -88,7 +88,7 @@ def test_one_round_adds_labelled_closed_loop_states_and_records_the_lineage(work
     assert tags["coreach.dataset"] == second["dataset"] != first["dataset"]
 
     # the added episodes are the visited states, labelled with the demonstrator's velocity law
-    from coreach.plugins.robot.urdf_arm import UrdfArm
+    from coreach_plugins.robot.urdf_arm import UrdfArm
 
     data = load_parquet(second["path"])
     new = [e for e in data if e.episode_id >= 1_000_000]

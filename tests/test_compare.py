@@ -39,8 +39,8 @@ def store(tmp_path_factory):
     for label, (sweep, model, losses, seed, rec, loss) in RUNS.items():
         tags = {"coreach.stage": "train", "coreach.label": label, "coreach.sweep": sweep}
         rid = client.create_run(exp, run_name=label, tags=tags).info.run_id
-        params = [Param("model._target_", f"coreach.plugins.model.x.{model}"), Param("seed", str(seed))]
-        params += [Param(f"loss.{t}._target_", f"coreach.plugins.loss.{t}.T") for t in losses]
+        params = [Param("model._target_", f"coreach_plugins.model.x.{model}"), Param("seed", str(seed))]
+        params += [Param(f"loss.{t}._target_", f"coreach_plugins.loss.{t}.T") for t in losses]
         params += [Param(f"loss.{t}.weight", "1.0") for t in losses]
         metrics = [Metric("best/val/reconstruction", rec, 0, 0), Metric("best/val/loss", loss, 0, 0),
                    Metric("val/loss", loss, 0, 1)]  # fmt: skip

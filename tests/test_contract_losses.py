@@ -20,9 +20,9 @@ from coreach.policy import DecoderPolicy
 from coreach.protocols import LossTerm
 from coreach.safety import SafetyLimits
 from coreach.training.terms import TermBatch
-from coreach.plugins.model.cvae import BeliefCVAE
+from coreach_plugins.model.cvae import BeliefCVAE
 
-LOSS_DIR = Path(__file__).resolve().parents[1] / "conf" / "loss"
+LOSS_DIR = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "loss"
 N_JOINTS, N_GOALS, BATCH = 7, 4, 6
 
 

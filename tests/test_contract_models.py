@@ -13,7 +13,7 @@ from omegaconf import OmegaConf
 
 from coreach.protocols import Decoder, Posterior
 
-MODEL_DIR = Path(__file__).resolve().parents[1] / "conf" / "model"
+MODEL_DIR = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "model"
 WIDTHS = {"state": 16, "belief": 4, "goal": 12}  # 7-joint arm, 4 goals
 ACTION_DIM, BATCH = 7, 8
 

@@ -235,7 +235,7 @@ def test_max_steps_cuts_unfinished_episodes():
 
 
 def test_generate_on_urdf_arm_if_available():
-    mod = pytest.importorskip("coreach.plugins.robot.urdf_arm")
+    mod = pytest.importorskip("coreach_plugins.robot.urdf_arm")
     arm = mod.UrdfArm()
     demos = generate(arm, "bedside_shelf", 40, seed=0)
     assert len(demos) == 40 and demos.joint_names == list(arm.joint_names)
@@ -325,7 +325,7 @@ def test_goal_index_and_loading(tmp_path):
 
 
 def test_scripted_shelf_plugin_caches_through_the_parquet_loader(tmp_path, monkeypatch):
-    import coreach.plugins.dataset.scripted_shelf as mod
+    import coreach_plugins.dataset.scripted_shelf as mod
 
     scen = tmp_path / "flat.yaml"
     scen.write_text(

@@ -131,7 +131,7 @@ def test_trainer_reaches_the_tracking_server_on_its_port(services):
     # the healthcheck asks the same port
     assert f":{port}/health" in " ".join(services["mlflow"]["healthcheck"]["test"])
     # the trainer's tracking config reads that variable (conf/tracking/server.yaml)
-    assert "COREACH_TRACKING_URI" in (ROOT / "conf" / "tracking" / "server.yaml").read_text()
+    assert "COREACH_TRACKING_URI" in (ROOT / "conf" / "coreach_conf" / "tracking" / "server.yaml").read_text()
     assert "tracking=server" in services["trainer"]["command"]
 
 

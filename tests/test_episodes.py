@@ -14,7 +14,7 @@ from scipy.spatial.transform import Rotation
 
 from coreach.episodes import Episode, EpisodeSet, load_parquet, save_parquet, to_table
 from coreach.errors import DataError
-from coreach.plugins.dataset.parquet_file import ParquetFile
+from coreach_plugins.dataset.parquet_file import ParquetFile
 
 GOALS = ["switch", "cup", "knob"]
 

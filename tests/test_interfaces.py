@@ -14,17 +14,17 @@ from coreach import tracking
 from coreach.context import ContextSpec, build_context
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin
-from coreach.plugins.interface.blend import PolicyBlending
-from coreach.plugins.interface.decoder import DecoderInterface
-from coreach.plugins.interface.direct import DirectControl
-from coreach.plugins.robot.urdf_arm import UrdfArm
+from coreach_plugins.interface.blend import PolicyBlending
+from coreach_plugins.interface.decoder import DecoderInterface
+from coreach_plugins.interface.direct import DirectControl
+from coreach_plugins.robot.urdf_arm import UrdfArm
 from coreach.policy import DecoderPolicy
 from coreach.protocols import Interface
 from coreach.scenario import load_scenario
 from coreach.vetting.records import LoopState
 
-CONF = Path(__file__).resolve().parents[1] / "conf" / "interface"
-CVAE = {"_target_": "coreach.plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [32, 32]}
+CONF = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "interface"
+CVAE = {"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [32, 32]}
 E, G = 4, 4
 
 

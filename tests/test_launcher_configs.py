@@ -12,7 +12,7 @@ from omegaconf import OmegaConf
 def launcher(*overrides: str):
     GlobalHydra.instance().clear()
     try:
-        with initialize_config_module("coreach.conf", version_base="1.3"):
+        with initialize_config_module("coreach_conf", version_base="1.3"):
             cfg = compose("train", overrides=list(overrides), return_hydra_config=True)
     finally:
         GlobalHydra.instance().clear()

@@ -6,8 +6,8 @@ import numpy as np
 import torch
 from sklearn.decomposition import PCA
 
-from coreach.plugins.loss.reconstruction import Reconstruction
-from coreach.plugins.model.linear import LinearDecoder
+from coreach_plugins.loss.reconstruction import Reconstruction
+from coreach_plugins.model.linear import LinearDecoder
 from coreach.training.terms import TermBatch
 
 N, DIM, LATENT = 3000, 7, 2

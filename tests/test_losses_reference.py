@@ -18,15 +18,15 @@ from coreach.policy import DecoderPolicy
 from coreach.protocols import Posterior
 from coreach.safety import SafetyLimits
 from coreach.training.terms import TermBatch
-from coreach.plugins.loss.goal_entropy import (
+from coreach_plugins.loss.goal_entropy import (
     GoalReachability,
     goal_progress,
     stick_goal_information,
     stratified_sticks,
 )
-from coreach.plugins.loss.kl import KLDivergence, gaussian_entropy, gaussian_kl
-from coreach.plugins.model.cvae import BeliefCVAE
-from coreach.plugins.model.vae import StateVAE
+from coreach_plugins.loss.kl import KLDivergence, gaussian_entropy, gaussian_kl
+from coreach_plugins.model.cvae import BeliefCVAE
+from coreach_plugins.model.vae import StateVAE
 
 N_JOINTS, N_GOALS = 7, 4
 

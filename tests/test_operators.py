@@ -16,10 +16,10 @@ from scipy.special import softmax
 from scipy.stats import chisquare
 
 from coreach.errors import ConfigError
-from coreach.plugins.operator.boltzmann import NO_INPUT, BoltzmannOperator
+from coreach_plugins.operator.boltzmann import NO_INPUT, BoltzmannOperator
 from coreach.protocols import Operator
 
-OPERATOR_DIR = Path(__file__).resolve().parents[1] / "conf" / "operator"
+OPERATOR_DIR = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "operator"
 # one-step progress (m) of M=2 modes x K=3 candidates: differences of a few mm, as in closed loop
 VALUES = torch.tensor([[0.0, 0.002, 0.004], [-0.001, 0.003, 0.001]], dtype=torch.float64)
 

@@ -22,7 +22,7 @@ NAME = "test-decoder"
 SUITE = "held-out-short"
 QUICK = [f"gate_suites=[{SUITE}.yaml]", "episodes=1", "latency.steps=300", "latency.warmup=20",
          f"name={NAME}"]
-HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "suites" / "held-out.yaml"
+HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "suites" / "held-out.yaml"
 # Thresholds a barely trained decoder can meet, so the publishing path runs; parity stays at 1e-5.
 PERMISSIVE = ["gates.success_lo=0", "gates.recovery_lo=0", "gates.max_violations=1000000",
               "gates.authority_median=0", "gates.latency_p99_us=1000000"]  # fmt: skip
@@ -184,7 +184,7 @@ def test_release_best_releases_a_demo_decoder_and_drives_it(trained, monkeypatch
     monkeypatch.setenv("MLFLOW_TRACKING_URI", f"sqlite:///{cwd / 'mlflow.db'}")
     demo_result = {"runs": [{"run_id": run_id, "label": "tiny"}], "vetting": {"summaries": {}}}
     cfg = OmegaConf.create({"demo": {"release": {"overrides": [*QUICK[:-1], "name=demo-decoder", *PERMISSIVE]}}})
-    with initialize_config_module("coreach.conf", version_base="1.3"):
+    with initialize_config_module("coreach_conf", version_base="1.3"):
         out = release_best(demo_result, cfg)
     assert out["release"] is not None and out["release"]["released"]
     assert Path(out["release"]["bundle"]).parent.name == "demo-decoder"

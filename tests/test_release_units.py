@@ -16,11 +16,11 @@ from omegaconf import OmegaConf
 
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError, CoreachError
-from coreach.plugins.belief.boltzmann import BoltzmannGoalBelief
-from coreach.plugins.interface.decoder import DecoderInterface
-from coreach.plugins.interface.onnx_bundle import OnnxBundleInterface
-from coreach.plugins.robot.planar3 import Planar3
-from coreach.plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
+from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach_plugins.interface.decoder import DecoderInterface
+from coreach_plugins.interface.onnx_bundle import OnnxBundleInterface
+from coreach_plugins.robot.planar3 import Planar3
+from coreach_plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
 from coreach.policy import DecoderPolicy
 from coreach.release import gate as G
 from coreach.release import registry
@@ -126,7 +126,7 @@ def test_count_violations_against_hand_computed_planar_arm():
 # ------------------------------------------------------------------------------------------ bundles
 def _policy(seed: int = 0) -> DecoderPolicy:
     torch.manual_seed(seed)
-    policy = DecoderPolicy.build({"_target_": "coreach.plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
+    policy = DecoderPolicy.build({"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
                                   "hidden": [32, 32]}, ContextSpec(dof=7, n_goals=4), 7)  # fmt: skip
     # actions of ~0.3 rad/s so the arm moves and the caps act now and then
     policy.set_normalisation(torch.randn(400, policy.spec.width) * 0.5, torch.randn(400, 7) * 0.3)

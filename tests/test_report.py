@@ -14,9 +14,9 @@ from rich.console import Console
 
 from coreach.context import ContextSpec, build_context
 from coreach.errors import ConfigError
-from coreach.plugins.interface.decoder import DecoderInterface
-from coreach.plugins.interface.direct import DirectControl
-from coreach.plugins.robot.urdf_arm import UrdfArm
+from coreach_plugins.interface.decoder import DecoderInterface
+from coreach_plugins.interface.direct import DirectControl
+from coreach_plugins.robot.urdf_arm import UrdfArm
 from coreach.policy import DecoderPolicy
 from coreach.scenario import load_scenario
 from coreach.vetting.metrics import summarise
@@ -96,7 +96,7 @@ def test_states_at_confidence_rebuild_the_context(state):
 def test_action_maps_for_decoder_and_direct(state, tmp_path):
     torch.manual_seed(0)
     policy = DecoderPolicy.build(
-        {"_target_": "coreach.plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [32, 32]},
+        {"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [32, 32]},
         ContextSpec(dof=7, n_goals=4), 7,
     )  # fmt: skip
     for iface in (DecoderInterface.from_policy(policy, "cvae"), DirectControl()):

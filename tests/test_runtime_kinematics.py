@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from coreach.errors import ConfigError
-from coreach.plugins.robot.urdf_arm import shipped_urdf
+from coreach_plugins.robot.urdf_arm import shipped_urdf
 from coreach.runtime.kinematics import Chain, quat_to_matrix, rpy_matrix
 
 pin = pytest.importorskip("pinocchio")

@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 
 from coreach.context import ContextSpec
 from coreach.errors import DataError
-from coreach.plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
+from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
 from coreach.policy import DecoderPolicy
 from coreach.runtime.bundle import BundleError, write_bundle
 from coreach.runtime.session import Session
@@ -32,7 +32,7 @@ WS_MIN, WS_MAX = [0.10, -0.25, 0.02], [0.60, 0.25, 0.52]
 @pytest.fixture(scope="module")
 def bundle(tmp_path_factory) -> Path:
     torch.manual_seed(0)
-    policy = DecoderPolicy.build({"_target_": "coreach.plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
+    policy = DecoderPolicy.build({"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
                                   "hidden": [32, 32]}, SPEC, 7)
     # actions of ~1 rad/s so the decoder asks for more than the caps allow and the filters have work to do
     policy.set_normalisation(torch.randn(400, SPEC.width) * 0.5, torch.randn(400, 7) * 1.0 + 0.2)

@@ -61,7 +61,7 @@ def test_run_records_config_losses_dataset_and_decoder(small_cfg, workdir):
     client = MlflowClient(resolve_uri(None))
     run = client.get_run(summary["run_id"])
     params = run.data.params
-    assert params["model._target_"] == "coreach.plugins.model.cvae.BeliefCVAE"
+    assert params["model._target_"] == "coreach_plugins.model.cvae.BeliefCVAE"
     assert len(params["dataset.fingerprint"]) == 64
     assert run.data.tags["coreach.dataset"] == params["dataset.fingerprint"]
     # every loss term logged separately, once per epoch, for both splits

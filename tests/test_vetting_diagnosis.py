@@ -11,8 +11,8 @@ import pytest
 import torch
 from scipy.stats import binomtest
 
-from coreach.plugins.belief.boltzmann import BoltzmannGoalBelief
-from coreach.plugins.robot.urdf_arm import UrdfArm
+from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach_plugins.robot.urdf_arm import UrdfArm
 from coreach.safety import SafetyLimits
 from coreach.vetting.diagnosis import CAUSES, DiagnosisRules, diagnose, flat_diagnosis
 from coreach.vetting.loop import JOINT_LIMIT, SPEED_CAP, rollout
@@ -195,7 +195,7 @@ class _Constant:
 
 def _rollout(interface, episodes=2):
     suite = suite_from_dict(dict(scenario="bedside_shelf", episodes=episodes, seed=12345, horizon_s=10.0,
-                                 operator={"_target_": "coreach.plugins.operator.boltzmann.BoltzmannOperator",
+                                 operator={"_target_": "coreach_plugins.operator.boltzmann.BoltzmannOperator",
                                            "greedy": True}), "test-suite.yaml")  # fmt: skip
     return rollout(ROBOT, interface, suite.build_operator(), suite, BELIEF, LIMITS, suite.generator())
 

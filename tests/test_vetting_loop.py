@@ -11,9 +11,9 @@ import pytest
 import torch
 
 from coreach.geometry import rotation_error
-from coreach.plugins.belief.boltzmann import BoltzmannGoalBelief
-from coreach.plugins.operator.boltzmann import BoltzmannOperator
-from coreach.plugins.robot.urdf_arm import UrdfArm
+from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach_plugins.operator.boltzmann import BoltzmannOperator
+from coreach_plugins.robot.urdf_arm import UrdfArm
 from coreach.protocols import Interface, Operator
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout, rollout_per_episode
@@ -127,7 +127,7 @@ LIMITS = SafetyLimits.for_robot(ROBOT)
 
 
 def _suite(**over):
-    d = dict(scenario="bedside_shelf", operator={"_target_": "coreach.plugins.operator.boltzmann.BoltzmannOperator",
+    d = dict(scenario="bedside_shelf", operator={"_target_": "coreach_plugins.operator.boltzmann.BoltzmannOperator",
              "greedy": True}, episodes=4, seed=12345, horizon_s=20.0, start_jitter=0.05)  # fmt: skip
     d.update(over)
     return suite_from_dict(d, "test-suite.yaml")

@@ -12,7 +12,7 @@ import yaml
 
 from coreach.demonstrator import rollout as scripted
 from coreach.errors import ConfigError
-from coreach.plugins.robot.urdf_arm import UrdfArm
+from coreach_plugins.robot.urdf_arm import UrdfArm
 from coreach.scenario import load_scenario
 from coreach.vetting.suite import MIN_SEED, builtin_suites, load_suite
 
@@ -110,7 +110,7 @@ def _write(tmp_path, **changes):
         ({"seed": 3}, "seed"),
         ({"switch_fractions": [None, 1.2]}, "switch_fractions[1]"),
         ({"operator": "sleepy"}, "operator"),
-        ({"operator": {"_target_": "coreach.plugins.operator.boltzmann.BoltzmannOperator", "beta": -1.0}},
+        ({"operator": {"_target_": "coreach_plugins.operator.boltzmann.BoltzmannOperator", "beta": -1.0}},
          "operator.beta"),
         ({"tolerances": {"position_m": 0.02, "angle": 3}}, "tolerances.angle"),
         ({"tolerances": {"position_m": -0.02}}, "tolerances.position_m"),

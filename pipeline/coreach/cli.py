@@ -1,0 +1,201 @@
+"""The `coreach` command: subcommands run as Hydra apps, so each takes overrides and `-m` for sweeps."""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import time
+import traceback
+from pathlib import Path
+
+from coreach.errors import CoreachError
+
+USAGE = """usage: coreach [--json] [--debug] COMMAND [-m] [key=value ...]
+
+commands:
+  demo      generate demonstrations, train the decoder families briefly, compare them
+  train     train one decoder (e.g. coreach train model=vae trainer.max_epochs=5)
+  aggregate train, then retrain on closed-loop states labelled by the demonstrator (DAgger rounds)
+            (coreach aggregate +experiment=cvae_entropy 'aggregate.rollout_seeds=[1,2,3]')
+  vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
+  recipes   train each recipe over several seeds, vet them with the baselines, one table
+            (coreach recipes 'select=[cvae,cvae+entropy]' 'seeds=[0,1,2]' 'train_overrides=["trainer.max_epochs=5"]')
+  plugins   list every registered plugin by kind, with where it came from
+  compare   leaderboard of an experiment's runs: table, CSV and PNG
+            (coreach compare --experiment NAME --sweep TAG --out DIR)
+  release   gate a trained decoder and, if it passes, bundle, register and mark it vetted
+            (coreach release run=<run id> [name=bedside-shelf-decoder]; refusal: gate table, exit 3)
+  drive     replay a release bundle's ONNX decoder through a suite and compare with its vetting
+            (coreach drive bundle=releases/<name>/v<version> suite=held-out)
+  promote   field a vetted version (coreach promote NAME VERSION) or restore the previous one
+            (coreach promote NAME --back)
+  releases  registered versions, aliases and gate results (coreach releases [NAME])
+  bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
+                cVAE with and without goal_entropy (goal: <= 2x the time); bench.threads=1 on shared cores
+  bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)
+  bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
+                (coreach bench runtime bundle=<folder>; goals: p99 <= 100 us and <= 2x the bare call)
+  bench vet     closed-loop throughput: batched loop against a per-episode loop and a bare decoder pass
+
+options:
+  -m, --multirun  sweep over comma-separated values (coreach train -m model=linear,vae,cvae)
+  --json          print only a machine-readable summary on stdout
+  --debug         show tracebacks
+  -h, --help      this text; `coreach COMMAND --cfg job` prints the composed config (Hydra)
+"""
+
+# command -> (config name, "module:function" taking the composed config and returning a summary dict)
+HYDRA_COMMANDS = {
+    "train": ("train", "coreach.training.run:train"),
+    "demo": ("demo", "coreach.demo:run_demo"),
+    "vet": ("vet", "coreach.vetting.stage:vet"),
+    "aggregate": ("aggregate", "coreach.aggregation.stage:aggregate"),
+    "bench train": ("bench_train", "coreach.bench.train_bench:run"),
+    "bench sweep": ("bench_sweep", "coreach.bench.sweep_bench:run"),
+    "release": ("release", "coreach.release.stage:release"),
+    "drive": ("drive", "coreach.release.drive:drive"),
+    "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
+    "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
+    "recipes": ("recipes", "coreach.commands.recipes:recipes"),
+}
+# Hydra-free commands: name -> "module:function" taking (arguments, as_json) and returning the exit code
+PLAIN_COMMANDS = {
+    "promote": "coreach.release.registry:promote_command",
+    "releases": "coreach.release.registry:releases_command",
+}
+
+
+def _fail(message: str, code: int = 2) -> int:
+    print(f"coreach: error: {message}", file=sys.stderr)
+    return code
+
+
+def _load(spec: str):
+    import importlib
+
+    module, func = spec.split(":")
+    return getattr(importlib.import_module(module), func)
+
+
+def _quiet_library_warnings() -> None:
+    """Deprecation chatter from library internals that a user can do nothing about."""
+    import warnings
+
+    warnings.filterwarnings("ignore", message=r".*LeafSpec.*")
+    warnings.filterwarnings("ignore", message=r".*Checkpoint directory .* exists and is not empty.*")
+    warnings.filterwarnings("ignore", message=r".*does not have many workers.*")
+    # submitit (the SLURM launcher) logs to stdout by default, which belongs to --json; let its records
+    # go through the root logger (stderr) instead
+    os.environ.setdefault("SUBMITIT_LOG_LEVEL", "NOCONFIG")
+    warnings.filterwarnings("ignore", message=r".*validation_step.*no `val_dataloader`.*")
+    warnings.filterwarnings("ignore", message=r".*The `srun` command is available on your system.*")
+    os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+
+
+def main(argv: list[str] | None = None) -> int:
+    _quiet_library_warnings()
+    args = list(sys.argv[1:] if argv is None else argv)
+    as_json = "--json" in args
+    debug = "--debug" in args
+    multirun = "-m" in args or "--multirun" in args
+    rest = [a for a in args if a not in ("--json", "--debug", "-m", "--multirun")]
+    if not rest or rest[0] in ("-h", "--help", "help"):
+        print(USAGE)
+        return 0
+    command, overrides = rest[0], rest[1:]
+    if command == "bench":
+        what = overrides[0] if overrides else "?"
+        command, overrides = f"bench {what}", overrides[1:]
+    if debug:
+        os.environ["HYDRA_FULL_ERROR"] = "1"
+    try:
+        if command == "plugins":
+            from coreach.commands.plugins import show_plugins
+
+            return show_plugins(as_json)
+        if command == "compare":
+            from coreach.commands.compare import compare_command
+
+            return compare_command(overrides, as_json)
+        if command in PLAIN_COMMANDS:
+            return _load(PLAIN_COMMANDS[command])(overrides, as_json)
+        if command not in HYDRA_COMMANDS:
+            known = sorted([*HYDRA_COMMANDS, *PLAIN_COMMANDS, "plugins", "compare"])
+            raise CoreachError(f"command {command!r}", f"unknown; expected one of {known}")
+        summaries = run_hydra(command, overrides, multirun, debug)
+    except CoreachError as exc:
+        if debug:
+            traceback.print_exc()
+        return _fail(str(exc))
+    except KeyboardInterrupt:
+        return _fail("interrupted", 130)
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    except Exception as exc:  # a bug, not bad input: say so, and how to see more
+        if debug:
+            traceback.print_exc()
+            return 1
+        return _fail(f"internal error: {type(exc).__name__}: {exc} (rerun with --debug for the traceback)", 1)
+    from coreach.commands.summaries import print_summary
+
+    print_summary(command, summaries, as_json)
+    # a command that ran fine but reached a negative verdict (a refused release, a replay that does not
+    # match its vetting) says so with its own exit code
+    return max([0, *(int(s.get("exit_code", 0)) for s in summaries if isinstance(s, dict))])
+
+
+def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -> list[dict]:
+    """Run a subcommand through hydra.main (so Hydra's launchers serve sweeps) and collect summaries."""
+    import hydra
+
+    from coreach.config_check import preflight
+    from coreach.plugin_registry import search_path_overrides
+
+    config_name, target = HYDRA_COMMANDS[command]
+    extra = search_path_overrides()
+    if not any(o.startswith(("--cfg", "-c", "--info", "-i", "--help", "-h", "--hydra-help")) for o in overrides):
+        preflight(config_name, extra + overrides, multirun)
+    stamp = f"{time.strftime('%Y-%m-%d_%H-%M-%S')}-{os.getpid()}"
+    sweep_dir = Path(".coreach") / "sweeps" / stamp
+    fixed = [f"hydra.job.name={command.replace(' ', '_')}"]
+    if multirun:
+        fixed.append(f"hydra.sweep.dir={sweep_dir}")
+    task_fn = _load(target)
+    collected: list[dict] = []
+
+    def task(cfg):
+        from coreach.workdirs import output_dir
+
+        try:
+            summary = task_fn(cfg)
+        except CoreachError as exc:
+            if debug:
+                traceback.print_exc()
+            print(f"coreach: error: {exc}", file=sys.stderr)
+            raise SystemExit(2) from None
+        except Exception as exc:  # a bug: one line unless --debug (Hydra would print a traceback)
+            if debug:
+                raise
+            print(f"coreach: error: internal error: {type(exc).__name__}: {exc} (rerun with --debug)", file=sys.stderr)
+            raise SystemExit(1) from None
+        summary = summary or {}
+        (output_dir() / "summary.json").write_text(json.dumps(summary, indent=2, default=str))
+        collected.append(summary)
+        return summary
+
+    app = hydra.main(version_base="1.3", config_path="pkg://coreach_conf", config_name=config_name)(task)
+    saved = sys.argv
+    sys.argv = [f"coreach-{command}"] + (["-m"] if multirun else []) + fixed + extra + overrides
+    try:
+        app()
+    finally:
+        sys.argv = saved
+    if multirun and len(collected) == 0 and sweep_dir.exists():  # jobs ran in other processes
+        for path in sorted(sweep_dir.glob("*/summary.json"), key=lambda p: int(p.parent.name)):
+            collected.append(json.loads(path.read_text()))
+    return collected
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,89 @@
+"""Compose a config before running it, so bad overrides and unknown plugins fail with one clear line."""
+
+from __future__ import annotations
+
+import re
+
+from hydra import compose, initialize_config_module
+from hydra.core.global_hydra import GlobalHydra
+from hydra.core.override_parser.overrides_parser import OverridesParser
+from hydra.errors import HydraException
+from omegaconf.errors import OmegaConfBaseException
+
+from coreach.errors import ConfigError
+from coreach.schemas import check_plugins
+
+
+def _one_line(exc: Exception) -> str:
+    text = str(exc).strip()
+    text = re.sub(r"\s*Set the environment variable HYDRA_FULL_ERROR=1.*", "", text, flags=re.S)
+    text = re.sub(r"\s*Config search path:.*", "", text, flags=re.S)
+    lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
+    if not lines:
+        return type(exc).__name__
+    for i, line in enumerate(lines):
+        if line.endswith(":") and i + 1 < len(lines):  # Hydra lists alternatives one per line
+            return " ".join(lines[: i + 1]) + " " + ", ".join(lines[i + 1 :])
+    return " ".join(lines[:2])
+
+
+def compose_config(config_name: str, overrides: list[str]):
+    """Compose `config_name` with overrides (outside any Hydra run); ConfigError on failure."""
+    GlobalHydra.instance().clear()
+    try:
+        with initialize_config_module("coreach_conf", version_base="1.3"):
+            cfg = compose(config_name=config_name, overrides=overrides)
+    except (HydraException, OmegaConfBaseException, ValueError) as exc:
+        bad = _culprit(exc, overrides)
+        problem = _one_line(exc)
+        if bad and re.search(r"=\[[^\]\"']*=", bad):  # key=[a.b=1]: Hydra reads a list item, not an override
+            problem += ' (overrides inside a list need quotes: key=["a.b=1","c=2"])'
+        raise ConfigError(f"option {bad}" if bad else f"config {config_name}", problem) from None
+    finally:
+        GlobalHydra.instance().clear()
+    check_plugins(cfg)
+    return cfg
+
+
+def _culprit(exc: Exception, overrides: list[str]) -> str | None:
+    """The override to blame: the first that does not parse on its own, else the first whose key the
+    message names as a whole word (a bare substring test blamed `out=...` for a typo in `rollout_seeds`)."""
+    parser = OverridesParser.create()
+    for o in overrides:
+        try:
+            parser.parse_overrides([o])
+        except Exception:  # noqa: BLE001 - any parse failure marks this override
+            return o
+    text = str(exc)
+    for o in overrides:
+        key = o.split("=", 1)[0].lstrip("+~")
+        if key and re.search(rf"(?<![\w.]){re.escape(key)}(?![\w])", text):
+            return o
+    return None
+
+
+def preflight(config_name: str, overrides: list[str], multirun: bool) -> None:
+    """Compose every value a sweep would use, one override at a time, before any job starts."""
+    if not multirun:
+        compose_config(config_name, overrides)
+        return
+    parser = OverridesParser.create()
+    try:
+        parsed = parser.parse_overrides(overrides)
+    except HydraException as exc:
+        raise ConfigError("overrides", _one_line(exc)) from None
+    base = []
+    sweeps = []
+    for raw, ov in zip(overrides, parsed):
+        if ov.is_sweep_override():
+            values = [str(v) for v in ov.sweep_string_iterator()]
+            base.append(f"{ov.get_key_element()}={values[0]}")
+            sweeps.append((len(base) - 1, ov.get_key_element(), values))
+        else:
+            base.append(raw)
+    compose_config(config_name, base)
+    for index, key, values in sweeps:
+        for v in values[1:]:
+            trial = list(base)
+            trial[index] = f"{key}={v}"
+            compose_config(config_name, trial)

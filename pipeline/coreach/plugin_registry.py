@@ -1,0 +1,107 @@
+"""Finding and building plugins: built-ins under conf/<kind>/, outside packages through an entry-point group.
+
+A plugin is a Hydra option (`conf/<kind>/<name>.yaml` with a `_target_`). An outside package adds options by
+declaring, in the entry-point group `coreach.plugins`, a config package laid out the same way; its folder is
+added to Hydra's search path, so its options are selected exactly like built-in ones.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from importlib import metadata, resources
+
+import hydra
+from omegaconf import DictConfig, OmegaConf
+
+from coreach.errors import ConfigError
+from coreach.protocols import KINDS
+
+ENTRY_POINT_GROUP = "coreach.plugins"
+BUILTIN_CONF = "coreach_conf"
+
+
+@dataclass(frozen=True)
+class PluginInfo:
+    kind: str
+    name: str
+    target: str
+    origin: str  # "built-in" or "<distribution> (entry point <name>)"
+
+
+def external_config_packages() -> list[tuple[str, str]]:
+    """(config package, origin) for every installed package that declares coreach plugins."""
+    found = []
+    for ep in metadata.entry_points(group=ENTRY_POINT_GROUP):
+        dist = ep.dist.name if ep.dist else "unknown distribution"
+        found.append((ep.value, f"{dist} (entry point {ep.name})"))
+    return found
+
+
+def search_path_overrides() -> list[str]:
+    """Hydra overrides that add outside plugin packages to the config search path."""
+    pkgs = [pkg for pkg, _ in external_config_packages()]
+    if not pkgs:
+        return []
+    return ["hydra.searchpath=[" + ",".join(f"pkg://{p}" for p in pkgs) + "]"]
+
+
+def _options(package: str, origin: str) -> list[PluginInfo]:
+    try:
+        root = resources.files(package)
+    except ModuleNotFoundError as exc:
+        raise ConfigError(f"entry point {origin}", f"config package {package!r} cannot be imported ({exc})")
+    out = []
+    for kind in KINDS:
+        folder = root / kind
+        if not folder.is_dir():
+            continue
+        for item in sorted(folder.iterdir(), key=lambda p: p.name):
+            if item.name.endswith(".yaml"):
+                cfg = OmegaConf.create(item.read_text())
+                out.append(PluginInfo(kind, item.name[:-5], str(cfg.get("_target_", "?")), origin))
+    return out
+
+
+def discover() -> list[PluginInfo]:
+    """Every plugin option, built-in first, then those of outside packages."""
+    found = _options(BUILTIN_CONF, "built-in")
+    for pkg, origin in external_config_packages():
+        found += _options(pkg, origin)
+    return found
+
+
+def check_protocol(obj, kind: str, where: str):
+    """Refuse an object that does not implement its kind's protocol, naming what is missing."""
+    proto = KINDS[kind]
+    if isinstance(obj, proto):
+        return obj
+    wanted = [m for m in dir(proto) if not m.startswith("_")]
+    missing = [m for m in wanted if not hasattr(obj, m)]
+    raise ConfigError(where, f"{type(obj).__name__} does not implement the {kind} protocol (missing: {missing})")
+
+
+def build_plugin(cfg: DictConfig, kind: str, **kwargs):
+    """Instantiate a plugin from its config node and check it against its kind's protocol."""
+    target = cfg.get("_target_", "?")
+    try:
+        obj = hydra.utils.instantiate(cfg, **kwargs)
+    except Exception as exc:  # hydra wraps the plugin's own error; show its last line only
+        cause = exc.__cause__ or exc
+        msg = str(cause).strip().splitlines()[-1] if str(cause).strip() else type(cause).__name__
+        if isinstance(cause, ConfigError):
+            raise cause from None
+        raise ConfigError(f"option {kind} ({target})", msg) from None
+    return check_protocol(obj, kind, f"option {kind} ({target})")
+
+
+def build_terms(loss_cfg: DictConfig) -> list:
+    """Loss terms from the multi-selected `loss` group: one entry per option, each with its own weight."""
+    if not loss_cfg:
+        raise ConfigError("option loss", "no loss terms selected; expected e.g. loss=[reconstruction,kl]")
+    terms = []
+    for name, node in loss_cfg.items():
+        term = build_plugin(node, "loss")
+        if not getattr(term, "name", None):
+            term.name = str(name)
+        terms.append(term)
+    return terms

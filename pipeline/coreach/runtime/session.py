@@ -1,0 +1,336 @@
+"""The control-rate step on the robot computer: kinematics, goal belief, context, ONNX decoder, safety filter.
+
+Imports only numpy, onnxruntime and the shared array-API modules (coreach.context, coreach.safety,
+coreach_plugins.belief.boltzmann), so the same belief, context and speed-cap code that trained and vetted
+the decoder runs here without torch.
+
+Safety filter, in order (always on):
+1. any non-finite stick, q or timestamp -> zero and a latched fault (cleared only by `reset_fault`);
+2. watchdog: a stick sample older than `watchdog_timeout_s` (or from the future) -> zero;
+3. stick clipped to the box [-1, 1]^d, then a per-axis deadband rescaled so the stick stays continuous;
+   a stick inside the deadband on every axis -> zero (a released stick stops the arm);
+4. non-finite decoder output -> zero and a latched fault;
+5. joint position look-ahead (SafetyLimits.keep_inside), then joint speed and tool speed caps
+   (SafetyLimits.cap; uniform scaling, so positions stay inside);
+6. workspace box: the command is scaled down uniformly so the predicted tool position after
+   `lookahead_s` stays inside the box (or, when already outside, moves no further out on any axis).
+Scaling in 5-6 never increases any joint speed, so each later filter keeps the earlier guarantees.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import onnxruntime as ort
+
+from coreach.context import build_context
+from coreach.errors import DataError
+from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
+from coreach.runtime.kinematics import Chain, quat_to_matrix
+from coreach.safety import SafetyLimits
+
+# keep_inside computes 0 * (limit - q): an infinite (continuous-joint) limit would give nan, so unbounded
+# joints get a bound no arm reaches instead.
+_UNBOUNDED = 1e6
+
+
+@dataclass
+class StepInfo:
+    """What happened in the last `Session.step`: inputs as used, and which filters acted."""
+
+    now_s: float
+    stick: np.ndarray  # [d] after box clipping and deadband (zeros when not used)
+    qd_decoder: np.ndarray  # [n] decoder output before the filters (zeros when the decoder did not run)
+    qd: np.ndarray  # [n] the command returned
+    ee_pos: np.ndarray  # [3] tool position at q (nan when q was not usable)
+    context: np.ndarray | None = None  # [1, C] float32 raw context the decoder saw (None if it did not run)
+    fault: str | None = None  # set when the session is (or just became) faulted
+    stale: bool = False  # watchdog: stick sample too old (or from the future)
+    stick_clipped: bool = False
+    deadband: bool = False  # stick inside the deadband on every axis -> zero command
+    position_limited: bool = False  # look-ahead clipped a joint approaching its position limit
+    speed_capped: bool = False  # joint speed or tool speed cap scaled the command down
+    workspace_scale: float = 1.0  # < 1 when the workspace box scaled the command down
+    belief_updated: bool = False
+
+    @property
+    def workspace_limited(self) -> bool:
+        return self.workspace_scale < 1.0
+
+    @property
+    def zeroed(self) -> bool:
+        """The command was forced to zero (fault, watchdog or deadband)."""
+        return self.fault is not None or self.stale or self.deadband
+
+    @property
+    def intervened(self) -> bool:
+        """Any filter changed what the stick and decoder asked for."""
+        return (self.zeroed or self.stick_clipped or self.position_limited or self.speed_capped
+                or self.workspace_limited)
+
+
+@dataclass
+class _Layout:
+    targets: np.ndarray  # [1, G, 2, 3] approach point, end of fine motion
+    goal_rot: np.ndarray  # [1, G, 3, 3]
+
+
+class Session:
+    """One decoder on one arm. Build with `Session.open(bundle_folder)`; call `step` at the control rate.
+
+    `last` is the StepInfo of the latest step, `belief` the goal belief, `fault` the latched fault.
+    """
+
+    def __init__(self, manifest: Manifest, chain: Chain, decoder: ort.InferenceSession):
+        self.manifest = manifest
+        self.chain = chain
+        self._ort = decoder
+        self.last: StepInfo | None = None
+        m = manifest
+        self.belief_model = BoltzmannGoalBelief(beta=m.belief["beta"], floor=m.belief["floor"],
+                                                min_motion=m.belief["min_motion"])
+        lower = np.where(np.isfinite(m.q_lower), m.q_lower, -_UNBOUNDED)
+        upper = np.where(np.isfinite(m.q_upper), m.q_upper, _UNBOUNDED)
+        self.limits = SafetyLimits(qd_max=tuple(m.qd_max.tolist()), tcp_speed_max=m.tcp_speed_max,
+                                   q_lower=tuple(lower.tolist()), q_upper=tuple(upper.tolist()))
+        self._qd_max = m.qd_max.copy()
+        self._ws_min, self._ws_max = m.workspace_min.tolist(), m.workspace_max.tolist()
+        self._d, self._n = m.latent_dim, m.action_dim
+        self._out_names = [self._ort.get_outputs()[0].name]
+        self._fault: str | None = None
+        self._stick_in = np.zeros((1, self._d), dtype=np.float32)
+        self.set_goals(m.goal_pos, m.goal_quat, m.goal_fine)
+        self.reset()
+
+    def __repr__(self) -> str:
+        return (f"Session(bundle={str(self.manifest.folder)!r}, joints={self._n}, goals={self.manifest.n_goals}, "
+                f"fault={self._fault!r})")
+
+    # ------------------------------------------------------------------------------------------ set-up
+    @classmethod
+    def open(cls, bundle_folder: str | Path) -> Session:
+        """Verify the bundle (hashes, schema, listing), then load its robot and decoder."""
+        m = verify_bundle(bundle_folder)
+        urdf = _read_checked(m, "robot.urdf").decode("utf-8")
+        chain = Chain.from_string(urdf, m.tool_link, str(m.path("robot.urdf")))
+        _check_robot(m, chain)
+        opts = ort.SessionOptions()
+        opts.intra_op_num_threads = 1  # one control loop, one core; thread hand-offs cost more than they save
+        opts.inter_op_num_threads = 1
+        opts.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+        opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+        try:
+            sess = ort.InferenceSession(_read_checked(m, "decoder.onnx"), opts, providers=["CPUExecutionProvider"])
+        except Exception as exc:  # onnxruntime raises its own exception types
+            raise BundleError(str(m.path("decoder.onnx")), f"onnxruntime cannot load it: {exc}") from None
+        _check_graph(m, sess)
+        return cls(m, chain, sess)
+
+    def set_goals(self, goal_pos, goal_quat, goal_fine) -> None:
+        """Goal layout from the robot computer's perception: approach points [G, 3] (m, base frame),
+        approach orientations [G, 4] (w, x, y, z), fine-motion displacements [G, 3] (m). G and the goal
+        order are the bundle's (manifest goal_names); the belief is kept."""
+        g = self.manifest.n_goals
+        pos = _array(goal_pos, (g, 3), "session.set_goals goal_pos")
+        quat = _array(goal_quat, (g, 4), "session.set_goals goal_quat")
+        fine = _array(goal_fine, (g, 3), "session.set_goals goal_fine")
+        if np.any(np.linalg.norm(quat, axis=-1) < 1e-9):
+            raise DataError("session.set_goals goal_quat", "expected non-zero quaternions (w, x, y, z)")
+        self._layout = _Layout(np.stack([pos, pos + fine], axis=1)[None], quat_to_matrix(quat)[None])
+
+    def reset(self) -> None:
+        """Start a new task: belief back to the uniform prior; the next step's tool position is the
+        reference for goal inference. A latched fault stays latched (see `reset_fault`)."""
+        self._belief = self.belief_model.initial(1, self.manifest.n_goals, np.zeros(1))  # [1, G]
+        self._anchor: np.ndarray | None = None
+
+    def reset_fault(self) -> None:
+        """Clear a latched fault, after the operator has checked why it happened."""
+        self._fault = None
+
+    @property
+    def fault(self) -> str | None:
+        """Why the session is faulted (zero output until `reset_fault`), or None."""
+        return self._fault
+
+    @property
+    def belief(self) -> np.ndarray:
+        """Current belief over the goals [G] (manifest goal_names order)."""
+        return self._belief[0].copy()
+
+    # ------------------------------------------------------------------------------------------ control
+    def step(self, stick, q, now_s: float, stick_time_s: float | None = None) -> np.ndarray:
+        """Joint velocity command qd [n] (rad/s) for stick [d] and measured joint positions q [n] (rad).
+
+        now_s: the control loop's clock (s). stick_time_s: when the stick sample was read, on the same
+        clock; None means "read now" (= now_s). The watchdog zeroes the command when
+        now_s - stick_time_s > watchdog_timeout_s, or when the sample claims to come from the future.
+        """
+        n = self._n
+        # the stick has 2-3 axes: plain floats are cheaper than numpy calls for it
+        stick = self._vector(stick, self._d, "stick").tolist()
+        q = self._vector(q, n, "q")
+        t_stick = now_s if stick_time_s is None else stick_time_s
+        zero = np.zeros(n)
+        info = StepInfo(now_s=now_s, stick=np.zeros(self._d), qd_decoder=np.zeros(n), qd=zero,
+                        ee_pos=np.full(3, np.nan))
+        self.last = info
+        if self._fault is None:
+            bad = [name for name, ok in (("stick", all(map(math.isfinite, stick))), ("q", np.isfinite(q).all()),
+                                         ("now_s", _finite(now_s)), ("stick_time_s", _finite(t_stick))) if not ok]
+            if bad:
+                self._fault = f"non-finite {', '.join(bad)} at now_s={now_s!r}"
+        if self._fault is not None:
+            info.fault = self._fault
+            return zero
+
+        pos, rot, jac = self.chain.fk_jacobian(q)
+        info.ee_pos = pos
+        info.belief_updated = self._track_belief(pos)
+
+        age = float(now_s) - float(t_stick)
+        if not 0.0 <= age <= self.manifest.watchdog_timeout_s:
+            info.stale = True
+            return zero
+
+        m = self.manifest
+        lo, hi = m.stick_low, m.stick_high
+        clipped = [min(max(v, lo), hi) for v in stick]
+        info.stick_clipped = clipped != stick
+        s = _deadband(clipped, m.deadband)
+        if not any(s):
+            info.deadband = True
+            return zero
+        info.stick = np.array(s)
+
+        layout = self._layout
+        context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot)
+        info.context = context = context.astype(np.float32)  # [1, C]
+        self._stick_in[0] = s
+        (out,) = self._ort.run(self._out_names, {"stick": self._stick_in, "context": context})
+        qd = out[0].astype(np.float64)  # [n]
+        info.qd_decoder = qd
+        if not np.isfinite(qd).all():
+            return self._latch(info, "decoder output is not finite")
+
+        jac_lin = jac[:3]  # [3, n]
+        qd, hit = self.limits.keep_inside(q, qd, m.lookahead_s)
+        info.position_limited = bool(hit)
+        qd, hit = self.limits.cap(qd, jac_lin)
+        info.speed_capped = bool(hit)
+        qd, info.workspace_scale = self._inside_workspace(pos, jac_lin, qd)
+        qd = np.minimum(np.maximum(qd, -self._qd_max), self._qd_max)  # guards the last ulp of the scalings
+        if not np.isfinite(qd).all():
+            return self._latch(info, "safety filter produced a non-finite command")
+        info.qd = qd
+        return qd
+
+    # ------------------------------------------------------------------------------------------ helpers
+    def _vector(self, value, length: int, name: str) -> np.ndarray:
+        try:
+            arr = np.asarray(value, dtype=np.float64)
+        except (TypeError, ValueError, OverflowError):
+            arr = None
+        if arr is None or arr.shape != (length,):
+            shown = "not numeric" if arr is None else f"shape {list(arr.shape)}"
+            self._fault = f"bad {name} input ({shown})"
+            raise DataError(f"session.step {name}", f"expected {length} numbers, got {shown}; session faulted")
+        return arr
+
+    def _latch(self, info: StepInfo, why: str) -> np.ndarray:
+        self._fault = f"{why} at now_s={info.now_s!r}"
+        info.fault = self._fault
+        info.qd = np.zeros(self._n)
+        return info.qd
+
+    def _track_belief(self, pos: np.ndarray) -> bool:
+        """Update the belief once the tool has moved min_motion from where the last update left it.
+
+        Updating from that anchor (not from the previous control step) lets slow motions count: at a
+        high control rate a single step may move less than min_motion. With floor = 0 the update
+        telescopes, so the belief matches one taken at the demonstrations' coarser rate.
+        """
+        if self._anchor is None:
+            self._anchor = pos
+            return False
+        if math.dist(pos, self._anchor) < self.belief_model.min_motion:
+            return False
+        self._belief = self.belief_model.update(self._belief, self._anchor[None], pos[None], self._layout.targets)
+        self._anchor = pos
+        return True
+
+    def _inside_workspace(self, pos: np.ndarray, jac_lin: np.ndarray, qd: np.ndarray) -> tuple[np.ndarray, float]:
+        """Scale qd so pos + J qd * lookahead stays in the box; axes already outside may only move back."""
+        m = self.manifest
+        move = ((jac_lin @ qd) * m.lookahead_s).tolist()  # [3] predicted tool displacement (first order)
+        scale = 1.0
+        # plain floats: three axes are cheaper in Python than in numpy calls
+        for d, p, lo, hi in zip(move, pos.tolist(), self._ws_min, self._ws_max):
+            room_hi, room_lo = max(hi - p, 0.0), min(lo - p, 0.0)
+            if d > room_hi:
+                scale = min(scale, room_hi / d)
+            elif d < room_lo:
+                scale = min(scale, room_lo / d)
+        return (qd * scale if scale < 1.0 else qd), scale
+
+
+def _deadband(stick: list[float], width: float) -> list[float]:
+    """Per-axis deadband: |s| <= width -> 0, else sign(s) (|s| - width) / (1 - width), continuous and
+    still in [-1, 1]. Per axis (not radial) so drift on one axis is removed while the other is deflected."""
+    out = []
+    for s in stick:
+        mag = (abs(s) - width) / (1.0 - width)
+        out.append(math.copysign(mag, s) if mag > 0.0 else 0.0)
+    return out
+
+
+def _finite(x) -> bool:
+    try:
+        return math.isfinite(x)
+    except TypeError:
+        return False
+
+
+def _array(value, shape: tuple[int, ...], where: str) -> np.ndarray:
+    try:
+        arr = np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError, OverflowError):
+        raise DataError(where, f"expected numbers of shape {list(shape)}") from None
+    if arr.shape != shape or not np.isfinite(arr).all():
+        raise DataError(where, f"expected finite numbers of shape {list(shape)}, got shape {list(arr.shape)}")
+    return arr.copy()
+
+
+def _read_checked(m: Manifest, name: str) -> bytes:
+    """The bytes actually loaded, hashed again so a file swapped after verification is refused."""
+    data = m.path(name).read_bytes()
+    if sha256_bytes(data) != m.files[name]:
+        raise BundleError(str(m.path(name)), "changed since the bundle was verified; sha256 differs")
+    return data
+
+
+def _check_robot(m: Manifest, chain: Chain) -> None:
+    """The manifest's limits may be tighter than the URDF's (a release may reduce speed), never looser."""
+    where = str(m.path("manifest.json"))
+    if tuple(chain.joint_names) != m.joint_names:
+        raise BundleError(where, f"joint_names {list(m.joint_names)} differ from robot.urdf {chain.joint_names}")
+    if np.any(m.q_lower < chain.q_lower) or np.any(m.q_upper > chain.q_upper):
+        raise BundleError(where, "robot.q_lower/q_upper are wider than the URDF's joint limits")
+    if np.any(m.qd_max > chain.qd_max * (1 + 1e-12)):
+        raise BundleError(where, "robot.qd_max exceeds the URDF's velocity limits")
+
+
+def _check_graph(m: Manifest, sess: ort.InferenceSession) -> None:
+    where = str(m.path("decoder.onnx"))
+    inputs = {i.name: i.shape for i in sess.get_inputs()}
+    outputs = {o.name: o.shape for o in sess.get_outputs()}
+    want_in = {"stick": m.latent_dim, "context": m.context_dim}
+    if set(inputs) != set(want_in) or any(inputs[k][-1] != v for k, v in want_in.items()):
+        raise BundleError(where, f"inputs {inputs}; expected stick [batch, {m.latent_dim}] and context "
+                                 f"[batch, {m.context_dim}]")
+    if list(outputs) != ["qd"] or outputs["qd"][-1] != m.action_dim:
+        raise BundleError(where, f"outputs {outputs}; expected qd [batch, {m.action_dim}]")

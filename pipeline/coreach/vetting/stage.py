@@ -1,0 +1,194 @@
+"""The vetting stage: every candidate interface through one suite in closed loop, metrics, report, MLflow."""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import time
+from pathlib import Path
+
+from omegaconf import DictConfig, ListConfig, OmegaConf
+
+from coreach import tracking
+from coreach.errors import ConfigError
+from coreach.plugin_registry import build_plugin
+from coreach.safety import SafetyLimits
+from coreach.training.callbacks import interactive
+from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
+from coreach.vetting.loop import rollout
+from coreach.vetting.metrics import flat_metrics, summarise
+from coreach.vetting.report import standard_plots, write_report
+from coreach.vetting.suite import load_suite
+
+log = logging.getLogger("coreach.vet")
+BASELINES_DIR = "interface"
+
+
+def candidate_list(value) -> list[str]:
+    if isinstance(value, (list, ListConfig)):
+        items = [str(v) for v in value]
+    else:
+        items = [s for s in str(value).split(",")]
+    items = [s.strip() for s in items if s and s.strip()]
+    if not items:
+        raise ConfigError("option candidates", "nothing to vet; give run ids, models:/... or baseline names")
+    return items
+
+
+def _baseline_config(name: str):
+    from importlib import resources
+
+    path = resources.files("coreach_conf") / BASELINES_DIR / f"{name}.yaml"
+    if name == "decoder" or not path.is_file():
+        return None
+    return OmegaConf.create(path.read_text())
+
+
+def build_candidate(name: str, client):
+    """(interface, training run id or None) for a baseline name, a run id, a registry reference or a folder."""
+    cfg = _baseline_config(name)
+    if cfg is not None:
+        return build_plugin(cfg, "interface"), None
+    from coreach_plugins.interface.decoder import DecoderInterface
+
+    label = ""
+    if client is not None and not name.startswith("models:/") and not Path(name).expanduser().exists():
+        try:
+            label = client.get_run(name).data.tags.get("coreach.label", "")
+        except Exception:  # unknown run: DecoderInterface names it in its own error
+            label = ""
+    interface = DecoderInterface(run=name, name=label)
+    source = interface.source_ if len(str(interface.source_)) == 32 and "/" not in str(interface.source_) else None
+    return interface, source
+
+
+class _Progress:
+    """A rich progress bar per suite on a terminal; a log line per candidate otherwise."""
+
+    def __init__(self, suite_name: str):
+        self.bar = None
+        if interactive():
+            from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+            self.bar = Progress(TextColumn("{task.description}"), BarColumn(), TimeRemainingColumn(),
+                                transient=False)  # fmt: skip
+            self.bar.start()
+        self.suite = suite_name
+
+    def task(self, label: str, total: int):
+        if self.bar is None:
+            log.info("vetting %s on %s (%d steps)", label, self.suite, total)
+            return None
+        tid = self.bar.add_task(f"{self.suite}: {label}", total=total)
+        return lambda step, _total: self.bar.update(tid, completed=step + 1)
+
+    def close(self):
+        if self.bar is not None:
+            self.bar.stop()
+
+
+def vet(cfg: DictConfig) -> dict:
+    """Vet `cfg.candidates` on `cfg.suite`; returns the summaries, the report path and the MLflow run ids."""
+    t0 = time.perf_counter()
+    uri = tracking.resolve_uri(cfg.tracking.get("uri"))
+    os.environ["MLFLOW_TRACKING_URI"] = uri  # decoder interfaces read runs from the same store
+    overrides = {"episodes": cfg.episodes} if cfg.get("episodes") is not None else {}
+    if cfg.get("operator_preset"):
+        overrides["operator"] = cfg.operator_preset
+    suite = load_suite(str(cfg.suite), **overrides)
+    robot = build_plugin(cfg.robot, "robot")
+    belief = build_plugin(cfg.belief, "belief")
+    limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
+    client, exp_id = tracking.client(cfg.tracking) if cfg.log else (None, None)
+
+    names = candidate_list(cfg.candidates)
+    built = [(n, *build_candidate(n, client)) for n in names]
+    for name, interface, _ in built:  # every problem before any rollout starts
+        spec = getattr(getattr(interface, "policy_", None), "spec", None)
+        suite.validate(robot, spec_n_goals=None if spec is None else spec.n_goals)
+        if spec is not None and spec.dof != robot.dof:
+            raise ConfigError(f"candidate {name}", f"decoder was trained for {spec.dof} joints, robot has {robot.dof}")
+
+    out = Path(cfg.report_dir or f"reports/vet-{suite.name}-{time.strftime('%Y%m%d-%H%M%S')}")
+    out.mkdir(parents=True, exist_ok=True)
+    goal_rot = suite.episodes_plan(suite.generator(), robot).layout.approach_rot  # same plan the loop draws
+    summaries, records, plots = {}, {}, []
+    progress = _Progress(suite.name)
+    try:
+        for name, interface, source in built:
+            label = _unique(interface.name or name, summaries)
+            record = rollout(robot, interface, suite.build_operator(), suite, belief, limits, suite.generator(),
+                             progress.task(label, suite.steps))  # fmt: skip
+            summaries[label] = summarise(record, suite.tolerances)
+            records[label] = (record, interface, source)
+    finally:
+        progress.close()
+
+    plots += standard_plots(summaries, out)
+    plots += [p for p in [plot_reach_by_goal(summaries, out / "reach_by_goal.png")] if p]
+    for label, (record, interface, _) in records.items():
+        plots += diagnosis_plots(label, record, interface, robot, goal_rot, summaries[label], out)
+    meta = {
+        "suite": suite.name,
+        "episodes": suite.n_episodes,
+        "horizon (s)": suite.horizon_s,
+        "operator": json.dumps(suite.operator if isinstance(suite.operator, dict) else str(suite.operator)),
+        "seed": suite.seed,
+        "tracking": uri,
+        "candidates": ", ".join(f"{k} ({v[2] or 'baseline'})" for k, v in records.items()),
+    }
+    report = write_report(summaries, plots, out, f"coreach vetting: {suite.name}", meta,
+                          sections=diagnosis_html(summaries))  # fmt: skip
+    (out / "summary.json").write_text(json.dumps(summaries, indent=2, default=str))
+
+    vet_runs = {}
+    if cfg.log:
+        for label, (record, interface, source) in records.items():
+            vet_runs[label] = _log_vetting(client, exp_id, label, source, suite, summaries[label], out)
+    return {
+        "suite": suite.name,
+        "report": str(report.resolve()),
+        "summaries": summaries,
+        "vet_runs": vet_runs,
+        "sources": {k: v[2] for k, v in records.items()},
+        "seconds": time.perf_counter() - t0,
+    }
+
+
+def _log_vetting(client, exp_id, label, source, suite, summary, out: Path) -> str:
+    """A vetting run linked to its training run; the headline metrics also land on the training run."""
+    tags = {"coreach.stage": "vet", "coreach.suite": suite.name, "coreach.label": label}
+    if source:
+        tags["coreach.source_run"] = source
+    run = client.create_run(exp_id, run_name=f"vet {label} on {suite.name}", tags=tags)
+    rid = run.info.run_id
+    metrics = flat_metrics(summary)
+    now = int(time.time() * 1000)
+    from mlflow.entities import Metric, Param
+
+    batch = [Metric(k, v, now, 0) for k, v in metrics.items()]
+    for i in range(0, len(batch), 500):
+        client.log_batch(rid, metrics=batch[i : i + 500])
+    params = {"suite": suite.name, "episodes": str(suite.n_episodes), "seed": str(suite.seed),
+              "horizon_s": str(suite.horizon_s), "interface": label}  # fmt: skip
+    client.log_batch(rid, params=[Param(k, v) for k, v in params.items()])
+    client.log_text(rid, json.dumps(summary, indent=2, default=str), "summary.json")
+    client.log_text(rid, json.dumps(suite.to_dict(), indent=2, default=str), "suite.json")
+    client.log_artifacts(rid, str(out), "report")
+    client.set_terminated(rid)
+    if source:
+        headline = {k: v for k, v in metrics.items() if k.startswith(("success/", "recovery/", "authority/"))}
+        client.log_batch(source, metrics=[Metric(f"vet/{suite.name}/{k}", v, now, 0) for k, v in headline.items()])
+        client.set_tag(source, f"coreach.vet.{suite.name}", rid)
+    return rid
+
+
+def _unique(label: str, taken: dict) -> str:
+    out, i = label, 2
+    while out in taken:
+        out, i = f"{label}#{i}", i + 1
+    return out
+
+
+__all__ = ["vet", "build_candidate", "candidate_list"]

@@ -1,0 +1,455 @@
+"""Vetting suites read from YAML: the episodes a closed-loop test runs (scene, layouts, starts, operator, switches)."""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass, field
+from importlib.resources import files
+from pathlib import Path
+from typing import Any
+
+import torch
+from torch import Tensor
+
+from coreach.errors import ConfigError
+from coreach.scenario import Layout, Scenario, load_scenario
+
+__all__ = ["Suite", "EpisodePlan", "load_suite", "builtin_suites", "load_operator_config", "MIN_SEED"]
+
+# Training (demonstration and trainer seeds) uses small integers from 0; vetting draws from 10_000 up so no
+# vetting episode can coincide with a training one.
+MIN_SEED = 10_000
+# Common practice for "arrived" in reaching studies with assistive arms (not a standard): 2 cm, 15 deg.
+DEFAULT_POSITION_TOL = 0.02
+DEFAULT_ORIENTATION_TOL_DEG = 15.0
+
+_KEYS = (
+    "name", "scenario", "goals", "layout_offset", "layout_jitter", "start", "start_jitter", "operator",
+    "switch_fractions", "switch_to", "episodes", "seed", "horizon_s", "dt", "tolerances", "candidates_per_axis",
+)  # fmt: skip
+_TOL_KEYS = ("position_m", "orientation_deg")
+
+
+@dataclass
+class EpisodePlan:
+    """What each of E episodes will be: goals, switch, layout and start (float64, SI units)."""
+
+    goal_initial: Tensor  # [E] long
+    goal_final: Tensor  # [E] long (== goal_initial when there is no switch)
+    switch_step: Tensor  # [E] long, -1 for no switch
+    switch_fraction: Tensor  # [E] float64, nan for no switch
+    layout: Layout  # E layouts of all G goals
+    q_start: Tensor  # [E, n]
+
+    def __len__(self) -> int:
+        return int(self.goal_initial.shape[0])
+
+    def select(self, idx) -> EpisodePlan:
+        """The episodes at `idx` (a list, slice or index tensor), in that order."""
+        lay = self.layout
+        return EpisodePlan(
+            self.goal_initial[idx], self.goal_final[idx], self.switch_step[idx], self.switch_fraction[idx],
+            Layout(lay.names, lay.approach_pos[idx], lay.approach_rot[idx], lay.fine[idx]), self.q_start[idx],
+        )  # fmt: skip
+
+
+@dataclass
+class Suite:
+    """One vetting suite. Every episode count is per switch cell (`switch_fractions` entry)."""
+
+    name: str
+    scenario: str  # shipped scenario name or YAML path
+    operator: dict  # operator plugin config (with _target_)
+    goals: list[str] | None = None  # goals used as initial/final goals; None = all goals of the scenario
+    layout_offset: tuple[float, float, float] = (0.0, 0.0, 0.0)  # m, added to every approach point
+    layout_jitter: float | None = None  # m, uniform per axis; None = the scenario's jitter
+    start: str | list[float] = "home"
+    start_jitter: float = 0.0  # rad, uniform per joint
+    switch_fractions: list[float | None] = field(default_factory=lambda: [None])
+    switch_to: str = "next"  # "next": goal after the initial one (cyclic); "random": any other goal
+    episodes: int = 50
+    seed: int = MIN_SEED
+    horizon_s: float = 20.0
+    dt: float | None = None  # s; None = the scenario's dt
+    position_tol: float = DEFAULT_POSITION_TOL  # m
+    orientation_tol_deg: float = DEFAULT_ORIENTATION_TOL_DEG
+    candidates_per_axis: int = 5
+    path: str = "suite"  # where it was read from, for error messages
+    scenario_obj: Scenario | None = field(default=None, repr=False, compare=False)
+
+    # ----- derived -----
+    @property
+    def scene(self) -> Scenario:
+        """The loaded scenario (loaded once)."""
+        if self.scenario_obj is None:
+            self.scenario_obj = _load_scenario(self.scenario, self.path)
+        return self.scenario_obj
+
+    @property
+    def step_dt(self) -> float:
+        return float(self.dt if self.dt is not None else self.scene.dt)
+
+    @property
+    def steps(self) -> int:
+        """Control steps per episode T."""
+        return max(1, int(round(self.horizon_s / self.step_dt)))
+
+    @property
+    def n_episodes(self) -> int:
+        return self.episodes * len(self.switch_fractions)
+
+    @property
+    def goal_names(self) -> list[str]:
+        return self.scene.goal_names
+
+    @property
+    def goal_indices(self) -> list[int]:
+        """Indices (into the scenario's goals) of the goals this suite uses."""
+        names = self.goal_names
+        return list(range(len(names))) if self.goals is None else [names.index(g) for g in self.goals]
+
+    @property
+    def orientation_tol(self) -> float:
+        return math.radians(self.orientation_tol_deg)
+
+    @property
+    def tolerances(self) -> dict[str, float]:
+        return {"position_m": self.position_tol, "orientation_deg": self.orientation_tol_deg}
+
+    def to_dict(self) -> dict:
+        """The suite as plain data with the YAML's keys (for run records and reports)."""
+        keys = [k for k in _KEYS if k != "tolerances"]
+        out = {k: getattr(self, k) for k in keys}
+        out["layout_offset"] = list(self.layout_offset)
+        out["tolerances"] = self.tolerances
+        return out
+
+    def stick_grid(self, dtype: torch.dtype = torch.float64) -> Tensor:
+        """Candidate sticks [K, 2], K = candidates_per_axis^2, on a regular grid over [-1, 1]^2
+        (row k = (x_i, y_j) with k = i * c + j)."""
+        axis = torch.linspace(-1.0, 1.0, self.candidates_per_axis, dtype=dtype)
+        gx, gy = torch.meshgrid(axis, axis, indexing="ij")
+        return torch.stack([gx.reshape(-1), gy.reshape(-1)], dim=-1)
+
+    def generator(self) -> torch.Generator:
+        """A fresh generator seeded with the suite's seed: give every interface its own, so all of them
+        meet the same episodes."""
+        return torch.Generator().manual_seed(int(self.seed))
+
+    def build_operator(self):
+        """The operator plugin, checked against the Operator protocol."""
+        from omegaconf import OmegaConf
+
+        from coreach.plugin_registry import build_plugin
+
+        try:
+            return build_plugin(OmegaConf.create(self.operator), "operator")
+        except ConfigError as exc:
+            raise ConfigError(f"{self.path}, option operator ({exc.where})", exc.problem) from None
+
+    # ----- checks that need the robot or the decoder -----
+    def validate(self, robot, spec_n_goals: int | None = None, where: str | None = None) -> None:
+        """Raise one ConfigError naming the suite file and the item if this suite cannot run on `robot`
+        (or with a decoder trained for `spec_n_goals` goals)."""
+        where = where or self.path
+        scene = self.scene
+        G = len(scene.goals)
+        if spec_n_goals is not None and int(spec_n_goals) != G:
+            raise ConfigError(
+                f"{where}, option scenario",
+                f"the decoder was trained for {spec_n_goals} goals but scenario {scene.name!r} has {G} "
+                f"({', '.join(scene.goal_names)}); vet it on a suite over a scene with the same goals",
+            )
+        q0 = self._start_q(robot, where)
+        self.build_operator()
+        self._check_reach(robot, q0, where)
+
+    def _start_q(self, robot, where: str) -> Tensor:
+        n = robot.dof
+        if self.start == "home":
+            return robot.q_home.to(torch.float64)
+        q0 = torch.tensor(self.start, dtype=torch.float64)
+        if q0.shape != (n,):
+            raise ConfigError(
+                f"{where}, option start",
+                f"expected 'home' or {n} joint positions (rad) for {robot.name} {list(robot.joint_names)}, "
+                f"got {len(self.start)} values",
+            )
+        lo, hi = robot.q_lower.to(torch.float64), robot.q_upper.to(torch.float64)
+        bad = [name for name, v, a, b in zip(robot.joint_names, q0, lo, hi) if not a <= v <= b]
+        if bad:
+            raise ConfigError(f"{where}, option start", f"joint positions outside {robot.name}'s limits for {bad}")
+        return q0
+
+    def _check_reach(self, robot, q0: Tensor, where: str) -> None:
+        """Run the scripted demonstrator, noise-free, from the start pose to every used goal at its offset
+        position; a goal it cannot complete within the tolerances and the horizon is out of reach."""
+        from coreach.demonstrator import rollout as scripted
+        from coreach.geometry import angle_between
+
+        scene = self.scene
+        used = self.goal_indices
+        goals = [dataclasses.replace(scene.goals[i]) for i in used]
+        for g in goals:
+            g.position = [p + o for p, o in zip(g.position, self.layout_offset)]
+        probe = Scenario(name=scene.name, goals=goals, jitter=0.0, dt=self.step_dt)
+        run = scripted(
+            _StartAt(robot, q0), probe, len(goals), seed=int(self.seed), noise=0.0, max_steps=self.steps,
+            goal_order="round_robin", arrive_tol=self.position_tol, approach_rot_tol=self.orientation_tol,
+        )  # fmt: skip
+        for e, goal in enumerate(goals):
+            if bool(run.completed[e]):
+                continue
+            last = int(run.lengths[e]) - 1
+            q_last = run.q[e, last : last + 1] + run.qd[e, last : last + 1] * run.dt  # [1, n]
+            pos, rot = robot.fk(q_last.to(torch.float64))
+            end = run.layout.approach_pos[e, e] + run.layout.fine[e, e]
+            miss = float((pos[0].to(torch.float64) - end).norm())
+            ang = math.degrees(float(angle_between(run.layout.approach_rot[e, e], rot[0].to(torch.float64))))
+            raise ConfigError(
+                f"{where}, goal {goal.name}",
+                f"out of reach for {robot.name} from the suite's start pose (layout_offset "
+                f"{list(self.layout_offset)}): the scripted demonstrator ended {miss:.3f} m from the end of "
+                f"its fine motion ({ang:.0f} deg from the approach orientation) after {self.steps} steps; "
+                f"expected within {self.position_tol} m and {self.orientation_tol_deg} deg",
+            )
+
+    # ----- episodes -----
+    def episodes_plan(self, generator: torch.Generator, robot=None) -> EpisodePlan:
+        """Every episode of the suite, cells in `switch_fractions` order, `episodes` per cell.
+
+        Initial goals go round-robin over the used goals inside each cell (balanced cells). Random draws,
+        in this order: layouts (scenario jitter replaced by `layout_jitter`, then `layout_offset` added),
+        start jitter, and the final goals when `switch_to` is "random". `robot` gives the home pose and
+        joint limits (needed unless `start` lists joint positions and `start_jitter` is 0).
+        """
+        E, T = self.n_episodes, self.steps
+        used = torch.tensor(self.goal_indices, dtype=torch.long)
+        U = len(used)
+        slot = torch.arange(self.episodes).repeat(len(self.switch_fractions)) % U  # [E] position in `used`
+        fractions = torch.tensor(
+            [math.nan if f is None else float(f) for f in self.switch_fractions], dtype=torch.float64
+        ).repeat_interleave(self.episodes)  # [E]
+        has_switch = ~torch.isnan(fractions)
+        switch_step = torch.where(has_switch, torch.round(torch.nan_to_num(fractions) * T).long(), -1)
+
+        scene = self.scene
+        jitter = scene.jitter if self.layout_jitter is None else float(self.layout_jitter)
+        layout = dataclasses.replace(scene, jitter=jitter).sample_layouts(E, generator)
+        layout.approach_pos = layout.approach_pos + torch.tensor(self.layout_offset, dtype=torch.float64)
+
+        if robot is None and (self.start == "home" or self.start_jitter > 0):
+            raise ValueError("episodes_plan needs the robot for start='home' or start_jitter > 0")
+        q0 = self._start_q(robot, self.path) if robot is not None else torch.tensor(self.start, dtype=torch.float64)
+        noise = torch.rand(E, q0.shape[0], generator=generator, dtype=torch.float64) * 2 - 1
+        q_start = q0 + self.start_jitter * noise
+        if robot is not None:
+            lo, hi = robot.q_lower.to(torch.float64), robot.q_upper.to(torch.float64)
+            q_start = torch.minimum(torch.maximum(q_start, lo), hi)
+
+        if self.switch_to == "next":
+            final_slot = (slot + 1) % U
+        else:
+            final_slot = (slot + torch.randint(1, max(U, 2), (E,), generator=generator)) % U
+        final_slot = torch.where(has_switch, final_slot, slot)
+        return EpisodePlan(used[slot], used[final_slot], switch_step, fractions, layout, q_start)
+
+
+class _StartAt:
+    """A robot seen through a different home pose (the demonstrator starts from q_home)."""
+
+    def __init__(self, robot, q0: Tensor):
+        self._robot, self._q0 = robot, q0
+
+    def __getattr__(self, name):
+        return getattr(self._robot, name)
+
+    @property
+    def q_home(self) -> Tensor:
+        return self._q0
+
+
+# ----- reading YAML -----
+def builtin_suites() -> list[str]:
+    """Names of the suites shipped in coreach_conf/suites."""
+    folder = files("coreach_conf") / "suites"
+    return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
+
+
+def _builtin_operators() -> list[str]:
+    folder = files("coreach_conf") / "operator"
+    return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
+
+
+def load_operator_config(name: str, where: str = "option operator") -> dict:
+    """The config dict of a shipped operator option (conf/operator/<name>.yaml)."""
+    import yaml
+
+    res = files("coreach_conf") / "operator" / f"{name}.yaml"
+    if not res.is_file():
+        raise ConfigError(
+            where, f"unknown operator {name!r}; expected one of {_builtin_operators()} or a mapping with _target_"
+        )
+    return dict(yaml.safe_load(res.read_text(encoding="utf-8")))
+
+
+def _load_scenario(name: str, where: str) -> Scenario:
+    try:
+        return load_scenario(name)
+    except ConfigError as exc:
+        raise ConfigError(f"{where}, option scenario ({exc.where})", exc.problem) from None
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _number(d: dict, key: str, where: str, default, lo: float, hi: float = math.inf, what: str = "",
+            prefix: str = "") -> float:
+    v = d.get(key, default)
+    if not _is_number(v) or not lo <= v <= hi:
+        raise ConfigError(f"{where}, option {prefix}{key}", f"expected a number in [{lo}, {hi}] ({what}), got {v!r}")
+    return float(v)
+
+
+def _integer(d: dict, key: str, where: str, default, lo: int, why: str = "") -> int:
+    v = d.get(key, default)
+    if not isinstance(v, int) or isinstance(v, bool) or v < lo:
+        raise ConfigError(f"{where}, option {key}", f"expected an integer >= {lo}{why}, got {v!r}")
+    return v
+
+
+def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
+    """Check plain data (parsed YAML) and build a Suite; errors name `where` and the option."""
+    if not isinstance(d, dict):
+        raise ConfigError(where, f"expected a mapping with keys {list(_KEYS)}, got {type(d).__name__}")
+    extra = [k for k in d if k not in _KEYS]
+    if extra:
+        raise ConfigError(f"{where}, option {extra[0]}", f"unknown option; expected one of {list(_KEYS)}")
+    name = d.get("name", default_name)
+    if not isinstance(name, str) or not name:
+        raise ConfigError(f"{where}, option name", f"expected a non-empty string, got {name!r}")
+    scenario = d.get("scenario")
+    if not isinstance(scenario, str) or not scenario:
+        raise ConfigError(f"{where}, option scenario", f"expected a scenario name or YAML path, got {scenario!r}")
+    scene = _load_scenario(scenario, where)
+
+    goals = d.get("goals")
+    if goals is not None:
+        if not isinstance(goals, list) or not goals:
+            raise ConfigError(
+                f"{where}, option goals", f"expected null (all goals) or a list of goal names, got {goals!r}"
+            )
+        for i, g in enumerate(goals):
+            if g not in scene.goal_names:
+                raise ConfigError(
+                    f"{where}, option goals[{i}]",
+                    f"unknown goal {g!r}; scenario {scene.name!r} has {scene.goal_names}",
+                )
+        if len(set(goals)) != len(goals):
+            raise ConfigError(f"{where}, option goals", f"duplicate goal names in {goals}")
+
+    offset = d.get("layout_offset", [0.0, 0.0, 0.0])
+    if not isinstance(offset, list) or len(offset) != 3 or not all(_is_number(v) for v in offset):
+        raise ConfigError(f"{where}, option layout_offset", f"expected [x, y, z] in m, got {offset!r}")
+    jitter = None if d.get("layout_jitter") is None else _number(d, "layout_jitter", where, None, 0.0, 1.0, "m")
+
+    start = d.get("start", "home")
+    if start != "home" and not (isinstance(start, list) and start and all(_is_number(v) for v in start)):
+        raise ConfigError(
+            f"{where}, option start", f"expected 'home' or a list of joint positions (rad), got {start!r}"
+        )
+    start_jitter = _number(d, "start_jitter", where, 0.0, 0.0, math.pi, "rad")
+
+    operator = d.get("operator", "expert")
+    if isinstance(operator, str):
+        operator = load_operator_config(operator, f"{where}, option operator")
+    elif not isinstance(operator, dict) or not isinstance(operator.get("_target_"), str):
+        raise ConfigError(
+            f"{where}, option operator",
+            f"expected a shipped operator name ({_builtin_operators()}) or a mapping with _target_, got {operator!r}",
+        )
+
+    fractions = d.get("switch_fractions", [None])
+    if not isinstance(fractions, list) or not fractions:
+        raise ConfigError(
+            f"{where}, option switch_fractions", f"expected a non-empty list (null = no switch), got {fractions!r}"
+        )
+    for i, f in enumerate(fractions):
+        if f is not None and not (_is_number(f) and 0.0 < f < 1.0):
+            raise ConfigError(
+                f"{where}, option switch_fractions[{i}]",
+                f"expected null (no switch) or a fraction of the horizon strictly between 0 and 1, got {f!r}",
+            )
+    n_used = len(scene.goals) if goals is None else len(goals)
+    if any(f is not None for f in fractions) and n_used < 2:
+        raise ConfigError(f"{where}, option switch_fractions", "goal switches need at least 2 goals")
+    switch_to = d.get("switch_to", "next")
+    if switch_to not in ("next", "random"):
+        raise ConfigError(f"{where}, option switch_to", f"expected 'next' or 'random', got {switch_to!r}")
+
+    episodes = _integer(d, "episodes", where, 50, 1, " (episodes per switch cell)")
+    seed = _integer(
+        d, "seed", where, MIN_SEED, MIN_SEED,
+        " so vetting episodes never coincide with training ones (training seeds are small integers)",
+    )  # fmt: skip
+    horizon = _number(d, "horizon_s", where, 20.0, 1e-3, 1e5, "s")
+    dt = None if d.get("dt") is None else _number(d, "dt", where, None, 1e-4, 10.0, "s")
+    tol = d.get("tolerances") or {}
+    if not isinstance(tol, dict):
+        raise ConfigError(f"{where}, option tolerances", f"expected a mapping with {list(_TOL_KEYS)}, got {tol!r}")
+    bad = [k for k in tol if k not in _TOL_KEYS]
+    if bad:
+        raise ConfigError(f"{where}, option tolerances.{bad[0]}", f"unknown option; expected one of {list(_TOL_KEYS)}")
+    at = "tolerances."
+    pos_tol = _number(tol, "position_m", where, DEFAULT_POSITION_TOL, 1e-6, 1.0, "m", prefix=at)
+    ori_tol = _number(tol, "orientation_deg", where, DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg", prefix=at)
+    cpa = _integer(d, "candidates_per_axis", where, 5, 2, " (stick grid points per axis)")
+    suite = Suite(
+        name=name, scenario=scenario, operator=dict(operator), goals=goals,
+        layout_offset=tuple(float(v) for v in offset), layout_jitter=jitter, start=start,
+        start_jitter=start_jitter, switch_fractions=list(fractions), switch_to=switch_to, episodes=episodes, seed=seed, horizon_s=horizon, dt=dt, position_tol=pos_tol,
+        orientation_tol_deg=ori_tol, candidates_per_axis=cpa, path=where, scenario_obj=scene,
+    )  # fmt: skip
+    steps = suite.steps
+    for i, f in enumerate(fractions):
+        if f is not None and not 1 <= round(f * steps) <= steps - 1:
+            raise ConfigError(
+                f"{where}, option switch_fractions[{i}]",
+                f"switch at step {round(f * steps)} of {steps}; expected a step inside the horizon",
+            )
+    return suite
+
+
+def load_suite(name_or_path: str | Path, **overrides) -> Suite:
+    """Read a suite: a shipped name (conf/suites/<name>.yaml, e.g. "goal-switch") or a path to a YAML file.
+
+    `overrides` replace top-level options before checking (e.g. episodes=20); they are checked like the file.
+    """
+    import yaml
+
+    text_path = str(name_or_path)
+    looks_like_path = isinstance(name_or_path, Path) or text_path.endswith((".yaml", ".yml")) or "/" in text_path
+    if looks_like_path:
+        path = Path(text_path)
+        if not path.is_file():
+            raise ConfigError(f"suite {text_path}", "file not found; expected a YAML suite file")
+        where, text, stem = str(path), path.read_text(encoding="utf-8"), path.stem
+    else:
+        res = files("coreach_conf") / "suites" / f"{text_path}.yaml"
+        if not res.is_file():
+            raise ConfigError(
+                "option suite", f"unknown suite {text_path!r}; expected one of {builtin_suites()} or a .yaml path"
+            )
+        where, text, stem = f"suites/{text_path}.yaml", res.read_text(encoding="utf-8"), text_path
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as e:
+        raise ConfigError(where, f"not valid YAML ({str(e).splitlines()[0]})") from None
+    if isinstance(data, dict):
+        for key in overrides:
+            if key not in _KEYS:
+                raise ConfigError(f"{where}, override {key}", f"unknown option; expected one of {list(_KEYS)}")
+        data = {**data, **overrides}
+    return suite_from_dict(data, where, default_name=stem)

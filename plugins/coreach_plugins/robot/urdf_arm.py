@@ -1,0 +1,301 @@
+"""Robot plugin for any serial arm described by a URDF file (the shipped reach7 arm by default)."""
+
+from __future__ import annotations
+
+import copy
+import math
+import xml.etree.ElementTree as ET
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+from typing import Sequence
+
+import pytorch_kinematics as pk
+import torch
+from torch import Tensor
+
+from coreach.errors import ConfigError
+from coreach.runtime.kinematics import urdf_floats  # numpy-only: one reading of URDF numbers
+
+SHIPPED_URDF = "reach7.urdf"
+# Elbow bent 129 deg, tool 0.35 m in front of the base at z = 0.27 m, approach axis tilted 56 deg below
+# horizontal. Smallest singular value of the 6x7 Jacobian there is 0.12 (about the median over
+# random configurations), so the pose is well clear of a singularity.
+REACH7_HOME = (0.0, -0.15, 0.0, 2.25, 0.0, 0.45, 0.0)
+
+_MOVABLE = ("revolute", "continuous", "prismatic")
+_FIXED = ("fixed",)
+
+
+def shipped_urdf() -> str:
+    """Path of the reach7 URDF shipped inside coreach_plugins."""
+    return str(resources.files(__package__).joinpath("assets", SHIPPED_URDF))
+
+
+@dataclass
+class UrdfArmConfig:
+    """Options of the `urdf_arm` robot (conf/robot/reach7.yaml)."""
+
+    urdf: str = ""
+    tool_link: str = "tool"
+    home: list[float] | None = None
+    name: str = "reach7"
+    _target_: str = "coreach_plugins.robot.urdf_arm.UrdfArm"
+
+
+@dataclass(frozen=True)
+class _JointSpec:
+    """One joint on the base-to-tool path, read from the URDF in float64."""
+
+    name: str
+    kind: str
+    parent: str
+    child: str
+    xyz: tuple[float, float, float]
+    rpy: tuple[float, float, float]
+    axis: tuple[float, float, float]
+    lower: float
+    upper: float
+    velocity: float
+
+
+def _parse_path(where: str, text: str, tool_link: str) -> list[_JointSpec]:
+    """The joints from the root link to `tool_link`, root first, checked for what kinematics needs."""
+    try:
+        robot = ET.fromstring(text)
+    except ET.ParseError as exc:
+        raise ConfigError(where, f"not a readable URDF: XML error {exc}") from exc
+    if robot.tag != "robot":
+        raise ConfigError(where, f"not a URDF: root element is <{robot.tag}>, expected <robot>")
+    links = [link.get("name") for link in robot.findall("link")]
+    if tool_link not in links:
+        shown = ", ".join(str(n) for n in links[:12]) + (", ..." if len(links) > 12 else "")
+        raise ConfigError(where, f"tool link {tool_link!r} not found; links are: {shown or '(none)'}")
+
+    parent_joint: dict[str, ET.Element] = {}
+    for joint in robot.findall("joint"):
+        child = joint.find("child")
+        child_name = None if child is None else child.get("link")
+        if child_name is None or joint.find("parent") is None:
+            raise ConfigError(where, f"joint {joint.get('name')!r} needs <parent link=...> and <child link=...>")
+        if child_name in parent_joint:
+            raise ConfigError(where, f"link {child_name!r} is the child of two joints; a URDF must be a tree")
+        parent_joint[child_name] = joint
+
+    path: list[ET.Element] = []
+    link = tool_link
+    while link in parent_joint:
+        joint = parent_joint[link]
+        path.append(joint)
+        link = joint.find("parent").get("link")  # type: ignore[union-attr]
+        if len(path) > len(parent_joint):
+            raise ConfigError(where, "joints form a loop; a URDF must be a tree")
+    path.reverse()
+
+    specs = []
+    for joint in path:
+        jname = str(joint.get("name"))
+        jwhere = f"{where} (joint {jname!r})"
+        kind = joint.get("type", "")
+        if kind not in _MOVABLE + _FIXED:
+            raise ConfigError(jwhere, f"joint type {kind!r} unsupported; expected one of "
+                                      f"{', '.join(_MOVABLE + _FIXED)}")
+        if joint.find("mimic") is not None:
+            raise ConfigError(jwhere, "mimic joints between the base and the tool link are unsupported")
+        origin = joint.find("origin")
+        xyz = urdf_floats(None if origin is None else origin.get("xyz"), (0.0, 0.0, 0.0), jwhere, "origin xyz")
+        rpy = urdf_floats(None if origin is None else origin.get("rpy"), (0.0, 0.0, 0.0), jwhere, "origin rpy")
+        axis_el = joint.find("axis")
+        # URDF default axis is x (pytorch_kinematics would assume z; we follow the URDF specification)
+        axis = urdf_floats(None if axis_el is None else axis_el.get("xyz"), (1.0, 0.0, 0.0), jwhere, "axis xyz")
+        lower, upper, velocity = -math.inf, math.inf, math.inf
+        if kind in _MOVABLE:
+            if math.hypot(*axis) < 1e-9:
+                raise ConfigError(jwhere, "axis xyz must be a non-zero vector")
+            limit = joint.find("limit")
+            vel = None if limit is None else limit.get("velocity")
+            if vel is None:
+                raise ConfigError(jwhere, "no velocity limit; expected <limit velocity=...> (rad/s or m/s)")
+            (velocity,) = urdf_floats(vel, (0.0,), jwhere, "limit velocity")
+            if velocity <= 0:
+                raise ConfigError(jwhere, f"limit velocity must be > 0, got {velocity}")
+            if kind != "continuous":
+                lo = urdf_floats(limit.get("lower"), (math.nan,), jwhere, "limit lower")[0]  # type: ignore[union-attr]
+                hi = urdf_floats(limit.get("upper"), (math.nan,), jwhere, "limit upper")[0]  # type: ignore[union-attr]
+                if not lo < hi:  # also catches missing bounds (nan)
+                    raise ConfigError(jwhere, f"expected <limit lower=... upper=...> with lower < upper, "
+                                              f"got lower={limit.get('lower')} upper={limit.get('upper')}")  # type: ignore[union-attr]
+                lower, upper = lo, hi
+        parent = str(joint.find("parent").get("link"))  # type: ignore[union-attr]
+        child = str(joint.find("child").get("link"))  # type: ignore[union-attr]
+        specs.append(_JointSpec(jname, kind, parent, child, xyz, rpy, axis, lower, upper, velocity))  # type: ignore[arg-type]
+    if not any(s.kind in _MOVABLE for s in specs):
+        raise ConfigError(where, f"no movable joint between the root link and tool link {tool_link!r}")
+    return specs
+
+
+def _origin_matrix(xyz: Sequence[float], rpy: Sequence[float]) -> Tensor:
+    """4x4 float64 transform of a URDF <origin>: R = Rz(yaw) Ry(pitch) Rx(roll), fixed axes."""
+    r, p, y = rpy
+    cr, sr, cp, sp, cy, sy = math.cos(r), math.sin(r), math.cos(p), math.sin(p), math.cos(y), math.sin(y)
+    return torch.tensor(
+        [
+            [cy * cp, cy * sp * sr - sy * cr, cy * sp * cr + sy * sr, xyz[0]],
+            [sy * cp, sy * sp * sr + cy * cr, sy * sp * cr - cy * sr, xyz[1]],
+            [-sp, cp * sr, cp * cr, xyz[2]],
+            [0.0, 0.0, 0.0, 1.0],
+        ],
+        dtype=torch.float64,
+    )
+
+
+def _path_urdf(specs: list[_JointSpec]) -> str:
+    """A URDF holding only the base-to-tool path, so pytorch_kinematics never trips over unrelated
+    elements (transmissions, simulator tags, gripper branches) of the user's file."""
+    robot = ET.Element("robot", name="coreach_path")
+    ET.SubElement(robot, "link", name=specs[0].parent)
+    for s in specs:
+        ET.SubElement(robot, "link", name=s.child)
+        joint = ET.SubElement(robot, "joint", name=s.name, type=s.kind)
+        ET.SubElement(joint, "parent", link=s.parent)
+        ET.SubElement(joint, "child", link=s.child)
+        ET.SubElement(joint, "origin", xyz=" ".join(map(repr, s.xyz)), rpy=" ".join(map(repr, s.rpy)))
+        if s.kind != "fixed":
+            ET.SubElement(joint, "axis", xyz=" ".join(map(repr, s.axis)))
+            limit = {"velocity": repr(s.velocity), "effort": "0"}
+            if s.kind != "continuous":
+                limit.update(lower=repr(s.lower), upper=repr(s.upper))
+            ET.SubElement(joint, "limit", limit)
+    return ET.tostring(robot, encoding="unicode")
+
+
+def _build_chain(where: str, tool_link: str, specs: list[_JointSpec]) -> pk.SerialChain:
+    """A float64 serial chain from `pytorch_kinematics`, with origins and axes taken from our parse.
+
+    pytorch_kinematics reads URDF origins through float32 (errors ~1e-8 m per joint); re-setting them
+    from the float64 parse keeps float64 kinematics exact to round-off.
+    """
+    try:
+        tree = pk.build_chain_from_urdf(_path_urdf(specs)).to(dtype=torch.float64)
+        for spec in specs:
+            frame = tree.find_frame(spec.child)
+            frame.joint.offset = pk.Transform3d(matrix=_origin_matrix(spec.xyz, spec.rpy))
+            axis = torch.tensor(spec.axis, dtype=torch.float64)
+            frame.joint.axis = axis / axis.norm()
+        chain = pk.SerialChain(tree, tool_link, dtype=torch.float64)
+    except Exception as exc:  # the URDF reader raises many kinds; the user needs one line
+        problem = " ".join(f"{type(exc).__name__}: {exc}".split())
+        raise ConfigError(where, f"pytorch_kinematics could not build the chain to {tool_link!r}: {problem}") from exc
+    movable = [s.name for s in specs if s.kind in _MOVABLE]
+    if chain.get_joint_parameter_names() != movable:
+        raise ConfigError(where, f"joint order read by pytorch_kinematics {chain.get_joint_parameter_names()} "
+                                 f"differs from the URDF path {movable}")
+    return chain
+
+
+class UrdfArm:
+    """A serial arm from a URDF: limits from the file, batched FK and Jacobian of the tool link."""
+
+    def __init__(self, urdf: str = "", tool_link: str = "tool", home: list[float] | None = None,
+                 name: str = "reach7"):
+        if not isinstance(name, str) or not name:
+            raise ConfigError("robot.name", f"expected a non-empty string, got {name!r}")
+        if not isinstance(tool_link, str) or not tool_link:
+            raise ConfigError("robot.tool_link", f"expected a non-empty link name, got {tool_link!r}")
+        if not isinstance(urdf, str):
+            raise ConfigError("robot.urdf", f"expected a file path string, got {type(urdf).__name__}")
+        self.urdf = urdf
+        self.tool_link = tool_link
+        self.name = name
+
+        shipped = shipped_urdf()
+        path = Path(urdf).expanduser() if urdf else Path(shipped)
+        where = str(path)
+        if not path.is_file():
+            raise ConfigError(where, "URDF file not found (robot.urdf; relative paths are from the working directory)")
+        try:
+            text = path.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise ConfigError(where, f"cannot read the URDF file: {exc}") from exc
+
+        specs = _parse_path(where, text, tool_link)
+        self._chains: dict[tuple[torch.dtype, torch.device], pk.SerialChain] = {}
+        master = _build_chain(where, tool_link, specs)
+        self._chains[(torch.float64, torch.device("cpu"))] = master
+
+        movable = [s for s in specs if s.kind in _MOVABLE]
+        self.joint_names: list[str] = [s.name for s in movable]
+        self._lower = torch.tensor([s.lower for s in movable], dtype=torch.float64)
+        self._upper = torch.tensor([s.upper for s in movable], dtype=torch.float64)
+        self._qd_max = torch.tensor([s.velocity for s in movable], dtype=torch.float64)
+
+        if home is None:
+            is_shipped = path.resolve() == Path(shipped).resolve()
+            if is_shipped and len(movable) == len(REACH7_HOME):
+                home = list(REACH7_HOME)
+            else:
+                # infinite (continuous-joint) bounds give nan midpoints; start those at 0
+                home = torch.nan_to_num((self._lower + self._upper) / 2, nan=0.0).tolist()
+        self._home = self._check_home(home)
+
+    def _check_home(self, home: Sequence[float]) -> Tensor:
+        try:
+            values = [float(v) for v in home]
+        except (TypeError, ValueError) as exc:
+            raise ConfigError("robot.home", f"expected a list of {self.dof} numbers (rad), got {home!r}") from exc
+        if len(values) != self.dof:
+            raise ConfigError("robot.home", f"expected {self.dof} values for joints {self.joint_names}, "
+                                            f"got {len(values)}")
+        q = torch.tensor(values, dtype=torch.float64)
+        outside = [n for n, v, lo, hi in zip(self.joint_names, q, self._lower, self._upper) if not lo <= v <= hi]
+        if outside:
+            raise ConfigError("robot.home", f"values outside the URDF joint limits for {outside}")
+        return q
+
+    @property
+    def dof(self) -> int:
+        return len(self.joint_names)
+
+    # Limits have no q to follow, so they come in torch's default dtype (float32 unless changed).
+    @property
+    def q_lower(self) -> Tensor:
+        return self._lower.to(torch.get_default_dtype())
+
+    @property
+    def q_upper(self) -> Tensor:
+        return self._upper.to(torch.get_default_dtype())
+
+    @property
+    def qd_max(self) -> Tensor:
+        return self._qd_max.to(torch.get_default_dtype())
+
+    @property
+    def q_home(self) -> Tensor:
+        return self._home.to(torch.get_default_dtype())
+
+    def _chain_for(self, q: Tensor) -> pk.SerialChain:
+        if not torch.is_tensor(q) or q.dtype not in (torch.float32, torch.float64):
+            raise TypeError(f"{self.name}: q must be a float32 or float64 tensor, got {type(q).__name__} "
+                            f"{getattr(q, 'dtype', '')}")
+        if q.ndim != 2 or q.shape[1] != self.dof:
+            raise ValueError(f"{self.name}: q must have shape [B, {self.dof}], got {list(q.shape)}")
+        key = (q.dtype, q.device)
+        if key not in self._chains:
+            master = self._chains[(torch.float64, torch.device("cpu"))]
+            self._chains[key] = copy.deepcopy(master).to(dtype=q.dtype, device=q.device)
+        return self._chains[key]
+
+    def fk(self, q: Tensor) -> tuple[Tensor, Tensor]:
+        m = self._chain_for(q).forward_kinematics(q).get_matrix()  # [B, 4, 4]
+        return m[:, :3, 3], m[:, :3, :3]
+
+    def jacobian(self, q: Tensor) -> Tensor:
+        return self._chain_for(q).jacobian(q)
+
+    def fk_and_jacobian(self, q: Tensor) -> tuple[Tensor, Tensor, Tensor]:
+        """Pose and Jacobian from one kinematics pass (closed loops need both every step)."""
+        jac, m = self._chain_for(q).jacobian(q, ret_eef_pose=True)
+        return m[:, :3, 3], m[:, :3, :3], jac
+
+    def __repr__(self) -> str:
+        return f"UrdfArm(name={self.name!r}, dof={self.dof}, urdf={self.urdf or SHIPPED_URDF!r})"
