@@ -9,6 +9,7 @@ import time
 import traceback
 from pathlib import Path
 
+from coreach.commands.table import CAUTION_COMMANDS, HYDRA_COMMANDS, PLAIN_COMMANDS, load_target
 from coreach.errors import CoreachError
 
 USAGE = """usage: coreach [--json] [--debug] COMMAND [-m] [key=value ...]
@@ -45,37 +46,25 @@ options:
   -h, --help      this text; `coreach COMMAND --cfg job` prints the composed config (Hydra)
 """
 
-# command -> (config name, "module:function" taking the composed config and returning a summary dict)
-HYDRA_COMMANDS = {
-    "train": ("train", "coreach.training.run:train"),
-    "demo": ("demo", "coreach.demo:run_demo"),
-    "vet": ("vet", "coreach.vetting.stage:vet"),
-    "aggregate": ("aggregate", "coreach.aggregation.stage:aggregate"),
-    "bench train": ("bench_train", "coreach.bench.train_bench:run"),
-    "bench sweep": ("bench_sweep", "coreach.bench.sweep_bench:run"),
-    "release": ("release", "coreach.release.stage:release"),
-    "drive": ("drive", "coreach.release.drive:drive"),
-    "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
-    "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
-    "recipes": ("recipes", "coreach.commands.recipes:recipes"),
-}
-# Hydra-free commands: name -> "module:function" taking (arguments, as_json) and returning the exit code
-PLAIN_COMMANDS = {
-    "promote": "coreach.release.registry:promote_command",
-    "releases": "coreach.release.registry:releases_command",
-}
+def command_help(command: str) -> str:
+    """The usage lines of one command, taken from USAGE so the overview and `COMMAND --help` never differ."""
+    lines = USAGE.splitlines()
+    start = next(i for i, line in enumerate(lines) if line[2:].startswith(command + " ") or line[2:] == command)
+    block = [lines[start]]
+    for line in lines[start + 1:]:
+        if not line.startswith("     "):  # continuation lines are indented past the command column
+            break
+        block.append(line)
+    text = "\n".join(block)
+    if command in HYDRA_COMMANDS:
+        text += ("\n\n  takes Hydra overrides (key=value) and -m for sweeps; `coreach "
+                 f"{command} --cfg job` prints the composed config, `--hydra-help` Hydra's own help")
+    return f"usage: coreach {command} ...\n\n{text}\n"
 
 
 def _fail(message: str, code: int = 2) -> int:
     print(f"coreach: error: {message}", file=sys.stderr)
     return code
-
-
-def _load(spec: str):
-    import importlib
-
-    module, func = spec.split(":")
-    return getattr(importlib.import_module(module), func)
 
 
 def _quiet_library_warnings() -> None:
@@ -109,6 +98,12 @@ def main(argv: list[str] | None = None) -> int:
         command, overrides = f"bench {what}", overrides[1:]
     if debug:
         os.environ["HYDRA_FULL_ERROR"] = "1"
+    if any(a in ("-h", "--help") for a in overrides):
+        known = [*HYDRA_COMMANDS, *PLAIN_COMMANDS, "plugins", "compare"]
+        if command not in known:
+            return _fail(f"command {command!r}: unknown; expected one of {sorted(known)}")
+        print(command_help(command))
+        return 0
     try:
         if command == "plugins":
             from coreach.commands.plugins import show_plugins
@@ -119,7 +114,12 @@ def main(argv: list[str] | None = None) -> int:
 
             return compare_command(overrides, as_json)
         if command in PLAIN_COMMANDS:
-            return _load(PLAIN_COMMANDS[command])(overrides, as_json)
+            code = load_target(PLAIN_COMMANDS[command])(overrides, as_json)
+            if command in CAUTION_COMMANDS and not as_json:
+                from coreach.commands.summaries import print_cautions, plain_console
+
+                print_cautions(plain_console())
+            return code
         if command not in HYDRA_COMMANDS:
             known = sorted([*HYDRA_COMMANDS, *PLAIN_COMMANDS, "plugins", "compare"])
             raise CoreachError(f"command {command!r}", f"unknown; expected one of {known}")
@@ -161,7 +161,7 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
     fixed = [f"hydra.job.name={command.replace(' ', '_')}"]
     if multirun:
         fixed.append(f"hydra.sweep.dir={sweep_dir}")
-    task_fn = _load(target)
+    task_fn = load_target(target)
     collected: list[dict] = []
 
     def task(cfg):

@@ -141,12 +141,12 @@ def _shipped_baselines() -> list[str]:
 
 def stage_command(command: str, where: str):
     """(config name, function) of a registered Hydra command; a recipe may name one not installed yet."""
-    from coreach.cli import HYDRA_COMMANDS, _load
+    from coreach.commands.table import HYDRA_COMMANDS, load_target
 
     if command not in HYDRA_COMMANDS:
         raise ConfigError(where, f"command {command!r} is not available in this installation")
     config_name, target = HYDRA_COMMANDS[command]
-    return config_name, _load(target)
+    return config_name, load_target(target)
 
 
 def compose_stage(config_name: str, overrides: list[str], where: str) -> DictConfig:

@@ -18,7 +18,7 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
             if command == "release" and not s.get("released", True):
                 print(refusal_line(s), file=sys.stderr)
         return
-    console = Console(width=None if sys.stdout.isatty() else 160)
+    console = plain_console()
     if command == "train":
         console.print(training_table(summaries))
         if summaries:
@@ -55,6 +55,16 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
                 print_demo_release(console, s["release"])
             for line in s.get("next_steps", []):
                 console.print(line)
+    from coreach.commands.table import CAUTION_COMMANDS
+
+    # release prints them itself, after what it published (a refusal published nothing)
+    if command in CAUTION_COMMANDS and command != "release":
+        print_cautions(console)
+
+
+def plain_console() -> Console:
+    """Rich console; a fixed width when stdout is not a terminal, so logs and tests see whole lines."""
+    return Console(width=None if sys.stdout.isatty() else 160)
 
 
 def training_table(runs: list[dict]) -> Table:

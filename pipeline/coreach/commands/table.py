@@ -1,0 +1,34 @@
+"""The command table: which subcommand runs which stage function, shared by the CLI and the recipes."""
+
+from __future__ import annotations
+
+import importlib
+
+# command -> (config name, "module:function" taking the composed config and returning a summary dict)
+HYDRA_COMMANDS = {
+    "train": ("train", "coreach.training.run:train"),
+    "demo": ("demo", "coreach.demo:run_demo"),
+    "vet": ("vet", "coreach.vetting.stage:vet"),
+    "aggregate": ("aggregate", "coreach.aggregation.stage:aggregate"),
+    "bench train": ("bench_train", "coreach.bench.train_bench:run"),
+    "bench sweep": ("bench_sweep", "coreach.bench.sweep_bench:run"),
+    "release": ("release", "coreach.release.stage:release"),
+    "drive": ("drive", "coreach.release.drive:drive"),
+    "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
+    "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
+    "recipes": ("recipes", "coreach.commands.recipes:recipes"),
+}
+# Hydra-free commands: name -> "module:function" taking (arguments, as_json) and returning the exit code
+PLAIN_COMMANDS = {
+    "promote": "coreach.release.registry:promote_command",
+    "releases": "coreach.release.registry:releases_command",
+}
+
+# commands whose output leads toward a robot: they end with the same cautions as the model card
+CAUTION_COMMANDS = ("vet", "drive", "demo", "release", "promote")
+
+
+def load_target(spec: str):
+    """The function a "module:function" entry names (imported only when its command runs)."""
+    module, func = spec.split(":")
+    return getattr(importlib.import_module(module), func)
