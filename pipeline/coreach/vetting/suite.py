@@ -13,6 +13,7 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
+from coreach.option_specs import check_options, choice, integer, is_number, number, text, vector
 from coreach.scenario import Layout, Scenario, load_scenario
 
 __all__ = ["Suite", "EpisodePlan", "load_suite", "builtin_suites", "load_operator_config", "MIN_SEED"]
@@ -24,11 +25,6 @@ MIN_SEED = 10_000
 DEFAULT_POSITION_TOL = 0.02
 DEFAULT_ORIENTATION_TOL_DEG = 15.0
 
-_KEYS = (
-    "name", "scenario", "goals", "layout_offset", "layout_jitter", "start", "start_jitter", "operator",
-    "switch_fractions", "switch_to", "episodes", "seed", "horizon_s", "dt", "tolerances", "candidates_per_axis",
-)  # fmt: skip
-_TOL_KEYS = ("position_m", "orientation_deg")
 
 
 @dataclass
@@ -301,124 +297,84 @@ def _load_scenario(name: str, where: str) -> Scenario:
         raise ConfigError(f"{where}, option scenario ({exc.where})", exc.problem) from None
 
 
-def _is_number(v: Any) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+@dataclass(kw_only=True)
+class SuiteOptions:
+    """A suite file's options: type, range and unit of each (checked by coreach.option_specs)."""
+
+    name: str | None = text(None, optional=True)
+    scenario: str = text(what="a scenario name or YAML path")
+    goals: list[str] | None = None  # null (all goals) or goal names of the scenario: checked against it
+    layout_offset: tuple = vector((0.0, 0.0, 0.0), 3, "m")
+    layout_jitter: float | None = number(None, 0.0, 1.0, "m", optional=True)
+    start: Any = "home"  # 'home' or joint positions (rad)
+    start_jitter: float = number(0.0, 0.0, math.pi, "rad")
+    operator: Any = "expert"  # a shipped operator name or a mapping with _target_
+    switch_fractions: list = field(default_factory=lambda: [None])  # null = no switch, else in (0, 1)
+    switch_to: str = choice("next", ("next", "random"))
+    episodes: int = integer(50, 1, " (episodes per switch cell)")
+    seed: int = integer(MIN_SEED, MIN_SEED, " so vetting episodes never coincide with training ones "
+                                            "(training seeds are small integers)")
+    horizon_s: float = number(20.0, 1e-3, 1e5, "s")
+    dt: float | None = number(None, 1e-4, 10.0, "s", optional=True)
+    tolerances: dict = field(default_factory=dict)
+    candidates_per_axis: int = integer(5, 2, " (stick grid points per axis)")
 
 
-def _number(d: dict, key: str, where: str, default, lo: float, hi: float = math.inf, what: str = "",
-            prefix: str = "") -> float:
-    v = d.get(key, default)
-    if not _is_number(v) or not lo <= v <= hi:
-        raise ConfigError(f"{where}, option {prefix}{key}", f"expected a number in [{lo}, {hi}] ({what}), got {v!r}")
-    return float(v)
+@dataclass
+class ToleranceOptions:
+    position_m: float = number(DEFAULT_POSITION_TOL, 1e-6, 1.0, "m")
+    orientation_deg: float = number(DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg")
 
 
-def _integer(d: dict, key: str, where: str, default, lo: int, why: str = "") -> int:
-    v = d.get(key, default)
-    if not isinstance(v, int) or isinstance(v, bool) or v < lo:
-        raise ConfigError(f"{where}, option {key}", f"expected an integer >= {lo}{why}, got {v!r}")
-    return v
+_KEYS = tuple(f.name for f in dataclasses.fields(SuiteOptions))
 
 
 def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
     """Check plain data (parsed YAML) and build a Suite; errors name `where` and the option."""
-    if not isinstance(d, dict):
-        raise ConfigError(where, f"expected a mapping with keys {list(_KEYS)}, got {type(d).__name__}")
-    extra = [k for k in d if k not in _KEYS]
-    if extra:
-        raise ConfigError(f"{where}, option {extra[0]}", f"unknown option; expected one of {list(_KEYS)}")
-    name = d.get("name", default_name)
-    if not isinstance(name, str) or not name:
-        raise ConfigError(f"{where}, option name", f"expected a non-empty string, got {name!r}")
-    scenario = d.get("scenario")
-    if not isinstance(scenario, str) or not scenario:
-        raise ConfigError(f"{where}, option scenario", f"expected a scenario name or YAML path, got {scenario!r}")
-    scene = _load_scenario(scenario, where)
-
-    goals = d.get("goals")
+    o = check_options(SuiteOptions, d, where)
+    tol = check_options(ToleranceOptions, o["tolerances"] or {}, where, prefix="tolerances.")
+    scene = _load_scenario(o["scenario"], where)
+    goals = o["goals"]
     if goals is not None:
         if not isinstance(goals, list) or not goals:
-            raise ConfigError(
-                f"{where}, option goals", f"expected null (all goals) or a list of goal names, got {goals!r}"
-            )
+            raise ConfigError(f"{where}, option goals", f"expected null (all goals) or a list of goal names, got {goals!r}")
         for i, g in enumerate(goals):
             if g not in scene.goal_names:
-                raise ConfigError(
-                    f"{where}, option goals[{i}]",
-                    f"unknown goal {g!r}; scenario {scene.name!r} has {scene.goal_names}",
-                )
+                raise ConfigError(f"{where}, option goals[{i}]",
+                                  f"unknown goal {g!r}; scenario {scene.name!r} has {scene.goal_names}")  # fmt: skip
         if len(set(goals)) != len(goals):
             raise ConfigError(f"{where}, option goals", f"duplicate goal names in {goals}")
-
-    offset = d.get("layout_offset", [0.0, 0.0, 0.0])
-    if not isinstance(offset, list) or len(offset) != 3 or not all(_is_number(v) for v in offset):
-        raise ConfigError(f"{where}, option layout_offset", f"expected [x, y, z] in m, got {offset!r}")
-    jitter = None if d.get("layout_jitter") is None else _number(d, "layout_jitter", where, None, 0.0, 1.0, "m")
-
-    start = d.get("start", "home")
-    if start != "home" and not (isinstance(start, list) and start and all(_is_number(v) for v in start)):
-        raise ConfigError(
-            f"{where}, option start", f"expected 'home' or a list of joint positions (rad), got {start!r}"
-        )
-    start_jitter = _number(d, "start_jitter", where, 0.0, 0.0, math.pi, "rad")
-
-    operator = d.get("operator", "expert")
+    start = o["start"]
+    if start != "home" and not (isinstance(start, list) and start and all(is_number(v) for v in start)):
+        raise ConfigError(f"{where}, option start", f"expected 'home' or a list of joint positions (rad), got {start!r}")
+    operator = o["operator"]
     if isinstance(operator, str):
         operator = load_operator_config(operator, f"{where}, option operator")
     elif not isinstance(operator, dict) or not isinstance(operator.get("_target_"), str):
-        raise ConfigError(
-            f"{where}, option operator",
-            f"expected a shipped operator name ({_builtin_operators()}) or a mapping with _target_, got {operator!r}",
-        )
-
-    fractions = d.get("switch_fractions", [None])
+        raise ConfigError(f"{where}, option operator", f"expected a shipped operator name ({_builtin_operators()}) "
+                                                       f"or a mapping with _target_, got {operator!r}")  # fmt: skip
+    fractions = o["switch_fractions"]
     if not isinstance(fractions, list) or not fractions:
-        raise ConfigError(
-            f"{where}, option switch_fractions", f"expected a non-empty list (null = no switch), got {fractions!r}"
-        )
+        raise ConfigError(f"{where}, option switch_fractions",
+                          f"expected a non-empty list (null = no switch), got {fractions!r}")  # fmt: skip
     for i, f in enumerate(fractions):
-        if f is not None and not (_is_number(f) and 0.0 < f < 1.0):
-            raise ConfigError(
-                f"{where}, option switch_fractions[{i}]",
-                f"expected null (no switch) or a fraction of the horizon strictly between 0 and 1, got {f!r}",
-            )
-    n_used = len(scene.goals) if goals is None else len(goals)
-    if any(f is not None for f in fractions) and n_used < 2:
+        if f is not None and not (is_number(f) and 0.0 < f < 1.0):
+            raise ConfigError(f"{where}, option switch_fractions[{i}]",
+                              f"expected null (no switch) or a fraction of the horizon strictly between 0 and 1, got {f!r}")  # fmt: skip
+    if any(f is not None for f in fractions) and len(scene.goals if goals is None else goals) < 2:
         raise ConfigError(f"{where}, option switch_fractions", "goal switches need at least 2 goals")
-    switch_to = d.get("switch_to", "next")
-    if switch_to not in ("next", "random"):
-        raise ConfigError(f"{where}, option switch_to", f"expected 'next' or 'random', got {switch_to!r}")
-
-    episodes = _integer(d, "episodes", where, 50, 1, " (episodes per switch cell)")
-    seed = _integer(
-        d, "seed", where, MIN_SEED, MIN_SEED,
-        " so vetting episodes never coincide with training ones (training seeds are small integers)",
-    )  # fmt: skip
-    horizon = _number(d, "horizon_s", where, 20.0, 1e-3, 1e5, "s")
-    dt = None if d.get("dt") is None else _number(d, "dt", where, None, 1e-4, 10.0, "s")
-    tol = d.get("tolerances") or {}
-    if not isinstance(tol, dict):
-        raise ConfigError(f"{where}, option tolerances", f"expected a mapping with {list(_TOL_KEYS)}, got {tol!r}")
-    bad = [k for k in tol if k not in _TOL_KEYS]
-    if bad:
-        raise ConfigError(f"{where}, option tolerances.{bad[0]}", f"unknown option; expected one of {list(_TOL_KEYS)}")
-    at = "tolerances."
-    pos_tol = _number(tol, "position_m", where, DEFAULT_POSITION_TOL, 1e-6, 1.0, "m", prefix=at)
-    ori_tol = _number(tol, "orientation_deg", where, DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg", prefix=at)
-    cpa = _integer(d, "candidates_per_axis", where, 5, 2, " (stick grid points per axis)")
     suite = Suite(
-        name=name, scenario=scenario, operator=dict(operator), goals=goals,
-        layout_offset=tuple(float(v) for v in offset), layout_jitter=jitter, start=start,
-        start_jitter=start_jitter, switch_fractions=list(fractions), switch_to=switch_to, episodes=episodes, seed=seed, horizon_s=horizon, dt=dt, position_tol=pos_tol,
-        orientation_tol_deg=ori_tol, candidates_per_axis=cpa, path=where, scenario_obj=scene,
+        name=o["name"] or default_name, scenario=o["scenario"], operator=dict(operator), goals=goals,
+        layout_offset=tuple(float(v) for v in o["layout_offset"]), layout_jitter=o["layout_jitter"], start=start,
+        start_jitter=o["start_jitter"], switch_fractions=list(fractions), switch_to=o["switch_to"],
+        episodes=o["episodes"], seed=o["seed"], horizon_s=o["horizon_s"], dt=o["dt"], position_tol=tol["position_m"],
+        orientation_tol_deg=tol["orientation_deg"], candidates_per_axis=o["candidates_per_axis"], path=where,
+        scenario_obj=scene,
     )  # fmt: skip
-    steps = suite.steps
     for i, f in enumerate(fractions):
-        if f is not None and not 1 <= round(f * steps) <= steps - 1:
-            raise ConfigError(
-                f"{where}, option switch_fractions[{i}]",
-                f"switch at step {round(f * steps)} of {steps}; expected a step inside the horizon",
-            )
+        if f is not None and not 1 <= round(f * suite.steps) <= suite.steps - 1:
+            raise ConfigError(f"{where}, option switch_fractions[{i}]",
+                              f"switch at step {round(f * suite.steps)} of {suite.steps}; expected a step inside the horizon")  # fmt: skip
     return suite
 
 
