@@ -27,11 +27,13 @@ def test_shipped_suites_load_and_validate_on_reach7(name):
     assert suite.candidates_per_axis**2 == suite.stick_grid().shape[0] == 25
 
 
-def test_shipped_suites_cover_the_field_notes_pitfalls():
+def test_shipped_suites_vary_rationality_seed_and_layout():
     nominal, switch, held = (load_suite(n) for n in ("nominal", "goal-switch", "held-out"))
     assert nominal.switch_fractions == [None] and nominal.operator["beta"] == 500.0
     assert switch.switch_fractions == [None, 0.2, 0.5, 0.8]
-    # pitfall 7: the held-out suite uses a lower rationality, its own seed and a shifted layout
+    # a simulated operator that sees every candidate's outcome is generous; measured earlier on this machine,
+    # late-switch recovery dropped sharply at beta 150 per metre against 500, so the held-out suite uses the
+    # lower rationality, its own seed and a shifted layout
     assert held.operator["beta"] == 150.0
     assert len({nominal.seed, switch.seed, held.seed}) == 3
     assert any(abs(v) > 0 for v in held.layout_offset)
