@@ -11,7 +11,7 @@ from hydra.errors import HydraException
 from omegaconf.errors import OmegaConfBaseException
 
 from coreach.errors import ConfigError
-from coreach.schemas import check_plugins
+from coreach.schemas import check_command_options, check_plugins
 
 
 def _one_line(exc: Exception) -> str:
@@ -42,6 +42,7 @@ def compose_config(config_name: str, overrides: list[str]):
     finally:
         GlobalHydra.instance().clear()
     check_plugins(cfg)
+    check_command_options(cfg)
     return cfg
 
 

@@ -18,7 +18,7 @@ from typing import Any
 
 from coreach.errors import ConfigError
 
-__all__ = ["number", "integer", "choice", "text", "vector", "check_options", "is_number"]
+__all__ = ["number", "integer", "choice", "text", "vector", "sizes", "check_options", "check_ranges", "is_number"]
 
 
 def is_number(v: Any) -> bool:
@@ -52,6 +52,11 @@ def vector(default: tuple, length: int, unit: str = ""):
     return dataclasses.field(default=default, metadata={"kind": "vector", "length": length, "unit": unit})
 
 
+def sizes(default: list[int], what: str = "layer widths"):
+    """A non-empty list of positive integers (e.g. hidden layer widths)."""
+    return dataclasses.field(default_factory=lambda: list(default), metadata={"kind": "sizes", "what": what})
+
+
 def _expected(meta: dict) -> str:
     kind = meta["kind"]
     if kind == "number":
@@ -66,6 +71,8 @@ def _expected(meta: dict) -> str:
     if kind == "vector":
         unit = f" in {meta['unit']}" if meta["unit"] else ""
         return f"a list of {meta['length']} numbers{unit}"
+    if kind == "sizes":
+        return f"a non-empty list of positive integers ({meta['what']})"
     return meta["what"]
 
 
@@ -83,6 +90,9 @@ def _fits(meta: dict, v: Any) -> bool:
         return v in meta["options"]
     if kind == "vector":
         return isinstance(v, (list, tuple)) and len(v) == meta["length"] and all(is_number(x) for x in v)
+    if kind == "sizes":
+        return (isinstance(v, (list, tuple)) and len(v) > 0
+                and all(isinstance(x, int) and not isinstance(x, bool) and x > 0 for x in v))
     return (v is None and meta["optional"]) or (isinstance(v, str) and bool(v))
 
 
@@ -110,3 +120,24 @@ def check_options(spec: type, data: Any, where: str, prefix: str = "") -> dict:
             raise ConfigError(f"{where}, option {prefix}{name}", f"expected {_expected(f.metadata)}, got {v!r}")
         out[name] = float(v) if f.metadata.get("kind") == "number" and v is not None else v
     return out
+
+
+def check_ranges(spec: type, values: dict, where: str) -> None:
+    """Range checks of the declared fields present in `values` (a composed Hydra node); the error names
+    the dotted option, `where.key`, as an override would write it."""
+    for f in dataclasses.fields(spec):
+        if f.name in values and "kind" in f.metadata and not _fits(f.metadata, _plain(values[f.name])):
+            raise ConfigError(f"{where}.{f.name}" if where else f.name,
+                              f"expected {_expected(f.metadata)}, got {values[f.name]!r}")
+
+
+def _plain(v: Any) -> Any:
+    """OmegaConf ListConfig -> list, so a composed node checks like parsed YAML."""
+    try:
+        from omegaconf import ListConfig, OmegaConf
+
+        if isinstance(v, ListConfig):
+            return OmegaConf.to_container(v)
+    except ImportError:  # the runtime has no omegaconf and never composes configs
+        pass
+    return v

@@ -14,6 +14,7 @@ from omegaconf import DictConfig, OmegaConf
 from omegaconf.errors import OmegaConfBaseException
 
 from coreach.errors import ConfigError
+from coreach.option_specs import check_ranges
 
 PLUGIN_NODES = ("robot", "dataset", "belief", "model", "interface", "operator", "labeller")
 # passed by the trainer at build time, never written in a config
@@ -58,6 +59,7 @@ def check_node(node: DictConfig, where: str) -> None:
     if schema is not None:
         allowed = {f.name for f in dataclasses.fields(schema)} - {"_target_"}
         _unknown(values, allowed, where)
+        check_ranges(schema, values, where)  # first: its message names the expected range, not only the type
         base = OmegaConf.structured(schema)
         try:
             OmegaConf.merge(base, {k: v for k, v in values.items() if not str(k).startswith("_")})
@@ -87,3 +89,16 @@ def check_plugins(cfg: DictConfig) -> None:
     if isinstance(losses, DictConfig):
         for name, node in losses.items():
             check_node(node, f"loss.{name}")
+
+
+def check_command_options(cfg: DictConfig) -> None:
+    """Types and ranges of the commands' own options (seed, data split, trainer) where a config has them."""
+    from coreach.training.options import TRAINING_OPTIONS
+
+    for path, spec in TRAINING_OPTIONS:
+        node = cfg if not path else cfg.get(path)
+        if not isinstance(node, DictConfig) or (not path and "trainer" not in node):
+            continue
+        names = {f.name for f in dataclasses.fields(spec)}
+        values = {k: node.get(k) for k in names if k in node}
+        check_ranges(spec, values, path)

@@ -4,18 +4,40 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import asdict
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 from coreach.arrival import DEFAULT_MIN_ARRIVAL
 from coreach.demonstrator import generate
 from coreach.episodes import SCHEMA_VERSION, EpisodeSet, load_parquet, save_parquet
 from coreach.errors import ConfigError
+from coreach.option_specs import integer, number, sizes, text
 from coreach.protocols import Robot
 from coreach.scenario import load_scenario
 
 # Bump when the demonstrator's behaviour changes so stale caches are not reused.
 GENERATOR_VERSION = 2
+
+
+@dataclass(kw_only=True)
+class ScriptedShelfConfig:
+    """The options of `dataset=scripted_shelf`, with their ranges (checked when the config is composed)."""
+
+    _target_: str = "coreach_plugins.dataset.scripted_shelf.ScriptedShelf"
+    scenario: str = text("bedside_shelf", "a scenario name or YAML path")
+    episodes: int = integer(400, 1)
+    seed: int = integer(0, 0)
+    noise: float = number(0.02, 0.0, 10.0, "(fraction of the joint speed limits)")
+    max_steps: int = integer(80, 2)
+    cache_dir: str = text("data", "a folder")
+    start_jitter: float = number(0.0, 0.0, 3.15, "rad")
+    spread_share: float = number(0.0, 0.0, 1.0)
+    start_spread: float = number(0.5, 0.0, 3.15, "rad")
+    via_share: float = number(0.0, 0.0, 1.0)
+    via_steps: list[int] = sizes([5, 30], "[min, max] steps")
+    record_via: bool = True
+    label_clean: bool = False
+    min_arrival: float = number(DEFAULT_MIN_ARRIVAL, 0.0, 1.0)
 
 
 class ScriptedShelf:

@@ -9,6 +9,7 @@ from torch import Tensor
 
 from coreach.demonstrator import expert_action, expert_twist
 from coreach.errors import ConfigError
+from coreach.option_specs import integer, number
 
 
 class ScriptedLabeller:
@@ -50,9 +51,9 @@ class ScriptedLabellerConfig:
     """Options of the `scripted` labeller (conf/labeller/scripted.yaml)."""
 
     _target_: str = "coreach_plugins.labeller.scripted.ScriptedLabeller"
-    k_p: float = 2.0
-    k_r: float = 2.0
-    v_max: float = 0.15
-    w_max: float = 1.0
-    damping: float = 0.05
-    chunk: int = 20_000
+    k_p: float = number(2.0, 0.0, unit="1/s", open_range=True)
+    k_r: float = number(2.0, 0.0, unit="1/s", open_range=True)
+    v_max: float = number(0.15, 0.0, unit="m/s", open_range=True)
+    w_max: float = number(1.0, 0.0, unit="rad/s", open_range=True)
+    damping: float = number(0.05, 0.0)
+    chunk: int = integer(20_000, 1)

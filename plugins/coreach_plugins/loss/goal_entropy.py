@@ -12,6 +12,7 @@ from torch import Tensor
 
 from coreach.errors import ConfigError
 from coreach.training.terms import TermBatch
+from coreach.option_specs import integer, number
 
 _DIST_EPS = 1e-6  # m; smooths |x| at 0 so a tool sitting on an approach point still has a gradient
 
@@ -171,9 +172,9 @@ class GoalReachabilityConfig:
     """User-settable options of the `goal_entropy` term."""
 
     _target_: str = "coreach_plugins.loss.goal_entropy.GoalReachability"
-    weight: float = 0.1
-    samples: int = 16
-    sharpness: float = 200.0
-    horizon: float = 1.0
+    weight: float = number(0.1, 0.0)
+    samples: int = integer(16, 2, " (sticks decoded per context)")
+    sharpness: float = number(200.0, 0.0, open_range=True)
+    horizon: float = number(1.0, 0.0, unit="s", open_range=True)
     seed_offset: int = 17
     contexts: Optional[int] = 24

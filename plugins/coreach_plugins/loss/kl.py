@@ -9,6 +9,7 @@ from torch import Tensor
 
 from coreach.errors import ConfigError
 from coreach.training.terms import TermBatch
+from coreach.option_specs import integer, number
 
 
 def gaussian_kl(mean: Tensor, logvar: Tensor) -> Tensor:
@@ -58,5 +59,5 @@ class KLConfig:
     """User-settable options of the `kl` term."""
 
     _target_: str = "coreach_plugins.loss.kl.KLDivergence"
-    weight: float = 1e-3
-    warmup_epochs: int = 0
+    weight: float = number(1e-3, 0.0)
+    warmup_epochs: int = integer(0, 0)

@@ -9,6 +9,7 @@ from torch import Tensor
 
 from coreach.errors import ConfigError
 from coreach.training.terms import TermBatch
+from coreach.option_specs import number
 
 
 class Reconstruction:
@@ -31,4 +32,4 @@ class ReconstructionConfig:
     """User-settable options of the `reconstruction` term."""
 
     _target_: str = "coreach_plugins.loss.reconstruction.Reconstruction"
-    weight: float = 1.0
+    weight: float = number(1.0, 0.0)

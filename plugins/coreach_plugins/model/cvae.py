@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from coreach_plugins.model.vae import StateVAE
+from coreach.option_specs import integer, sizes
 
 
 class BeliefCVAE(StateVAE):
@@ -19,6 +20,6 @@ class CVAEConfig:
     """User-settable options of `cvae`; action_dim and context_dim come from the trainer."""
 
     _target_: str = "coreach_plugins.model.cvae.BeliefCVAE"
-    latent_dim: int = 2
-    hidden: list[int] = field(default_factory=lambda: [256, 256])
+    latent_dim: int = integer(2, 1, " (stick axes)")
+    hidden: list[int] = sizes([256, 256])
     activation: str = "silu"

@@ -8,6 +8,7 @@ from torch import Tensor, nn
 
 from coreach.nn import check_width, mlp
 from coreach.protocols import Posterior
+from coreach.option_specs import integer
 
 
 class LinearDecoder(nn.Module):
@@ -44,4 +45,4 @@ class LinearConfig:
     """User-settable options of `linear`; action_dim and context_dim come from the trainer."""
 
     _target_: str = "coreach_plugins.model.linear.LinearDecoder"
-    latent_dim: int = 2
+    latent_dim: int = integer(2, 1, " (stick axes)")

@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import torch
 from torch import Tensor, nn
 
 from coreach.nn import check_width, mlp
 from coreach.protocols import Posterior
+from coreach.option_specs import integer, sizes
 
 
 class StateVAE(nn.Module):
@@ -50,6 +51,6 @@ class VAEConfig:
     """User-settable options of `vae`; action_dim and context_dim come from the trainer."""
 
     _target_: str = "coreach_plugins.model.vae.StateVAE"
-    latent_dim: int = 2
-    hidden: list[int] = field(default_factory=lambda: [256, 256])
+    latent_dim: int = integer(2, 1, " (stick axes)")
+    hidden: list[int] = sizes([256, 256])
     activation: str = "silu"

@@ -17,6 +17,7 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
+from coreach.option_specs import integer, number
 
 NO_INPUT = -1  # choice meaning "no stick input this step" (a delayed operator before its first reaction)
 
@@ -27,12 +28,12 @@ class BoltzmannOperatorConfig:
 
     _target_: str = "coreach_plugins.operator.boltzmann.BoltzmannOperator"
     name: str = "boltzmann"
-    beta: float = 500.0
+    beta: float = number(500.0, 0.0, unit="per m")
     bias: list[float] = field(default_factory=lambda: [0.0, 0.0])
-    tremor_std: float = 0.0
-    tremor_cutoff_hz: float = 2.0
-    delay_steps: int = 0
-    mode_switch_margin: float = 0.001
+    tremor_std: float = number(0.0, 0.0)
+    tremor_cutoff_hz: float = number(2.0, 0.0, unit="Hz", open_range=True)
+    delay_steps: int = integer(0, 0)
+    mode_switch_margin: float = number(0.001, 0.0, unit="m")
     greedy: bool = False
 
 
