@@ -60,7 +60,7 @@ def make_set(n_episodes: int = 14, seed: int = 0) -> EpisodeSet:
                 episode_id=i,
                 goal=int(rng.integers(len(GOALS))),
                 q=q,
-                qd=rng.normal(size=(T, 2)),
+                qd=rng.uniform(-1.0, 1.0, size=(T, 2)),  # within TwoLink's 1 rad/s
                 ee_pos=pos.numpy(),
                 ee_quat=np.concatenate([xyzw[:, 3:], xyzw[:, :3]], axis=1),
                 goal_pos=rng.uniform(0.3, 0.7, size=(len(GOALS), 3)),
@@ -341,3 +341,13 @@ def test_parquet_file_plugin_validates_options():
 
     with pytest.raises(ConfigError, match="dataset.path"):
         ParquetFile("???")
+
+
+def test_velocities_far_beyond_the_robot_limits_are_refused(saved, tmp_path):
+    es, _ = saved
+    es.episodes[3].qd[2, 1] = 20.0  # rad/s against TwoLink's 1 rad/s, e.g. a recording in deg/s
+    path = save_parquet(es, tmp_path / "fast.parquet")
+    expect_error(path, "episode 3", "column qd", "joint elbow at 20 rad/s (step 2)", "velocity limit 1 rad/s",
+                 robot=TwoLink())  # fmt: skip
+    es.episodes[3].qd[2, 1] = 1.4  # within half again the limit: kept
+    assert len(load_parquet(save_parquet(es, tmp_path / "ok.parquet"), robot=TwoLink())) == len(es)

@@ -41,6 +41,8 @@ def load_parquet(path: str | os.PathLike, robot: Robot | None = None, min_steps:
                 f"expected the joints of robot {robot.name} {list(robot.joint_names)}, got {joint_names}",
             )
     _check_poses(cols, rows, where)
+    if robot is not None:
+        _check_speeds(cols["qd"], rows, robot, where, joint_names)
     index = {g: i for i, g in enumerate(goal_names)}
     episodes = []
     for s, t in zip(rows.starts.tolist(), rows.lengths.tolist()):
@@ -188,6 +190,22 @@ def _check_poses(cols: dict[str, np.ndarray], rows: _Rows, where: str) -> None:
             r = int(bad[0])
             raise DataError(f"{where}: episode {episode[r]}, column {name}",
                             "layout changes within the episode; expected the same on every row")  # fmt: skip
+
+
+# A recording may overshoot a velocity limit a little (controller noise, finite differences); half again
+# the limit is not noise but a unit mistake (deg/s for rad/s) or another arm's data.
+SPEED_LIMIT_MARGIN = 1.5
+
+
+def _check_speeds(qd: np.ndarray, rows: _Rows, robot: Robot, where: str, joint_names: list[str]) -> None:
+    limit = np.asarray(robot.qd_max, dtype=np.float64) * SPEED_LIMIT_MARGIN  # [n]
+    over = np.abs(qd) > limit
+    if over.any():
+        r, j = (int(i) for i in np.argwhere(over)[0])
+        step = r - int(rows.starts[np.searchsorted(rows.starts, r, side="right") - 1])
+        raise DataError(f"{where}: episode {rows.episode[r]}, column qd",
+                        f"joint {joint_names[j]} at {qd[r, j]:.3g} rad/s (step {step}); expected at most "
+                        f"{SPEED_LIMIT_MARGIN} x its velocity limit {limit[j] / SPEED_LIMIT_MARGIN:.3g} rad/s")  # fmt: skip
 
 
 def _forward_kinematics(robot: Robot, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
