@@ -1,0 +1,90 @@
+"""`coreach import-recordings`: bag folders and CSV files -> one schema-v1 Parquet file and a short report."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+from omegaconf import DictConfig, OmegaConf
+
+from coreach.episodes import EpisodeSet
+from coreach.errors import ConfigError, DataError
+from coreach.recordings.bag_reader import read_bag
+from coreach.recordings.csv_reader import read_csv
+from coreach.recordings.stick_parquet import save_with_stick
+from coreach.recordings.timing import TimingLimits
+from coreach.recordings.to_episodes import ArmLimits, Checks, build_episodes, recording_pieces
+from coreach.recordings.topics import TopicMap
+
+
+def _options(cfg: DictConfig) -> tuple[list[str], TopicMap, Checks]:
+    inputs = OmegaConf.to_container(cfg.inputs) if cfg.get("inputs") is not None else None
+    if isinstance(inputs, str):
+        inputs = [inputs]
+    if not isinstance(inputs, list) or not inputs or not all(isinstance(x, str) and x for x in inputs):
+        raise ConfigError("inputs", "expected a list of bag folders and .csv files, e.g. 'inputs=[bags/run1,run2.csv]'")
+    try:
+        topics = TopicMap(**OmegaConf.to_container(cfg.topics))
+        checks = dict(OmegaConf.to_container(cfg.checks))
+        timing = TimingLimits(**{k: checks.pop(k) for k in ("gap_s", "max_gaps", "max_duplicates", "max_backwards")
+                                 if k in checks})  # fmt: skip
+        return inputs, topics, Checks(timing, **checks)
+    except TypeError as e:  # an unknown key under topics or checks
+        raise ConfigError("topics/checks", f"unknown option ({e})") from None
+
+
+def import_recordings(cfg: DictConfig) -> dict:
+    """Read every input, check and resample it, cut it at goal-label changes, and write one Parquet file."""
+    from coreach.plugin_registry import build_plugin
+    from coreach.scenario import load_scenario
+
+    inputs, topics, checks = _options(cfg)
+    robot = build_plugin(cfg.robot, "robot")
+    scenario = load_scenario(cfg.scenario)
+    dt = float(cfg.dt) if cfg.get("dt") is not None else scenario.dt
+    if not dt > 0:
+        raise ConfigError("dt", f"expected seconds > 0 (or null for the scenario's), got {cfg.dt}")
+    min_steps = int(cfg.get("min_steps", 2))
+    arm = ArmLimits.of(robot)
+    import torch
+
+    # the nominal scene: bags do not carry the layout, and a recording was made in one fixed scene
+    layout = replace(scenario, jitter=0.0).sample_layouts(1, torch.Generator().manual_seed(0)).to_episode(0)
+    episodes, sticks, reports = [], [], []
+    for item in inputs:
+        path = Path(item)
+        if path.suffix.lower() == ".csv":
+            rec = read_csv(path, arm.joint_names)
+        else:
+            rec = read_bag(path, arm.joint_names, topics)
+        pieces, report = recording_pieces(rec, arm, dt, checks, min_steps)
+        for p in pieces:
+            if p.goal not in scenario.goal_names:
+                raise DataError(f"{rec.source}: {rec.goal_origin}", f"unknown goal {p.goal!r}; scenario "
+                                                                    f"{scenario.name} has {scenario.goal_names}")
+        if pieces:
+            episodes += build_episodes(pieces, robot, scenario.goal_names, layout, first_id=len(episodes))
+            sticks += [p.stick for p in pieces]
+        reports.append(report)
+    if not episodes:
+        raise DataError("inputs", f"no episode of at least {min_steps} steps in {len(inputs)} recording(s)")
+    widths = {None if s is None else s.shape[1] for s in sticks}
+    stick_note = None
+    if len(widths) != 1 or None in widths:
+        stick_note = f"stick column left out: recordings differ in stick axes ({sorted(widths, key=str)})"
+        sticks = None
+    out = Path(cfg.out)
+    episode_set = EpisodeSet(episodes, scenario.goal_names, arm.joint_names, dt, source=f"recordings: {len(inputs)} file(s)")
+    save_with_stick(episode_set, sticks, out)
+    found = {k: sum(s[k] for r in reports for s in r["streams"]) for k in ("gaps", "duplicates", "backwards")}
+    counts = np.bincount(episode_set.goals, minlength=len(scenario.goal_names))
+    robot_override = "" if robot.name == "reach7" else f" robot={cfg.robot.get('name', robot.name)}"
+    return {
+        "out": str(out), "episodes": len(episodes), "samples": episode_set.total_steps, "dt": dt,
+        "robot": robot.name, "scenario": scenario.name, "fingerprint": episode_set.fingerprint(),
+        "goals": {g: int(c) for g, c in zip(scenario.goal_names, counts)}, "found": found,
+        "stick": None if sticks is None else int(sticks[0].shape[1]), "stick_note": stick_note,
+        "recordings": reports,
+        "train": f"coreach train dataset=parquet_file dataset.path={out}{robot_override}",
+    }  # fmt: skip
