@@ -285,6 +285,21 @@ def test_unknown_goal_label_names_the_scenario_goals(tmp_path):
         run_import([bag], tmp_path / "out.parquet")
 
 
+@pytest.mark.parametrize("override,message", [
+    ("checks.velocity_factor=abc", "option checks.velocity_factor: expected a number in (0.0, inf) x the URDF limit, got 'abc'"),
+    ("checks.max_gaps=-1", "option checks.max_gaps: expected an integer >= 0, got -1"),
+    ("topics.clock=wall", "option topics.clock: expected one of 'header', 'bag', got 'wall'"),
+    ("dt=0", "option dt: expected a number in (0.0, 10.0) s or null, got 0"),
+    ("scene=kitchen", "option scene: unknown scenario 'kitchen'"),
+])  # fmt: skip
+def test_bad_options_name_the_option_and_the_range(tmp_path, override, message):
+    from coreach.errors import ConfigError
+
+    with pytest.raises(ConfigError) as err:
+        run_import([tmp_path / "run"], tmp_path / "out.parquet", override)
+    assert str(err.value).startswith(f"import-recordings, {message}")
+
+
 @pytest.mark.slow
 def test_import_command_then_training_on_its_file(workdir):
     """The user's path: `coreach import-recordings` on bags of both storages, then `coreach train` on the file."""

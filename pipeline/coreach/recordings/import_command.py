@@ -6,32 +6,15 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
-from omegaconf import DictConfig, OmegaConf
+from omegaconf import DictConfig
 
 from coreach.episodes import EpisodeSet
 from coreach.errors import ConfigError, DataError
 from coreach.recordings.bag_reader import read_bag
 from coreach.recordings.csv_reader import read_csv
+from coreach.recordings.options import WHERE, read_options
 from coreach.recordings.stick_parquet import save_with_stick
-from coreach.recordings.timing import TimingLimits
-from coreach.recordings.to_episodes import ArmLimits, Checks, build_episodes, recording_pieces
-from coreach.recordings.topics import TopicMap
-
-
-def _options(cfg: DictConfig) -> tuple[list[str], TopicMap, Checks]:
-    inputs = OmegaConf.to_container(cfg.inputs) if cfg.get("inputs") is not None else None
-    if isinstance(inputs, str):
-        inputs = [inputs]
-    if not isinstance(inputs, list) or not inputs or not all(isinstance(x, str) and x for x in inputs):
-        raise ConfigError("inputs", "expected a list of bag folders and .csv files, e.g. 'inputs=[bags/run1,run2.csv]'")
-    try:
-        topics = TopicMap(**OmegaConf.to_container(cfg.topics))
-        checks = dict(OmegaConf.to_container(cfg.checks))
-        timing = TimingLimits(**{k: checks.pop(k) for k in ("gap_s", "max_gaps", "max_duplicates", "max_backwards")
-                                 if k in checks})  # fmt: skip
-        return inputs, topics, Checks(timing, **checks)
-    except TypeError as e:  # an unknown key under topics or checks
-        raise ConfigError("topics/checks", f"unknown option ({e})") from None
+from coreach.recordings.to_episodes import ArmLimits, build_episodes, recording_pieces
 
 
 def import_recordings(cfg: DictConfig) -> dict:
@@ -39,13 +22,13 @@ def import_recordings(cfg: DictConfig) -> dict:
     from coreach.plugin_registry import build_plugin
     from coreach.scenario import load_scenario
 
-    inputs, topics, checks = _options(cfg)
+    inputs, topics, checks, dt, min_steps = read_options(cfg)
     robot = build_plugin(cfg.robot, "robot")
-    scenario = load_scenario(cfg.scenario)
-    dt = float(cfg.dt) if cfg.get("dt") is not None else scenario.dt
-    if not dt > 0:
-        raise ConfigError("dt", f"expected seconds > 0 (or null for the scenario's), got {cfg.dt}")
-    min_steps = int(cfg.get("min_steps", 2))
+    try:
+        scenario = load_scenario(cfg.scene)
+    except ConfigError as e:  # the scenario module names its own option; here it is `scene`
+        raise (ConfigError(f"{WHERE}, option scene", e.problem) if e.where == "option scenario" else e) from None
+    dt = scenario.dt if dt is None else dt
     arm = ArmLimits.of(robot)
     import torch
 

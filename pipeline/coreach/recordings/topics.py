@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from coreach.errors import ConfigError, DataError
+from coreach.errors import DataError
 
 JOINT_STATE = "sensor_msgs/msg/JointState"
 JOY = "sensor_msgs/msg/Joy"
@@ -24,12 +24,6 @@ class TopicMap:
     command: str | None = None  # JointState (velocity field) or Float64MultiArray (robot joint order)
     clock: str = "header"  # header: message header stamps; bag: when the recorder received each message
     sidecar_suffix: str = ".goal.yaml"  # <bag folder><suffix> next to the bag: `goal: <name>`
-
-    def __post_init__(self):
-        if not isinstance(self.joint_states, str) or not self.joint_states:
-            raise ConfigError("topics.joint_states", f"expected a topic name, got {self.joint_states!r}")
-        if self.clock not in CLOCKS:
-            raise ConfigError("topics.clock", f"expected one of {list(CLOCKS)}, got {self.clock!r}")
 
 
 def sidecar_goal(bag: Path, suffix: str) -> tuple[str, str] | None:
