@@ -279,6 +279,16 @@ def test_speeds_beyond_the_urdf_limits_are_refused_in_one_line(tmp_path):
         run_import([bag2], tmp_path / "out.parquet")
 
 
+def test_positions_outside_the_urdf_limits_are_refused_in_one_line(tmp_path):
+    t = uneven_times(1.0)
+    q = motion(t)
+    q[:, 3] += 0.6  # joint_4 starts at 2.89 rad; its URDF limit is 2.618 rad
+    bag = write_bag(tmp_path / "run", "sqlite3", t, q=q)
+    with pytest.raises(DataError, match=r"topic /joint_states: joint joint_4 at 2.89\d* rad \(0.000 s\) is outside "
+                                        r"its URDF limits \[-2.618, 2.618\] by more than 0.05 rad"):  # fmt: skip
+        run_import([bag], tmp_path / "out.parquet")
+
+
 def test_unknown_goal_label_names_the_scenario_goals(tmp_path):
     bag = write_bag(tmp_path / "run", "sqlite3", uneven_times(1.0), goals=(("teapot", 0.0),))
     with pytest.raises(DataError, match=r"topic /goal: unknown goal 'teapot'; scenario bedside_shelf has"):
@@ -286,7 +296,8 @@ def test_unknown_goal_label_names_the_scenario_goals(tmp_path):
 
 
 @pytest.mark.parametrize("override,message", [
-    ("checks.velocity_factor=abc", "option checks.velocity_factor: expected a number in (0.0, inf) x the URDF limit, got 'abc'"),
+    ("checks.velocity_factor=abc",
+     "option checks.velocity_factor: expected a number in (0.0, inf) x the URDF limit, got 'abc'"),
     ("checks.max_gaps=-1", "option checks.max_gaps: expected an integer >= 0, got -1"),
     ("topics.clock=wall", "option topics.clock: expected one of 'header', 'bag', got 'wall'"),
     ("dt=0", "option dt: expected a number in (0.0, 10.0) s or null, got 0"),

@@ -229,7 +229,8 @@ def print_demo_release(console, r: dict) -> None:
 
 def print_import(console, s: dict) -> None:
     """One row per recording (episodes, steps, timing findings, action source), then the totals and next step."""
-    table = Table(title=f"imported recordings -> {s['out']} (dt {s['dt']} s, robot {s['robot']}, scenario {s['scenario']})")
+    where = f"dt {s['dt']} s, robot {s['robot']}, scenario {s['scenario']}"
+    table = Table(title=f"imported recordings -> {s['out']} ({where})")
     for col in ("recording", "episodes", "steps", "seconds", "gaps", "duplicates", "backwards", "action from"):
         table.add_column(col)
     for r in s["recordings"]:

@@ -58,7 +58,8 @@ def import_recordings(cfg: DictConfig) -> dict:
         stick_note = f"stick column left out: recordings differ in stick axes ({sorted(widths, key=str)})"
         sticks = None
     out = Path(cfg.out)
-    episode_set = EpisodeSet(episodes, scenario.goal_names, arm.joint_names, dt, source=f"recordings: {len(inputs)} file(s)")
+    source = f"recordings: {len(inputs)} file(s)"
+    episode_set = EpisodeSet(episodes, scenario.goal_names, arm.joint_names, dt, source=source)
     save_with_stick(episode_set, sticks, out)
     found = {k: sum(s[k] for r in reports for s in r["streams"]) for k in ("gaps", "duplicates", "backwards")}
     counts = np.bincount(episode_set.goals, minlength=len(scenario.goal_names))

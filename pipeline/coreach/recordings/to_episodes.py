@@ -60,17 +60,20 @@ def check_speeds(values: np.ndarray, t: np.ndarray, arm: ArmLimits, factor: floa
 
 
 def check_positions(joints: Stream, arm: ArmLimits, margin: float, where: str) -> None:
+    """Refuse positions further than `margin` outside the URDF limits, naming joint, value and time."""
     below = arm.q_lower - margin - joints.values
     above = joints.values - arm.q_upper - margin
     excess = np.maximum(below, above)
     if excess.max() > 0:
         k, j = np.unravel_index(int(np.argmax(excess)), excess.shape)
-        raise DataError(where, f"joint {arm.joint_names[j]} at {joints.values[k, j]:.4g} rad ({joints.t[k] - joints.t[0]:.3f}"
-                               f" s) is outside its URDF limits [{arm.q_lower[j]:.4g}, {arm.q_upper[j]:.4g}] by more "
+        at = joints.t[k] - joints.t[0]
+        raise DataError(where, f"joint {arm.joint_names[j]} at {joints.values[k, j]:.4g} rad ({at:.3f} s) is outside"
+                               f" its URDF limits [{arm.q_lower[j]:.4g}, {arm.q_upper[j]:.4g}] by more "
                                f"than {margin} rad (checks.position_margin)")  # fmt: skip
 
 
-def recording_pieces(rec: Recording, arm: ArmLimits, dt: float, checks: Checks, min_steps: int) -> tuple[list[Piece], dict]:
+def recording_pieces(rec: Recording, arm: ArmLimits, dt: float, checks: Checks,
+                     min_steps: int) -> tuple[list[Piece], dict]:  # fmt: skip
     """Check, resample and cut one recording. Returns the pieces and a report of what was found and done.
 
     Grid: t0 = first joint sample, every dt up to the last one. Positions are interpolated linearly; the
