@@ -22,6 +22,8 @@ commands:
   vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
   recipes   train each recipe over several seeds, vet them with the baselines, one table
             (coreach recipes 'select=[cvae,cvae+entropy]' 'seeds=[0,1,2]' 'train_overrides=["trainer.max_epochs=5"]')
+  import-recordings  ROS 2 bags (sqlite3, MCAP) and CSV files -> one Parquet file of demonstrations
+            (coreach import-recordings 'inputs=[bags/run1,run2.csv]' scene=bedside_shelf out=lab.parquet)
   plugins   list every registered plugin by kind, with where it came from
   compare   leaderboard of an experiment's runs: table, CSV and PNG
             (coreach compare --experiment NAME --sweep TAG --out DIR)

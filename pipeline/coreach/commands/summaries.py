@@ -38,6 +38,9 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "aggregate":
         for s in summaries:
             print_aggregate(console, s)
+    elif command == "import-recordings":
+        for s in summaries:
+            print_import(console, s)
     elif command.startswith("bench"):
         for s in summaries:
             table = Table(title=command)
@@ -222,3 +225,23 @@ def print_demo_release(console, r: dict) -> None:
                       f"filters acted: {acted}; fault: {t['fault'] or 'none'}", markup=False)  # fmt: skip
     if r.get("drive"):
         print_drive(console, r["drive"])
+
+
+def print_import(console, s: dict) -> None:
+    """One row per recording (episodes, steps, timing findings, action source), then the totals and next step."""
+    where = f"dt {s['dt']} s, robot {s['robot']}, scenario {s['scenario']}"
+    table = Table(title=f"imported recordings -> {s['out']} ({where})")
+    for col in ("recording", "episodes", "steps", "seconds", "gaps", "duplicates", "backwards", "action from"):
+        table.add_column(col)
+    for r in s["recordings"]:
+        streams = r["streams"]
+        table.add_row(r["source"], str(r["episodes"]), str(r["steps"]), f"{r['seconds']:.1f}",
+                      *(str(sum(x[k] for x in streams)) for k in ("gaps", "duplicates", "backwards")), r["action"])
+    console.print(table)
+    found = ", ".join(f"{k} {v}" for k, v in s["found"].items())
+    goals = ", ".join(f"{g} {n}" for g, n in s["goals"].items())
+    console.print(f"{s['episodes']} episodes, {s['samples']} samples (episodes per goal: {goals}); found {found}; "
+                  f"stick column: {s['stick'] or 'none'}", markup=False)
+    if s.get("stick_note"):
+        console.print(s["stick_note"], markup=False)
+    console.print(f"train on it: {s['train']}", markup=False)
