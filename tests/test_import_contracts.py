@@ -23,7 +23,7 @@ def _env() -> dict:
 @pytest.fixture(scope="module")
 def lint_report() -> str:
     exe = Path(sys.executable).with_name("lint-imports")
-    out = subprocess.run([str(exe), "--config", str(ROOT / "pyproject.toml"), "--no-cache"], cwd=ROOT, env=_env(),
+    out = subprocess.run([str(exe), str(ROOT / "pyproject.toml"), "--no-cache"], cwd=ROOT, env=_env(),
                          capture_output=True, text=True, timeout=300)  # fmt: skip
     return out.stdout + out.stderr
 
