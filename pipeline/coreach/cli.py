@@ -22,6 +22,8 @@ commands:
   vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
   recipes   train each recipe over several seeds, vet them with the baselines, one table
             (coreach recipes 'select=[cvae,cvae+entropy]' 'seeds=[0,1,2]' 'train_overrides=["trainer.max_epochs=5"]')
+  check-reach  can the arm, where the robot config places it, reach every goal of a scene (before data is made)
+            (coreach check-reach robot.urdf=arm.urdf robot.tool_link=tcp scene=my_scene.yaml)
   import-recordings  ROS 2 bags (sqlite3, MCAP) and CSV files -> one Parquet file of demonstrations
             (coreach import-recordings 'inputs=[bags/run1,run2.csv]' scene=bedside_shelf out=lab.parquet)
   plugins   list every registered plugin by kind, with where it came from

@@ -93,12 +93,15 @@ def check_plugins(cfg: DictConfig) -> None:
 
 def check_command_options(cfg: DictConfig) -> None:
     """Types and ranges of the commands' own options (seed, data split, trainer) where a config has them."""
+    from coreach.reach_check import ReachOptions
     from coreach.training.options import TRAINING_OPTIONS
 
-    for path, spec in TRAINING_OPTIONS:
+    for path, spec in (*TRAINING_OPTIONS, ("reach", ReachOptions)):
         node = cfg if not path else cfg.get(path)
         if not isinstance(node, DictConfig) or (not path and "trainer" not in node):
             continue
         names = {f.name for f in dataclasses.fields(spec)}
+        if path:  # a block is the spec's whole: a misspelt key is an error, not ignored
+            _unknown(dict(node), names, path)
         values = {k: node.get(k) for k in names if k in node}
         check_ranges(spec, values, path)

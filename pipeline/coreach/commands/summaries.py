@@ -38,6 +38,9 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "aggregate":
         for s in summaries:
             print_aggregate(console, s)
+    elif command == "check-reach":
+        for s in summaries:
+            print_reach(console, s)
     elif command == "import-recordings":
         for s in summaries:
             print_import(console, s)
@@ -245,3 +248,29 @@ def print_import(console, s: dict) -> None:
     if s.get("stick_note"):
         console.print(s["stick_note"], markup=False)
     console.print(f"train on it: {s['train']}", markup=False)
+
+
+def print_reach(console, s: dict) -> None:
+    """One row per goal: reachable, margin to the joint limits, manipulability; then the verdict."""
+    table = Table(title=f"reach of {s['robot']} in scene {s['scene']}")
+    for col in ("goal", "approach pose", "fine motion end", "joint-limit margin (rad)", "manipulability (min sv)"):
+        table.add_column(col)
+    for g in s["goals"]:
+        table.add_row(g["goal"], "yes" if g["approach_reachable"] else f"NO ({g['approach_error_m'] * 100:.1f} cm off)",
+                      "yes" if g["fine_reachable"] else "NO", f"{g['limit_margin_rad']:.2f}",
+                      f"{g['manipulability']:.3f}")  # fmt: skip
+    console.print(table)
+    if s["marginal"]:
+        console.print(f"marginal (near a joint limit or a singular pose): {', '.join(s['marginal'])}")
+    if not s["unreachable"]:
+        console.print("every goal is reachable where the arm stands")
+        return
+    console.print(f"out of reach: {', '.join(s['unreachable'])}", markup=False)
+    sug = s.get("suggestion")
+    if sug is None:
+        console.print("no base shift within the searched range reaches every goal; try a larger reach.shift_range")
+    else:
+        dx, dy, dz = sug["base_shift_m"]
+        console.print(f"suggested placement: move the base by [{dx}, {dy}, {dz}] m in the scene's frame (add it to "
+                      f"robot.base_xyz); every goal is then reachable, joint-limit margin {sug['limit_margin_rad']:.2f} rad",
+                      markup=False)  # fmt: skip

@@ -17,6 +17,7 @@ HYDRA_COMMANDS = {
     "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
     "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
     "recipes": ("recipes", "coreach.commands.recipes:recipes"),
+    "check-reach": ("check_reach", "coreach.commands.check_reach:run"),
     "import-recordings": ("import_recordings", "coreach.recordings.import_command:import_recordings"),
 }
 # Hydra-free commands: name -> "module:function" taking (arguments, as_json) and returning the exit code
