@@ -94,6 +94,28 @@ def build_plugin(cfg: DictConfig, kind: str, **kwargs):
     return check_protocol(obj, kind, f"option {kind} ({target})")
 
 
+def builtin_option(kind: str, name: str) -> DictConfig:
+    """The config node of built-in option `name` of `kind` (conf/<kind>/<name>.yaml), for host code that needs a
+    specific option (the decoder interface of a trained run, a bundle's ONNX interface) without importing it."""
+    item = resources.files(BUILTIN_CONF) / kind / f"{name}.yaml"
+    if not item.is_file():
+        raise ConfigError(f"option {kind}", f"no built-in option {name!r}")
+    return OmegaConf.create(item.read_text())
+
+
+def build_option(kind: str, name: str, **fields):
+    """Build built-in option `name` of `kind` with `fields` set (e.g. run=..., bundle=...), checked like any plugin."""
+    cfg = builtin_option(kind, name)
+    for key, value in fields.items():
+        cfg[key] = value
+    return build_plugin(cfg, kind)
+
+
+def option_class(kind: str, name: str) -> type:
+    """The class a built-in option builds, for its alternative constructors (e.g. `from_policy`)."""
+    return hydra.utils.get_class(str(builtin_option(kind, name)["_target_"]))
+
+
 def build_terms(loss_cfg: DictConfig) -> list:
     """Loss terms from the multi-selected `loss` group: one entry per option, each with its own weight."""
     if not loss_cfg:

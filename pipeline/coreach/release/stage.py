@@ -22,7 +22,7 @@ from omegaconf import DictConfig, ListConfig, OmegaConf
 
 from coreach import tracking
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin
+from coreach.plugin_registry import build_option, build_plugin, option_class
 from coreach.release import gate as G
 from coreach.release import registry
 from coreach.runtime.bundle import PARITY_TOLERANCE, BundleError, verify_bundle, write_bundle
@@ -56,8 +56,6 @@ def _suites(cfg) -> list:
 
 def _training_run(client, ref: str):
     """Policy, training run id and run of `ref` (a run id or models:/...); folders cannot be released."""
-    from coreach_plugins.interface.decoder import load_policy
-
     if not ref:
         raise ConfigError("option run", "missing; expected the MLflow run id of a training run (coreach release "
                                         "run=<run id>)")  # fmt: skip
@@ -65,7 +63,8 @@ def _training_run(client, ref: str):
         raise ConfigError("option run", f"{ref} is a folder; release needs the MLflow training run (its "
                                         "dataset fingerprint, commit and decoder artifact are part of it)")  # fmt: skip
     try:
-        policy, run_id = load_policy(str(ref))
+        decoder = build_option("interface", "decoder", run=str(ref))
+        policy, run_id = decoder.policy_, decoder.source_
     except ConfigError as exc:  # name the option of this command, not the interface's
         raise ConfigError("option run", exc.problem) from None
     run = client.get_run(run_id)
@@ -74,12 +73,16 @@ def _training_run(client, ref: str):
     return policy, run_id, run
 
 
-def _urdf(cfg, robot) -> Path:
-    from coreach_plugins.robot.urdf_arm import UrdfArm, shipped_urdf
-
-    if not isinstance(robot, UrdfArm):
+def _urdf(robot, staging: Path) -> Path:
+    """The robot's URDF text (robot protocol `urdf_text`) written into `staging`; robots without one are refused."""
+    text = robot.urdf_text() if hasattr(robot, "urdf_text") else None
+    if not text:
         raise ConfigError("option robot", f"a release ships the arm's URDF; robot {robot.name!r} has none")
-    return Path(robot.urdf).expanduser() if robot.urdf else Path(shipped_urdf())
+    path = staging / "robot.urdf"
+    tmp = path.with_suffix(".urdf.tmp")
+    tmp.write_text(text, encoding="utf-8")
+    tmp.replace(path)
+    return path
 
 
 def _nominal_layout(scene) -> dict:
@@ -133,7 +136,7 @@ def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
         "robot_name": robot.name,
         "tool_link": str(cfg.robot.get("tool_link", "tool")),
         "q_home": robot.q_home.tolist(),
-        "belief": {k: float(cfg.belief[k]) for k in ("beta", "floor", "min_motion")},
+        "belief": build_plugin(cfg.belief, "belief").to_manifest(),
         "safety": {
             "tcp_speed_max": float(cfg.safety.tcp_speed_max),
             "speed_fraction": float(cfg.safety.speed_fraction),
@@ -172,8 +175,6 @@ def _latency(bundle: Path, node) -> dict:
 
 def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
     """Every gate on `policy`; builds the vetting report and a staged bundle inside `staging`."""
-    from coreach_plugins.interface.decoder import DecoderInterface
-
     th = G.Thresholds.from_config(cfg.gates, PARITY_TOLERANCE)
     workspace = _workspace(cfg)
     suites = _suites(cfg)
@@ -185,9 +186,9 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
         suite.validate(robot, spec_n_goals=spec.n_goals)
     if spec.dof != robot.dof:
         raise ConfigError("option run", f"decoder was trained for {spec.dof} joints, robot has {robot.dof}")
-    urdf = _urdf(cfg, robot)
+    urdf = _urdf(robot, staging)
 
-    interface = DecoderInterface.from_policy(policy, name=label)
+    interface = option_class("interface", "decoder").from_policy(policy, name=label)
     summaries, results, plots = {}, [], []
     report_dir = staging / "report"
     report_dir.mkdir()

@@ -208,6 +208,30 @@ class _Fields:
         return arr
 
 
+def _read_belief(f: _Fields) -> dict[str, Any]:
+    """The manifest's belief section as written by the model; its name must be on the host's allow-list.
+
+    The model is built once through `belief_from_manifest` so its own parameter checks refuse a bad bundle.
+    """
+    from coreach.runtime.belief_manifest import BELIEF_MODELS, belief_from_manifest
+
+    section = f.get("belief")
+    if not isinstance(section, dict):
+        raise f.fail("belief", "a mapping", section)
+    model = f.string("belief.model")
+    if model not in BELIEF_MODELS:
+        raise f.fail("belief.model", f"one of {sorted(BELIEF_MODELS)}", model)
+    out: dict[str, Any] = {"model": model}
+    for key, value in section.items():
+        if key != "model":
+            out[key] = f.number(f"belief.{key}")
+    try:
+        belief_from_manifest(out)
+    except ConfigError as exc:
+        raise BundleError(f.where, f"field 'belief': {exc.problem}") from None
+    return out
+
+
 def _parse_manifest(folder: Path, data: dict) -> Manifest:
     f = _Fields(str(folder / MANIFEST), data)
     latent = f.integer("decoder.latent_dim", 1)
@@ -273,11 +297,7 @@ def _parse_manifest(folder: Path, data: dict) -> Manifest:
         stick_low=stick_low,
         stick_high=stick_high,
         deadband=f.number("stick.deadband", 0.0, 0.5),
-        belief={
-            "beta": f.number("belief.beta", 0.0, strict_lo=True),
-            "floor": f.number("belief.floor", 0.0, 0.999999),
-            "min_motion": f.number("belief.min_motion", 0.0),
-        },
+        belief=_read_belief(f),
         robot_name=f.string("robot.name"),
         tool_link=f.string("robot.tool_link"),
         q_lower=lower,
@@ -418,6 +438,26 @@ def _limits(values: np.ndarray) -> list[float | None]:
     return [float(v) if math.isfinite(v) else None for v in values]
 
 
+def _belief_section(meta: dict) -> dict:
+    """The belief model's own manifest section (`to_manifest()`), rebuilt through the allow-list to check it.
+
+    meta.belief is what the model wrote ({"model": name, **parameters}); metadata without a model name is read
+    as the Boltzmann model (the only one before models named themselves), missing parameters take the model's
+    defaults.
+    """
+    from coreach.runtime.belief_manifest import belief_from_manifest
+
+    section = meta.get("belief") or {}
+    if not isinstance(section, dict):
+        raise ConfigError("release meta.belief", f"expected a mapping, got {type(section).__name__}")
+    section = {"model": "boltzmann", **section}
+    try:
+        model = belief_from_manifest(section)
+    except ConfigError as exc:
+        raise ConfigError("release meta.belief", exc.problem) from None
+    return _plain(model.to_manifest(), "release meta.belief")
+
+
 def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parity: dict) -> dict:
     """The manifest.json content for `policy` on `chain` (coreach.runtime.kinematics.Chain).
 
@@ -426,11 +466,9 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
     meta (optional): tool_link, q_home, belief {beta, floor, min_motion}, safety {tcp_speed_max,
     watchdog_timeout_s, lookahead_s, speed_fraction}, stick {deadband}, tolerances {...}.
     """
-    # defaults for what the metadata leaves out; imported here so verify_bundle needs no more than numpy
-    from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+    # imported here so verify_bundle needs no more than numpy
     from coreach.safety import DEFAULT_TCP_SPEED_MAX
 
-    belief_defaults = BoltzmannGoalBelief()
     spec = policy.spec
     n, g, d = policy.action_dim, spec.n_goals, policy.latent_dim
     goal_names = meta.get("goal_names")
@@ -468,12 +506,7 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
                                                        "act_std", "stick_scale")},
         "stick": {"box_low": -1.0, "box_high": 1.0,
                   "deadband": _number(meta, "stick.deadband", DEFAULT_DEADBAND, 0.0, 0.5)},
-        "belief": {
-            "model": "boltzmann",
-            "beta": _number(meta, "belief.beta", belief_defaults.beta, 1e-12),
-            "floor": _number(meta, "belief.floor", belief_defaults.floor, 0.0, 0.999999),
-            "min_motion": _number(meta, "belief.min_motion", belief_defaults.min_motion, 0.0),
-        },
+        "belief": _belief_section(meta),
         "robot": {
             "name": robot_name,
             "urdf": "robot.urdf",
