@@ -103,9 +103,9 @@ def builtin_option(kind: str, name: str) -> DictConfig:
     return OmegaConf.create(item.read_text())
 
 
-def build_option(kind: str, name: str, **fields):
-    """Build built-in option `name` of `kind` with `fields` set (e.g. run=..., bundle=...), checked like any plugin."""
-    cfg = builtin_option(kind, name)
+def build_option(kind: str, option: str, /, **fields):
+    """Build built-in option `option` of `kind` with `fields` set (e.g. run=..., name=...), checked like any plugin."""
+    cfg = builtin_option(kind, option)
     for key, value in fields.items():
         cfg[key] = value
     return build_plugin(cfg, kind)
