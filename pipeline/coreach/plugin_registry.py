@@ -83,9 +83,10 @@ def check_protocol(obj, kind: str, where: str):
 def build_plugin(cfg: DictConfig, kind: str, **kwargs):
     """Instantiate a plugin from its config node and check it against its kind's protocol."""
     target = cfg.get("_target_", "?")
-    missing = sorted(OmegaConf.missing_keys(cfg)) if isinstance(cfg, DictConfig) else []
+    missing = sorted(set(OmegaConf.missing_keys(cfg)) - set(kwargs)) if isinstance(cfg, DictConfig) else []
     if missing:
-        raise ConfigError(f"option {kind} ({target})", f"missing value for {', '.join(missing)}")
+        names = ", ".join(f"{kind}.{k}" for k in missing)
+        raise ConfigError(f"option {kind} ({target})", f"missing value for {names}")
     try:
         obj = hydra.utils.instantiate(cfg, **kwargs)
     except Exception as exc:  # hydra wraps the plugin's own error; show its last line only
