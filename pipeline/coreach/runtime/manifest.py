@@ -50,7 +50,7 @@ class Manifest:
     stick_low: float
     stick_high: float
     deadband: float
-    belief: dict[str, float]
+    belief: dict[str, Any]  # {"model": name, **parameters}: rebuild with belief_manifest.belief_from_manifest
     robot_name: str
     tool_link: str
     q_lower: np.ndarray
