@@ -251,3 +251,43 @@ def test_wrong_goal_count_is_a_config_error(tmp_path, policy):
     with pytest.raises(CoreachError, match="goal_names"):
         write_bundle(tmp_path / "b", policy, shipped_urdf(), meta, {}, {})
     assert list(tmp_path.iterdir()) == []
+
+
+# ------------------------------------------------------------------------------------ belief section
+def test_belief_section_is_written_by_the_model_and_rebuilds_it(bundle):
+    from coreach.runtime.belief_manifest import belief_from_manifest
+    from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+
+    assert _manifest(bundle)["belief"] == {"model": "boltzmann", "beta": 40.0, "floor": 0.0, "min_motion": 1e-3}
+    assert belief_from_manifest(verify_bundle(bundle).belief) == BoltzmannGoalBelief()
+
+
+@pytest.mark.parametrize("section,problem", [
+    ({"model": "pickle", "beta": 40.0}, "belief.model"),
+    ({"model": "boltzmann", "beta": -1.0, "floor": 0.0, "min_motion": 1e-3}, "beta must be > 0"),
+    ({"model": "boltzmann", "beta": 1.0, "_target_": "os.system"}, "belief._target_"),
+])  # fmt: skip
+def test_bad_belief_section_is_refused(copy, section, problem):
+    data = _manifest(copy)
+    data["belief"] = section
+    _rewrite(copy, data)
+    with pytest.raises(BundleError, match=problem):
+        verify_bundle(copy)
+
+
+def test_belief_from_manifest_builds_only_allowed_models():
+    from coreach.errors import ConfigError
+    from coreach.runtime.belief_manifest import belief_from_manifest
+
+    with pytest.raises(ConfigError, match="unknown belief model 'custom'"):
+        belief_from_manifest({"model": "custom"})
+    with pytest.raises(ConfigError, match="unknown boltzmann belief parameters"):
+        belief_from_manifest({"model": "boltzmann", "_target_": "os.system"})
+    assert belief_from_manifest({"model": "boltzmann", "beta": 5.0}).beta == 5.0
+
+
+def test_meta_with_an_unknown_belief_model_writes_nothing(tmp_path, policy):
+    meta = {**release_meta(), "belief": {"model": "other", "beta": 3.0}}
+    with pytest.raises(ConfigError, match="release meta.belief: unknown belief model 'other'"):
+        write_bundle(tmp_path / "b", policy, shipped_urdf(), meta, {}, {})
+    assert not (tmp_path / "b").exists()

@@ -10,80 +10,41 @@ from pathlib import Path
 
 import hydra
 import pytest
-import torch
 from hydra import compose, initialize_config_dir
 from omegaconf import OmegaConf
 
-from coreach.context import ContextSpec
+from coreach.contracts import plugin_checks
 from coreach.errors import ConfigError
-from coreach.policy import DecoderPolicy
 from coreach.protocols import LossTerm
-from coreach.safety import SafetyLimits
-from coreach.training.terms import TermBatch
-from coreach_plugins.model.cvae import BeliefCVAE
 
 LOSS_DIR = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "loss"
-N_JOINTS, N_GOALS, BATCH = 7, 4, 6
-
-
-def make_batch(seed: int = 0) -> TermBatch:
-    """A batch from a real DecoderPolicy (small stochastic decoder, so every term has something to judge)
-    with the real speed caps; epoch is far past any warm-up so no term is switched off."""
-    g = torch.Generator().manual_seed(seed)
-    spec = ContextSpec(dof=N_JOINTS, n_goals=N_GOALS)
-    torch.manual_seed(seed)
-    decoder = BeliefCVAE(N_JOINTS, len(spec.columns(BeliefCVAE.context_blocks)), hidden=[32, 32])
-    policy = DecoderPolicy(decoder, {}, spec, N_JOINTS)
-    raw_context = torch.randn(BATCH, spec.width, generator=g)
-    context = policy.normalise_context(raw_context)
-    action = torch.randn(BATCH, N_JOINTS, generator=g)
-    post = decoder.encode(action, context)
-    latent = post.mean + torch.exp(0.5 * post.logvar) * torch.randn(post.mean.shape, generator=g)
-    ee_pos = torch.tensor([0.4, 0.0, 0.4]) + 0.05 * torch.randn(BATCH, 3, generator=g)
-    approach = ee_pos[:, None, :] + 0.3 * torch.randn(BATCH, N_GOALS, 3, generator=g)  # [B, G, 3]
-    return TermBatch(
-        action=action,
-        context=context,
-        posterior=post,
-        latent=latent,
-        reconstruction=decoder.decode(latent, context),
-        policy=policy,
-        raw_context=raw_context,
-        jac_lin=0.3 * torch.randn(BATCH, 3, N_JOINTS, generator=g),
-        ee_pos=ee_pos,
-        goal_targets=torch.stack([approach, approach + 0.05], dim=2),  # [B, G, 2, 3]
-        belief=torch.full((BATCH, N_GOALS), 1.0 / N_GOALS),
-        limits=SafetyLimits(qd_max=(1.5,) * N_JOINTS, tcp_speed_max=0.25),
-        dt=0.05,
-        epoch=1000,
-        global_step=7,
-    )
 
 
 def _term(path: Path):
     return hydra.utils.instantiate(OmegaConf.load(path))
 
 
+def _contract(path: Path, name: str) -> None:
+    """One check of coreach.contracts (the same checks an outside package runs on its own terms)."""
+    checks = dict(plugin_checks("loss", OmegaConf.to_container(OmegaConf.load(path))))
+    checks[name]()
+
+
 def check_protocol(path: Path, composed) -> None:
+    _contract(path, "protocol")
     assert isinstance(_term(path), LossTerm)
 
 
 def check_scalar(path: Path, composed) -> None:
-    value = _term(path)(make_batch())
-    assert isinstance(value, torch.Tensor) and value.dim() == 0
-    assert torch.isfinite(value)
+    _contract(path, "loss_scalar")
 
 
 def check_differentiable(path: Path, composed) -> None:
-    batch = make_batch()
-    _term(path)(batch).backward()
-    grads = [p.grad for p in batch.policy.parameters() if p.grad is not None]
-    assert grads, "no parameter of the policy receives a gradient"
-    assert all(torch.isfinite(g).all() for g in grads)
-    assert any(g.abs().sum() > 0 for g in grads), "all gradients are zero"
+    _contract(path, "loss_differentiable")
 
 
 def check_weight(path: Path, composed) -> None:
+    _contract(path, "loss_weight")
     cfg = OmegaConf.load(path)
     assert "weight" in cfg, "every loss config states its weight"
     term = _term(path)

@@ -304,7 +304,7 @@ def test_model_names_are_checked():
 def test_demo_ranks_decoders_by_their_own_vetting_even_when_labels_differ():
     # an aggregated decoder is vetted under its round label (<label>/agg<r>); the demo must still find its
     # summary, through the training run id vetting recorded
-    from coreach.release.stage import _ranked
+    from coreach.release.demo_helpers import _ranked
 
     def summary(lo, value):
         return {"success": {"lo": lo, "value": value}}
@@ -316,3 +316,12 @@ def test_demo_ranks_decoders_by_their_own_vetting_even_when_labels_differ():
                     "sources": {"cvae": "a" * 32, "cvae+entropy+agg/agg3": "b" * 32}},
     }
     assert [r["label"] for r in _ranked(demo)] == ["cvae+entropy+agg", "cvae", "unvetted"]
+
+
+def test_release_takes_the_urdf_from_the_robot_protocol(tmp_path):
+    from coreach.release.evaluation import _urdf
+
+    with pytest.raises(ConfigError, match="a release ships the arm's URDF; robot 'planar3' has none"):
+        _urdf(Planar3(), tmp_path)
+    written = _urdf(UrdfArm(), tmp_path)
+    assert written.read_bytes() == Path(shipped_urdf()).read_bytes()

@@ -83,6 +83,10 @@ def check_protocol(obj, kind: str, where: str):
 def build_plugin(cfg: DictConfig, kind: str, **kwargs):
     """Instantiate a plugin from its config node and check it against its kind's protocol."""
     target = cfg.get("_target_", "?")
+    missing = sorted(set(OmegaConf.missing_keys(cfg)) - set(kwargs)) if isinstance(cfg, DictConfig) else []
+    if missing:
+        names = ", ".join(f"{kind}.{k}" for k in missing)
+        raise ConfigError(f"option {kind} ({target})", f"missing value for {names}")
     try:
         obj = hydra.utils.instantiate(cfg, **kwargs)
     except Exception as exc:  # hydra wraps the plugin's own error; show its last line only
@@ -92,6 +96,28 @@ def build_plugin(cfg: DictConfig, kind: str, **kwargs):
             raise cause from None
         raise ConfigError(f"option {kind} ({target})", msg) from None
     return check_protocol(obj, kind, f"option {kind} ({target})")
+
+
+def builtin_option(kind: str, name: str) -> DictConfig:
+    """The config node of built-in option `name` of `kind` (conf/<kind>/<name>.yaml), for host code that needs a
+    specific option (the decoder interface of a trained run, a bundle's ONNX interface) without importing it."""
+    item = resources.files(BUILTIN_CONF) / kind / f"{name}.yaml"
+    if not item.is_file():
+        raise ConfigError(f"option {kind}", f"no built-in option {name!r}")
+    return OmegaConf.create(item.read_text())
+
+
+def build_option(kind: str, option: str, /, **fields):
+    """Build built-in option `option` of `kind` with `fields` set (e.g. run=..., name=...), checked like any plugin."""
+    cfg = builtin_option(kind, option)
+    for key, value in fields.items():
+        cfg[key] = value
+    return build_plugin(cfg, kind)
+
+
+def option_class(kind: str, name: str) -> type:
+    """The class a built-in option builds, for its alternative constructors (e.g. `from_policy`)."""
+    return hydra.utils.get_class(str(builtin_option(kind, name)["_target_"]))
 
 
 def build_terms(loss_cfg: DictConfig) -> list:

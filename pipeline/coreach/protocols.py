@@ -143,7 +143,8 @@ class Operator(Protocol):
         """Start a batch of episodes; `generator` (torch.Generator) is the only source of randomness."""
 
     def choose(self, value: Tensor, step: int, generator: Any) -> Tensor:
-        """Index [E] into the flattened M*K candidates given each candidate's value [E, M, K] for the
+        """Index [E] into the flattened M*K candidates (mode-major; -1 = no input, e.g. while a delayed
+        operator has not reacted yet) given each candidate's value [E, M, K] for the
         operator's current goal (progress toward it after the interface's action and the safety limits)."""
 
     def perturb(self, stick: Tensor, step: int, generator: Any) -> Tensor:
@@ -160,6 +161,80 @@ class Labeller(Protocol):
     def label(self, robot: Robot, visits: Any) -> Tensor:
         """Joint velocities [N, n] (rad/s) for the N states of a `coreach.aggregation.visits.Visits`, each
         toward the goal the operator wanted at that state."""
+
+
+# ---------------------------------------------------------------------------------------------------------------
+# Optional members. A plugin may leave these out; the host then falls back to the behaviour each docstring names.
+# They live in protocols of their own because a runtime-checkable Protocol requires every member it declares.
+# `coreach.contracts` checks each one a plugin does define.
+
+
+class RobotOptional(Protocol):
+    """What a robot may add to `Robot`."""
+
+    def fk_and_jacobian(self, q: Tensor) -> tuple[Tensor, Tensor, Tensor]:
+        """Position [B, 3], rotation [B, 3, 3] and Jacobian [B, 6, n] from one kinematics pass; the same values
+        as `fk` and `jacobian`. Closed loops need both every step; without it they call the two separately."""
+
+    def urdf_text(self) -> str | None:
+        """The arm's URDF as text (what a release bundle ships as robot.urdf), or None for an arm that has no
+        URDF; `coreach release` refuses such an arm with one line."""
+
+
+class BeliefOptional(Protocol):
+    """What a belief model may add to `BeliefModel`; a model without both cannot be released."""
+
+    def to_manifest(self) -> dict[str, Any]:
+        """The release manifest's `belief` section: {"model": <name>, **parameters}, plain JSON values. The
+        name must be on the host's allow-list (`coreach.runtime.belief_manifest.BELIEF_MODELS`)."""
+
+    @classmethod
+    def from_manifest(cls, params: dict[str, Any]) -> Any:
+        """Rebuild from a `to_manifest()` section without its "model" key; ValueError for unknown keys."""
+
+
+class InterfaceOptional(Protocol):
+    """What an interface may add to `Interface`."""
+
+    switch_cost_steps: int
+    """Control steps of no motion after the operator changes mode (multi-mode interfaces); 0 if absent. May be
+    set in `reset`, which knows the control period."""
+
+
+class OperatorOptional(Protocol):
+    """What an operator may add to `Operator`."""
+
+    mode_switch_margin: float
+    """Extra one-step progress (m) another mode must promise before the operator switches to it; 0 if absent."""
+
+    def reset(self, n_episodes: int, generator: Any, dt: float | None = None) -> None:
+        """`Operator.reset` that also takes the control period `dt` (s) as a keyword, e.g. for band-limited
+        tremor; the loop passes `dt=` only to operators whose `reset` has that parameter."""
+
+
+OPTIONAL: dict[str, type] = {
+    "robot": RobotOptional,
+    "belief": BeliefOptional,
+    "interface": InterfaceOptional,
+    "operator": OperatorOptional,
+}
+"""Per kind, the protocol of its optional members (kinds not listed have none)."""
+
+
+def optional_members(kind: str) -> list[str]:
+    """Names of the optional members declared for `kind`."""
+    proto = OPTIONAL.get(kind)
+    if proto is None:
+        return []
+    names = set(getattr(proto, "__annotations__", {})) | {m for m in vars(proto) if not m.startswith("_")}
+    return sorted(names)
+
+
+def takes_dt(operator: Any) -> bool:
+    """Whether `operator.reset` accepts the control period as the keyword `dt` (see `OperatorOptional.reset`)."""
+    import inspect
+
+    return "dt" in inspect.signature(operator.reset).parameters
 
 
 KINDS: dict[str, type] = {

@@ -22,7 +22,7 @@ from coreach import tracking
 from coreach.aggregation.visits import visit_episodes, visits_from_record
 from coreach.episodes import EpisodeSet, save_parquet
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin
+from coreach.plugin_registry import build_option, build_plugin, builtin_option
 from coreach.safety import SafetyLimits
 from coreach.training.run import train
 from coreach.vetting.loop import rollout
@@ -107,10 +107,8 @@ def figure(robot, interface, suites, seed: int, belief, limits) -> dict:
 
 
 def _decoder(run: str):
-    from coreach_plugins.interface.decoder import DecoderInterface
-
     try:
-        return DecoderInterface(run=run)
+        return build_option("interface", "decoder", run=run)
     except ConfigError as exc:
         raise ConfigError(f"{WHERE}.start_run", f"{run!r} is not a trained decoder ({exc.problem})") from None
 
@@ -119,7 +117,8 @@ def _round_config(cfg: DictConfig, path: Path | None, label: str) -> DictConfig:
     sub = OmegaConf.create(OmegaConf.to_container(cfg, resolve=False))
     OmegaConf.set_struct(sub, False)
     if path is not None:
-        sub.dataset = {"_target_": "coreach_plugins.dataset.parquet_file.ParquetFile", "path": str(path), "min_steps": 2}
+        sub.dataset = builtin_option("dataset", "parquet_file")
+        sub.dataset.update({"path": str(path), "min_steps": 2})
     sub.label = label
     sub.run_name = label
     sub.resume = None

@@ -18,7 +18,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin
+from coreach.plugin_registry import build_option, build_plugin, builtin_option, option_class
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout, rollout_per_episode
 from coreach.vetting.suite import load_suite
@@ -31,12 +31,10 @@ def _policy(cfg, robot, n_goals: int):
     from coreach.policy import DecoderPolicy
 
     if cfg.get("run"):
-        from coreach_plugins.interface.decoder import load_policy
-
-        return load_policy(str(cfg.run))[0], str(cfg.run)
+        return build_option("interface", "decoder", run=str(cfg.run)).policy_, str(cfg.run)
     torch.manual_seed(0)
-    model = {"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [256, 256],
-             "activation": "silu"}  # fmt: skip
+    model = builtin_option("model", "cvae")
+    model.update({"latent_dim": 2, "hidden": [256, 256], "activation": "silu"})  # pinned: the yaml may change
     policy = DecoderPolicy.build(model, ContextSpec(dof=robot.dof, n_goals=n_goals), robot.dof).eval()
     return policy, "untrained cVAE 2x256"
 
@@ -57,8 +55,6 @@ def _bare_seconds(policy, E: int, K: int, T: int) -> float:
 
 
 def run(cfg: DictConfig) -> dict:
-    from coreach_plugins.interface.decoder import DecoderInterface
-
     if int(cfg.episodes) < 1 or int(cfg.per_episode) < 1:
         raise ConfigError("option episodes/per_episode", "expected positive episode counts")
     over = {"horizon_s": float(cfg.horizon_s), "candidates_per_axis": int(cfg.candidates_per_axis)}
@@ -70,7 +66,7 @@ def run(cfg: DictConfig) -> dict:
     limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
     # no suite.validate: throughput does not need reachable goals, and short quick runs would fail it
     policy, source = _policy(cfg, robot, len(suite.goal_names))
-    interface = DecoderInterface.from_policy(policy, name=source)
+    interface = option_class("interface", "decoder").from_policy(policy, name=source)
     E, T, K = suite.n_episodes, suite.steps, suite.candidates_per_axis**2
     e_small = small.n_episodes
 

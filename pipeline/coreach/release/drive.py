@@ -19,6 +19,8 @@ from pathlib import Path
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
+from coreach.plugin_registry import build_option
+from coreach.runtime.belief_manifest import belief_from_manifest
 from coreach.release.gate import count_violations
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes
 from coreach.safety import SafetyLimits
@@ -34,15 +36,14 @@ NOTE = ("plant, operator and episode plan: the torch vetting loop; decoder: the 
 
 def bundle_robot(m: Manifest):
     """The torch robot of the bundle's robot.urdf (the hashed bytes), with the bundle's home pose."""
-    from coreach_plugins.robot.urdf_arm import UrdfArm
-
     data = m.path("robot.urdf").read_bytes()
     if sha256_bytes(data) != m.files["robot.urdf"]:
         raise BundleError(str(m.path("robot.urdf")), "changed since the bundle was verified; sha256 differs")
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "robot.urdf"
         path.write_bytes(data)
-        return UrdfArm(urdf=str(path), tool_link=m.tool_link, home=m.q_home.tolist(), name=m.robot_name)
+        return build_option("robot", "reach7", urdf=str(path), tool_link=m.tool_link, home=m.q_home.tolist(),
+                            name=m.robot_name)
 
 
 def bundle_limits(m: Manifest) -> SafetyLimits:
@@ -109,19 +110,18 @@ def compare(summary: dict, vetted: dict | None, tol) -> dict | None:
 
 def drive(cfg: DictConfig) -> dict:
     """Replay `cfg.bundle` on `cfg.suite`; the summary, limit checks and the comparison with its vetting."""
-    from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
-    from coreach_plugins.interface.onnx_bundle import OnnxBundleInterface
     from coreach.tracking import resolve_uri
 
     t0 = time.perf_counter()
     if OmegaConf.is_missing(cfg, "bundle") or not str(cfg.bundle):
         raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>)")
     folder = Path(str(cfg.bundle)).expanduser()
-    interface = OnnxBundleInterface(str(folder), name=f"bundle {folder.resolve().parent.name}/{folder.name}",
-                                    threads=int(cfg.get("threads", 1)))  # fmt: skip
+    interface = build_option("interface", "onnx_bundle", bundle=str(folder),
+                             name=f"bundle {folder.resolve().parent.name}/{folder.name}",
+                             threads=int(cfg.get("threads", 1)))  # fmt: skip
     m = interface.manifest_
     robot = bundle_robot(m)
-    belief = BoltzmannGoalBelief(beta=m.belief["beta"], floor=m.belief["floor"], min_motion=m.belief["min_motion"])
+    belief = belief_from_manifest(m.belief)
     limits = bundle_limits(m)
     overrides = {"episodes": int(cfg.episodes)} if cfg.get("episodes") is not None else {}
     suite = load_suite(str(cfg.suite), **overrides)

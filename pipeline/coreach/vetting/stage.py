@@ -12,7 +12,7 @@ from omegaconf import DictConfig, ListConfig, OmegaConf
 
 from coreach import tracking
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin
+from coreach.plugin_registry import build_option, build_plugin
 from coreach.safety import SafetyLimits
 from coreach.training.callbacks import interactive
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
@@ -40,7 +40,7 @@ def _baseline_config(name: str):
     from importlib import resources
 
     path = resources.files("coreach_conf") / BASELINES_DIR / f"{name}.yaml"
-    if name == "decoder" or not path.is_file():
+    if name in ("decoder", "onnx_bundle") or not path.is_file():  # these need a run or a bundle
         return None
     return OmegaConf.create(path.read_text())
 
@@ -50,15 +50,13 @@ def build_candidate(name: str, client):
     cfg = _baseline_config(name)
     if cfg is not None:
         return build_plugin(cfg, "interface"), None
-    from coreach_plugins.interface.decoder import DecoderInterface
-
     label = ""
     if client is not None and not name.startswith("models:/") and not Path(name).expanduser().exists():
         try:
             label = client.get_run(name).data.tags.get("coreach.label", "")
         except Exception:  # unknown run: DecoderInterface names it in its own error
             label = ""
-    interface = DecoderInterface(run=name, name=label)
+    interface = build_option("interface", "decoder", run=name, name=label)
     source = interface.source_ if len(str(interface.source_)) == 32 and "/" not in str(interface.source_) else None
     return interface, source
 

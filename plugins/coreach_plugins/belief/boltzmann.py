@@ -67,3 +67,19 @@ class BoltzmannGoalBelief:
         if self.floor > 0:
             post = (1.0 - self.floor) * post + self.floor / belief.shape[-1]
         return post
+
+    # --- manifest round trip (a release bundle names this model "boltzmann" and stores its three numbers) ---
+    MANIFEST_MODEL = "boltzmann"
+
+    def to_manifest(self) -> dict:
+        """The manifest's `belief` section: the model name and its parameters, plain JSON numbers."""
+        return {"model": self.MANIFEST_MODEL, "beta": float(self.beta), "floor": float(self.floor),
+                "min_motion": float(self.min_motion)}
+
+    @classmethod
+    def from_manifest(cls, params: dict) -> BoltzmannGoalBelief:
+        """Rebuild from a manifest `belief` section without its "model" key; unknown keys are refused."""
+        extra = sorted(set(params) - {"beta", "floor", "min_motion"})
+        if extra:
+            raise ValueError(f"unknown boltzmann belief parameters {extra}")
+        return cls(**{k: float(v) for k, v in params.items()})

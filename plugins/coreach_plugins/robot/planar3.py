@@ -109,3 +109,7 @@ class Planar3:
 
     def __repr__(self) -> str:
         return f"Planar3(name={self.name!r}, links={self.links})"
+
+    def urdf_text(self) -> None:
+        """None: this planar test arm has no URDF, so it cannot be released to a robot."""
+        return None

@@ -299,3 +299,8 @@ class UrdfArm:
 
     def __repr__(self) -> str:
         return f"UrdfArm(name={self.name!r}, dof={self.dof}, urdf={self.urdf or SHIPPED_URDF!r})"
+
+    def urdf_text(self) -> str:
+        """The URDF this arm was built from, as text (what a release bundle ships as robot.urdf)."""
+        path = Path(self.urdf).expanduser() if self.urdf else Path(shipped_urdf())
+        return path.read_text(encoding="utf-8")

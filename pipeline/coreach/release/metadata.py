@@ -1,0 +1,73 @@
+"""The release metadata: what the manifest and model card say about the training run, the scene and the gate."""
+
+from __future__ import annotations
+
+from coreach.errors import ConfigError
+from coreach.plugin_registry import build_plugin
+
+
+def _nominal_layout(scene) -> dict:
+    import torch
+
+    from coreach.geometry import matrix_to_quat, rpy_to_matrix
+
+    rpy = torch.deg2rad(torch.tensor([g.approach_rpy_deg for g in scene.goals], dtype=torch.float64))
+    return {
+        "goal_pos": [list(g.position) for g in scene.goals],
+        "goal_quat": matrix_to_quat(rpy_to_matrix(rpy)).tolist(),
+        "goal_fine": [list(g.fine_motion) for g in scene.goals],
+    }
+
+
+def _model_card_metrics(summaries: dict) -> dict:
+    out = {}
+    for suite, s in summaries.items():
+        level = s["confidence_level"]
+
+        def rate(r):
+            return {"value": r["value"], "low": r["lo"], "high": r["hi"], "level": level}
+
+        out[f"success rate, {suite} (n={s['success']['n']})"] = rate(s["success"])
+        for cell, r in s["recovery"].items():
+            if cell != "none":
+                out[f"success after a switch at {cell}, {suite} (n={r['n']})"] = rate(r)
+        out[f"time to success, median, {suite}"] = {"value": s["time_to_success"]["median"], "unit": "s"}
+        out[f"control authority, median, {suite}"] = {"value": s["authority"]["median"], "unit": "rad/s per stick"}
+    return out
+
+
+def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
+    """The `meta` write_bundle needs (see coreach.runtime.bundle.build_manifest)."""
+    scene = suites[0].scene
+    for s in suites[1:]:
+        if s.goal_names != scene.goal_names:
+            raise ConfigError("option gate_suites", f"suite {s.name} has goals {s.goal_names}, suite "
+                                                    f"{suites[0].name} {scene.goal_names}; a bundle serves one goal "
+                                                    "set")  # fmt: skip
+    rt = cfg.runtime
+    tags = run.data.tags
+    return {
+        "name": f"{cfg.name} ({label})",
+        "goal_names": list(scene.goal_names),
+        "nominal_layout": _nominal_layout(scene),
+        "dataset_fingerprint": tags["coreach.dataset"],
+        "training_run_id": run.info.run_id,
+        "git_commit": tags.get("mlflow.source.git.commit") or "unknown (not run from a git checkout)",
+        "episodes": run.data.params.get("dataset.episodes"),
+        "robot_name": robot.name,
+        "tool_link": str(cfg.robot.get("tool_link", "tool")),
+        "q_home": robot.q_home.tolist(),
+        "belief": build_plugin(cfg.belief, "belief").to_manifest(),
+        "safety": {
+            "tcp_speed_max": float(cfg.safety.tcp_speed_max),
+            "speed_fraction": float(cfg.safety.speed_fraction),
+            "workspace_min": list(rt.workspace_min),
+            "workspace_max": list(rt.workspace_max),
+            "watchdog_timeout_s": float(rt.watchdog_timeout_s),
+            "lookahead_s": float(rt.lookahead_s),
+        },
+        "stick": {"deadband": float(rt.deadband)},
+        "tolerances": {"arrival": suites[0].tolerances},
+        "metrics": _model_card_metrics(summaries),
+        "parity_n": int(cfg.parity_n),
+    }
