@@ -18,8 +18,9 @@ from coreach.context import ContextSpec
 from coreach.errors import ConfigError, CoreachError
 from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
 from coreach.policy import DecoderPolicy
-from coreach.runtime.bundle import CORE_FILES, MANIFEST, BundleError, verify_bundle, write_bundle
-from coreach.runtime.export import export_onnx, onnx_parity, sample_inputs
+from coreach.release.bundle_writer import write_bundle
+from coreach.runtime.bundle import CORE_FILES, MANIFEST, BundleError, verify_bundle
+from coreach.release.export import export_onnx, onnx_parity, sample_inputs
 
 CVAE = {"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [32, 32]}
 SPEC = ContextSpec(dof=7, n_goals=4)

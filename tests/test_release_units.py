@@ -25,7 +25,8 @@ from coreach.policy import DecoderPolicy
 from coreach.release import gate as G
 from coreach.release import registry
 from coreach.release.drive import bundle_limits, compare, drive
-from coreach.runtime.bundle import MANIFEST, BundleError, write_bundle
+from coreach.release.bundle_writer import write_bundle
+from coreach.runtime.bundle import MANIFEST, BundleError
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import wilson_interval

@@ -41,7 +41,7 @@ def _policy(cfg, robot, n_goals: int):
 
 def _bare_seconds(policy, E: int, K: int, T: int) -> float:
     """T forward passes over E*K (stick, context) inputs, the loop's call pattern without the loop."""
-    from coreach.runtime.export import sample_inputs
+    from coreach.release.export import sample_inputs
 
     stick, context = (torch.from_numpy(a) for a in sample_inputs(policy, E * K, seed=0))
     dtype = next(policy.parameters()).dtype

@@ -10,7 +10,8 @@ from omegaconf import ListConfig
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin, option_class
 from coreach.release import gate as G
-from coreach.runtime.bundle import PARITY_TOLERANCE, BundleError, verify_bundle, write_bundle
+from coreach.release.bundle_writer import write_bundle
+from coreach.runtime.bundle import PARITY_TOLERANCE, BundleError, verify_bundle
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import summarise
@@ -112,7 +113,7 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
         parity = float(verify_bundle(staged).onnx_parity["max_abs_diff"])
         latency = _latency(staged, cfg.latency)
     except BundleError as exc:  # parity beyond the writer's own limit: measure it for the table
-        from coreach.runtime.export import export_onnx, onnx_parity
+        from coreach.release.export import export_onnx, onnx_parity
 
         log.warning("staged bundle refused: %s", exc)
         try:

@@ -12,7 +12,7 @@ from omegaconf import OmegaConf
 
 from coreach.release import gate as G
 from coreach.release import registry
-from coreach.runtime.bundle import write_bundle
+from coreach.release.bundle_writer import write_bundle
 from coreach.vetting.metrics import flat_metrics
 
 

@@ -1,6 +1,6 @@
 """The release manifest (manifest.json): its constants, the checked `Manifest` and reading it from JSON.
 
-Needs only numpy, so the robot computer can read a bundle. The writer is `coreach.runtime.bundle_writer`,
+Needs only numpy, so the robot computer can read a bundle. The writer is `coreach.release.bundle_writer`,
 verification of the folder (hashes, listing) `coreach.runtime.verify`.
 """
 

@@ -1,6 +1,6 @@
 """Torch side of a release: the decoder policy as a self-contained ONNX file, and its parity with torch.
 
-Never imported by the runtime (the robot computer has no torch); `bundle.write_bundle` imports it lazily.
+Never imported by the runtime (the robot computer has no torch); `bundle_writer.write_bundle` imports it lazily.
 """
 
 from __future__ import annotations

@@ -200,7 +200,7 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
     names (e.g. "report.html") to source files. See `build_manifest` for the keys of `meta`; meta["metrics"]
     (optional) goes into the model card.
     """
-    from coreach.runtime.export import export_onnx, onnx_parity  # torch side, only when writing
+    from coreach.release.export import export_onnx, onnx_parity  # torch side, only when writing
     from coreach.runtime.kinematics import Chain
     from coreach.runtime.model_card import model_card
 
