@@ -15,6 +15,7 @@ import shutil
 import subprocess
 import sys
 import time
+import urllib.error
 import urllib.request
 from pathlib import Path
 
@@ -223,7 +224,8 @@ def test_a_page_that_stops_sending_stops_the_arm_within_the_watchdog_timeout(ser
 def test_screenshot_shows_the_arm(server, browser):
     url, _, _ = server
     page = _open(browser, url)
-    _hold(page, ["ArrowLeft"], 0.6)
+    keys, _ = _best_keys(_get(url, "api/state"), _get(url, "api/scene"))
+    _hold(page, keys, 1.5)  # leaves a tool path on the picture
     page.wait_for_timeout(200)
     SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
     page.screenshot(path=str(SCREENSHOT))
@@ -311,6 +313,20 @@ def test_gamepad_stub_drives_the_arm_and_its_buttons_record(server, browser):
     assert not any(_get(url, "api/state")["qd"])
     _post(url, "api/command", {"action": "record", "on": False})
     page.close()
+
+
+def test_requests_for_another_host_name_are_refused(server):
+    """DNS rebinding guard: a page served under another name that resolves here cannot drive or read."""
+    url, _, _ = server
+    req = urllib.request.Request(url + "api/state", headers={"Host": "elsewhere.example"})
+    with pytest.raises(urllib.error.HTTPError) as err:
+        urllib.request.urlopen(req, timeout=5)
+    assert err.value.code == 403
+    req = urllib.request.Request(url + "api/input", data=b'{"stick": [1, 0]}', headers={
+        "Content-Type": "application/json", "Origin": "http://elsewhere.example"})
+    with pytest.raises(urllib.error.HTTPError) as err:
+        urllib.request.urlopen(req, timeout=5)
+    assert err.value.code == 403
 
 
 def test_tampered_bundle_is_refused_with_one_line(bundle, tmp_path):

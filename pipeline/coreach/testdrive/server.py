@@ -9,6 +9,7 @@ that stops sending leaves the Session's watchdog to zero the command.
 from __future__ import annotations
 
 import json
+import math
 import threading
 from http import HTTPStatus
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -24,14 +25,26 @@ def page_html() -> bytes:
 
 
 class _Handler(BaseHTTPRequestHandler):
-    drive: Drive  # set on the subclass made by `serve`
+    drive: Drive  # set on the subclass made by TestDriveServer
     page: bytes
+    allowed_hosts: set[str]
     server_version = "coreach-testdrive"
 
     def log_message(self, fmt, *args) -> None:  # 30 requests a second would flood the terminal
         pass
 
+    def _host_ok(self) -> bool:
+        """Refuse requests addressed to another host name (DNS rebinding: a web page elsewhere whose name
+        resolves to this machine would otherwise pass as same-origin)."""
+        host = (self.headers.get("Host") or "").rsplit(":", 1)[0].strip("[]")
+        if host in self.allowed_hosts:
+            return True
+        self._json({"error": f"host {host!r} refused; open the address the command printed"}, HTTPStatus.FORBIDDEN)
+        return False
+
     def do_GET(self) -> None:
+        if not self._host_ok():
+            return
         path = self.path.split("?", 1)[0]
         if path in ("/", "/index.html"):
             self._send(HTTPStatus.OK, self.page, "text/html; charset=utf-8")
@@ -43,6 +56,8 @@ class _Handler(BaseHTTPRequestHandler):
             self._json({"error": "not found"}, HTTPStatus.NOT_FOUND)
 
     def do_POST(self) -> None:
+        if not self._host_ok():
+            return
         # Only this page may drive: a request from another origin (a web page elsewhere in the same
         # browser) is refused, and JSON bodies force browsers to ask before sending cross-origin.
         origin = self.headers.get("Origin")
@@ -86,7 +101,7 @@ class _Handler(BaseHTTPRequestHandler):
         raise ValueError(f"unknown action {action!r}")
 
     def _json(self, obj, status=HTTPStatus.OK) -> None:
-        self._send(status, json.dumps(obj, allow_nan=False, default=_plain).encode(), "application/json")
+        self._send(status, json.dumps(_finite(obj), allow_nan=False).encode(), "application/json")
 
     def _send(self, status, data: bytes, kind: str) -> None:
         self.send_response(status)
@@ -97,15 +112,23 @@ class _Handler(BaseHTTPRequestHandler):
         self.wfile.write(data)
 
 
-def _plain(value):
-    return None if value != value else float(value)  # nan (tool position before the first step) -> null
+def _finite(obj):
+    """nan and inf (JSON has neither) -> null, so one odd number cannot break the page's JSON.parse."""
+    if isinstance(obj, float):
+        return obj if math.isfinite(obj) else None
+    if isinstance(obj, dict):
+        return {k: _finite(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite(v) for v in obj]
+    return obj
 
 
 class TestDriveServer:
     """The HTTP server and the control loop, both in daemon threads; `close` stops both."""
 
     def __init__(self, drive: Drive, host: str = "127.0.0.1", port: int = 0):
-        handler = type("Handler", (_Handler,), {"drive": drive, "page": page_html()})
+        allowed = {host, "127.0.0.1", "localhost", "::1"}
+        handler = type("Handler", (_Handler,), {"drive": drive, "page": page_html(), "allowed_hosts": allowed})
         self.drive = drive
         self.httpd = ThreadingHTTPServer((host, port), handler)
         self.httpd.daemon_threads = True

@@ -115,6 +115,7 @@ class Drive:
         self.input_source = "none"
         self.target = 0
         self.saved: list[str] = []
+        self.error: str | None = None  # set when the control loop stopped on an unexpected exception
         self._recording: list[dict] | None = None
         self._episode = 0
         self._reset_arm()
@@ -203,7 +204,11 @@ class Drive:
         make the next ones run faster (the schedule restarts), so q never jumps."""
         due = self._clock()
         while not stop.is_set():
-            self.tick()
+            try:
+                self.tick()
+            except Exception as exc:  # a bug: the arm must not keep its last velocity, and the page must say so
+                self.error = f"control loop stopped: {type(exc).__name__}: {exc}"
+                return
             due += self.dt
             wait = due - self._clock()
             if wait < -self.dt:
@@ -236,7 +241,7 @@ class Drive:
                 "stick_received": stick, "input_age_s": age if self.stick_time > NEVER else None,
                 "input_source": self.input_source, "phase": list(self.phase),
                 "arrived_at": list(self.arrived_at), "recording": self._recording is not None,
-                "recorded_steps": len(self._recording or ()), "saved": list(self.saved),
+                "recorded_steps": len(self._recording or ()), "saved": list(self.saved), "error": self.error,
             }  # fmt: skip
         filters = {k: bool(getattr(info, k, False)) for k in FLAGS} if info is not None else {}
         filters["workspace_limited"] = info is not None and float(getattr(info, "workspace_scale", 1.0)) < 1.0
