@@ -365,3 +365,45 @@ def test_matrix_to_quat_matches_scipy():
         want = np.array([w, x, y, z]) * (1 if w >= 0 else -1)
         got = matrix_to_quat(r.as_matrix())
         assert np.allclose(got, want, atol=1e-9) or (abs(want[0]) < 1e-9 and np.allclose(got, -want, atol=1e-9))
+
+
+def test_drive_summary_values_on_a_hand_made_drive(bundle, tmp_path):
+    """Known geometry: the tool goes start -> a corner -> the end of goal 0's fine motion in 20 steps,
+    arriving at step 15; speed caps act on 3 steps, the workspace box on 1."""
+    from types import SimpleNamespace
+
+    from coreach.runtime.bundle import verify_bundle
+    from coreach.testdrive.drive_summary import drive_summary
+    from coreach.testdrive.recording import save_drive
+
+    m = verify_bundle(bundle)
+    g = len(GOALS)
+    end = m.goal_pos[0] + m.goal_fine[0]
+    start, corner = end + np.array([-0.2, 0.0, 0.0]), end + np.array([-0.1, 0.1, 0.0])
+    pos = np.concatenate([np.linspace(start, corner, 8, endpoint=False), np.linspace(corner, end, 8),
+                          np.repeat(end[None], 4, axis=0)])  # [20, 3]; reaches `end` at step 15
+    rows = []
+    for t in range(20):
+        rows.append({
+            "t": t * 0.02, "q": np.zeros(7), "qd": np.zeros(7), "pos": pos[t], "rot": np.eye(3),
+            "stick_in": [1.0, 0.0], "stick": np.array([0.5, 0.0]), "age": 0.01, "qd_decoder": np.full(7, 0.1),
+            "flags": {"stale": False, "deadband": False, "stick_clipped": False, "position_limited": False,
+                      "speed_capped": t in (2, 3, 4)},
+            "workspace_scale": 0.5 if t == 9 else 1.0, "fault": None, "belief": np.full(g, 1 / g), "target": 0,
+            "phase": [2 if t >= 15 else 0] + [0] * (g - 1),
+        })  # fmt: skip
+    drive = SimpleNamespace(manifest=m, dt=0.02, manifest_sha256="ab" * 32, session_id="s1", position_tol=0.02,
+                            orientation_tol=0.26)  # fmt: skip
+    path = save_drive(drive, rows, 0, 1, tmp_path / "d.parquet")
+    s = drive_summary([path])
+    assert s["success"]["value"] == 1.0 and s["success"]["n"] == 1
+    # Wilson interval at 1 success of 1 (Wilson 1927; closed form n / (n + z^2) for the lower end)
+    assert s["success"]["lo"] == pytest.approx(1 / (1 + 1.959964**2), abs=1e-6)
+    assert s["time_to_success"]["median"] == pytest.approx(15 * 0.02)
+    straight = np.linalg.norm(end - start)
+    travelled = np.linalg.norm(corner - start) + np.linalg.norm(end - corner)
+    assert s["path_efficiency"]["mean"] == pytest.approx(straight / travelled)
+    assert s["limit_scalings"]["speed_capped"] == pytest.approx(3 / 20)
+    assert s["limit_scalings"]["workspace_limited"] == pytest.approx(1 / 20)
+    assert s["interventions"]["step_share"] == pytest.approx(4 / 20)
+    assert s["authority"]["median"] == pytest.approx(np.linalg.norm(np.full(7, 0.1)) / 0.5)
