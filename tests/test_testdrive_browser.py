@@ -407,3 +407,39 @@ def test_drive_summary_values_on_a_hand_made_drive(bundle, tmp_path):
     assert s["limit_scalings"]["workspace_limited"] == pytest.approx(1 / 20)
     assert s["interventions"]["step_share"] == pytest.approx(4 / 20)
     assert s["authority"]["median"] == pytest.approx(np.linalg.norm(np.full(7, 0.1)) / 0.5)
+
+
+def test_recorded_drives_relabelled_for_aggregation(bundle, tmp_path):
+    """A drive stepped without a browser (scripted stick, fake clock), saved, then relabelled with the scripted
+    demonstrator: the labels' tool velocity J(q) qd heads for the drive's goal (approach point)."""
+    from coreach.runtime.session import Session
+    from coreach.testdrive.finetune import relabel_drives
+    from coreach.testdrive.sim import Drive
+    from coreach_plugins.labeller.scripted import ScriptedLabeller
+    from coreach_plugins.robot.urdf_arm import UrdfArm
+
+    now = [0.0]
+    drive = Drive(Session.open(bundle), rate_hz=50.0, record_dir=tmp_path, clock=lambda: now[0])
+    drive.pick_target(3)
+    drive.start_recording()
+    for _ in range(60):
+        drive.set_stick([1.0, -1.0], "script")
+        drive.tick()
+        now[0] += drive.dt
+    path = drive.stop_recording()
+    relabelled = relabel_drives([path], UrdfArm(), ScriptedLabeller())
+    out = tmp_path / "relabelled.parquet"
+    from coreach.episodes import save_parquet
+
+    save_parquet(relabelled, out)
+    again = load_parquet(out)
+    assert len(again) == 1 and again.goal_names == GOALS and GOALS[again[0].goal] == "bottle"
+    ep, recorded = again[0], load_parquet(path)[0]
+    np.testing.assert_array_equal(ep.q, recorded.q)  # same states, new labels
+    assert not np.allclose(ep.qd, recorded.qd)
+    chain = Chain.from_urdf(shipped_urdf())
+    approach = ep.goal_pos[ep.goal]
+    for q, qd, pos in zip(ep.q, ep.qd, ep.ee_pos):
+        v = chain.jacobian(q)[:3] @ qd  # tool velocity of the label (runtime kinematics)
+        to_goal = approach - pos
+        assert v @ to_goal / (np.linalg.norm(v) * np.linalg.norm(to_goal)) > 0.9

@@ -50,6 +50,8 @@ def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> 
         "belief": _fixed([r["belief"] for r in rows], g),
         "target": pa.array([m.goal_names[r["target"]] for r in rows], type=pa.string()),
         "arrived": _fixed([[p == 2 for p in r["phase"]] for r in rows], g, pa.bool_()),
+        # per goal: 0 seeking the approach pose, 1 seeking the end of the fine motion, 2 arrived
+        "phase": _fixed([r["phase"] for r in rows], g, pa.int8()),
     }
     for name, col in extra.items():
         table = table.append_column(name, col)
@@ -76,5 +78,6 @@ def _fixed(values, width: int, kind=None):
     import pyarrow as pa
 
     kind = kind or pa.float64()
-    flat = np.asarray(values, dtype=bool if kind == pa.bool_() else np.float64).reshape(-1)
+    dtype = {pa.bool_(): bool, pa.int8(): np.int8}.get(kind, np.float64)
+    flat = np.asarray(values, dtype=dtype).reshape(-1)
     return pa.FixedSizeListArray.from_arrays(pa.array(flat, type=kind), width)
