@@ -41,7 +41,7 @@ ARM_RGB = (0x4A, 0x5A, 0x70)  # the page's link colour
 
 def _need_browser():
     try:
-        import playwright.sync_api  # noqa: F401
+        import playwright.sync_api  # noqa: F401  (only whether it imports)
     except ImportError:
         pytest.fail("playwright is not installed") if os.environ.get("CI") else pytest.skip("playwright missing")
     if CHROMIUM is None:
@@ -123,7 +123,8 @@ def _get(url: str, path: str) -> dict:
 
 
 def _post(url: str, path: str, body: dict) -> dict:
-    req = urllib.request.Request(url + path, data=json.dumps(body).encode(), headers={"Content-Type": "application/json"})
+    req = urllib.request.Request(url + path, data=json.dumps(body).encode(),
+                                 headers={"Content-Type": "application/json"})
     with urllib.request.urlopen(req, timeout=5) as r:
         return json.load(r)
 
@@ -216,7 +217,11 @@ def test_a_page_that_stops_sending_stops_the_arm_within_the_watchdog_timeout(ser
     assert st["filters"]["stale"] and st["stopped_by_watchdog"]
     assert st["input_age_s"] <= timeout + 2 * dt + 0.05
     page.wait_for_selector("#lost.on", timeout=3000)
-    assert "watchdog" in page.inner_text("#lost")
+    assert "DISCONNECTED" in page.inner_text("#lost") and "watchdog" in page.inner_text("#lost")
+    # input flows again: the page reports when the watchdog stopped the arm, and the arm moves again
+    page.unroute("**/api/input")
+    page.wait_for_function("window.testdrive.connected() && window.testdrive.state().qd.some(v => v !== 0)")
+    assert "Input stalled at" in page.inner_text("#lost")
     page.keyboard.up("ArrowRight")
     page.close()
 
@@ -293,7 +298,8 @@ def test_gamepad_stub_drives_the_arm_and_its_buttons_record(server, browser):
     url, _, _ = server
     stub = """
       const pad = {id: "scripted stub", index: 0, connected: true, mapping: "standard", timestamp: 0,
-                   axes: [0.05, -0.02, 0.6, -0.55], buttons: Array.from({length: 16}, () => ({pressed: false, value: 0}))};
+                   axes: [0.05, -0.02, 0.6, -0.55],
+                   buttons: Array.from({length: 16}, () => ({pressed: false, value: 0}))};
       window.__pad = pad;
       navigator.getGamepads = () => [pad, null, null, null];
     """

@@ -93,7 +93,8 @@ class Drive:
     """One bundle on one simulated arm, stepped by `tick`; all methods are thread-safe."""
 
     def __init__(self, session: Session, rate_hz: float = 50.0, position_tol: float = 0.02,
-                 orientation_tol_deg: float = 15.0, record_dir: str | Path = "drives", clock=time.monotonic):  # fmt: skip
+                 orientation_tol_deg: float = 15.0, record_dir: str | Path = "drives",
+                 clock=time.monotonic):  # fmt: skip
         self.session = session
         m = self.manifest = session.manifest
         self.dt = 1.0 / float(rate_hz)
@@ -195,6 +196,8 @@ class Drive:
                                               self.position_tol, self.orientation_tol)
                 if self.phase[g] == 2 and self.arrived_at[g] is None:
                     self.arrived_at[g] = now - self.t_reset
+            if getattr(info, "stale", False) and self.stick_time > NEVER:
+                self.watchdog_at = now - self.t_reset  # input had been arriving, then stopped
             self.q = q + qd * self.dt
             self.path.append(pos.tolist())
             self.last_qd, self.steps = qd, self.steps + 1
@@ -242,6 +245,7 @@ class Drive:
                 "input_source": self.input_source, "phase": list(self.phase),
                 "arrived_at": list(self.arrived_at), "recording": self._recording is not None,
                 "recorded_steps": len(self._recording or ()), "saved": list(self.saved), "error": self.error,
+                "watchdog_at": self.watchdog_at,
             }  # fmt: skip
         filters = {k: bool(getattr(info, k, False)) for k in FLAGS} if info is not None else {}
         filters["workspace_limited"] = info is not None and float(getattr(info, "workspace_scale", 1.0)) < 1.0
@@ -277,6 +281,7 @@ class Drive:
         self.phase, self.arrived_at = [0] * g, [None] * g
         self.path: deque = deque(maxlen=PATH_POINTS)
         self.t_reset = self.now()
+        self.watchdog_at: float | None = None  # elapsed time of the latest watchdog stop after input had arrived
         self.last_qd = np.zeros(self.manifest.action_dim)
         self.steps = 0
 
