@@ -27,7 +27,7 @@ def page_html() -> bytes:
 class _Handler(BaseHTTPRequestHandler):
     drive: Drive  # set on the subclass made by TestDriveServer
     page: bytes
-    allowed_hosts: set[str]
+    allowed_hosts: set[str] | None
     server_version = "coreach-testdrive"
 
     def log_message(self, fmt, *args) -> None:  # 30 requests a second would flood the terminal
@@ -37,7 +37,7 @@ class _Handler(BaseHTTPRequestHandler):
         """Refuse requests addressed to another host name (DNS rebinding: a web page elsewhere whose name
         resolves to this machine would otherwise pass as same-origin)."""
         host = (self.headers.get("Host") or "").rsplit(":", 1)[0].strip("[]")
-        if host in self.allowed_hosts:
+        if self.allowed_hosts is None or host in self.allowed_hosts:
             return True
         self._json({"error": f"host {host!r} refused; open the address the command printed"}, HTTPStatus.FORBIDDEN)
         return False
@@ -127,7 +127,8 @@ class TestDriveServer:
     """The HTTP server and the control loop, both in daemon threads; `close` stops both."""
 
     def __init__(self, drive: Drive, host: str = "127.0.0.1", port: int = 0):
-        allowed = {host, "127.0.0.1", "localhost", "::1"}
+        # bound to every interface on purpose (--host 0.0.0.0): any name may reach it; else only local names
+        allowed = None if host in ("0.0.0.0", "::", "") else {host, "127.0.0.1", "localhost", "::1"}
         handler = type("Handler", (_Handler,), {"drive": drive, "page": page_html(), "allowed_hosts": allowed})
         self.drive = drive
         self.httpd = ThreadingHTTPServer((host, port), handler)
