@@ -36,6 +36,8 @@ commands:
   promote   field a vetted version (coreach promote NAME VERSION) or restore the previous one
             (coreach promote NAME --back)
   releases  registered versions, aliases and gate results (coreach releases [NAME])
+  try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
+            (coreach try-bundle releases/<name>/v<version> [--port 8765] [--record-dir drives])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
                 cVAE with and without goal_entropy (goal: <= 2x the time); bench.threads=1 on shared cores
   bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)

@@ -24,10 +24,11 @@ HYDRA_COMMANDS = {
 PLAIN_COMMANDS = {
     "promote": "coreach.release.registry:promote_command",
     "releases": "coreach.release.registry:releases_command",
+    "try-bundle": "coreach.testdrive.command:try_bundle_command",
 }
 
 # commands whose output leads toward a robot: they end with the same cautions as the model card
-CAUTION_COMMANDS = ("vet", "drive", "demo", "release", "promote")
+CAUTION_COMMANDS = ("vet", "drive", "demo", "release", "promote", "try-bundle")
 
 
 def load_target(spec: str):

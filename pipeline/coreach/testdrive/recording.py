@@ -1,0 +1,83 @@
+"""A recorded drive as one schema-v1 episode (coreach.episodes) plus the stick input and filter events.
+
+The required columns come from the episodes writer (`to_table`); the extra columns sit next to them (the
+loader ignores columns it does not know). File metadata adds the bundle's manifest hash and the session id.
+"""
+
+from __future__ import annotations
+
+import os
+import uuid
+from pathlib import Path
+
+import numpy as np
+
+from coreach.episodes import Episode, EpisodeSet, to_table
+
+SOURCE = "coreach try-bundle"
+META_MANIFEST = "coreach.bundle_manifest_sha256"
+META_SESSION = "coreach.testdrive_session"
+META_TOLERANCES = "coreach.testdrive_tolerances"
+FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")
+
+
+def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> Path:
+    """Write rows recorded by `Drive.tick` to `path` atomically (temp file in the same folder, os.replace)."""
+    import json
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from coreach.testdrive.sim import matrix_to_quat
+
+    m = drive.manifest
+    ep = Episode(
+        episode_id=episode, goal=goal, q=np.stack([r["q"] for r in rows]), qd=np.stack([r["qd"] for r in rows]),
+        ee_pos=np.stack([r["pos"] for r in rows]), ee_quat=np.stack([matrix_to_quat(r["rot"]) for r in rows]),
+        goal_pos=m.goal_pos.copy(), goal_quat=m.goal_quat.copy(), goal_fine=m.goal_fine.copy(),
+    )  # fmt: skip
+    table = to_table(EpisodeSet([ep], list(m.goal_names), list(m.joint_names), drive.dt, source=SOURCE))
+    d, g = m.latent_dim, m.n_goals
+    extra = {
+        "t_s": pa.array([r["t"] for r in rows], type=pa.float64()),
+        "stick_input": _fixed([r["stick_in"] for r in rows], d),  # as received from the page
+        "stick": _fixed([r["stick"] for r in rows], d),  # as the Session used it (box, deadband)
+        "input_age_s": pa.array([r["age"] for r in rows], type=pa.float64()),
+        "qd_decoder": _fixed([r["qd_decoder"] for r in rows], m.action_dim),
+        **{k: pa.array([r["flags"][k] for r in rows], type=pa.bool_()) for k in FLAG_COLUMNS},
+        "workspace_scale": pa.array([r["workspace_scale"] for r in rows], type=pa.float64()),
+        "fault": pa.array([r["fault"] for r in rows], type=pa.string()),
+        "belief": _fixed([r["belief"] for r in rows], g),
+        "target": pa.array([m.goal_names[r["target"]] for r in rows], type=pa.string()),
+        "arrived": _fixed([[p == 2 for p in r["phase"]] for r in rows], g, pa.bool_()),
+        # per goal: 0 seeking the approach pose, 1 seeking the end of the fine motion, 2 arrived
+        "phase": _fixed([r["phase"] for r in rows], g, pa.int8()),
+    }
+    for name, col in extra.items():
+        table = table.append_column(name, col)
+    meta = dict(table.schema.metadata or {})
+    meta.update({
+        META_MANIFEST.encode(): drive.manifest_sha256.encode(), META_SESSION.encode(): drive.session_id.encode(),
+        META_TOLERANCES.encode(): json.dumps({"position_m": drive.position_tol,
+                                              "orientation_rad": drive.orientation_tol}).encode(),
+    })  # fmt: skip
+    table = table.replace_schema_metadata(meta)
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.parent / f".{path.name}.{uuid.uuid4().hex}.tmp"
+    try:
+        pq.write_table(table, tmp)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
+
+
+def _fixed(values, width: int, kind=None):
+    import pyarrow as pa
+
+    kind = kind or pa.float64()
+    dtype = {pa.bool_(): bool, pa.int8(): np.int8}.get(kind, np.float64)
+    flat = np.asarray(values, dtype=dtype).reshape(-1)
+    return pa.FixedSizeListArray.from_arrays(pa.array(flat, type=kind), width)

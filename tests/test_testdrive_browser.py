@@ -1,0 +1,451 @@
+"""`coreach try-bundle` in a real browser: headless Chromium (Debian's) driven by Playwright's Python API.
+
+The server runs as the real command in a subprocess (it prints its address with --json); the page is the
+shipped one. The gamepad path is tested with a scripted Gamepad API stub: an init script replaces
+navigator.getGamepads before the page loads, since headless Chromium has no gamepad.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import shutil
+import subprocess
+import sys
+import time
+import urllib.error
+import urllib.request
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+
+from coreach.context import ContextSpec
+from coreach.episodes import load_parquet
+from coreach.policy import DecoderPolicy
+from coreach.runtime.bundle import write_bundle
+from coreach.runtime.kinematics import Chain
+from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
+
+pytestmark = pytest.mark.slow
+
+ROOT = Path(__file__).resolve().parents[1]
+SCREENSHOT = ROOT / "reports" / "testdrive.png"
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+GOALS = ["cup", "switch", "drawer", "bottle", "door", "book"]
+ARM_RGB = (0x4A, 0x5A, 0x70)  # the page's link colour
+
+
+def _need_browser():
+    try:
+        import playwright.sync_api  # noqa: F401  (only whether it imports)
+    except ImportError:
+        pytest.fail("playwright is not installed") if os.environ.get("CI") else pytest.skip("playwright missing")
+    if CHROMIUM is None:
+        # .ci/run installs Debian's chromium; in CI a missing browser is a failure, never a skip
+        pytest.fail("chromium is not installed") if os.environ.get("CI") else pytest.skip("chromium missing")
+
+
+@pytest.fixture(scope="module")
+def bundle(tmp_path_factory) -> Path:
+    """A small untrained decoder released with write_bundle (no training: the page, not the decoder, is tested).
+
+    Six goals 0.15 m from the home tool position, one along each base axis: whichever way the untrained
+    decoder moves the tool, some stick heads within 55 degrees of a goal (max cosine >= 1/sqrt(3)), and
+    the action map shows which.
+    """
+    torch.manual_seed(0)
+    spec = ContextSpec(dof=7, n_goals=len(GOALS))
+    policy = DecoderPolicy.build({"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
+                                  "hidden": [32, 32]}, spec, 7)  # fmt: skip
+    policy.set_normalisation(torch.randn(400, spec.width) * 0.5, torch.randn(400, 7) * 0.3)
+    home, _ = Chain.from_urdf(shipped_urdf()).fk(np.array(REACH7_HOME))
+    offsets = np.concatenate([np.eye(3), -np.eye(3)]) * 0.15
+    meta = {
+        "goal_names": GOALS,
+        "nominal_layout": {
+            "goal_pos": (home + offsets).tolist(),
+            "goal_quat": [[0.7071068, 0.0, 0.7071068, 0.0]] * len(GOALS),
+            "goal_fine": (offsets / 5).tolist(),
+        },
+        "dataset_fingerprint": "sha256:feed", "training_run_id": "run-testdrive", "git_commit": "0" * 40,
+        "q_home": list(REACH7_HOME),
+        "safety": {"workspace_min": [0.0, -0.6, 0.0], "workspace_max": [0.9, 0.6, 0.9]},
+        "parity_n": 200,
+    }
+    return write_bundle(tmp_path_factory.mktemp("td") / "bundle", policy, shipped_urdf(), meta, {}, {"passed": True})
+
+
+def _command(*args: str) -> list[str]:
+    return [sys.executable, "-m", "coreach.cli", *args]
+
+
+def _env() -> dict:
+    env = dict(os.environ, CI=os.environ.get("CI", ""))
+    # the subprocess resolves coreach from the same source folders as this test run
+    env["PYTHONPATH"] = os.pathsep.join([str(ROOT / "pipeline"), str(ROOT / "plugins"), str(ROOT / "conf"),
+                                         env.get("PYTHONPATH", "")])  # fmt: skip
+    return env
+
+
+@pytest.fixture(scope="module")
+def server(bundle, tmp_path_factory):
+    drives = tmp_path_factory.mktemp("drives")
+    proc = subprocess.Popen(_command("--json", "try-bundle", str(bundle), "--port", "0", "--record-dir", str(drives)),
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env())  # fmt: skip
+    line = proc.stdout.readline()
+    if not line:
+        proc.kill()
+        pytest.fail(f"try-bundle did not start: {proc.stderr.read()}")
+    info = json.loads(line)
+    yield info["url"], info, drives
+    proc.terminate()
+    proc.wait(timeout=20)
+
+
+@pytest.fixture(scope="module")
+def browser():
+    _need_browser()
+    from playwright.sync_api import sync_playwright
+
+    with sync_playwright() as p:
+        b = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=["--no-sandbox"])
+        yield b
+        b.close()
+
+
+def _get(url: str, path: str) -> dict:
+    with urllib.request.urlopen(url + path, timeout=5) as r:
+        return json.load(r)
+
+
+def _post(url: str, path: str, body: dict) -> dict:
+    req = urllib.request.Request(url + path, data=json.dumps(body).encode(),
+                                 headers={"Content-Type": "application/json"})
+    with urllib.request.urlopen(req, timeout=5) as r:
+        return json.load(r)
+
+
+def _open(browser, url: str, init_script: str | None = None, query: str = ""):
+    page = browser.new_page(viewport={"width": 1280, "height": 800})
+    if init_script:
+        page.add_init_script(init_script)
+    _post(url, "api/command", {"action": "reset"})
+    page.goto(url + query)
+    page.wait_for_function("window.testdrive && window.testdrive.state() !== null")
+    return page
+
+
+KEYS = {(1, 0): ["ArrowRight"], (-1, 0): ["ArrowLeft"], (0, 1): ["ArrowUp"], (0, -1): ["ArrowDown"],
+        (1, 1): ["ArrowRight", "ArrowUp"], (1, -1): ["ArrowRight", "ArrowDown"],
+        (-1, 1): ["ArrowLeft", "ArrowUp"], (-1, -1): ["ArrowLeft", "ArrowDown"]}  # fmt: skip
+
+
+def _best_keys(state: dict, scene: dict) -> tuple[list[str], int]:
+    """From the page's action map at the home state: the arrow keys whose stick heads most directly for a goal
+    (what a person reads off the map), and that goal."""
+    pos = np.array(state["links"][-1][0])
+    best = (-2.0, None, None)
+    for stick, vel in zip(state["action_map"]["stick"], state["action_map"]["tool_velocity"]):
+        key = (round(stick[0]), round(stick[1]))
+        if key not in KEYS or not np.allclose(stick, key):  # sticks the arrow keys can give
+            continue
+        v = np.array(vel)
+        for g, t in enumerate(scene["goal_targets"]):
+            to_goal = np.array(t[0]) - pos
+            cos = float(v @ to_goal) / (np.linalg.norm(v) * np.linalg.norm(to_goal) + 1e-12)
+            if cos > best[0]:
+                best = (cos, KEYS[key], g)
+    assert best[0] > 0.5, f"no stick direction heads for a goal (best cosine {best[0]:.2f})"
+    return best[1], best[2]
+
+
+def _hold(page, keys: list[str], seconds: float) -> None:
+    page.locator("#view").click()  # focus the page, as a person would
+    for k in keys:
+        page.keyboard.down(k)
+    time.sleep(seconds)
+    for k in keys:
+        page.keyboard.up(k)
+
+
+def test_holding_a_key_moves_the_tool_toward_a_goal_and_its_belief_rises(server, browser):
+    url, _, _ = server
+    page = _open(browser, url)
+    scene, start = _get(url, "api/scene"), _get(url, "api/state")
+    keys, goal = _best_keys(start, scene)
+    uniform = 1.0 / len(GOALS)
+    assert start["belief"] == pytest.approx([uniform] * len(GOALS))
+    _hold(page, keys, 1.2)
+    end = _get(url, "api/state")
+    target = np.array(scene["goal_targets"][goal][0])
+    d0 = np.linalg.norm(target - start["links"][-1][0])
+    d1 = np.linalg.norm(target - end["links"][-1][0])
+    assert d1 < d0 - 0.01, f"tool did not approach {GOALS[goal]}: {d0:.3f} m -> {d1:.3f} m"
+    assert end["belief"][goal] > uniform + 0.05, end["belief"]
+    assert end["input_source"] == "keyboard"
+    # the page shows the same belief the server holds (bar order = goal order)
+    shown = page.evaluate("window.testdrive.state().belief")
+    assert shown[goal] > uniform + 0.05
+    page.close()
+
+
+def test_a_page_that_stops_sending_stops_the_arm_within_the_watchdog_timeout(server, browser):
+    url, _, _ = server
+    page = _open(browser, url)
+    scene = _get(url, "api/scene")
+    timeout, dt = scene["watchdog_timeout_s"], 1.0 / scene["rate_hz"]
+    page.locator("#view").click()
+    page.keyboard.down("ArrowRight")
+    deadline = time.monotonic() + 3.0
+    while not any(_get(url, "api/state")["qd"]) and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert any(_get(url, "api/state")["qd"]), "the arm never moved"
+    page.route("**/api/input", lambda route: route.abort())  # the page's input stops reaching the server
+    t_cut = time.monotonic()
+    while True:
+        st = _get(url, "api/state")
+        if not any(st["qd"]):
+            break
+        assert time.monotonic() - t_cut < timeout + 1.0, "the arm kept moving without input"
+        time.sleep(0.01)
+    # stopped by the watchdog (not by a released key) and no later than one timeout plus one control period
+    # after the last sample the server received
+    assert st["filters"]["stale"] and st["stopped_by_watchdog"]
+    assert st["input_age_s"] <= timeout + 2 * dt + 0.05
+    page.wait_for_selector("#lost.on", timeout=3000)
+    assert "DISCONNECTED" in page.inner_text("#lost") and "watchdog" in page.inner_text("#lost")
+    # input flows again: the page reports when the watchdog stopped the arm, and the arm moves again
+    page.unroute("**/api/input")
+    page.wait_for_function("window.testdrive.connected() && window.testdrive.state().qd.some(v => v !== 0)")
+    assert "Input stalled at" in page.inner_text("#lost")
+    page.keyboard.up("ArrowRight")
+    page.close()
+
+
+def test_screenshot_shows_the_arm(server, browser):
+    url, _, _ = server
+    page = _open(browser, url)
+    keys, _ = _best_keys(_get(url, "api/state"), _get(url, "api/scene"))
+    _hold(page, keys, 1.5)  # leaves a tool path on the picture
+    page.wait_for_timeout(200)
+    SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
+    page.screenshot(path=str(SCREENSHOT))
+    box = page.locator("#view").bounding_box()
+    page.close()
+    from PIL import Image
+
+    img = np.asarray(Image.open(SCREENSHOT).convert("RGB")).astype(int)  # [H, W, 3]
+    x0, y0 = int(box["x"]), int(box["y"])
+    view = img[y0 : y0 + int(box["height"]), x0 : x0 + int(box["width"])]
+    background = np.all(view == 255, axis=-1)
+    assert background.mean() < 0.98, "the 3D view is blank"
+    arm = np.all(np.abs(view - np.array(ARM_RGB)) <= 6, axis=-1)
+    assert arm.sum() > 500, f"only {arm.sum()} arm-coloured pixels"
+
+
+def test_a_recording_made_on_the_page_loads_as_episodes(server, browser, bundle):
+    url, info, drives = server
+    page = _open(browser, url)
+    before = set(_get(url, "api/state")["saved"])
+    page.locator("#view").click()
+    page.keyboard.press("Digit2")  # name the target goal
+    page.keyboard.press("Space")  # start recording
+    page.wait_for_selector("text=● recording")
+    _hold(page, ["ArrowRight"], 0.8)
+    page.keyboard.press("Space")  # stop: the drive is saved
+    page.wait_for_function(f"window.testdrive.state().saved.length > {len(before)}")
+    saved = [p for p in _get(url, "api/state")["saved"] if p not in before]
+    page.close()
+    assert len(saved) == 1 and Path(saved[0]).parent == drives
+    episodes = load_parquet(saved[0])
+    assert len(episodes) == 1 and episodes.goal_names == GOALS
+    ep = episodes[0]
+    assert GOALS[ep.goal] == "switch" and len(ep) > 20
+    assert episodes.dt == pytest.approx(1.0 / 50.0)
+    # kinematic simulation: q advances by qd dt
+    np.testing.assert_allclose(ep.q[1:], ep.q[:-1] + ep.qd[:-1] * episodes.dt, atol=1e-12)
+    import pyarrow.parquet as pq
+
+    table = pq.read_table(saved[0])
+    meta = table.schema.metadata
+    manifest_hash = hashlib.sha256((bundle / "manifest.json").read_bytes()).hexdigest()
+    assert meta[b"coreach.bundle_manifest_sha256"].decode() == manifest_hash == info["manifest_sha256"]
+    assert meta[b"coreach.testdrive_session"].decode() == info["session_id"]
+    sticks = np.array(table.column("stick_input").to_pylist())
+    assert (sticks[:, 0] == 1.0).sum() > 10  # the held key, as the server received it
+    assert set(table.column("target").to_pylist()) == {"switch"}
+    for col in ("stale", "deadband", "speed_capped", "position_limited", "workspace_scale", "belief", "qd_decoder"):
+        assert col in table.column_names
+    assert not list(drives.glob(".*.tmp"))
+
+    from coreach.testdrive.drive_summary import drive_summary
+    from coreach.vetting.report import write_report
+
+    summary = drive_summary(saved)
+    assert summary["n_episodes"] == 1 and summary["success"]["n"] == 1
+    assert summary["bundle_manifest_sha256"] == [manifest_hash]
+    report = write_report({"person": summary}, [], drives / "report", "drives", {"bundle": str(bundle)})
+    assert "person" in report.read_text()
+
+
+def test_gamepad_stub_drives_the_arm_and_its_buttons_record(server, browser):
+    """Scripted Gamepad API stub (no real gamepad in headless Chromium): axes 2 and 3 deflected, configured
+    through the page's query string, button 0 pressed for a moment to start recording."""
+    url, _, _ = server
+    stub = """
+      const pad = {id: "scripted stub", index: 0, connected: true, mapping: "standard", timestamp: 0,
+                   axes: [0.05, -0.02, 0.6, -0.55],
+                   buttons: Array.from({length: 16}, () => ({pressed: false, value: 0}))};
+      window.__pad = pad;
+      navigator.getGamepads = () => [pad, null, null, null];
+    """
+    page = _open(browser, url, stub, "?ax=2&ay=3&deadband=0.2&invert_y=1")
+    deadline = time.monotonic() + 3.0
+    while (st := _get(url, "api/state"))["input_source"] != "gamepad" and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert st["input_source"] == "gamepad"
+    # the page's deadband rescale (0.6 - 0.2) / 0.8 = 0.5, axis 2 inverted: -(-0.55 - (-0.2)) / 0.8 = 0.4375
+    assert st["stick_received"] == pytest.approx([0.5, 0.4375])
+    assert any(st["qd"])
+    page.evaluate("window.__pad.buttons[0] = {pressed: true, value: 1}")
+    page.wait_for_function("window.testdrive.state().recording === true")
+    page.evaluate("window.__pad.buttons[0] = {pressed: false, value: 0}")
+    page.evaluate("window.__pad.axes = [0.1, 0.1, 0.1, 0.1]")  # inside the deadband: the page sends zeros
+    page.wait_for_function("window.testdrive.state().stick_received.every(v => v === 0)")
+    assert not any(_get(url, "api/state")["qd"])
+    _post(url, "api/command", {"action": "record", "on": False})
+    page.close()
+
+
+def test_requests_for_another_host_name_are_refused(server):
+    """DNS rebinding guard: a page served under another name that resolves here cannot drive or read."""
+    url, _, _ = server
+    req = urllib.request.Request(url + "api/state", headers={"Host": "elsewhere.example"})
+    with pytest.raises(urllib.error.HTTPError) as err:
+        urllib.request.urlopen(req, timeout=5)
+    assert err.value.code == 403
+    req = urllib.request.Request(url + "api/input", data=b'{"stick": [1, 0]}', headers={
+        "Content-Type": "application/json", "Origin": "http://elsewhere.example"})
+    with pytest.raises(urllib.error.HTTPError) as err:
+        urllib.request.urlopen(req, timeout=5)
+    assert err.value.code == 403
+
+
+def test_tampered_bundle_is_refused_with_one_line(bundle, tmp_path):
+    bad = tmp_path / "tampered"
+    shutil.copytree(bundle, bad)
+    data = bytearray((bad / "decoder.onnx").read_bytes())
+    data[-1] ^= 0xFF
+    (bad / "decoder.onnx").write_bytes(bytes(data))
+    res = subprocess.run(_command("try-bundle", str(bad), "--port", "0"), capture_output=True, text=True, env=_env(),
+                         timeout=60)  # fmt: skip
+    assert res.returncode != 0
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("coreach: error:") and "decoder.onnx" in lines[0], res.stderr
+    assert "http://" not in res.stdout
+
+
+def test_server_modules_import_without_torch():
+    """The server runs on the robot-side install: importing it in a fresh interpreter brings no torch."""
+    code = ("import sys, coreach.testdrive.command, coreach.testdrive.server, coreach.testdrive.sim, "
+            "coreach.testdrive.recording; print(sorted(m for m in sys.modules if m.split('.')[0] in "
+            "('torch', 'lightning', 'mlflow', 'hydra')))")  # fmt: skip
+    out = subprocess.run([sys.executable, "-c", code], env=_env(), capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"
+
+
+def test_matrix_to_quat_matches_scipy():
+    """Reference: scipy.spatial.transform.Rotation (scalar-last quaternions, reordered to w, x, y, z)."""
+    from scipy.spatial.transform import Rotation
+
+    from coreach.testdrive.sim import matrix_to_quat
+
+    rots = Rotation.random(200, random_state=0)
+    for r in list(rots) + [Rotation.from_rotvec([math.pi, 0, 0]), Rotation.from_rotvec([0, 0, math.pi - 1e-9])]:
+        x, y, z, w = r.as_quat()
+        want = np.array([w, x, y, z]) * (1 if w >= 0 else -1)
+        got = matrix_to_quat(r.as_matrix())
+        assert np.allclose(got, want, atol=1e-9) or (abs(want[0]) < 1e-9 and np.allclose(got, -want, atol=1e-9))
+
+
+def test_drive_summary_values_on_a_hand_made_drive(bundle, tmp_path):
+    """Known geometry: the tool goes start -> a corner -> the end of goal 0's fine motion in 20 steps,
+    arriving at step 15; speed caps act on 3 steps, the workspace box on 1."""
+    from types import SimpleNamespace
+
+    from coreach.runtime.bundle import verify_bundle
+    from coreach.testdrive.drive_summary import drive_summary
+    from coreach.testdrive.recording import save_drive
+
+    m = verify_bundle(bundle)
+    g = len(GOALS)
+    end = m.goal_pos[0] + m.goal_fine[0]
+    start, corner = end + np.array([-0.2, 0.0, 0.0]), end + np.array([-0.1, 0.1, 0.0])
+    pos = np.concatenate([np.linspace(start, corner, 8, endpoint=False), np.linspace(corner, end, 8),
+                          np.repeat(end[None], 4, axis=0)])  # [20, 3]; reaches `end` at step 15
+    rows = []
+    for t in range(20):
+        rows.append({
+            "t": t * 0.02, "q": np.zeros(7), "qd": np.zeros(7), "pos": pos[t], "rot": np.eye(3),
+            "stick_in": [1.0, 0.0], "stick": np.array([0.5, 0.0]), "age": 0.01, "qd_decoder": np.full(7, 0.1),
+            "flags": {"stale": False, "deadband": False, "stick_clipped": False, "position_limited": False,
+                      "speed_capped": t in (2, 3, 4)},
+            "workspace_scale": 0.5 if t == 9 else 1.0, "fault": None, "belief": np.full(g, 1 / g), "target": 0,
+            "phase": [2 if t >= 15 else 0] + [0] * (g - 1),
+        })  # fmt: skip
+    drive = SimpleNamespace(manifest=m, dt=0.02, manifest_sha256="ab" * 32, session_id="s1", position_tol=0.02,
+                            orientation_tol=0.26)  # fmt: skip
+    path = save_drive(drive, rows, 0, 1, tmp_path / "d.parquet")
+    s = drive_summary([path])
+    assert s["success"]["value"] == 1.0 and s["success"]["n"] == 1
+    # Wilson interval at 1 success of 1 (Wilson 1927; closed form n / (n + z^2) for the lower end)
+    assert s["success"]["lo"] == pytest.approx(1 / (1 + 1.959964**2), abs=1e-6)
+    assert s["time_to_success"]["median"] == pytest.approx(15 * 0.02)
+    straight = np.linalg.norm(end - start)
+    travelled = np.linalg.norm(corner - start) + np.linalg.norm(end - corner)
+    assert s["path_efficiency"]["mean"] == pytest.approx(straight / travelled)
+    assert s["limit_scalings"]["speed_capped"] == pytest.approx(3 / 20)
+    assert s["limit_scalings"]["workspace_limited"] == pytest.approx(1 / 20)
+    assert s["interventions"]["step_share"] == pytest.approx(4 / 20)
+    assert s["authority"]["median"] == pytest.approx(np.linalg.norm(np.full(7, 0.1)) / 0.5)
+
+
+def test_recorded_drives_relabelled_for_aggregation(bundle, tmp_path):
+    """A drive stepped without a browser (scripted stick, fake clock), saved, then relabelled with the scripted
+    demonstrator: the labels' tool velocity J(q) qd heads for the drive's goal (approach point)."""
+    from coreach.runtime.session import Session
+    from coreach.testdrive.finetune import relabel_drives
+    from coreach.testdrive.sim import Drive
+    from coreach_plugins.labeller.scripted import ScriptedLabeller
+    from coreach_plugins.robot.urdf_arm import UrdfArm
+
+    now = [0.0]
+    drive = Drive(Session.open(bundle), rate_hz=50.0, record_dir=tmp_path, clock=lambda: now[0])
+    drive.pick_target(3)
+    drive.start_recording()
+    for _ in range(60):
+        drive.set_stick([1.0, -1.0], "script")
+        drive.tick()
+        now[0] += drive.dt
+    path = drive.stop_recording()
+    relabelled = relabel_drives([path], UrdfArm(), ScriptedLabeller())
+    out = tmp_path / "relabelled.parquet"
+    from coreach.episodes import save_parquet
+
+    save_parquet(relabelled, out)
+    again = load_parquet(out)
+    assert len(again) == 1 and again.goal_names == GOALS and GOALS[again[0].goal] == "bottle"
+    ep, recorded = again[0], load_parquet(path)[0]
+    np.testing.assert_array_equal(ep.q, recorded.q)  # same states, new labels
+    assert not np.allclose(ep.qd, recorded.qd)
+    chain = Chain.from_urdf(shipped_urdf())
+    approach = ep.goal_pos[ep.goal]
+    for q, qd, pos in zip(ep.q, ep.qd, ep.ee_pos):
+        v = chain.jacobian(q)[:3] @ qd  # tool velocity of the label (runtime kinematics)
+        to_goal = approach - pos
+        assert v @ to_goal / (np.linalg.norm(v) * np.linalg.norm(to_goal)) > 0.9
