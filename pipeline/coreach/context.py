@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from array_api_compat import array_namespace
+from coreach.control.arrays import namespace as array_namespace
 
 BLOCKS = ("state", "belief", "goal")
 GOAL_WIDTH = 12

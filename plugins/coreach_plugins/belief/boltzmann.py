@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from array_api_compat import array_namespace
+from coreach.control.arrays import namespace as array_namespace
 
 
 def distance_to_path(point, targets):
