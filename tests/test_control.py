@@ -142,3 +142,18 @@ def test_vetting_machinery_and_runtime_session_give_the_same_commands(bundle_and
         q_rt = q_rt + qd_rt * dt
         q = q + qd * dt
     assert acted > 0  # the filter had work to do on this path, so the comparison covers it
+
+
+def test_servo_dls_matches_the_textbook_formula_on_numpy_and_torch():
+    # damped least squares (Wampler 1986): qd = J^T (J J^T + lambda^2 I)^-1 v; with lambda = 0 and a
+    # full-row-rank J it is the minimum-norm solution, numpy.linalg.pinv(J) @ v.
+    from coreach.control.servo import cap_norm, dls_step
+
+    rng = np.random.default_rng(4)
+    J, v = rng.normal(size=(3, 6, 7)), rng.normal(size=(3, 6))
+    np.testing.assert_allclose(dls_step(J, v, 0.0), np.einsum("bij,bj->bi", np.linalg.pinv(J), v), atol=1e-9)
+    lam = 0.1
+    want = np.stack([J[b].T @ np.linalg.solve(J[b] @ J[b].T + lam**2 * np.eye(6), v[b]) for b in range(3)])
+    np.testing.assert_allclose(dls_step(torch.as_tensor(J), torch.as_tensor(v), lam).numpy(), want, rtol=1e-10)
+    # cap_norm by hand: (3, 4) has norm 5; capped at 1 -> (0.6, 0.8); (0.3, 0.4) is inside and passes
+    np.testing.assert_allclose(cap_norm(np.array([[3.0, 4.0], [0.3, 0.4]]), 1.0), [[0.6, 0.8], [0.3, 0.4]])
