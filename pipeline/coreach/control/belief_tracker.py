@@ -15,7 +15,8 @@ def track(belief_model, belief, anchor, pos, goal_targets):
     """One control step: belief [B, G], anchor [B, 3] (tool position at the last update), tool position
     pos [B, 3], goal_targets [B, G, S, 3] -> (belief, anchor, updated [B])."""
     xp = namespace(belief, anchor, pos)
-    moved = xp.linalg.vector_norm(pos - anchor, axis=-1) >= belief_model.min_motion  # [B]
+    step = pos - anchor
+    moved = xp.sum(step * step, axis=-1) >= belief_model.min_motion**2  # [B], the same test as the model's
     # the model's own min_motion test on (anchor, pos) is the same test, so rows not moved keep their belief
     belief = belief_model.update(belief, anchor, pos, goal_targets)
     anchor = xp.where(moved[:, None], pos, anchor)

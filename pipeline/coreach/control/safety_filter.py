@@ -23,6 +23,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+import numpy as np
+
 from coreach.control.arrays import namespace
 
 # Reduced speed for collaborative operation in ISO 10218-1 (from memory: 250 mm/s).
@@ -48,6 +50,17 @@ class SafetyLimits:
     stick_high: float = 1.0
     deadband: float = 0.0
     watchdog_timeout_s: float = math.inf
+
+    def __post_init__(self):
+        # the limits as float64 numpy arrays, made once: converting tuples at every control step costs more
+        # than the filter's arithmetic on 7-element vectors
+        for name in ("qd_max", "q_lower", "q_upper", "workspace_min", "workspace_max"):
+            object.__setattr__(self, f"_{name}", np.asarray(getattr(self, name), dtype=np.float64))
+
+    def _get(self, name: str, xp, like):
+        """Limit `name` as an array of `like`'s namespace and dtype."""
+        arr = getattr(self, f"_{name}")
+        return arr if xp is np and like.dtype == np.float64 else xp.asarray(arr, dtype=like.dtype)
 
     # -------------------------------------------------------------------------------- 1-2: inputs
     @staticmethod
@@ -77,10 +90,10 @@ class SafetyLimits:
         released: every axis inside the deadband -> the command is zero.
         """
         xp = namespace(stick)
-        boxed = xp.clip(stick, self.stick_low, self.stick_high)
+        boxed = xp.minimum(xp.maximum(stick, self.stick_low), self.stick_high)
         clipped = xp.any(boxed != stick, axis=-1)
         mag = (xp.abs(boxed) - self.deadband) / (1.0 - self.deadband)
-        out = xp.where(mag > 0.0, xp.sign(boxed) * mag, xp.zeros_like(mag))
+        out = xp.where(mag > 0.0, xp.sign(boxed) * mag, 0.0)
         released = xp.all(out == 0.0, axis=-1)
         return out, clipped, released
 
@@ -97,10 +110,10 @@ class SafetyLimits:
         qd, fast = self.cap(qd, jac_lin)
         if self.workspace_min and pos is not None:
             qd, scale = self.inside_workspace(pos, jac_lin, qd, horizon)
+            boxed = scale < 1.0
         else:
-            scale = xp.ones(qd.shape[:-1], dtype=qd.dtype)
-        flags = (xp.astype(outside, xp.int32) * JOINT_LIMIT + xp.astype(fast, xp.int32) * SPEED_CAP
-                 + xp.astype(scale < 1.0, xp.int32) * WORKSPACE)
+            scale, boxed = 1.0, False
+        flags = outside * JOINT_LIMIT | fast * SPEED_CAP | boxed * WORKSPACE
         return qd, flags, scale
 
     def keep_inside(self, q, qd, dt: float):
@@ -111,11 +124,9 @@ class SafetyLimits:
         xp = namespace(q, qd)
         if not self.q_lower:
             return qd, xp.zeros(qd.shape[:-1], dtype=xp.bool)
-        lower = xp.asarray(self.q_lower, dtype=qd.dtype)
-        upper = xp.asarray(self.q_upper, dtype=qd.dtype)
-        zero = xp.zeros_like(qd)  # not 0 * lo: continuous joints have infinite limits, and 0 * inf is NaN
-        lo = xp.minimum((lower - q) / dt, zero)  # a joint already past its limit may stand still or move back
-        hi = xp.maximum((upper - q) / dt, zero)
+        # 0.0, not 0 * lo: continuous joints have infinite limits, and 0 * inf is NaN
+        lo = xp.minimum((self._get("q_lower", xp, qd) - q) / dt, 0.0)  # a joint past its limit may only go back
+        hi = xp.maximum((self._get("q_upper", xp, qd) - q) / dt, 0.0)
         clipped = xp.minimum(xp.maximum(qd, lo), hi)
         return clipped, xp.any(clipped != qd, axis=-1)
 
@@ -126,12 +137,12 @@ class SafetyLimits:
         that rewards progress cannot gain by asking for more speed. Returns (capped qd, intervened [...]).
         """
         xp = namespace(qd, jac_lin)
-        qd_max = xp.asarray(self.qd_max, dtype=qd.dtype)
-        joint_ratio = xp.max(xp.abs(qd) / qd_max, axis=-1)  # [...]
-        tcp = xp.linalg.vector_norm(xp.sum(jac_lin * qd[..., None, :], axis=-1), axis=-1)  # [...]
+        joint_ratio = xp.max(xp.abs(qd) / self._get("qd_max", xp, qd), axis=-1)  # [...]
+        v = (jac_lin @ qd[..., None])[..., 0]  # [..., 3] tool velocity
+        tcp = xp.sqrt(xp.sum(v * v, axis=-1))  # [...]
         ratio = xp.maximum(joint_ratio, tcp / self.tcp_speed_max)
         intervened = ratio > 1.0
-        scale = xp.where(intervened, 1.0 / xp.maximum(ratio, xp.asarray(1e-12, dtype=qd.dtype)), 1.0)
+        scale = xp.where(intervened, 1.0 / xp.maximum(ratio, 1e-12), 1.0)
         return qd * scale[..., None], intervened
 
     def inside_workspace(self, pos, jac_lin, qd, horizon: float):
@@ -140,14 +151,12 @@ class SafetyLimits:
         Returns (qd, scale [...]), scale in [0, 1]: the largest uniform factor meeting every axis.
         """
         xp = namespace(pos, jac_lin, qd)
-        move = xp.sum(jac_lin * qd[..., None, :], axis=-1) * horizon  # [..., 3] predicted tool displacement
-        zero = xp.zeros_like(move)
-        room_hi = xp.maximum(xp.asarray(self.workspace_max, dtype=qd.dtype) - pos, zero)
-        room_lo = xp.minimum(xp.asarray(self.workspace_min, dtype=qd.dtype) - pos, zero)
-        over = move > room_hi
-        under = move < room_lo
-        safe_move = xp.where(over | under, move, xp.ones_like(move))  # no division by a zero move
-        axis_scale = xp.where(over, room_hi / safe_move, xp.where(under, room_lo / safe_move, xp.ones_like(move)))
+        move = (jac_lin @ qd[..., None])[..., 0] * horizon  # [..., 3] predicted tool displacement
+        room_hi = xp.maximum(self._get("workspace_max", xp, qd) - pos, 0.0)  # >= 0: room left on each axis
+        room_lo = xp.minimum(self._get("workspace_min", xp, qd) - pos, 0.0)  # <= 0
+        room = xp.where(move > 0.0, room_hi, room_lo)  # the side the tool is heading for
+        beyond = xp.abs(move) > xp.abs(room)
+        axis_scale = xp.where(beyond, room / xp.where(beyond, move, 1.0), 1.0)  # no division by a zero move
         scale = xp.min(axis_scale, axis=-1)
         return qd * scale[..., None], scale
 

@@ -24,7 +24,7 @@ from pathlib import Path
 import numpy as np
 import onnxruntime as ort
 
-from coreach.context import build_context
+from coreach.context import build_context, goal_features
 from coreach.errors import DataError
 from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
@@ -76,6 +76,7 @@ class StepInfo:
 class _Layout:
     targets: np.ndarray  # [1, G, 2, 3] approach point, end of fine motion
     goal_rot: np.ndarray  # [1, G, 3, 3]
+    features: np.ndarray  # [1, G, 12] coreach.context.goal_features of the layout
 
 
 class Session:
@@ -142,7 +143,8 @@ class Session:
         fine = _array(goal_fine, (g, 3), "session.set_goals goal_fine")
         if np.any(np.linalg.norm(quat, axis=-1) < 1e-9):
             raise DataError("session.set_goals goal_quat", "expected non-zero quaternions (w, x, y, z)")
-        self._layout = _Layout(np.stack([pos, pos + fine], axis=1)[None], quat_to_matrix(quat)[None])
+        targets, goal_rot = np.stack([pos, pos + fine], axis=1)[None], quat_to_matrix(quat)[None]
+        self._layout = _Layout(targets, goal_rot, goal_features(targets, goal_rot))
 
     def reset(self) -> None:
         """Start a new task: belief back to the uniform prior; the next step's tool position is the
@@ -207,7 +209,8 @@ class Session:
         info.stick = s
 
         layout = self._layout
-        context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot)
+        context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot,
+                                layout.features)
         info.context = context = context.astype(np.float32)  # [1, C]
         self._stick_in[0] = s
         (out,) = self._ort.run(self._out_names, {"stick": self._stick_in, "context": context})
