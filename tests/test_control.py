@@ -157,3 +157,9 @@ def test_servo_dls_matches_the_textbook_formula_on_numpy_and_torch():
     np.testing.assert_allclose(dls_step(torch.as_tensor(J), torch.as_tensor(v), lam).numpy(), want, rtol=1e-10)
     # cap_norm by hand: (3, 4) has norm 5; capped at 1 -> (0.6, 0.8); (0.3, 0.4) is inside and passes
     np.testing.assert_allclose(cap_norm(np.array([[3.0, 4.0], [0.3, 0.4]]), 1.0), [[0.6, 0.8], [0.3, 0.4]])
+
+
+def test_non_finite_names_every_bad_input():
+    bad = BOX.non_finite(stick=[0.1, float("nan")], q=np.array([0.0, np.inf]), now_s=1.0, t=None,
+                         ok=torch.zeros(2), worse=torch.tensor([0.0, float("-inf")]))
+    assert bad == ["stick", "q", "t", "worse"]

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from coreach.control.arrays import namespace
+from coreach.control.arrays import NUMPY, namespace
 
 # Reduced speed for collaborative operation in ISO 10218-1 (from memory: 250 mm/s).
 DEFAULT_TCP_SPEED_MAX = 0.25
@@ -60,16 +60,23 @@ class SafetyLimits:
     def _get(self, name: str, xp, like):
         """Limit `name` as an array of `like`'s namespace and dtype."""
         arr = getattr(self, f"_{name}")
-        return arr if xp is np and like.dtype == np.float64 else xp.asarray(arr, dtype=like.dtype)
+        return arr if xp is NUMPY and like.dtype == np.float64 else xp.asarray(arr, dtype=like.dtype)
 
     # -------------------------------------------------------------------------------- 1-2: inputs
     @staticmethod
     def non_finite(**values) -> list[str]:
-        """Names of the given arrays or numbers holding a non-finite value (the caller latches a fault)."""
+        """Names of the given numbers, sequences or arrays holding a non-finite (or non-numeric) value; the
+        caller zeroes the command and latches a fault."""
         bad = []
         for name, v in values.items():
             try:
-                ok = math.isfinite(v) if isinstance(v, (int, float)) else bool(namespace(v).all(namespace(v).isfinite(v)))
+                if isinstance(v, (int, float)):
+                    ok = math.isfinite(v)
+                elif isinstance(v, (list, tuple)):
+                    ok = all(map(math.isfinite, v))
+                else:
+                    xp = namespace(v)
+                    ok = bool(xp.all(xp.isfinite(v)))
             except TypeError:
                 ok = False
             if not ok:
@@ -102,9 +109,9 @@ class SafetyLimits:
         """Filter joint velocities qd [..., n] at joint positions q [..., n], tool Jacobian jac_lin [..., 3, n] and
         tool position pos [..., 3] (needed only with a workspace box). Look-ahead: `lookahead_s`, else dt.
 
-        Returns (qd, flags [...] int: JOINT_LIMIT | SPEED_CAP | WORKSPACE bits, workspace scale [...]).
+        Returns (qd, flags [...] int: JOINT_LIMIT | SPEED_CAP | WORKSPACE bits, workspace scale [...] or 1.0
+        without a box).
         """
-        xp = namespace(q, qd, jac_lin)
         horizon = self.lookahead_s if self.lookahead_s is not None else dt
         qd, outside = self.keep_inside(q, qd, horizon)
         qd, fast = self.cap(qd, jac_lin)

@@ -184,8 +184,7 @@ class Session:
                         ee_pos=np.full(3, np.nan))
         self.last = info
         if self._fault is None:
-            bad = [name for name, ok in (("stick", all(map(math.isfinite, stick))), ("q", np.isfinite(q).all()),
-                                         ("now_s", _finite(now_s)), ("stick_time_s", _finite(t_stick))) if not ok]
+            bad = self.limits.non_finite(stick=stick, q=q, now_s=now_s, stick_time_s=t_stick)
             if bad:
                 self._fault = f"non-finite {', '.join(bad)} at now_s={now_s!r}"
         if self._fault is not None:
@@ -258,13 +257,6 @@ class Session:
         self._belief, self._anchor, _ = track(self.belief_model, self._belief, self._anchor, pos[None],
                                               self._layout.targets)
         return True
-
-
-def _finite(x) -> bool:
-    try:
-        return math.isfinite(x)
-    except TypeError:
-        return False
 
 
 def _array(value, shape: tuple[int, ...], where: str) -> np.ndarray:
