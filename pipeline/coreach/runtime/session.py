@@ -1,6 +1,6 @@
 """The control-rate step on the robot computer: kinematics, goal belief, context, ONNX decoder, safety filter.
 
-Imports only numpy, onnxruntime and the shared array-API modules (coreach.context, coreach.safety,
+Imports only numpy, onnxruntime and the shared array-API modules (coreach.context, coreach.control,
 coreach_plugins.belief.boltzmann), so the same belief, context and speed-cap code that trained and vetted
 the decoder runs here without torch.
 
