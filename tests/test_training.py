@@ -27,7 +27,8 @@ def test_split_is_by_episode_and_normalisation_uses_training_split_only(small_cf
 
 
 def test_replayed_belief_is_the_belief_models_own_replay(small_cfg):
-    # training contexts must be exactly what the shared belief model produces step by step
+    # training contexts must be exactly what the shared belief model produces step by step, with the runtime's
+    # cadence: each update is from the tool position of the last update (the anchor), not the previous step
     cfg = small_cfg()
     robot, episodes, _, _ = prepare(cfg)
     from hydra.utils import instantiate
@@ -40,8 +41,11 @@ def test_replayed_belief_is_the_belief_models_own_replay(small_cfg):
     targets = torch.as_tensor(ep.goal_targets, dtype=torch.float64)[None]
     expected = [b]
     ee = torch.as_tensor(ep.ee_pos, dtype=torch.float64)
+    anchor = ee[0:1]
     for t in range(1, len(ee)):
-        b = belief_model.update(b, ee[t - 1 : t], ee[t : t + 1], targets)
+        b = belief_model.update(b, anchor, ee[t : t + 1], targets)
+        if float((ee[t] - anchor[0]).norm()) >= belief_model.min_motion:
+            anchor = ee[t : t + 1]
         expected.append(b)
     torch.testing.assert_close(samples.belief[rows], torch.cat(expected))
     # by the end of a demonstration the belief favours the demonstrated goal

@@ -5,6 +5,7 @@ loop against the one-episode-at-a-time reference, and operator imperfections cha
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -280,3 +281,24 @@ def test_operator_imperfections_change_the_outcome():
         return acc.pow(2).sum(-1).mean().item()
 
     assert roughness(shaky) > 1.5 * roughness(ideal)
+
+
+def test_workspace_box_is_applied_in_the_loop_and_recorded():
+    """The loop runs the filter that ships: the release config's workspace box (conf release.yaml runtime) does
+    not bite on the bedside-shelf scene's paths, while a box the shelf lies outside of does, and its WORKSPACE
+    bit is recorded."""
+    import yaml
+
+    from coreach.vetting.loop import WORKSPACE
+
+    conf = yaml.safe_load((Path(__file__).parents[1] / "conf" / "coreach_conf" / "release.yaml").read_text())
+    rt = conf["runtime"]
+    suite = _suite(episodes=3)
+    plain = rollout(ROBOT, GoalStickDLS(), suite.build_operator(), suite, BELIEF, LIMITS, suite.generator())
+    shipped = LIMITS.with_workspace(rt["workspace_min"], rt["workspace_max"], rt["lookahead_s"])
+    boxed = rollout(ROBOT, GoalStickDLS(), suite.build_operator(), suite, BELIEF, shipped, suite.generator())
+    assert not ((boxed.extras["limits"] & WORKSPACE) > 0).any()
+    assert boxed.success.tolist() == plain.success.tolist()
+    tight = LIMITS.with_workspace([0.0, -0.1, 0.0], [0.3, 0.1, 0.3], 0.1)
+    cut = rollout(ROBOT, GoalStickDLS(), suite.build_operator(), suite, BELIEF, tight, suite.generator())
+    assert ((cut.extras["limits"] & WORKSPACE) > 0).any()

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from array_api_compat import array_namespace
+from coreach.control.arrays import namespace as array_namespace
 
 BLOCKS = ("state", "belief", "goal")
 GOAL_WIDTH = 12
@@ -52,17 +52,29 @@ class ContextSpec:
         return {"dof": self.dof, "n_goals": self.n_goals}
 
 
-def build_context(q, ee_pos, ee_rot, belief, goal_targets, goal_rot):
+def goal_features(goal_targets, goal_rot):
+    """Per-goal features [B, G, 12]: approach point, fine-motion displacement, goal z- and x-axes. They depend
+    only on the layout, so a caller with a fixed layout (the runtime) may compute them once."""
+    xp = array_namespace(goal_targets, goal_rot)
+    approach = goal_targets[..., 0, :]
+    return xp.concat([approach, goal_targets[..., 1, :] - approach, goal_rot[..., :, 2], goal_rot[..., :, 0]], axis=-1)
+
+
+def build_context(q, ee_pos, ee_rot, belief, goal_targets, goal_rot, features=None):
     """Full raw context [B, C].
 
     q [B, n]; ee_pos [B, 3]; ee_rot [B, 3, 3]; belief [B, G]; goal_targets [B, G, 2, 3] (approach point, end
-    of fine motion); goal_rot [B, G, 3, 3] (tool orientation on approach).
+    of fine motion); goal_rot [B, G, 3, 3] (tool orientation on approach); features: `goal_features` of the
+    layout when already at hand.
+
+    The goal block is sum_g b_g (f_g - tool), with tool = (ee_pos, 0, ee z-axis, ee x-axis): computed as
+    b @ f - (sum_g b_g) tool, one matrix product instead of four weighted sums.
     """
-    xp = array_namespace(q, ee_pos, ee_rot, belief, goal_targets, goal_rot)
-    b = belief[..., None]  # [B, G, 1]
-    rot6 = xp.concat([ee_rot[..., :, 0], ee_rot[..., :, 2]], axis=-1)  # [B, 6]
-    to_approach = xp.sum(b * (goal_targets[:, :, 0, :] - ee_pos[:, None, :]), axis=1)
-    fine = xp.sum(b * (goal_targets[:, :, 1, :] - goal_targets[:, :, 0, :]), axis=1)
-    dz = xp.sum(b * (goal_rot[..., :, 2] - ee_rot[:, None, :, 2]), axis=1)
-    dx = xp.sum(b * (goal_rot[..., :, 0] - ee_rot[:, None, :, 0]), axis=1)
-    return xp.concat([q, ee_pos, rot6, belief, to_approach, fine, dz, dx], axis=-1)
+    xp = array_namespace(q, ee_pos, ee_rot, belief)
+    if features is None:
+        features = goal_features(goal_targets, goal_rot)  # [B, G, 12]
+    z, x = ee_rot[..., :, 2], ee_rot[..., :, 0]
+    tool = xp.concat([ee_pos, xp.zeros_like(ee_pos), z, x], axis=-1)  # [B, 12]
+    mass = xp.sum(belief, axis=-1, keepdims=True)  # [B, 1]; 1 for a normalised belief
+    goal = (belief[..., None, :] @ features)[..., 0, :] - mass * tool  # [B, 12]
+    return xp.concat([q, ee_pos, x, z, belief, goal], axis=-1)

@@ -4,10 +4,9 @@ Each episode picks one goal of a jittered layout, moves the tool to the goal's a
 goal's fine motion with the orientation held, and stops at the first step that ends within `arrive_tol` of
 the end of the fine motion (hovering there would only feed goal inference the same evidence again).
 
-Velocity law (resolved-rate control, Whitney 1969; damped least squares, Nakamura & Hanafusa 1986 and
-Wampler 1986):  twist v = [k_p (p* - p) capped at v_max, k_r rot_err(R*, R) capped at w_max],
-qd = J^T (J J^T + lambda^2 I)^-1 v, then Gaussian noise, a uniform rescale into the joint speed limits and a
-per-joint clamp that keeps q + qd dt inside the joint position limits.
+Velocity law: coreach.control.servo (resolved-rate control with damped least squares, shared with policy
+blending), then Gaussian noise, then the shared safety filter coreach.control.safety_filter (joint position
+look-ahead, joint and tool speed caps) that vetting and the runtime apply too.
 """
 
 from __future__ import annotations
@@ -24,6 +23,8 @@ from coreach.arrival import DEFAULT_MIN_ARRIVAL, arrival_by_goal, check_arrival
 from coreach.episodes import Episode, EpisodeSet
 from coreach.errors import ConfigError
 from coreach.geometry import matrix_to_quat, rotation_error
+from coreach.control.safety_filter import SafetyLimits
+from coreach.control.servo import dls_step, servo_twist
 from coreach.protocols import Robot
 from coreach.scenario import Layout, Scenario, load_scenario
 
@@ -31,35 +32,17 @@ __all__ = ["dls_step", "scale_to_speed_limits", "clamp_to_joint_limits", "Rollou
            "expert_twist", "expert_action"]
 
 
-def dls_step(J: Tensor, twist: Tensor, damping: float) -> Tensor:
-    """Damped least-squares joint velocity J^T (J J^T + damping^2 I)^-1 twist.
-
-    J [B, m, n], twist [B, m] -> qd [B, n]. damping = 0 gives the minimum-norm solution (pseudo-inverse)
-    for a full-row-rank J; damping > 0 bounds |qd| near singularities.
-    """
-    m = J.shape[-2]
-    A = J @ J.transpose(-1, -2) + (damping**2) * torch.eye(m, dtype=J.dtype, device=J.device)  # [B, m, m]
-    y = torch.linalg.solve(A, twist.unsqueeze(-1))  # [B, m, 1]
-    return (J.transpose(-1, -2) @ y).squeeze(-1)
-
-
-def _cap_norm(v: Tensor, limit: float) -> Tensor:
-    """Shrink rows of v [B, k] whose norm exceeds `limit`, keeping their direction."""
-    norm = v.norm(dim=-1, keepdim=True)
-    return v * torch.clamp(limit / norm.clamp_min(1e-12), max=1.0)
-
-
 def scale_to_speed_limits(qd: Tensor, qd_max: Tensor) -> Tensor:
     """Scale each row of qd [B, n] by one factor <= 1 so every |qd_i| <= qd_max_i (direction kept)."""
-    ratio = (qd.abs() / qd_max).amax(dim=-1, keepdim=True)  # [B, 1]
-    return qd / ratio.clamp_min(1.0)
+    no_tool = torch.zeros(*qd.shape[:-1], 3, qd.shape[-1], dtype=qd.dtype)  # joint caps only
+    return SafetyLimits(qd_max=tuple(qd_max.tolist()), tcp_speed_max=math.inf).cap(qd, no_tool)[0]
 
 
 def clamp_to_joint_limits(qd: Tensor, q: Tensor, dt: float, lower: Tensor, upper: Tensor) -> Tensor:
     """Per joint, keep q + qd dt within [lower, upper]; a joint already outside may only move back."""
-    lo = torch.clamp((lower - q) / dt, max=0.0)
-    hi = torch.clamp((upper - q) / dt, min=0.0)
-    return torch.minimum(torch.maximum(qd, lo), hi)
+    limits = SafetyLimits(qd_max=(math.inf,) * qd.shape[-1], q_lower=tuple(lower.tolist()),
+                          q_upper=tuple(upper.tolist()))
+    return limits.keep_inside(q, qd, dt)[0]
 
 
 @dataclass
@@ -120,23 +103,23 @@ def _via_plan(E: int, G: int, goals: Tensor, gen: torch.Generator, via_share: fl
 
 def expert_twist(pos: Tensor, rot: Tensor, target: Tensor, target_rot: Tensor, k_p: float, k_r: float,
                  v_max: float, w_max: float) -> Tensor:  # fmt: skip
-    """The demonstrator's tool twist [B, 6] toward a target position and orientation: proportional, each
-    part capped in norm (resolved-rate control)."""
-    rot_err = rotation_error(target_rot, rot)
-    return torch.cat([_cap_norm(k_p * (target - pos), v_max), _cap_norm(k_r * rot_err, w_max)], dim=-1)
+    """The demonstrator's tool twist [B, 6] toward a target pose (coreach.control.servo.servo_twist)."""
+    return servo_twist(pos, rot, target, target_rot, k_p, k_r, v_max, w_max)
 
 
 def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, damping: float,
-                  noise: Tensor | None = None) -> Tensor:  # fmt: skip
+                  noise: Tensor | None = None, limits: SafetyLimits | None = None) -> Tensor:  # fmt: skip
     """Joint velocity [B, n] for a twist: damped least squares, plus `noise` [B, n] (rad/s) when given, then
-    the speed and position limits the recorded demonstrations obey (shared by `rollout` and the
-    aggregation labels, which pass no noise)."""
+    the shared safety filter (joint look-ahead over dt, joint and tool speed caps; `limits` defaults to the
+    robot's with the default tool speed cap), the filter vetting and the runtime apply. Shared by `rollout`
+    and the aggregation labels, which pass no noise."""
     f64 = torch.float64
-    qd = dls_step(J, twist, damping)
+    J = J.to(f64)
+    qd = dls_step(J, twist.to(f64), damping)
     if noise is not None:
         qd = qd + noise
-    qd = scale_to_speed_limits(qd, robot.qd_max.to(f64))
-    return clamp_to_joint_limits(qd, q, dt, robot.q_lower.to(f64), robot.q_upper.to(f64))
+    limits = SafetyLimits.for_robot(robot) if limits is None else limits
+    return limits.limit(q.to(f64), qd, J[..., :3, :], None, dt)[0]
 
 
 def rollout(

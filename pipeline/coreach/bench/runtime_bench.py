@@ -58,9 +58,8 @@ def _stages(session: Session, q: np.ndarray, stick: np.ndarray) -> dict[str, flo
         "context": _median_us(lambda: build_context(q[None], pos[None], rot[None], belief, layout.targets,
                                                     layout.goal_rot)),
         "decoder": _median_us(lambda: session._ort.run(session._out_names, feeds)),
-        "keep_inside": _median_us(lambda: session.limits.keep_inside(q, qd, m.lookahead_s)),
-        "cap": _median_us(lambda: session.limits.cap(qd, jac_lin)),
-        "workspace": _median_us(lambda: session._inside_workspace(pos, jac_lin, qd)),
+        "stick": _median_us(lambda: session.limits.condition_stick(stick)),
+        "filter": _median_us(lambda: session.limits.limit(q, qd, jac_lin, pos)),
     }
 
 

@@ -1,6 +1,6 @@
 """The control-rate step on the robot computer: kinematics, goal belief, context, ONNX decoder, safety filter.
 
-Imports only numpy, onnxruntime and the shared array-API modules (coreach.context, coreach.safety,
+Imports only numpy, onnxruntime and the shared array-API modules (coreach.context, coreach.control,
 coreach_plugins.belief.boltzmann), so the same belief, context and speed-cap code that trained and vetted
 the decoder runs here without torch.
 
@@ -10,11 +10,9 @@ Safety filter, in order (always on):
 3. stick clipped to the box [-1, 1]^d, then a per-axis deadband rescaled so the stick stays continuous;
    a stick inside the deadband on every axis -> zero (a released stick stops the arm);
 4. non-finite decoder output -> zero and a latched fault;
-5. joint position look-ahead (SafetyLimits.keep_inside), then joint speed and tool speed caps
-   (SafetyLimits.cap; uniform scaling, so positions stay inside);
-6. workspace box: the command is scaled down uniformly so the predicted tool position after
-   `lookahead_s` stays inside the box (or, when already outside, moves no further out on any axis).
-Scaling in 5-6 never increases any joint speed, so each later filter keeps the earlier guarantees.
+5. joint position look-ahead, joint speed and tool speed caps, workspace box (SafetyLimits.limit).
+Steps 1-3 and 5 are coreach.control.safety_filter, the same code vetting runs; the belief follows
+coreach.control.belief_tracker's cadence (updates from an anchor pose), as in training replay and vetting.
 """
 
 from __future__ import annotations
@@ -26,12 +24,13 @@ from pathlib import Path
 import numpy as np
 import onnxruntime as ort
 
-from coreach.context import build_context
+from coreach.context import build_context, goal_features
 from coreach.errors import DataError
 from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
 from coreach.runtime.kinematics import Chain, quat_to_matrix
-from coreach.safety import SafetyLimits
+from coreach.control.belief_tracker import track
+from coreach.control.safety_filter import JOINT_LIMIT, SPEED_CAP, SafetyLimits
 
 # keep_inside computes 0 * (limit - q): an infinite (continuous-joint) limit would give nan, so unbounded
 # joints get a bound no arm reaches instead.
@@ -77,6 +76,7 @@ class StepInfo:
 class _Layout:
     targets: np.ndarray  # [1, G, 2, 3] approach point, end of fine motion
     goal_rot: np.ndarray  # [1, G, 3, 3]
+    features: np.ndarray  # [1, G, 12] coreach.context.goal_features of the layout
 
 
 class Session:
@@ -96,9 +96,12 @@ class Session:
         lower = np.where(np.isfinite(m.q_lower), m.q_lower, -_UNBOUNDED)
         upper = np.where(np.isfinite(m.q_upper), m.q_upper, _UNBOUNDED)
         self.limits = SafetyLimits(qd_max=tuple(m.qd_max.tolist()), tcp_speed_max=m.tcp_speed_max,
-                                   q_lower=tuple(lower.tolist()), q_upper=tuple(upper.tolist()))
+                                   q_lower=tuple(lower.tolist()), q_upper=tuple(upper.tolist()),
+                                   workspace_min=tuple(m.workspace_min.tolist()),
+                                   workspace_max=tuple(m.workspace_max.tolist()), lookahead_s=m.lookahead_s,
+                                   stick_low=m.stick_low, stick_high=m.stick_high, deadband=m.deadband,
+                                   watchdog_timeout_s=m.watchdog_timeout_s)
         self._qd_max = m.qd_max.copy()
-        self._ws_min, self._ws_max = m.workspace_min.tolist(), m.workspace_max.tolist()
         self._d, self._n = m.latent_dim, m.action_dim
         self._out_names = [self._ort.get_outputs()[0].name]
         self._fault: str | None = None
@@ -140,7 +143,8 @@ class Session:
         fine = _array(goal_fine, (g, 3), "session.set_goals goal_fine")
         if np.any(np.linalg.norm(quat, axis=-1) < 1e-9):
             raise DataError("session.set_goals goal_quat", "expected non-zero quaternions (w, x, y, z)")
-        self._layout = _Layout(np.stack([pos, pos + fine], axis=1)[None], quat_to_matrix(quat)[None])
+        targets, goal_rot = np.stack([pos, pos + fine], axis=1)[None], quat_to_matrix(quat)[None]
+        self._layout = _Layout(targets, goal_rot, goal_features(targets, goal_rot))
 
     def reset(self) -> None:
         """Start a new task: belief back to the uniform prior; the next step's tool position is the
@@ -180,8 +184,7 @@ class Session:
                         ee_pos=np.full(3, np.nan))
         self.last = info
         if self._fault is None:
-            bad = [name for name, ok in (("stick", all(map(math.isfinite, stick))), ("q", np.isfinite(q).all()),
-                                         ("now_s", _finite(now_s)), ("stick_time_s", _finite(t_stick))) if not ok]
+            bad = self.limits.non_finite(stick=stick, q=q, now_s=now_s, stick_time_s=t_stick)
             if bad:
                 self._fault = f"non-finite {', '.join(bad)} at now_s={now_s!r}"
         if self._fault is not None:
@@ -192,23 +195,21 @@ class Session:
         info.ee_pos = pos
         info.belief_updated = self._track_belief(pos)
 
-        age = float(now_s) - float(t_stick)
-        if not 0.0 <= age <= self.manifest.watchdog_timeout_s:
+        limits = self.limits
+        if limits.stale(now_s, t_stick):
             info.stale = True
             return zero
 
-        m = self.manifest
-        lo, hi = m.stick_low, m.stick_high
-        clipped = [min(max(v, lo), hi) for v in stick]
-        info.stick_clipped = clipped != stick
-        s = _deadband(clipped, m.deadband)
-        if not any(s):
+        s, clipped, released = limits.condition_stick(np.asarray(stick))
+        info.stick_clipped = bool(clipped)
+        if released:
             info.deadband = True
             return zero
-        info.stick = np.array(s)
+        info.stick = s
 
         layout = self._layout
-        context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot)
+        context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot,
+                                layout.features)
         info.context = context = context.astype(np.float32)  # [1, C]
         self._stick_in[0] = s
         (out,) = self._ort.run(self._out_names, {"stick": self._stick_in, "context": context})
@@ -217,12 +218,10 @@ class Session:
         if not np.isfinite(qd).all():
             return self._latch(info, "decoder output is not finite")
 
-        jac_lin = jac[:3]  # [3, n]
-        qd, hit = self.limits.keep_inside(q, qd, m.lookahead_s)
-        info.position_limited = bool(hit)
-        qd, hit = self.limits.cap(qd, jac_lin)
-        info.speed_capped = bool(hit)
-        qd, info.workspace_scale = self._inside_workspace(pos, jac_lin, qd)
+        qd, flags, scale = limits.limit(q, qd, jac[:3], pos)
+        info.position_limited = bool(flags & JOINT_LIMIT)
+        info.speed_capped = bool(flags & SPEED_CAP)
+        info.workspace_scale = float(scale)
         qd = np.minimum(np.maximum(qd, -self._qd_max), self._qd_max)  # guards the last ulp of the scalings
         if not np.isfinite(qd).all():
             return self._latch(info, "safety filter produced a non-finite command")
@@ -248,51 +247,16 @@ class Session:
         return info.qd
 
     def _track_belief(self, pos: np.ndarray) -> bool:
-        """Update the belief once the tool has moved min_motion from where the last update left it.
-
-        Updating from that anchor (not from the previous control step) lets slow motions count: at a
-        high control rate a single step may move less than min_motion. With floor = 0 the update
-        telescopes, so the belief matches one taken at the demonstrations' coarser rate.
-        """
+        """coreach.control.belief_tracker's cadence: update once the tool has moved min_motion from the anchor
+        (the pose of the last update). The distance test runs first on plain floats: most steps stop there."""
         if self._anchor is None:
-            self._anchor = pos
+            self._anchor = pos[None]
             return False
-        if math.dist(pos, self._anchor) < self.belief_model.min_motion:
+        if math.dist(pos, self._anchor[0]) < self.belief_model.min_motion:
             return False
-        self._belief = self.belief_model.update(self._belief, self._anchor[None], pos[None], self._layout.targets)
-        self._anchor = pos
+        self._belief, self._anchor, _ = track(self.belief_model, self._belief, self._anchor, pos[None],
+                                              self._layout.targets)
         return True
-
-    def _inside_workspace(self, pos: np.ndarray, jac_lin: np.ndarray, qd: np.ndarray) -> tuple[np.ndarray, float]:
-        """Scale qd so pos + J qd * lookahead stays in the box; axes already outside may only move back."""
-        m = self.manifest
-        move = ((jac_lin @ qd) * m.lookahead_s).tolist()  # [3] predicted tool displacement (first order)
-        scale = 1.0
-        # plain floats: three axes are cheaper in Python than in numpy calls
-        for d, p, lo, hi in zip(move, pos.tolist(), self._ws_min, self._ws_max):
-            room_hi, room_lo = max(hi - p, 0.0), min(lo - p, 0.0)
-            if d > room_hi:
-                scale = min(scale, room_hi / d)
-            elif d < room_lo:
-                scale = min(scale, room_lo / d)
-        return (qd * scale if scale < 1.0 else qd), scale
-
-
-def _deadband(stick: list[float], width: float) -> list[float]:
-    """Per-axis deadband: |s| <= width -> 0, else sign(s) (|s| - width) / (1 - width), continuous and
-    still in [-1, 1]. Per axis (not radial) so drift on one axis is removed while the other is deflected."""
-    out = []
-    for s in stick:
-        mag = (abs(s) - width) / (1.0 - width)
-        out.append(math.copysign(mag, s) if mag > 0.0 else 0.0)
-    return out
-
-
-def _finite(x) -> bool:
-    try:
-        return math.isfinite(x)
-    except TypeError:
-        return False
 
 
 def _array(value, shape: tuple[int, ...], where: str) -> np.ndarray:

@@ -15,6 +15,7 @@ from torch import Tensor
 from torch.utils.data import DataLoader, Sampler
 
 from coreach.context import ContextSpec, build_context
+from coreach.control.belief_tracker import track
 from coreach.episodes import EpisodeSet
 from coreach.geometry import quat_to_matrix
 
@@ -71,8 +72,9 @@ def replay(episodes: EpisodeSet, robot, belief_model, dtype=torch.float32) -> Sa
 
     belief = belief_model.initial(E, G, goal_pos[:, 0, 0])
     beliefs = [belief]
+    anchor = ee_pos[:, 0]  # the cadence vetting and the runtime follow: update from the last update's pose
     for t in range(1, t_max):
-        belief = belief_model.update(belief, ee_pos[:, t - 1], ee_pos[:, t], targets)
+        belief, anchor, _ = track(belief_model, belief, anchor, ee_pos[:, t], targets)
         beliefs.append(belief)
     belief_all = torch.stack(beliefs, dim=1)  # [E, T, G]
 

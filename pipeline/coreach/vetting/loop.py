@@ -2,10 +2,11 @@
 
 One control step, for E episodes at once (no Python loop over episodes):
 1. forward kinematics and Jacobian at q (once per episode; candidates use the linearisation);
-2. the belief update on the tool's last motion, then the context from `coreach.context.build_context`, the
+2. the belief update (coreach.control.belief_tracker: from the pose of the last update, as at runtime), then the context from `coreach.context.build_context`, the
    function training uses;
 3. the interface's command for every candidate stick in every mode, [E, M, K, n], passed through the shared
-   `SafetyLimits` (keep_inside, then cap);
+   safety filter `coreach.control.safety_filter.SafetyLimits.limit` (joint look-ahead, speed caps and, when
+   the limits carry one, the workspace box: the filter the runtime ships);
 4. each candidate's value for the operator's current goal: predicted one-step progress toward its current
    waypoint (dx = J_lin qd dt) plus ORIENTATION_WEIGHT times progress toward the approach orientation
    (dtheta = J_ang qd dt); candidates in another interface mode pay a switching penalty;
@@ -30,16 +31,17 @@ import torch
 from torch import Tensor
 
 from coreach.context import build_context
+from coreach.control.belief_tracker import track
+from coreach.control.safety_filter import JOINT_LIMIT, SPEED_CAP, WORKSPACE
 from coreach.errors import ConfigError
 from coreach.geometry import rotation_error
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.suite import EpisodePlan, Suite
 
-__all__ = ["rollout", "rollout_per_episode", "ORIENTATION_WEIGHT", "REACH_PROGRESS", "JOINT_LIMIT", "SPEED_CAP"]
+__all__ = ["rollout", "rollout_per_episode", "ORIENTATION_WEIGHT", "REACH_PROGRESS", "JOINT_LIMIT", "SPEED_CAP",
+           "WORKSPACE"]
 
 ORIENTATION_WEIGHT = 0.05  # m per rad: 1 rad of orientation progress is worth 5 cm of position progress
-# Which safety limit changed a command: a speed cap only shortens it, a joint-position limit can turn it.
-JOINT_LIMIT, SPEED_CAP = 1, 2
 REACH_PROGRESS = 1e-3  # m per step a candidate must gain toward a goal for that goal to count as reachable
 Progress = Callable[[int, int], None]
 
@@ -55,17 +57,11 @@ def _kinematics(robot, q: Tensor, jacobian: bool):
     return pos.to(q.dtype), rot.to(q.dtype), None if jac is None else jac.to(q.dtype)
 
 
-def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, dt: float) -> tuple[Tensor, Tensor]:
-    """Shared safety limits on commands qd [..., n] at q (broadcastable), jac_lin [..., 3, n] -> (limited qd,
-    which limits acted [...]: JOINT_LIMIT | SPEED_CAP bits, 0 = none).
-
-    keep_inside runs first: a uniform scale-down (cap) of a command that keeps q + qd dt inside the joint
-    box keeps it inside (the box is convex and holds q), whereas clipping joints after capping could raise
-    the tool speed above its cap again.
-    """
-    qd, outside = limits.keep_inside(q, qd, dt)
-    qd, fast = limits.cap(qd, jac_lin)
-    return qd, outside.to(torch.uint8) * JOINT_LIMIT | fast.to(torch.uint8) * SPEED_CAP
+def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, pos: Tensor, dt: float) -> tuple[Tensor, Tensor]:
+    """The shared safety filter on commands qd [..., n] at q, jac_lin [..., 3, n], pos [..., 3] (broadcastable)
+    -> (limited qd, which parts acted [...]: JOINT_LIMIT | SPEED_CAP | WORKSPACE bits, 0 = none)."""
+    qd, flags, _ = limits.limit(q, qd, jac_lin, pos, dt)
+    return qd, flags.to(torch.uint8)
 
 
 def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> None:
@@ -151,11 +147,13 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
 
     _reset_operator(operator, E, generator, dt)
     belief = belief_model.initial(E, G, q[:, 0])
-    prev_pos = None
+    anchor = None  # [E, 3] tool position at the last belief update
     for t in range(T + 1):
         pos, rot, jac = _kinematics(robot, q, jacobian=t < T)
-        if prev_pos is not None:
-            belief = belief_model.update(belief, prev_pos, pos, targets)
+        if anchor is None:
+            anchor = pos
+        else:
+            belief, anchor, _ = track(belief_model, belief, anchor, pos, targets)
 
         if t in switch_steps:
             now = plan.switch_step == t  # [E]
@@ -205,7 +203,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
                 f"[{E}, {interface.n_modes}, {K}, {n}]",
             )
         jac_lin = jac[:, :3, :]
-        safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], dt)
+        safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], pos[:, None, None], dt)
         twist = torch.einsum("eij,emkj->emki", jac, safe) * dt  # [E, M, K, 6] one-step tool motion
         value = _values(twist, to_wp, rot_err, mode, switch_cost, margin)
         rec_reach[:, t] = _reachable(twist[..., :3], pos, approach, tol_pos)
@@ -224,7 +222,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             hit = flags.reshape(E, M * K)[rows, pick]
         else:
             again = interface.act(sent[:, None, :].to(dtype), state).to(dtype)  # [E, M, 1, n]
-            qd, hit = _limit(limits, q, again[rows, m_pick, 0], jac_lin, dt)
+            qd, hit = _limit(limits, q, again[rows, m_pick, 0], jac_lin, pos, dt)
 
         holding = hold > 0
         hold = (hold - 1).clamp_min(0)
@@ -238,7 +236,6 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         qd = torch.where(active[:, None], qd, 0.0)
         rec_qd[:, t], rec_mode[:, t] = qd, mode
         rec_limits[:, t] = hit * active
-        prev_pos = pos
         q = q + qd * dt
         if progress is not None:
             progress(t + 1, T)
@@ -259,7 +256,7 @@ def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: di
         "mode": out.pop("mode"),  # [E, T] interface mode after each step's choice
         "phase1_step": out.pop("phase1_step"),  # [E] first step at the final goal's approach pose, -1 never
         "initial_done_step": out.pop("initial_done_step"),  # [E] initial goal completed before its switch
-        "limits": out.pop("limits"),  # [E, T] uint8: JOINT_LIMIT | SPEED_CAP bits of the applied command
+        "limits": out.pop("limits"),  # [E, T] uint8: JOINT_LIMIT | SPEED_CAP | WORKSPACE bits of the applied command
         "reach_goal": out.pop("reach_goal"),  # [E, T, G] some candidate stick made progress toward goal g
         "orientation_error": out.pop("orientation_error"),  # [E, T+1] rad to the current goal's approach rotation
         "position_tol": suite.position_tol,  # m, the suite's arrival tolerances (diagnosis reads them)

@@ -15,24 +15,25 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from array_api_compat import array_namespace
+from coreach.control.arrays import namespace as array_namespace
 
 
 def distance_to_path(point, targets):
-    """Distance [B, G] from point [B, 3] to each goal's polyline targets [B, G, S, 3] (S >= 1 waypoints)."""
+    """Distance [..., B, G] from point [..., B, 3] to each goal's polyline targets [B, G, S, 3] (S >= 1
+    waypoints); leading axes of `point` (e.g. before and after a motion) share the targets."""
     xp = array_namespace(point, targets)
-    p = point[:, None, None, :]  # [B, 1, 1, 3]
-    if targets.shape[2] == 1:
-        return xp.linalg.vector_norm(p[:, :, 0, :] - targets[:, :, 0, :], axis=-1)
+    p = point[..., None, None, :]  # [..., B, 1, 1, 3]
+    if targets.shape[-2] == 1:
+        return xp.linalg.vector_norm(p[..., 0, :] - targets[..., 0, :], axis=-1)
     a = targets[:, :, :-1, :]  # [B, G, S-1, 3] segment starts
     b = targets[:, :, 1:, :]
     ab = b - a
-    denom = xp.maximum(xp.sum(ab * ab, axis=-1), xp.asarray(1e-12, dtype=ab.dtype))
-    t = xp.sum((p - a) * ab, axis=-1) / denom  # [B, G, S-1]
-    t = xp.minimum(xp.maximum(t, 0.0 * t), 0.0 * t + 1.0)  # clip to [0, 1]; cheaper than xp.clip on numpy
-    nearest = a + t[..., None] * ab
-    d = xp.linalg.vector_norm(p - nearest, axis=-1)  # [B, G, S-1]
-    return xp.min(d, axis=-1)
+    denom = xp.maximum(xp.sum(ab * ab, axis=-1), 1e-12)
+    t = xp.sum((p - a) * ab, axis=-1) / denom  # [..., B, G, S-1]
+    t = xp.minimum(xp.maximum(t, 0.0), 1.0)  # clip to [0, 1]; cheaper than xp.clip on numpy
+    gap = p - (a + t[..., None] * ab)
+    d2 = xp.sum(gap * gap, axis=-1)  # [..., B, G, S-1] squared distances (vector_norm costs more on numpy)
+    return xp.sqrt(xp.min(d2, axis=-1))
 
 
 @dataclass
@@ -56,13 +57,15 @@ class BoltzmannGoalBelief:
 
     def update(self, belief, ee_before, ee_after, goal_targets):
         xp = array_namespace(belief, ee_before, ee_after, goal_targets)
-        progress = distance_to_path(ee_before, goal_targets) - distance_to_path(ee_after, goal_targets)
-        tiny = xp.asarray(1e-300 if belief.dtype == xp.float64 else 1e-38, dtype=belief.dtype)
+        d = distance_to_path(xp.stack([ee_before, ee_after]), goal_targets)  # [2, B, G], one pass for both
+        progress = d[0] - d[1]
+        tiny = 1e-300 if belief.dtype == xp.float64 else 1e-38
         logits = xp.log(xp.maximum(belief, tiny)) + self.beta * progress  # [B, G]
         logits = logits - xp.max(logits, axis=-1, keepdims=True)
         post = xp.exp(logits)
         post = post / xp.sum(post, axis=-1, keepdims=True)
-        moved = xp.linalg.vector_norm(ee_after - ee_before, axis=-1) >= self.min_motion  # [B]
+        step = ee_after - ee_before
+        moved = xp.sum(step * step, axis=-1) >= self.min_motion**2  # [B]
         post = xp.where(moved[:, None], post, belief)
         if self.floor > 0:
             post = (1.0 - self.floor) * post + self.floor / belief.shape[-1]

@@ -14,9 +14,9 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from coreach.demonstrator import _cap_norm, dls_step, rollout
+from coreach.control.servo import servo
+from coreach.demonstrator import rollout
 from coreach.errors import ConfigError
-from coreach.geometry import rotation_error
 from coreach_plugins.belief.boltzmann import distance_to_path
 from coreach_plugins.interface.direct import DirectControl, check_positive
 
@@ -83,9 +83,8 @@ class PolicyBlending(DirectControl):
         fine = self._fine_phase(state)[rows, g]
         targets = state.goal_targets[rows, g]  # [E, 2, 3]
         target = torch.where(fine[:, None], targets[:, 1], targets[:, 0])
-        rot_err = rotation_error(state.goal_rot[rows, g], state.ee_rot)
-        twist = torch.cat([_cap_norm(K_P * (target - state.ee_pos), V_MAX), _cap_norm(K_R * rot_err, W_MAX)], dim=-1)
-        return dls_step(state.jac, twist.to(state.jac.dtype), self.damping)
+        return servo(state.jac, state.ee_pos, state.ee_rot, target, state.goal_rot[rows, g], K_P, K_R, V_MAX, W_MAX,
+                     self.damping)
 
     def reset(self, n_episodes: int, state) -> None:
         super().reset(n_episodes, state)

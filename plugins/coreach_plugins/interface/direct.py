@@ -8,7 +8,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from coreach.demonstrator import dls_step
+from coreach.control.servo import dls_step
 from coreach.errors import ConfigError
 
 # Axis pairs per mode, as rows of the base-frame twist [vx, vy, vz, wx, wy, wz]: (x, y), (z, yaw),
