@@ -328,7 +328,7 @@ def test_no_limit_is_ever_exceeded_on_arbitrary_streams(session, reference, even
 
 # ---------------------------------------------------------------------------------------------- bench
 def test_runtime_bench_reports_both_sides(bundle):
-    from coreach.bench.runtime_bench import run_runtime_bench
+    from coreach.runtime.latency import run_runtime_bench
 
     out = run_runtime_bench(bundle, steps=200)
     for key in ("session_p50_us", "session_p99_us", "bare_p50_us", "bare_p99_us", "ratio_p99"):

@@ -1,4 +1,4 @@
-"""`coreach bench runtime`: the Hydra entry of the runtime latency benchmark (coreach.bench.runtime_bench)."""
+"""`coreach bench runtime`: the Hydra entry of the runtime latency benchmark (coreach.runtime.latency)."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from coreach.errors import ConfigError
 
 def run(cfg: DictConfig) -> dict:
     """Latency of `cfg.bundle`'s runtime session against a bare onnxruntime call, in one run."""
-    from coreach.bench.runtime_bench import run_runtime_bench
+    from coreach.runtime.latency import run_runtime_bench
 
     bundle = "" if OmegaConf.is_missing(cfg, "bundle") else str(cfg.bundle)
     if not bundle or not Path(bundle).expanduser().is_dir():

@@ -62,7 +62,7 @@ def _latency(bundle: Path, node) -> dict:
     """Runtime latency on the staged bundle: the round (of `rounds`) with the lowest p99. Other jobs on the
     machine only ever add time, so the quietest round is the best estimate of what the decoder and runtime
     cost; a single busy round on a shared computer measured 8.7 ms p99 against 0.5 ms for the next one."""
-    from coreach.bench.runtime_bench import run_runtime_bench
+    from coreach.runtime.latency import run_runtime_bench
 
     rounds = max(1, int(node.get("rounds", 3)))
     steps = max(50, int(node.steps) // rounds)

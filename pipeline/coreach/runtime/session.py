@@ -1,8 +1,8 @@
 """The control-rate step on the robot computer: kinematics, goal belief, context, ONNX decoder, safety filter.
 
-Imports only numpy, onnxruntime and the shared array-API modules (coreach.context, coreach.control,
-coreach_plugins.belief.boltzmann), so the same belief, context and speed-cap code that trained and vetted
-the decoder runs here without torch.
+Imports only numpy, onnxruntime and the shared array-API modules (coreach.context, coreach.control); the belief
+model is rebuilt from the manifest through the host's allow-list (coreach.runtime.belief_manifest), so the same
+belief, context and safety-filter code that trained and vetted the decoder runs here without torch.
 
 Safety filter, in order (always on):
 1. any non-finite stick, q or timestamp -> zero and a latched fault (cleared only by `reset_fault`);
@@ -26,7 +26,7 @@ import onnxruntime as ort
 
 from coreach.context import build_context, goal_features
 from coreach.errors import DataError
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.runtime.belief_manifest import belief_from_manifest
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
 from coreach.runtime.kinematics import Chain, quat_to_matrix
 from coreach.control.belief_tracker import track
@@ -91,8 +91,7 @@ class Session:
         self._ort = decoder
         self.last: StepInfo | None = None
         m = manifest
-        self.belief_model = BoltzmannGoalBelief(beta=m.belief["beta"], floor=m.belief["floor"],
-                                                min_motion=m.belief["min_motion"])
+        self.belief_model = belief_from_manifest(m.belief)
         lower = np.where(np.isfinite(m.q_lower), m.q_lower, -_UNBOUNDED)
         upper = np.where(np.isfinite(m.q_upper), m.q_upper, _UNBOUNDED)
         self.limits = SafetyLimits(qd_max=tuple(m.qd_max.tolist()), tcp_speed_max=m.tcp_speed_max,

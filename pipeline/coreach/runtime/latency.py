@@ -1,4 +1,4 @@
-"""`coreach bench runtime`: per-step latency of the runtime session against a bare onnxruntime call.
+"""Per-step latency of a bundle's runtime Session against a bare onnxruntime call, with per-stage times.
 
 Both are timed in one run, interleaved step by step (alternating which goes first, so drift on a shared
 machine hits both), with time.perf_counter_ns. The session drives a simulated arm (q += qd * dt) with a
