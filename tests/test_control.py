@@ -11,7 +11,7 @@ from coreach.context import ContextSpec, build_context
 from coreach.control.belief_tracker import track
 from coreach.control.safety_filter import JOINT_LIMIT, SPEED_CAP, WORKSPACE, SafetyLimits
 from coreach.policy import DecoderPolicy
-from coreach.runtime.bundle import write_bundle
+from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.session import Session
 from coreach.vetting.loop import _kinematics, _limit
 from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief

@@ -284,15 +284,14 @@ def test_operator_imperfections_change_the_outcome():
 
 
 def test_workspace_box_is_applied_in_the_loop_and_recorded():
-    """The loop runs the filter that ships: the release config's workspace box (conf release.yaml runtime) does
+    """The loop runs the filter that ships: the safety config's workspace box (conf safety/default.yaml) does
     not bite on the bedside-shelf scene's paths, while a box the shelf lies outside of does, and its WORKSPACE
     bit is recorded."""
     import yaml
 
     from coreach.vetting.loop import WORKSPACE
 
-    conf = yaml.safe_load((Path(__file__).parents[1] / "conf" / "coreach_conf" / "release.yaml").read_text())
-    rt = conf["runtime"]
+    rt = yaml.safe_load((Path(__file__).parents[1] / "conf" / "coreach_conf" / "safety" / "default.yaml").read_text())
     suite = _suite(episodes=3)
     plain = rollout(ROBOT, GoalStickDLS(), suite.build_operator(), suite, BELIEF, LIMITS, suite.generator())
     shipped = LIMITS.with_workspace(rt["workspace_min"], rt["workspace_max"], rt["lookahead_s"])

@@ -23,7 +23,7 @@ from coreach.aggregation.visits import visit_episodes, visits_from_record
 from coreach.episodes import EpisodeSet, save_parquet
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_option, build_plugin, builtin_option
-from coreach.safety import SafetyLimits
+from coreach.safety import limits_from_config
 from coreach.training.run import train
 from coreach.vetting.loop import rollout
 from coreach.vetting.suite import MIN_SEED, Suite, suite_from_dict
@@ -134,7 +134,7 @@ def aggregate(cfg: DictConfig) -> dict:
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
     labeller = build_plugin(cfg.labeller, "labeller")
-    limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
+    limits = limits_from_config(robot, cfg.safety)
     suites = rollout_suites(cfg, robot)
     start = opts.get("start_run")
     # refuse a run that is not a decoder before anything is written; round 1 rolls this one out

@@ -19,7 +19,7 @@ from omegaconf import DictConfig, OmegaConf
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_option, build_plugin, builtin_option, option_class
-from coreach.safety import SafetyLimits
+from coreach.safety import limits_from_config
 from coreach.vetting.loop import rollout, rollout_per_episode
 from coreach.vetting.suite import load_suite
 
@@ -63,7 +63,7 @@ def run(cfg: DictConfig) -> dict:
     small = load_suite(str(cfg.suite), episodes=max(1, math.ceil(int(cfg.per_episode) / cells)), **over)
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
-    limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
+    limits = limits_from_config(robot, cfg.safety)
     # no suite.validate: throughput does not need reachable goals, and short quick runs would fail it
     policy, source = _policy(cfg, robot, len(suite.goal_names))
     interface = option_class("interface", "decoder").from_policy(policy, name=source)

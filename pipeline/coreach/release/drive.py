@@ -3,9 +3,9 @@
 What comes from where: the plant (forward kinematics, q += qd dt), the simulated operator and the episode
 plan are the torch vetting loop (`coreach.vetting.loop.rollout`); the decoder is the bundle's decoder.onnx
 run by onnxruntime, loaded only after the bundle verifies; the joint and tool-speed limits, the robot
-(URDF, home pose) and the belief parameters are read from the bundle's manifest. The runtime Session's
-stick deadband, watchdog and workspace filter act on a real stick and clock and are not in this loop; the
-replayed tool path is checked against the bundle's workspace box instead (`violations`).
+(URDF, home pose), the belief model and the whole safety filter (stick box and deadband, look-ahead, speed
+caps, workspace box: `limits_from_manifest`, the runtime Session's own) are read from the bundle's manifest.
+Only the watchdog, which needs a real stick clock, is not exercised here.
 """
 
 from __future__ import annotations
@@ -23,6 +23,7 @@ from coreach.plugin_registry import build_option
 from coreach.runtime.belief_manifest import belief_from_manifest
 from coreach.release.gate import count_violations
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes
+from coreach.runtime.session import limits_from_manifest
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import summarise
@@ -47,8 +48,8 @@ def bundle_robot(m: Manifest):
 
 
 def bundle_limits(m: Manifest) -> SafetyLimits:
-    return SafetyLimits(qd_max=tuple(m.qd_max.tolist()), tcp_speed_max=m.tcp_speed_max,
-                        q_lower=tuple(m.q_lower.tolist()), q_upper=tuple(m.q_upper.tolist()))  # fmt: skip
+    """The bundle's own filter (the runtime Session's), so the replay measures what ships."""
+    return limits_from_manifest(m)
 
 
 def vetted_metrics(tracking_uri: str, run_id: str, suite: str) -> tuple[dict | None, str]:

@@ -12,7 +12,7 @@ from coreach.plugin_registry import build_plugin, option_class
 from coreach.release import gate as G
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import PARITY_TOLERANCE, BundleError, verify_bundle
-from coreach.safety import SafetyLimits
+from coreach.safety import limits_from_config, workspace_box
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import summarise
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots
@@ -50,14 +50,6 @@ def _urdf(robot, staging: Path) -> Path:
     return path
 
 
-def _workspace(cfg) -> tuple[list[float], list[float]]:
-    lo, hi = list(cfg.runtime.workspace_min), list(cfg.runtime.workspace_max)
-    if len(lo) != 3 or len(hi) != 3 or not all(a < b for a, b in zip(lo, hi)):
-        raise ConfigError("option runtime.workspace_min/max", f"expected two corners [x, y, z] with min < max, got "
-                                                              f"{lo} and {hi}")  # fmt: skip
-    return lo, hi
-
-
 def _latency(bundle: Path, node) -> dict:
     """Runtime latency on the staged bundle: the round (of `rounds`) with the lowest p99. Other jobs on the
     machine only ever add time, so the quietest round is the best estimate of what the decoder and runtime
@@ -74,11 +66,11 @@ def _latency(bundle: Path, node) -> dict:
 def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
     """Every gate on `policy`; builds the vetting report and a staged bundle inside `staging`."""
     th = G.Thresholds.from_config(cfg.gates, PARITY_TOLERANCE)
-    workspace = _workspace(cfg)
+    workspace = workspace_box(cfg.safety)
     suites = _suites(cfg)
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
-    limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
+    limits = limits_from_config(robot, cfg.safety)
     spec = policy.spec
     for suite in suites:
         suite.validate(robot, spec_n_goals=spec.n_goals)

@@ -44,7 +44,7 @@ def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
             raise ConfigError("option gate_suites", f"suite {s.name} has goals {s.goal_names}, suite "
                                                     f"{suites[0].name} {scene.goal_names}; a bundle serves one goal "
                                                     "set")  # fmt: skip
-    rt = cfg.runtime
+    rt = cfg.safety
     tags = run.data.tags
     return {
         "name": f"{cfg.name} ({label})",

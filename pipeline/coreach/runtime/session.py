@@ -92,14 +92,7 @@ class Session:
         self.last: StepInfo | None = None
         m = manifest
         self.belief_model = belief_from_manifest(m.belief)
-        lower = np.where(np.isfinite(m.q_lower), m.q_lower, -_UNBOUNDED)
-        upper = np.where(np.isfinite(m.q_upper), m.q_upper, _UNBOUNDED)
-        self.limits = SafetyLimits(qd_max=tuple(m.qd_max.tolist()), tcp_speed_max=m.tcp_speed_max,
-                                   q_lower=tuple(lower.tolist()), q_upper=tuple(upper.tolist()),
-                                   workspace_min=tuple(m.workspace_min.tolist()),
-                                   workspace_max=tuple(m.workspace_max.tolist()), lookahead_s=m.lookahead_s,
-                                   stick_low=m.stick_low, stick_high=m.stick_high, deadband=m.deadband,
-                                   watchdog_timeout_s=m.watchdog_timeout_s)
+        self.limits = limits_from_manifest(m)
         self._qd_max = m.qd_max.copy()
         self._d, self._n = m.latent_dim, m.action_dim
         self._out_names = [self._ort.get_outputs()[0].name]
@@ -256,6 +249,17 @@ class Session:
         self._belief, self._anchor, _ = track(self.belief_model, self._belief, self._anchor, pos[None],
                                               self._layout.targets)
         return True
+
+
+def limits_from_manifest(m: Manifest) -> SafetyLimits:
+    """The bundle's whole safety filter, as the manifest records it (what vetting measured before release)."""
+    lower = np.where(np.isfinite(m.q_lower), m.q_lower, -_UNBOUNDED)
+    upper = np.where(np.isfinite(m.q_upper), m.q_upper, _UNBOUNDED)
+    return SafetyLimits(qd_max=tuple(m.qd_max.tolist()), tcp_speed_max=m.tcp_speed_max,
+                        q_lower=tuple(lower.tolist()), q_upper=tuple(upper.tolist()),
+                        workspace_min=tuple(m.workspace_min.tolist()), workspace_max=tuple(m.workspace_max.tolist()),
+                        lookahead_s=m.lookahead_s, stick_low=m.stick_low, stick_high=m.stick_high, deadband=m.deadband,
+                        watchdog_timeout_s=m.watchdog_timeout_s)  # fmt: skip
 
 
 def _array(value, shape: tuple[int, ...], where: str) -> np.ndarray:

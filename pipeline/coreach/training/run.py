@@ -20,7 +20,7 @@ from coreach.context import ContextSpec
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin, build_terms
 from coreach.policy import DecoderPolicy
-from coreach.safety import SafetyLimits
+from coreach.safety import limits_from_config
 from coreach.training.callbacks import MlflowEpochLogger, progress_callbacks
 from coreach.training.data import DemoDataModule, replay, split_by_episode
 from coreach.training.system import DecoderSystem
@@ -44,7 +44,7 @@ def build_system(cfg: DictConfig, robot, episodes, train_s) -> DecoderSystem:
     model_cfg = OmegaConf.to_container(cfg.model, resolve=True)
     policy = DecoderPolicy.build(model_cfg, spec, robot.dof)
     policy.set_normalisation(train_s.context, train_s.action)
-    limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
+    limits = limits_from_config(robot, cfg.safety)
     return DecoderSystem(policy, build_terms(cfg.loss), limits, episodes.dt, cfg.trainer.lr, seed=cfg.seed)
 
 

@@ -2,16 +2,17 @@
 
 One control step, for E episodes at once (no Python loop over episodes):
 1. forward kinematics and Jacobian at q (once per episode; candidates use the linearisation);
-2. the belief update (coreach.control.belief_tracker: from the pose of the last update, as at runtime), then the context from `coreach.context.build_context`, the
-   function training uses;
-3. the interface's command for every candidate stick in every mode, [E, M, K, n], passed through the shared
-   safety filter `coreach.control.safety_filter.SafetyLimits.limit` (joint look-ahead, speed caps and, when
-   the limits carry one, the workspace box: the filter the runtime ships);
+2. the belief update (coreach.control.belief_tracker: from the pose of the last update, as at runtime), then
+   the context from `coreach.context.build_context`, the function training uses;
+3. every candidate stick through the filter's stick box and deadband (a released stick commands zero), then the
+   interface's command for it in every mode, [E, M, K, n], through the rest of the shared safety filter
+   `coreach.control.safety_filter.SafetyLimits.limit` (joint look-ahead, speed caps, workspace box): the
+   filter the runtime ships, with the settings the release writes into the bundle;
 4. each candidate's value for the operator's current goal: predicted one-step progress toward its current
    waypoint (dx = J_lin qd dt) plus ORIENTATION_WEIGHT times progress toward the approach orientation
    (dtheta = J_ang qd dt); candidates in another interface mode pay a switching penalty;
-5. the operator picks one, perturbs its stick (bias, tremor); a perturbed stick is sent through the interface
-   again (one stick per episode) and through the limits; q += qd dt.
+5. the operator picks one, perturbs its stick (bias, tremor); a perturbed stick goes through the whole filter
+   and the interface again (one stick per episode); q += qd dt.
 
 Bookkeeping: the operator first seeks the approach pose (position and orientation within the suite's
 tolerances), then the end of the goal's fine motion; completing it with the orientation still within
@@ -23,7 +24,6 @@ the belief on the original goal at that moment is recorded (measured in an earli
 
 from __future__ import annotations
 
-import inspect
 import math
 from typing import Callable
 
@@ -34,6 +34,7 @@ from coreach.context import build_context
 from coreach.control.belief_tracker import track
 from coreach.control.safety_filter import JOINT_LIMIT, SPEED_CAP, WORKSPACE
 from coreach.errors import ConfigError
+from coreach.protocols import takes_dt
 from coreach.geometry import rotation_error
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.suite import EpisodePlan, Suite
@@ -66,7 +67,7 @@ def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, pos: Tensor, dt: floa
 
 def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> None:
     """Operators that take the control period (e.g. for band-limited tremor) get it as `dt`."""
-    if "dt" in inspect.signature(operator.reset).parameters:
+    if takes_dt(operator):
         operator.reset(n, generator, dt=dt)
     else:
         operator.reset(n, generator)
@@ -109,7 +110,9 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     G = len(plan.layout.names)
     rows = torch.arange(E)
     tol_pos, tol_ang = suite.position_tol, suite.orientation_tol
-    grid = suite.stick_grid(dtype)  # [K, 2]
+    grid = suite.stick_grid(dtype)  # [K, 2] the operator's candidate sticks
+    # what the interface receives: the sticks through the filter's box and deadband, as on the robot
+    shaped, _, released = limits.condition_stick(grid)  # [K, 2], [K]
     K = grid.shape[0]
     switch_cost = 0
     margin = float(getattr(operator, "mode_switch_margin", 0.0))
@@ -194,7 +197,8 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             interface.reset(E, state)
             # read after reset: an interface may count its switch cost in steps of the loop's dt
             switch_cost = int(getattr(interface, "switch_cost_steps", 0))
-        raw = interface.act(grid, state).to(dtype)  # [E, M, K, n]
+        raw = interface.act(shaped, state).to(dtype)  # [E, M, K, n]
+        raw = torch.where(released[None, None, :, None], 0.0, raw)  # a released stick stops the arm
         M = raw.shape[1]
         if t == 0 and tuple(raw.shape) != (E, int(interface.n_modes), K, n):
             raise ConfigError(
@@ -221,7 +225,9 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             qd = safe.reshape(E, M * K, n)[rows, pick]
             hit = flags.reshape(E, M * K)[rows, pick]
         else:
-            again = interface.act(sent[:, None, :].to(dtype), state).to(dtype)  # [E, M, 1, n]
+            sent_shaped, _, sent_released = limits.condition_stick(sent.to(dtype))
+            again = interface.act(sent_shaped[:, None, :], state).to(dtype)  # [E, M, 1, n]
+            again = torch.where(sent_released[:, None, None, None], 0.0, again)
             qd, hit = _limit(limits, q, again[rows, m_pick, 0], jac_lin, pos, dt)
 
         holding = hold > 0

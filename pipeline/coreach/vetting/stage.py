@@ -13,7 +13,7 @@ from omegaconf import DictConfig, ListConfig, OmegaConf
 from coreach import tracking
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_option, build_plugin
-from coreach.safety import SafetyLimits
+from coreach.safety import limits_from_config
 from coreach.training.callbacks import interactive
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
 from coreach.vetting.loop import rollout
@@ -97,7 +97,7 @@ def vet(cfg: DictConfig) -> dict:
     suite = load_suite(str(cfg.suite), **overrides)
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
-    limits = SafetyLimits.for_robot(robot, cfg.safety.tcp_speed_max, cfg.safety.speed_fraction)
+    limits = limits_from_config(robot, cfg.safety)
     client, exp_id = tracking.client(cfg.tracking) if cfg.log else (None, None)
 
     names = candidate_list(cfg.candidates)
