@@ -163,3 +163,42 @@ def test_non_finite_names_every_bad_input():
     bad = BOX.non_finite(stick=[0.1, float("nan")], q=np.array([0.0, np.inf]), now_s=1.0, t=None,
                          ok=torch.zeros(2), worse=torch.tensor([0.0, float("-inf")]))
     assert bad == ["stick", "q", "t", "worse"]
+
+
+def test_batched_loop_and_runtime_session_give_the_same_commands(bundle_and_policy):
+    """The seam itself: the batched vetting loop (`rollout`) drives the bundle's decoder (the onnx_bundle
+    interface) with the bundle's own filter for 3 episodes of a suite; then the runtime Session is fed, step by
+    step, the same joint positions and the sticks the operator sent. Every command the loop applied must be
+    the one the Session returns (same float32 ONNX graph, same filter code), and the beliefs must agree."""
+    from coreach.plugin_registry import build_option
+    from coreach.runtime.session import limits_from_manifest
+    from coreach.vetting.loop import rollout
+    from coreach.vetting.suite import suite_from_dict
+
+    folder, _ = bundle_and_policy
+    session = Session.open(folder)
+    m = session.manifest
+    robot = UrdfArm(home=m.q_home.tolist())
+    interface = build_option("interface", "onnx_bundle", bundle=str(folder))
+    # a tremor operator: its perturbed sticks take the loop's second path through the filter
+    suite = suite_from_dict({"scenario": "bedside_shelf", "episodes": 3, "horizon_s": 4.0, "start_jitter": 0.05,
+                             "operator": {"_target_": "coreach_plugins.operator.boltzmann.BoltzmannOperator",
+                                          "beta": 300.0, "tremor_std": 0.15}}, "seam suite")  # fmt: skip
+    record = rollout(robot, interface, suite.build_operator(), suite, session.belief_model,
+                     limits_from_manifest(m), suite.generator(), authority_every=0)  # fmt: skip
+    q_all, qd_all, sticks = record.extras["q"], record.extras["qd"], record.extras["stick"]
+    targets = record.extras["goal_targets"]  # [E, G, 2, 3]
+    plan_rot = suite.episodes_plan(suite.generator(), robot).layout.approach_quat  # same plan as the rollout's
+    compared = acted = 0
+    for e in range(q_all.shape[0]):
+        session.reset()
+        session.set_goals(targets[e, :, 0].numpy(), plan_rot[e].numpy(), (targets[e, :, 1] - targets[e, :, 0]).numpy())
+        for t in range(sticks.shape[1]):
+            stick = sticks[e, t].numpy()
+            qd_rt = session.step(np.nan_to_num(stick), q_all[e, t].numpy(), now_s=t * suite.step_dt)
+            np.testing.assert_allclose(session.belief, record.belief[e, t].numpy(), atol=1e-9)
+            if np.isfinite(stick).all():  # the loop drove this step (not holding after arrival)
+                np.testing.assert_allclose(qd_all[e, t].numpy(), qd_rt, atol=1e-5, rtol=1e-4)
+                compared += 1
+                acted += session.last.intervened
+    assert compared > 50 and acted > 0  # many steps compared, some of them with a filter acting

@@ -147,6 +147,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     rec_reach = torch.zeros(E, T, G, dtype=torch.bool)
     rec_ori = torch.empty(E, T + 1, dtype=dtype)
     rec_auth = torch.full((E, T), math.nan, dtype=dtype)
+    rec_stick = torch.full((E, T, grid.shape[1]), math.nan, dtype=dtype)
 
     _reset_operator(operator, E, generator, dt)
     belief = belief_model.initial(E, G, q[:, 0])
@@ -241,6 +242,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             active &= ~switching
         qd = torch.where(active[:, None], qd, 0.0)
         rec_qd[:, t], rec_mode[:, t] = qd, mode
+        rec_stick[:, t] = torch.where(active[:, None], sent.to(dtype), math.nan)
         rec_limits[:, t] = hit * active
         q = q + qd * dt
         if progress is not None:
@@ -250,7 +252,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         success=success, success_step=success_step, ee_path=rec_pos, belief=rec_belief,
         belief_at_switch=belief_at_switch, error=rec_error, interventions=rec_limits > 0, limits=rec_limits,
         reachable=rec_reach.all(dim=-1), reach_goal=rec_reach, orientation_error=rec_ori,
-        authority=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, mode=rec_mode, phase1_step=phase1_step,
+        authority=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, stick=rec_stick, mode=rec_mode, phase1_step=phase1_step,
         initial_done_step=initial_done_step,
     )  # fmt: skip
 
@@ -259,6 +261,7 @@ def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: di
     extras = {
         "q": out.pop("q"),  # [E, T+1, n] joint positions
         "qd": out.pop("qd"),  # [E, T, n] applied joint velocities (after limits; zero when holding)
+        "stick": out.pop("stick"),  # [E, T, 2] stick the operator sent (before the filter); nan when not driving
         "mode": out.pop("mode"),  # [E, T] interface mode after each step's choice
         "phase1_step": out.pop("phase1_step"),  # [E] first step at the final goal's approach pose, -1 never
         "initial_done_step": out.pop("initial_done_step"),  # [E] initial goal completed before its switch
