@@ -85,7 +85,7 @@ def test_one_round_adds_labelled_closed_loop_states_and_records_the_lineage(work
     tags = client.get_run(second["run_id"]).data.tags
     assert tags["coreach.aggregate.parent"] == parent.info.run_id and tags["coreach.aggregate.round"] == "1"
     assert tags["coreach.aggregate.previous"] == first["run_id"]
-    assert tags["coreach.dataset"] == second["dataset"] != first["dataset"]
+    assert tags["coreach.dataset_sha256"] == second["dataset"] != first["dataset"]
 
     # the added episodes are the visited states, labelled with the demonstrator's velocity law
     from coreach_plugins.robot.urdf_arm import UrdfArm

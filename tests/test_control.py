@@ -185,7 +185,7 @@ def test_batched_loop_and_runtime_session_give_the_same_commands(bundle_and_poli
                              "operator": {"_target_": "coreach_plugins.operator.boltzmann.BoltzmannOperator",
                                           "beta": 300.0, "tremor_std": 0.15}}, "seam suite")  # fmt: skip
     record = rollout(robot, interface, suite.build_operator(), suite, session.belief_model,
-                     limits_from_manifest(m), suite.generator(), authority_every=0)  # fmt: skip
+                     limits_from_manifest(m), suite.generator(), stick_gain_every=0)  # fmt: skip
     q_all, qd_all, sticks = record.extras["q"], record.extras["qd"], record.extras["stick"]
     targets = record.extras["goal_targets"]  # [E, G, 2, 3]
     plan_rot = suite.episodes_plan(suite.generator(), robot).layout.approach_quat  # same plan as the rollout's

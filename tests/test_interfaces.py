@@ -68,7 +68,7 @@ def test_direct_authority_matches_numpy_svd(robot, mode, rows, kind):
     st = loop_state(robot)
     st.mode = torch.full((E,), mode, dtype=torch.long)
     scales = tuple(0.2 if r < 3 else 0.7 for r in rows)
-    got = iface.authority(st).numpy()
+    got = iface.stick_gain(st).numpy()
     for e in range(E):
         A = numpy_mode_map(st.jac[e].numpy(), 0.05, rows, scales)
         # numpy.linalg.svd is the reference; singular values come sorted in descending order
@@ -110,7 +110,7 @@ def test_blend_at_uniform_belief_is_direct_control(robot):
     blend.reset(E, st)
     stick = torch.randn(6, 2, generator=torch.Generator().manual_seed(3), dtype=torch.float64)
     torch.testing.assert_close(blend.act(stick, st), direct.act(stick, st), rtol=0, atol=1e-12)
-    torch.testing.assert_close(blend.authority(st), direct.authority(st), rtol=0, atol=1e-12)
+    torch.testing.assert_close(blend.stick_gain(st), direct.stick_gain(st), rtol=0, atol=1e-12)
 
 
 def test_blend_at_certain_belief_moves_toward_the_most_likely_goal(robot):
@@ -127,9 +127,9 @@ def test_blend_at_certain_belief_moves_toward_the_most_likely_goal(robot):
     target = st.goal_targets[:, goal, 0]
     pos_after, _ = robot.fk(st.q + 0.05 * qd)
     assert ((pos_after - target).norm(dim=-1) < (st.ee_pos - target).norm(dim=-1) - 1e-3).all()
-    # The stick keeps (1 - alpha) of its authority, checked against numpy's SVD.
+    # The stick keeps (1 - alpha) of its stick_gain, checked against numpy's SVD.
     A = numpy_mode_map(st.jac[0].numpy(), 0.05, (0, 1), (0.15, 0.15))
-    assert float(blend.authority(st)[0]) == pytest.approx(0.3 * np.linalg.svd(A, compute_uv=False)[-1], rel=1e-9)
+    assert float(blend.stick_gain(st)[0]) == pytest.approx(0.3 * np.linalg.svd(A, compute_uv=False)[-1], rel=1e-9)
 
 
 def test_blend_heads_for_the_fine_motion_near_the_approach_point(robot):
@@ -176,7 +176,7 @@ def test_decoder_authority_matches_finite_difference_svd(robot):
     policy.stick_scale.fill_(1.7)  # a non-trivial stick scale must enter the Jacobian too
     iface = DecoderInterface.from_policy(policy, "cvae")
     st = loop_state(robot)
-    got = iface.authority(st).numpy()
+    got = iface.stick_gain(st).numpy()
     h = 1e-6
     with torch.no_grad():
         for e in range(E):

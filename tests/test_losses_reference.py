@@ -18,7 +18,7 @@ from coreach.policy import DecoderPolicy
 from coreach.protocols import Posterior
 from coreach.safety import SafetyLimits
 from coreach.training.terms import TermBatch
-from coreach_plugins.loss.goal_entropy import (
+from coreach_plugins.loss.goal_information import (
     GoalReachability,
     goal_progress,
     stick_goal_information,
@@ -294,13 +294,13 @@ def test_validation_judges_every_context():
 def test_bad_contexts_raise_config_error(bad):
     with pytest.raises(ConfigError) as err:
         GoalReachability(contexts=bad)
-    assert err.value.where == "loss.goal_entropy.contexts"
+    assert err.value.where == "loss.goal_information.contexts"
 
 
 def test_bad_options_raise_config_error():
     with pytest.raises(ConfigError) as err:
         GoalReachability(samples=0)
-    assert err.value.where == "loss.goal_entropy.samples"
+    assert err.value.where == "loss.goal_information.samples"
     with pytest.raises(ConfigError):
         GoalReachability(sharpness=-1.0)
     with pytest.raises(ConfigError) as err:

@@ -25,7 +25,7 @@ QUICK = [f"gate_suites=[{SUITE}.yaml]", "episodes=1", "latency.steps=300", "late
 HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "suites" / "held-out.yaml"
 # Thresholds a barely trained decoder can meet, so the publishing path runs; parity stays at 1e-5.
 PERMISSIVE = ["gates.success_lo=0", "gates.recovery_lo=0", "gates.max_violations=1000000",
-              "gates.authority_median=0", "gates.latency_p99_us=1000000"]  # fmt: skip
+              "gates.stick_gain_median=0", "gates.latency_p99_us=1000000"]  # fmt: skip
 
 pytestmark = pytest.mark.slow
 
@@ -66,7 +66,7 @@ def test_refusal_prints_every_gate_and_leaves_nothing(trained):
     assert res.returncode == 3, res.stderr
     rows = {line.split("│")[1].strip(): line for line in res.stdout.splitlines() if line.count("│") >= 5
             and line.split("│")[1].strip()}  # fmt: skip
-    expected = {f"success[{SUITE}]", f"recovery@0.8[{SUITE}]", f"violations[{SUITE}]", f"authority[{SUITE}]",
+    expected = {f"success[{SUITE}]", f"recovery@0.8[{SUITE}]", f"violations[{SUITE}]", f"stick_gain[{SUITE}]",
                 "onnx_parity", "latency_p99"}  # fmt: skip
     assert expected <= set(rows), res.stdout
     assert "FAIL" in rows[f"success[{SUITE}]"] and "FAIL" in rows["latency_p99"]
@@ -94,16 +94,16 @@ def test_passing_release_bundle_registry_and_cautions(released):
     client = _client(cwd)
     train = client.get_run(run_id)
     assert m.training_run_id == run_id
-    assert m.dataset_fingerprint == train.data.tags["coreach.dataset"]
+    assert m.dataset_fingerprint == train.data.tags["coreach.dataset_sha256"]
     if "mlflow.source.git.commit" in train.data.tags:
         assert m.git_commit == train.data.tags["mlflow.source.git.commit"]
     assert m.onnx_parity["n"] == 10_000 and m.onnx_parity["max_abs_diff"] <= 1e-5
     assert all(g["passed"] for g in m.gate.values()) and f"success[{SUITE}]" in m.gate
     assert "report.html" in m.files and "not a medical device" in (folder / "MODEL_CARD.md").read_text()
 
-    mv = client.get_model_version_by_alias(NAME, "vetted")
+    mv = client.get_model_version_by_alias(NAME, "gate-passed")
     assert str(mv.version) == "1" and mv.run_id == run_id
-    assert mv.tags["coreach.vetted"] == "true"
+    assert mv.tags["coreach.gate_passed"] == "true"
     assert Path(mv.tags["coreach.bundle"]) == folder.resolve()
     assert mv.tags["coreach.manifest_sha256"] == hashlib.sha256((folder / "manifest.json").read_bytes()).hexdigest()
     assert json.loads(mv.tags["coreach.gate"])["onnx_parity"]["passed"] is True
@@ -122,18 +122,18 @@ def test_drive_matches_vet_on_the_same_suite_and_seeds(released):
     vet = run(["--json", "vet", f"candidates=[{run_id}]", f"suite={SUITE}.yaml", "episodes=1", "report_dir=rep"], cwd)
     assert vet.returncode == 0, vet.stderr
     vetted = next(iter(json.loads(vet.stdout)["summaries"].values()))
-    res = run(["--json", "drive", f"bundle=releases/{NAME}/v1", f"suite={SUITE}.yaml", "episodes=1"], cwd)
+    res = run(["--json", "replay", f"bundle=releases/{NAME}/v1", f"suite={SUITE}.yaml", "episodes=1"], cwd)
     assert res.returncode == 0, res.stderr
     out = json.loads(res.stdout)
     c = out["comparison"]
     assert c["comparable"] and c["match"], c
-    assert {r["metric"] for r in c["rows"]} >= {"success/value", "recovery/0.8/value", "authority/median"}
+    assert {r["metric"] for r in c["rows"]} >= {"success/value", "recovery/0.8/value", "stick_gain/median"}
     driven = next(iter(out["summaries"].values()))
-    # the same episodes through the ONNX graph: outcomes equal, authority (finite differences on the graph
+    # the same episodes through the ONNX graph: outcomes equal, stick_gain (finite differences on the graph
     # against autograd on torch) within the stated 1%
     assert driven["success"]["n"] == vetted["success"]["n"] == 3
     assert driven["success"]["value"] == vetted["success"]["value"]
-    assert driven["authority"]["median"] == pytest.approx(vetted["authority"]["median"], rel=0.01)
+    assert driven["stick_gain"]["median"] == pytest.approx(vetted["stick_gain"]["median"], rel=0.01)
 
 
 def test_promote_back_and_releases_commands(released):
@@ -157,7 +157,7 @@ def test_promote_back_and_releases_commands(released):
     assert listing.returncode == 0, listing.stderr
     rows = {r["version"]: r for r in json.loads(listing.stdout)}
     assert set(rows) == {"1", "2"}
-    assert rows["1"]["aliases"] == ["fielded"] and rows["2"]["aliases"] == ["vetted"]
+    assert rows["1"]["aliases"] == ["fielded"] and rows["2"]["aliases"] == ["gate-passed"]
     assert rows["2"]["bundle_status"].startswith("FAILS") and rows["1"]["bundle_status"] == "ok"
     table = run(["releases"], cwd)
     assert table.returncode == 0 and NAME in table.stdout and "@fielded" in table.stdout
@@ -188,7 +188,7 @@ def test_release_best_releases_a_demo_decoder_and_drives_it(trained, monkeypatch
         out = release_best(demo_result, cfg)
     assert out["release"] is not None and out["release"]["released"]
     assert Path(out["release"]["bundle"]).parent.name == "demo-decoder"
-    assert out["drive"]["comparison"]["match"], out["drive"]["comparison"]
+    assert out["replay"]["comparison"]["match"], out["replay"]["comparison"]
     # fielded in the registry, and stepped through the runtime session that ships
     from mlflow import MlflowClient
 
@@ -216,7 +216,7 @@ def test_bench_vet_reports_all_three_rates(tmp_path):
     [
         (["release"], "option run"),
         (["release", "run=0123456789abcdef0123456789abcdef"], "0123456789abcdef0123456789abcdef"),
-        (["drive", "bundle=no/such/folder"], "no/such/folder"),
+        (["replay", "bundle=no/such/folder"], "no/such/folder"),
         (["promote", NAME], "usage"),
     ],
     ids=["release without run", "release unknown run", "drive missing bundle", "promote usage"],

@@ -24,7 +24,7 @@ from coreach_plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
 from coreach.policy import DecoderPolicy
 from coreach.release import gate as G
 from coreach.release import registry
-from coreach.release.drive import bundle_limits, compare, drive
+from coreach.release.replay import bundle_limits, compare, replay
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import MANIFEST, BundleError
 from coreach.safety import SafetyLimits
@@ -32,7 +32,7 @@ from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import wilson_interval
 from coreach.vetting.suite import load_suite
 
-GATES = {"success_lo": 0.6, "recovery_lo": 0.5, "max_violations": 0, "authority_median": 0.02,
+GATES = {"success_lo": 0.6, "recovery_lo": 0.5, "max_violations": 0, "stick_gain_median": 0.02,
          "parity_max_abs": 1e-5, "latency_p99_us": 2000.0}  # fmt: skip
 SHELF_GOALS = ["lamp_switch", "bottle", "book", "drawer_knob"]
 
@@ -56,10 +56,10 @@ def _rate(k: int, n: int) -> dict:
     return {"value": k / n, "lo": lo, "hi": hi, "n": n}
 
 
-def _summary(success=(45, 50), recovery=None, authority=0.3, collapsed=False) -> dict:
+def _summary(success=(45, 50), recovery=None, stick_gain=0.3, collapsed=False) -> dict:
     recovery = recovery or {"none": (20, 20), "0.5": (15, 15), "0.8": (10, 15)}
     return {"success": _rate(*success), "recovery": {c: _rate(*kn) for c, kn in recovery.items()},
-            "authority": {"median": authority, "p05": authority / 2, "n": 100, "collapsed": collapsed}}  # fmt: skip
+            "stick_gain": {"median": stick_gain, "p05": stick_gain / 2, "n": 100, "collapsed": collapsed}}  # fmt: skip
 
 
 NO_VIOLATIONS = {"joint_speed": 0, "joint_position": 0, "tool_speed": 0, "total": 0, "steps": 100}
@@ -75,7 +75,7 @@ def test_rates_are_gated_on_the_wilson_lower_bound():
     rec = results["recovery@0.8[s]"]
     assert rec.value == pytest.approx(0.4171, abs=1e-3) and not rec.passed
     assert "recovery@0.5[s]" not in results
-    assert results["violations[s]"].passed and results["authority[s]"].passed
+    assert results["violations[s]"].passed and results["stick_gain[s]"].passed
 
 
 def test_thin_evidence_fails_even_at_a_perfect_rate():
@@ -89,8 +89,8 @@ def test_thin_evidence_fails_even_at_a_perfect_rate():
 def test_collapsed_authority_and_any_violation_fail():
     th = G.Thresholds.from_config(GATES, 1e-5)
     bad = {**NO_VIOLATIONS, "tool_speed": 1, "total": 1}
-    results = {r.name: r for r in G.suite_gates("s", _summary(authority=0.5, collapsed=True), bad, th)}
-    assert not results["authority[s]"].passed  # above the gate's threshold, but vetting flagged it collapsed
+    results = {r.name: r for r in G.suite_gates("s", _summary(stick_gain=0.5, collapsed=True), bad, th)}
+    assert not results["stick_gain[s]"].passed  # above the gate's threshold, but vetting flagged it collapsed
     assert not results["violations[s]"].passed and results["violations[s]"].value == 1
     assert not G.passed(list(results.values()))
 
@@ -175,9 +175,9 @@ def test_onnx_bundle_interface_drives_the_loop_like_the_torch_decoder(bundle):
     torch.testing.assert_close(b.extras["q"], a.extras["q"], rtol=0, atol=1e-5)
     assert float(a.extras["qd"].abs().max()) > 1e-3  # the arm really moved
     assert torch.equal(a.success, b.success)
-    # authority: central differences on the graph against autograd on the torch module
-    fin = torch.isfinite(a.authority)
-    torch.testing.assert_close(b.authority[fin], a.authority[fin], rtol=1e-3, atol=1e-5)
+    # stick_gain: central differences on the graph against autograd on the torch module
+    fin = torch.isfinite(a.stick_gain)
+    torch.testing.assert_close(b.stick_gain[fin], a.stick_gain[fin], rtol=1e-3, atol=1e-5)
 
 
 def test_onnx_bundle_interface_refuses_an_altered_bundle(bundle, tmp_path):
@@ -189,11 +189,11 @@ def test_onnx_bundle_interface_refuses_an_altered_bundle(bundle, tmp_path):
         OnnxBundleInterface(str(copy))
 
 
-def test_drive_without_a_vetting_record_reports_and_passes(bundle, tmp_path):
+def test_replay_without_a_vetting_record_reports_and_passes(bundle, tmp_path):
     cfg = OmegaConf.create({"bundle": str(bundle), "suite": "nominal", "episodes": 1, "threads": 1,
                             "tracking": {"uri": f"sqlite:///{tmp_path / 'absent.db'}"},
                             "tolerance": {"rate_episodes": 2, "median_rel": 0.01}, "fail_on_mismatch": True})
-    out = drive(cfg)
+    out = replay(cfg)
     assert out["comparison"] is None and "no tracking store" in out["comparison_source"]
     assert not (tmp_path / "absent.db").exists()  # looking for a record must not create a store
     assert "exit_code" not in out and set(out["violations"]) >= {"joint_speed", "tool_speed", "workspace"}
@@ -203,9 +203,9 @@ def test_drive_without_a_vetting_record_reports_and_passes(bundle, tmp_path):
 
 def test_replay_comparison_tolerances():
     tol = OmegaConf.create({"rate_episodes": 2, "median_rel": 0.01})
-    summary = _summary(success=(30, 50), recovery={"none": (10, 25), "0.8": (20, 25)}, authority=0.30)
+    summary = _summary(success=(30, 50), recovery={"none": (10, 25), "0.8": (20, 25)}, stick_gain=0.30)
     vetted = {"success/value": 0.6, "success/n": 50, "recovery/none/value": 0.4, "recovery/0.8/value": 0.8,
-              "authority/median": 0.301}  # fmt: skip
+              "stick_gain/median": 0.301}  # fmt: skip
     same = compare(summary, vetted, tol)
     assert same["comparable"] and same["match"] and len(same["rows"]) == 4
     off = compare(summary, {**vetted, "recovery/0.8/value": 0.8 + 3 / 25}, tol)  # 3 episodes apart in a cell of 25
@@ -222,7 +222,7 @@ GATE_OK = {"success[s]": {"value": 0.9, "threshold": 0.6, "op": ">=", "passed": 
 
 def _vetted_version(store, bundle: Path, name: str) -> str:
     mv, _ = registry.register(store.client, name, store.run_id, "test")
-    registry.mark_vetted(store.client, name, str(mv.version), bundle, GATE_OK, "release-run")
+    registry.mark_gate_passed(store.client, name, str(mv.version), bundle, GATE_OK, "release-run")
     return str(mv.version)
 
 
@@ -230,7 +230,7 @@ def test_promote_fields_and_back_restores(store, bundle):
     c, name = store.client, "promote-back"
     v1 = _vetted_version(store, bundle, name)
     v2 = _vetted_version(store, bundle, name)
-    assert {k: str(v) for k, v in c.get_registered_model(name).aliases.items()} == {"vetted": v2}
+    assert {k: str(v) for k, v in c.get_registered_model(name).aliases.items()} == {"gate-passed": v2}
     first = registry.promote(c, name, v1)
     assert first["fielded"] == v1 and first["previous"] is None
     second = registry.promote(c, name, v2)
@@ -242,14 +242,14 @@ def test_promote_fields_and_back_restores(store, bundle):
     with pytest.raises(CoreachError, match="no earlier fielded version"):
         registry.promote_back(c, name)
     rows = {r["version"]: r for r in registry.list_releases(c, name)}
-    assert rows[v1]["aliases"] == ["fielded"] and rows[v2]["aliases"] == ["vetted"]
-    assert rows[v1]["vetted"] and rows[v1]["bundle_status"] == "ok" and rows[v1]["gates_passed"] == 1
+    assert rows[v1]["aliases"] == ["fielded"] and rows[v2]["aliases"] == ["gate-passed"]
+    assert rows[v1]["gate_passed"] and rows[v1]["bundle_status"] == "ok" and rows[v1]["gates_passed"] == 1
 
 
-def test_promote_refuses_an_unvetted_version(store, bundle):
+def test_promote_refuses_a_version_that_did_not_pass_the_gate(store, bundle):
     c, name = store.client, "unvetted"
     mv, _ = registry.register(c, name, store.run_id, "registered by hand, never gated")
-    with pytest.raises(CoreachError, match="not vetted"):
+    with pytest.raises(CoreachError, match="has not passed the release gate"):
         registry.promote(c, name, str(mv.version))
     assert "fielded" not in (c.get_registered_model(name).aliases or {})
 
@@ -326,3 +326,11 @@ def test_release_takes_the_urdf_from_the_robot_protocol(tmp_path):
         _urdf(Planar3(), tmp_path)
     written = _urdf(UrdfArm(), tmp_path)
     assert written.read_bytes() == Path(shipped_urdf()).read_bytes()
+
+
+def test_gate_metric_names_are_readable_paths():
+    from coreach.release.publish import gate_metric_name
+
+    assert gate_metric_name("recovery@0.8[held-out]") == "gate/held-out/recovery_at_0.8"
+    assert gate_metric_name("success[held-out]") == "gate/held-out/success"
+    assert gate_metric_name("latency_p99_us") == "gate/latency_p99_us"

@@ -47,8 +47,8 @@ def record(name: str, seed: int, E: int = 30, T: int = 40) -> RolloutRecord:
         switch_step=torch.full((E,), -1), switch_fraction=sf, success=success, success_step=success_step,
         ee_path=torch.cumsum(0.01 * torch.rand(E, T + 1, 3, generator=g, dtype=torch.float64), 1), belief=belief,
         belief_at_switch=torch.where(torch.isnan(sf), float("nan"), 0.5), error=error,
-        interventions=torch.rand(E, T, generator=g) < 0.05, reachable=torch.rand(E, T, generator=g) < 0.9,
-        authority=0.3 + 0.1 * torch.rand(E, T, generator=g, dtype=torch.float64), mode_switches=torch.zeros(E),
+        limit_scaled=torch.rand(E, T, generator=g) < 0.05, reachable=torch.rand(E, T, generator=g) < 0.9,
+        stick_gain=0.3 + 0.1 * torch.rand(E, T, generator=g, dtype=torch.float64), mode_switches=torch.zeros(E),
     )  # fmt: skip
 
 

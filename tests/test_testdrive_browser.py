@@ -411,8 +411,8 @@ def test_drive_summary_values_on_a_hand_made_drive(bundle, tmp_path):
     assert s["path_efficiency"]["mean"] == pytest.approx(straight / travelled)
     assert s["limit_scalings"]["speed_capped"] == pytest.approx(3 / 20)
     assert s["limit_scalings"]["workspace_limited"] == pytest.approx(1 / 20)
-    assert s["interventions"]["step_share"] == pytest.approx(4 / 20)
-    assert s["authority"]["median"] == pytest.approx(np.linalg.norm(np.full(7, 0.1)) / 0.5)
+    assert s["limit_scaled"]["step_share"] == pytest.approx(4 / 20)
+    assert s["stick_gain"]["median"] == pytest.approx(np.linalg.norm(np.full(7, 0.1)) / 0.5)
 
 
 def test_recorded_drives_relabelled_for_aggregation(bundle, tmp_path):

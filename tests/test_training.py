@@ -67,9 +67,9 @@ def test_run_records_config_losses_dataset_and_decoder(small_cfg, workdir):
     params = run.data.params
     assert params["model._target_"] == "coreach_plugins.model.cvae.BeliefCVAE"
     assert len(params["dataset.fingerprint"]) == 64
-    assert run.data.tags["coreach.dataset"] == params["dataset.fingerprint"]
+    assert run.data.tags["coreach.dataset_sha256"] == params["dataset.fingerprint"]
     # every loss term logged separately, once per epoch, for both splits
-    for term in ("reconstruction", "kl", "goal_entropy", "loss"):
+    for term in ("reconstruction", "kl", "goal_information", "loss"):
         for stage in ("train", "val"):
             history = client.get_metric_history(run.info.run_id, f"{stage}/{term}")
             assert [m.step for m in history] == list(range(summary["epochs"]))

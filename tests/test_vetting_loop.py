@@ -74,7 +74,7 @@ class GoalStickDLS:
         qd = twist @ _dls_matrix(s.jac, self.damping).transpose(-1, -2)  # [E, K, n]
         return qd[:, None]
 
-    def authority(self, s):
+    def stick_gain(self, s):
         G = s.goal_targets.shape[1]
         A = _dls_matrix(s.jac, self.damping) @ self._goal_twists(s).transpose(-1, -2) @ self._directions(G, s.q.dtype)
         return torch.linalg.svdvals(A)[:, -1]  # [E]
@@ -114,7 +114,7 @@ class DirectDLS:
         twist = torch.cat([v, w[:, None, None, :].expand(*v.shape)], dim=-1)  # [E, 2, K, 6]
         return twist @ P[:, None].transpose(-1, -2)
 
-    def authority(self, s):
+    def stick_gain(self, s):
         P, _ = self._parts(s)
         xy, z = [[1.0, 0.0], [0.0, 1.0], [0.0, 0.0]], [[0.0, 0.0], [0.0, 0.0], [1.0, 0.0]]
         cols = torch.tensor([xy, z], dtype=s.q.dtype)  # [M, 3, 2] tool axes driven by the stick per mode
@@ -154,7 +154,7 @@ def test_greedy_operator_succeeds_on_nominal_and_records_shapes():
     assert rec.success.all(), rec.success  # a goal-aware DLS servo with an ideal operator: every episode
     assert calls[-1] == (T, T) and len(calls) == T
     assert rec.ee_path.shape == (E, T + 1, 3) and rec.belief.shape == (E, T + 1, G)
-    assert rec.interventions.shape == rec.reachable.shape == rec.authority.shape == (E, T)
+    assert rec.limit_scaled.shape == rec.reachable.shape == rec.stick_gain.shape == (E, T)
     assert torch.isnan(rec.belief_at_switch).all() and (rec.switch_step == -1).all()
     # success_step is the first state within the tolerances of the end of the fine motion
     rows = torch.arange(E)
@@ -164,8 +164,8 @@ def test_greedy_operator_succeeds_on_nominal_and_records_shapes():
     # the arm holds still once it succeeded
     after = torch.arange(T)[None, :] >= rec.success_step[:, None]
     assert (rec.extras["qd"][after] == 0).all()
-    # authority every 10 steps only, and finite there
-    assert torch.isfinite(rec.authority[:, ::10]).all() and torch.isnan(rec.authority[:, 1::10]).all()
+    # stick_gain every 10 steps only, and finite there
+    assert torch.isfinite(rec.stick_gain[:, ::10]).all() and torch.isnan(rec.stick_gain[:, 1::10]).all()
     # at the start every goal is reachable with this interface
     assert rec.reachable[:, 0].all()
     # the belief ends on the goal the episode completed
@@ -225,7 +225,7 @@ def test_recorded_motion_obeys_the_limits(interface):
     op = BoltzmannOperator(beta=150.0)
     rec = rollout(ROBOT, interface, op, suite, BELIEF, limits, suite.generator())
     q, qd = rec.extras["q"][:, :-1].reshape(-1, 7), rec.extras["qd"].reshape(-1, 7)
-    assert rec.interventions.any()  # the caps were needed
+    assert rec.limit_scaled.any()  # the caps were needed
     qd_max = torch.tensor(limits.qd_max, dtype=torch.float64)
     assert (qd.abs() <= qd_max + 1e-12).all()
     tool = (ROBOT.jacobian(q)[:, :3] @ qd[:, :, None]).squeeze(-1).norm(dim=-1)

@@ -132,8 +132,8 @@ def test_ultimate_bound_masks_and_degenerate_cases():
 # ---- the summary of a record ----
 
 
-def make_record(E: int = 40, T: int = 60, dt: float = 0.1, seed: int = 0, authority: float = 0.4) -> RolloutRecord:
-    """A hand-built record: known successes per switch cell, straight or L-shaped paths, interventions that
+def make_record(E: int = 40, T: int = 60, dt: float = 0.1, seed: int = 0, stick_gain: float = 0.4) -> RolloutRecord:
+    """A hand-built record: known successes per switch cell, straight or L-shaped paths, limit_scaled that
     only happen after success (so must not count), and errors from a first-order system whose decay rate
     depends on belief confidence (k = 1 /s below 0.5, k = 4 /s at 0.95 and above, w = 0.1 m/s)."""
     g = torch.Generator().manual_seed(seed)
@@ -171,9 +171,9 @@ def make_record(E: int = 40, T: int = 60, dt: float = 0.1, seed: int = 0, author
         d = 0.1 * (2 * torch.rand(E, generator=g, dtype=torch.float64) - 1)
         error[:, t + 1] = a * error[:, t] + (1 - a) * d / k
 
-    interventions = torch.zeros(E, T, dtype=torch.bool)
-    interventions[:, -1] = True  # the last step: after success for every success, counted only for failures
-    interventions[0, 0] = True  # one real intervention in a successful episode
+    limit_scaled = torch.zeros(E, T, dtype=torch.bool)
+    limit_scaled[:, -1] = True  # the last step: after success for every success, counted only for failures
+    limit_scaled[0, 0] = True  # one real intervention in a successful episode
     reachable = torch.ones(E, T, dtype=torch.bool)
     reachable[:, 1::4] = False
     return RolloutRecord(
@@ -181,8 +181,8 @@ def make_record(E: int = 40, T: int = 60, dt: float = 0.1, seed: int = 0, author
         goal_initial=goal_final.clone(), goal_final=goal_final, switch_step=torch.full((E,), -1),
         switch_fraction=switch_fraction, success=success, success_step=success_step, ee_path=path,
         belief=belief, belief_at_switch=torch.where(torch.isnan(switch_fraction), float("nan"), 0.6),
-        error=error, interventions=interventions, reachable=reachable,
-        authority=torch.full((E, T), authority, dtype=torch.float64), mode_switches=torch.arange(E) % 3,
+        error=error, limit_scaled=limit_scaled, reachable=reachable,
+        stick_gain=torch.full((E, T), stick_gain, dtype=torch.float64), mode_switches=torch.arange(E) % 3,
     )  # fmt: skip
 
 
@@ -206,19 +206,19 @@ def test_summary_values():
     expected = np.mean([1.0 if i % 2 else 0.5 / 0.7 for i in idx])
     assert s["path_efficiency"]["mean"] == pytest.approx(expected, rel=1e-9)
 
-    visited = sum(int(rec.success_step[e]) if rec.success[e] else rec.interventions.shape[1] for e in range(40))
-    assert s["interventions"]["step_share"] == pytest.approx((14 + 1) / visited)  # 14 failures + episode 0
-    assert s["interventions"]["episodes_with_any"]["value"] == pytest.approx(15 / 40)
+    visited = sum(int(rec.success_step[e]) if rec.success[e] else rec.limit_scaled.shape[1] for e in range(40))
+    assert s["limit_scaled"]["step_share"] == pytest.approx((14 + 1) / visited)  # 14 failures + episode 0
+    assert s["limit_scaled"]["episodes_with_any"]["value"] == pytest.approx(15 / 40)
     assert s["reachability"]["share"] == pytest.approx(0.75, abs=0.02)
-    assert s["authority"]["median"] == pytest.approx(0.4) and not s["authority"]["collapsed"]
+    assert s["stick_gain"]["median"] == pytest.approx(0.4) and not s["stick_gain"]["collapsed"]
     assert s["belief"]["at_switch_original_mean"] == pytest.approx(0.6) and s["belief"]["at_switch_n"] == 30
     on_final = rec.belief[torch.arange(40), :, rec.goal_final].numpy()
     np.testing.assert_allclose(s["belief"]["trace_mean"], on_final.mean(0))
 
 
 def test_summary_flags_collapsed_authority():
-    assert summarise(make_record(authority=0.005))["authority"]["collapsed"]
-    assert not summarise(make_record(authority=0.005), {"collapse_authority": 0.001})["authority"]["collapsed"]
+    assert summarise(make_record(stick_gain=0.005))["stick_gain"]["collapsed"]
+    assert not summarise(make_record(stick_gain=0.005), {"collapse_stick_gain": 0.001})["stick_gain"]["collapsed"]
 
 
 def test_bound_by_confidence_separates_the_regimes():

@@ -29,17 +29,17 @@ commands:
   plugins   list every registered plugin by kind, with where it came from
   compare   leaderboard of an experiment's runs: table, CSV and PNG
             (coreach compare --experiment NAME --sweep TAG --out DIR)
-  release   gate a trained decoder and, if it passes, bundle, register and mark it vetted
+  release   gate a trained decoder and, if it passes, bundle, register and mark it gate-passed
             (coreach release run=<run id> [name=bedside-shelf-decoder]; refusal: gate table, exit 3)
-  drive     replay a release bundle's ONNX decoder through a suite and compare with its vetting
-            (coreach drive bundle=releases/<name>/v<version> suite=held-out)
-  promote   field a vetted version (coreach promote NAME VERSION) or restore the previous one
+  replay    replay a release bundle's ONNX decoder through a suite and compare with its vetting
+            (coreach replay bundle=releases/<name>/v<version> suite=held-out)
+  promote   field a gate-passed version (coreach promote NAME VERSION) or restore the previous one
             (coreach promote NAME --back)
   releases  registered versions, aliases and gate results (coreach releases [NAME])
   try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
             (coreach try-bundle releases/<name>/v<version> [--port 8765] [--record-dir drives])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
-                cVAE with and without goal_entropy (goal: <= 2x the time); bench.threads=1 on shared cores
+                cVAE with and without goal_information (goal: <= 2x the time); bench.threads=1 on shared cores
   bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)
   bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
                 (coreach bench runtime bundle=<folder>; goals: p99 <= 100 us and <= 2x the bare call)

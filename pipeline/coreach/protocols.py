@@ -128,7 +128,7 @@ class Interface(Protocol):
         """Joint velocities [E, M, K, n] (rad/s, before safety limits) for candidate sticks [K, d] in each
         of the M modes, in every episode's current state."""
 
-    def authority(self, state: Any) -> Tensor:
+    def stick_gain(self, state: Any) -> Tensor:
         """Smallest singular value [E] of d(joint velocity)/d(stick) at the current state (rad/s per unit
         stick), in the current mode: near zero means the stick barely moves the arm."""
 

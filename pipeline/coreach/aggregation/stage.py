@@ -145,7 +145,7 @@ def aggregate(cfg: DictConfig) -> dict:
     client, exp_id = tracking.client(cfg.tracking)
     parent = client.create_run(exp_id, run_name=f"aggregate {label}", tags={
         "coreach.stage": "aggregate", "coreach.label": label, "coreach.labeller": labeller.name,
-        "coreach.dataset": base.fingerprint(),
+        "coreach.dataset_sha256": base.fingerprint(),
     }).info.run_id  # fmt: skip
     params = {"rollout_seeds": str(seeds), "figure_seed": str(opts.figure_seed), "operators": str(list(opts.operators)),
               "labeller": labeller.name, "seed": str(cfg.seed), "start_run": str(start or "")}  # fmt: skip

@@ -38,7 +38,7 @@ class Visits:
 def visited_mask(record: RolloutRecord) -> Tensor:
     """[E, T] bool: steps at which the operator was still working on a goal. Excluded: steps after success,
     and steps an arm that completed its initial goal spent holding still before a pending switch."""
-    T = record.interventions.shape[1]
+    T = record.limit_scaled.shape[1]
     t = torch.arange(T)[None, :]
     end = torch.where(record.success, record.success_step.clamp(0, T), torch.full_like(record.success_step, T))
     live = t < end[:, None]

@@ -11,7 +11,7 @@ from rich.table import Table
 
 def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     if as_json:
-        single = command in ("demo", "vet", "release", "drive", "recipes") and len(summaries) == 1
+        single = command in ("demo", "vet", "release", "replay", "recipes") and len(summaries) == 1
         payload = summaries[0] if single else {"runs": summaries}
         print(json.dumps(payload, indent=2, default=str))
         for s in summaries:
@@ -29,9 +29,9 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "release":
         for s in summaries:
             print_release(console, s)
-    elif command == "drive":
+    elif command == "replay":
         for s in summaries:
-            print_drive(console, s)
+            print_replay(console, s)
     elif command == "recipes":
         for s in summaries:
             print_recipes(console, s)
@@ -154,12 +154,12 @@ def print_release(console, s: dict) -> None:
         return
     console.print(f"released {s['name']} version {s['version']} (@{', @'.join(s.get('aliases', []))}): {s['bundle']}")
     console.print(f"release run {s['release_run']} in {s['tracking']}")
-    console.print(f"replay it: coreach drive bundle={s['bundle']} suite={(s.get('suite_refs') or ['held-out'])[0]}")
+    console.print(f"replay it: coreach replay bundle={s['bundle']} suite={(s.get('suite_refs') or ['held-out'])[0]}")
     console.print(f"field it:  coreach promote {s['name']} {s['version']}")
     print_cautions(console)
 
 
-def print_drive(console, s: dict) -> None:
+def print_replay(console, s: dict) -> None:
     """The vetting table of the replay, the limit checks and the comparison with the bundle's vetting."""
     from coreach.vetting.report import terminal_table
 
@@ -226,8 +226,8 @@ def print_demo_release(console, r: dict) -> None:
         console.print(f"runtime session (the bundle's numpy + onnxruntime code): {t['steps']} steps of stick "
                       f"{t['stick']} at 100 Hz moved the tool {t['tool_moved_m'] * 100:.1f} cm; belief {belief}; "
                       f"filters acted: {acted}; fault: {t['fault'] or 'none'}", markup=False)  # fmt: skip
-    if r.get("drive"):
-        print_drive(console, r["drive"])
+    if r.get("replay"):
+        print_replay(console, r["replay"])
 
 
 def print_import(console, s: dict) -> None:

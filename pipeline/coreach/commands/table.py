@@ -13,7 +13,7 @@ HYDRA_COMMANDS = {
     "bench train": ("bench_train", "coreach.bench.train_bench:run"),
     "bench sweep": ("bench_sweep", "coreach.bench.sweep_bench:run"),
     "release": ("release", "coreach.release.stage:release"),
-    "drive": ("drive", "coreach.release.drive:drive"),
+    "replay": ("replay", "coreach.release.replay:replay"),
     "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
     "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
     "recipes": ("recipes", "coreach.commands.recipes:recipes"),
@@ -28,7 +28,7 @@ PLAIN_COMMANDS = {
 }
 
 # commands whose output leads toward a robot: they end with the same cautions as the model card
-CAUTION_COMMANDS = ("vet", "drive", "demo", "release", "promote", "try-bundle")
+CAUTION_COMMANDS = ("vet", "replay", "demo", "release", "promote", "try-bundle")
 
 
 def load_target(spec: str):

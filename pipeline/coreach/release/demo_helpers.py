@@ -58,18 +58,18 @@ def runtime_tryout(bundle: str, seconds: float, stick=(0.6, 0.3), dt: float = 0.
 
 
 def release_best(demo_result: dict, cfg: DictConfig) -> dict:
-    """Release the best demo decoder that passes the gate, then drive its bundle with the runtime.
+    """Release the best demo decoder that passes the gate, then replay its bundle through vetting and step its runtime.
 
     Candidates are tried best first (by the demo's own vetting: success lower bound) until one passes, at
     most cfg.demo.release.max_tries (default 2) of them; each try is the release gate at demo size,
     cfg.demo.release.overrides of conf/release.yaml (default episodes=10, i.e. 30 held-out episodes, and
     latency.steps=1500; about 15-45 s a try on 2 cores). The gate's thresholds stay the release defaults, so
     thin demo evidence may well be refused: that is the honest outcome, and the refusal tables are the result.
-    Returns {"attempts": [release summaries], "release": the passing one or None, "drive": its replay}.
+    Returns {"attempts": [release summaries], "release": the passing one or None, "replay": its replay}.
     """
     from hydra import compose
 
-    from coreach.release.drive import drive
+    from coreach.release.replay import replay
     from coreach.release.stage import release  # the command; imported here as it re-exports these helpers
 
     node = (cfg.get("demo") or {}).get("release") or {}
@@ -84,13 +84,13 @@ def release_best(demo_result: dict, cfg: DictConfig) -> dict:
         if summary["released"]:
             best = summary
             break
-    out = {"attempts": attempts, "release": best, "drive": None, "fielded": None, "tryout": None}
+    out = {"attempts": attempts, "release": best, "replay": None, "fielded": None, "tryout": None}
     if best is not None:
         out["fielded"] = registry.promote(registry.client_for(best["tracking"]), best["name"], best["version"])
         out["tryout"] = runtime_tryout(best["bundle"], float(node.get("tryout_s", 3.0)))
         episodes = next((o.split("=", 1)[1] for o in overrides if o.startswith("episodes=")), "null")
         suite = best["suite_refs"][0]
-        dcfg = compose(config_name="drive", overrides=[f"bundle={best['bundle']}", f"suite={suite}",
+        dcfg = compose(config_name="replay", overrides=[f"bundle={best['bundle']}", f"suite={suite}",
                                                        f"episodes={episodes}"])  # fmt: skip
-        out["drive"] = drive(dcfg)
+        out["replay"] = replay(dcfg)
     return out

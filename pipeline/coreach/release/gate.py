@@ -2,7 +2,7 @@
 
 Rates are gated on their Wilson LOWER bounds, not on the point estimates: the spread between trainings and
 between seeds is large (measured in an earlier experiment on this machine), so a release must show evidence, and thin evidence (few
-episodes) fails honestly instead of passing on luck. A safety intervention (a limit scaling a command down)
+episodes) fails honestly instead of passing on luck. A limit scaling (a limit scaling a command down)
 is the filter doing its job and is not a violation; a violation is a recorded state or command beyond the
 limits, which the shared limits should make impossible.
 """
@@ -30,7 +30,7 @@ class Thresholds:
     success_lo: float
     recovery_lo: float
     max_violations: int
-    authority_median: float
+    stick_gain_median: float
     parity_max_abs: float
     latency_p99_us: float
 
@@ -62,7 +62,7 @@ class Thresholds:
             success_lo=number("success_lo", 0.0, 1.0),
             recovery_lo=number("recovery_lo", 0.0, 1.0),
             max_violations=viol,
-            authority_median=number("authority_median", 0.0, math.inf),
+            stick_gain_median=number("stick_gain_median", 0.0, math.inf),
             parity_max_abs=number("parity_max_abs", 0.0, parity_ceiling),
             latency_p99_us=number("latency_p99_us", 1e-3, 1e9),
         )
@@ -97,7 +97,7 @@ def latest_switch(summary: dict) -> str | None:
 
 
 def suite_gates(suite: str, summary: dict, violations: dict, th: Thresholds) -> list[GateResult]:
-    """Success, late-switch recovery, limit violations and control authority of one suite's rollout."""
+    """Success, late-switch recovery, limit violations and stick gain of one suite's rollout."""
     out = [_check(f"success[{suite}]", "success rate, Wilson lower bound", summary["success"]["lo"], th.success_lo,
                   ">=", _rate_text(summary["success"]))]  # fmt: skip
     cell = latest_switch(summary)
@@ -106,11 +106,11 @@ def suite_gates(suite: str, summary: dict, violations: dict, th: Thresholds) -> 
         out.append(_check(f"recovery@{cell}[{suite}]", f"success after a switch at {cell} of the horizon, Wilson "
                           "lower bound", r["lo"], th.recovery_lo, ">=", _rate_text(r)))  # fmt: skip
     parts = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in violations.items() if k != "steps")
-    out.append(_check(f"violations[{suite}]", "steps beyond the limits (interventions are not violations)",
+    out.append(_check(f"violations[{suite}]", "steps beyond the limits (scalings are not violations)",
                       violations["total"], th.max_violations, "<=", f"{parts} of {violations['steps']} steps"))
-    a = summary["authority"]
-    auth = _check(f"authority[{suite}]", "control authority, median (rad/s per unit stick), not collapsed",
-                  a["median"], th.authority_median, ">=",
+    a = summary["stick_gain"]
+    auth = _check(f"stick_gain[{suite}]", "stick gain, median (rad/s per unit stick), not collapsed",
+                  a["median"], th.stick_gain_median, ">=",
                   f"5th pct {a['p05']:.4g}, n={a['n']}" + (", COLLAPSED" if a["collapsed"] else ""))  # fmt: skip
     if a["collapsed"]:  # below vetting's own collapse threshold: never released, whatever the gate says
         auth = GateResult(**{**asdict(auth), "passed": False})

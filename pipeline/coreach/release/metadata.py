@@ -32,7 +32,7 @@ def _model_card_metrics(summaries: dict) -> dict:
             if cell != "none":
                 out[f"success after a switch at {cell}, {suite} (n={r['n']})"] = rate(r)
         out[f"time to success, median, {suite}"] = {"value": s["time_to_success"]["median"], "unit": "s"}
-        out[f"control authority, median, {suite}"] = {"value": s["authority"]["median"], "unit": "rad/s per stick"}
+        out[f"stick gain, median, {suite}"] = {"value": s["stick_gain"]["median"], "unit": "rad/s per stick"}
     return out
 
 
@@ -50,7 +50,7 @@ def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
         "name": f"{cfg.name} ({label})",
         "goal_names": list(scene.goal_names),
         "nominal_layout": _nominal_layout(scene),
-        "dataset_fingerprint": tags["coreach.dataset"],
+        "dataset_fingerprint": tags["coreach.dataset_sha256"],
         "training_run_id": run.info.run_id,
         "git_commit": tags.get("mlflow.source.git.commit") or "unknown (not run from a git checkout)",
         "episodes": run.data.params.get("dataset.episodes"),

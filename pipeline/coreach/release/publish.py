@@ -16,17 +16,21 @@ from coreach.release.bundle_writer import write_bundle
 from coreach.vetting.metrics import flat_metrics
 
 
-def _metric_name(name: str) -> str:
-    """MLflow metric names allow alphanumerics and _ - . space : / only (gate names carry [suite])."""
-    return re.sub(r"[^A-Za-z0-9_\-. :/]", "_", name)
+def gate_metric_name(gate: str) -> str:
+    """The MLflow metric of a gate: `recovery@0.8[held-out]` -> `gate/held-out/recovery_at_0.8`, `latency_p99_us`
+    -> `gate/latency_p99_us` (metric names allow only alphanumerics and _ - . space : /)."""
+    m = re.fullmatch(r"(?P<check>[^\[]+)\[(?P<suite>[^\]]+)\]", gate)
+    check, suite = (m["check"], m["suite"]) if m else (gate, "")
+    path = "/".join(p for p in ("gate", suite, check.replace("@", "_at_")) if p)
+    return re.sub(r"[^A-Za-z0-9_\-. :/]", "_", path)
 
 
 def _headline(summary: dict) -> dict:
-    return {k: v for k, v in flat_metrics(summary).items() if k.startswith(("success/", "recovery/", "authority/"))}
+    return {k: v for k, v in flat_metrics(summary).items() if k.startswith(("success/", "recovery/", "stick_gain/"))}
 
 
 def publish(cfg, client, policy, run, label: str, ev: dict) -> dict:
-    """Bundle, registry version (vetted), release run, and vetting metrics on the training run; all or nothing."""
+    """Bundle, registry version (gate passed), release run, and vetting metrics on the training run; all or nothing."""
     from mlflow.entities import Metric, Param
 
     name = registry.check_name(str(cfg.name))
@@ -45,20 +49,20 @@ def publish(cfg, client, policy, run, label: str, ev: dict) -> dict:
         folder = root / name / f"v{version}"
         meta = {**ev["meta"], "name": f"{name} v{version} ({label})"}
         write_bundle(folder, policy, ev["urdf"], meta, {"report.html": ev["report"]}, gate=gate)
-        registry.mark_vetted(client, name, version, folder, gate, rid)
+        registry.mark_gate_passed(client, name, version, folder, gate, rid)
         client.set_tag(rid, "coreach.model_version", version)
         client.set_tag(rid, "coreach.bundle", str(folder.resolve()))
         now = int(time.time() * 1000)
         params = {"name": name, "suites": ",".join(ev["summaries"]), "training_run": run_id,
                   **{f"gates.{k}": str(v) for k, v in OmegaConf.to_container(cfg.gates).items()}}  # fmt: skip
         client.log_batch(rid, params=[Param(k, v) for k, v in params.items()])
-        values = [Metric(_metric_name(f"gate/{k}"), v["value"], now, 0) for k, v in gate.items()
+        values = [Metric(gate_metric_name(k), v["value"], now, 0) for k, v in gate.items()
                   if v["value"] is not None]  # fmt: skip
         client.log_batch(rid, metrics=values)
         for fname in ("manifest.json", "MODEL_CARD.md", "report.html"):
             client.log_artifact(rid, str(folder / fname), "bundle")
         client.log_text(rid, json.dumps(ev["summaries"], indent=2, default=str), "summaries.json")
-        # the vetting metrics `coreach drive` compares a replay with, as `coreach vet` records them
+        # the vetting metrics `coreach replay` compares a replay with, as `coreach vet` records them
         for suite, s in ev["summaries"].items():
             client.log_batch(run_id, metrics=[Metric(f"vet/{suite}/{k}", v, now, 0) for k, v in _headline(s).items()])
         client.set_tag(run_id, f"coreach.release.{name}", version)

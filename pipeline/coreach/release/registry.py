@@ -1,7 +1,7 @@
-"""Registry side of releases: vetted model versions, fielding (`coreach promote`) and listing (`coreach releases`).
+"""Registry side of releases: model versions that passed the release gate, fielding (`coreach promote`) and listing (`coreach releases`).
 
-Names of our own: a released version carries the tag coreach.vetted=true and, while it is the newest
-release, the alias `vetted`; the version on the robots carries the alias `fielded`. The fielding history
+Names of our own: a released version carries the tag coreach.gate_passed=true and, while it is the newest
+release, the alias `gate-passed`; the version on the robots carries the alias `fielded`. The fielding history
 is a JSON list of {version, at} in the registered model's tag coreach.fielded_history, newest last, so
 `coreach promote NAME --back` can restore the version fielded before the current one.
 """
@@ -17,9 +17,9 @@ from pathlib import Path
 from coreach.errors import ConfigError, CoreachError
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
 
-VETTED_ALIAS = "vetted"
+GATE_PASSED_ALIAS = "gate-passed"
 FIELDED_ALIAS = "fielded"
-TAG_VETTED = "coreach.vetted"
+TAG_GATE_PASSED = "coreach.gate_passed"
 TAG_BUNDLE = "coreach.bundle"
 TAG_MANIFEST = "coreach.manifest_sha256"
 TAG_GATE = "coreach.gate"
@@ -85,18 +85,18 @@ def register(client, name: str, run_id: str, description: str) -> tuple[object, 
     return version, created
 
 
-def mark_vetted(client, name: str, version: str, bundle: Path, gate: dict, release_run: str) -> None:
-    """Tags that tie the version to its bundle (path and manifest hash), then the vetted alias."""
+def mark_gate_passed(client, name: str, version: str, bundle: Path, gate: dict, release_run: str) -> None:
+    """Tags that tie the version to its bundle (path and manifest hash), then the gate-passed alias."""
     tags = {
         TAG_BUNDLE: str(Path(bundle).resolve()),
         TAG_MANIFEST: sha256_file(Path(bundle) / MANIFEST),
         TAG_GATE: json.dumps(_compact(gate), separators=(",", ":")),
         TAG_RELEASE_RUN: release_run,
-        TAG_VETTED: "true",  # last: a version is vetted only once everything above is in place
+        TAG_GATE_PASSED: "true",  # last: a version has passed the gate only once everything above is in place
     }
     for k, v in tags.items():
         client.set_model_version_tag(name, version, k, v)
-    client.set_registered_model_alias(name, VETTED_ALIAS, version)
+    client.set_registered_model_alias(name, GATE_PASSED_ALIAS, version)
 
 
 def unregister(client, name: str, version: str | None, created_model: bool) -> None:
@@ -118,12 +118,12 @@ def _compact(gate: dict) -> dict:
 
 # ------------------------------------------------------------------------------------- fielding
 def check_fieldable(client, name: str, version: str) -> dict:
-    """Refuse (CoreachError) unless `version` is vetted and its bundle verifies and is the one registered."""
+    """Refuse (CoreachError) unless `version` passed the release gate and its bundle verifies and is the one registered."""
     mv = get_version(client, name, version)
     where = f"model {name} version {version}"
     tags = dict(mv.tags or {})
-    if tags.get(TAG_VETTED) != "true":
-        raise CoreachError(where, f"not vetted (no {TAG_VETTED}=true tag); only versions made by coreach release "
+    if tags.get(TAG_GATE_PASSED) != "true":
+        raise CoreachError(where, f"has not passed the release gate (no {TAG_GATE_PASSED}=true tag); only versions made by coreach release "
                                   "can be fielded")  # fmt: skip
     bundle = tags.get(TAG_BUNDLE)
     if not bundle:
@@ -204,7 +204,7 @@ def _bundle_status(tags: dict) -> str:
 
 
 def list_releases(client, name: str | None = None) -> list[dict]:
-    """Every version of `name` (or of every registered model): aliases, vetted tag, gates, bundle status."""
+    """Every version of `name` (or of every registered model): aliases, gate-passed tag, gates, bundle status."""
     models = [get_model(client, name)] if name else list(client.search_registered_models())
     if name and models[0] is None:
         raise ConfigError(f"model {name}", "no such registered model")
@@ -223,7 +223,7 @@ def list_releases(client, name: str | None = None) -> list[dict]:
                 "name": model.name,
                 "version": str(mv.version),
                 "aliases": sorted(by_version.get(str(mv.version), [])),
-                "vetted": tags.get(TAG_VETTED) == "true",
+                "gate_passed": tags.get(TAG_GATE_PASSED) == "true",
                 "gates_passed": sum(bool(g.get("passed")) for g in gate.values()),
                 "gates": gate,
                 "bundle": tags.get(TAG_BUNDLE),
@@ -269,14 +269,14 @@ def releases_command(args: list[str], as_json: bool) -> int:
     from rich.table import Table
 
     table = Table(title="released decoders (coreach release; field with coreach promote NAME VERSION)")
-    for col in ("model", "version", "aliases", "vetted", "gates", "key values", "bundle", "created"):
+    for col in ("model", "version", "aliases", "gate passed", "gates", "key values", "bundle", "created"):
         table.add_column(col, no_wrap=col in ("model", "version", "created"))
     for r in rows:
         g = r["gates"]
         key = "; ".join(f"{k} {v['value']:.3g}" for k, v in g.items()
                         if k.startswith(("success", "recovery", "latency")) and v["value"] is not None)  # fmt: skip
         table.add_row(r["name"], r["version"], ", ".join("@" + a for a in r["aliases"]) or "-",
-                      "yes" if r["vetted"] else "no", f"{r['gates_passed']}/{len(g)} passed", key or "-",
+                      "yes" if r["gate_passed"] else "no", f"{r['gates_passed']}/{len(g)} passed", key or "-",
                       f"{r['bundle'] or '-'} ({r['bundle_status']})", r["created"])  # fmt: skip
     Console(width=None if sys.stdout.isatty() else 200).print(table)
     if not rows:
@@ -284,5 +284,5 @@ def releases_command(args: list[str], as_json: bool) -> int:
     return 0
 
 
-__all__ = ["VETTED_ALIAS", "FIELDED_ALIAS", "register", "mark_vetted", "unregister", "promote", "promote_back",
+__all__ = ["GATE_PASSED_ALIAS", "FIELDED_ALIAS", "register", "mark_gate_passed", "unregister", "promote", "promote_back",
            "list_releases", "check_fieldable", "promote_command", "releases_command", "check_name", "client_for"]

@@ -4,7 +4,7 @@ Everything the gate needs (rollouts, vetting report, a staged bundle for the par
 made in a temporary folder that is always deleted. A refusal leaves nothing: no bundle folder, no MLflow
 run, no registry version. A pass writes the bundle to <out_dir>/<name>/v<version>/ (renamed into place
 when complete), registers the version from the training run's `decoder` artifact, ties it to the bundle
-with tags, marks it vetted and logs a release run; a failure part-way undoes what was done.
+with tags, marks it gate-passed and logs a release run; a failure part-way undoes what was done.
 """
 
 from __future__ import annotations
@@ -44,8 +44,8 @@ def _training_run(client, ref: str):
     except ConfigError as exc:  # name the option of this command, not the interface's
         raise ConfigError("option run", exc.problem) from None
     run = client.get_run(run_id)
-    if "coreach.dataset" not in run.data.tags:
-        raise ConfigError("option run", f"run {run_id} has no coreach.dataset tag; was it logged by coreach train?")
+    if "coreach.dataset_sha256" not in run.data.tags:
+        raise ConfigError("option run", f"run {run_id} has no coreach.dataset_sha256 tag; was it logged by coreach train?")
     return policy, run_id, run
 
 
@@ -53,14 +53,14 @@ def _vetting_view(summaries: dict) -> dict:
     """The numbers a person reads from each suite (the full summaries are in the release run)."""
     out = {}
     for suite, s in summaries.items():
-        out[suite] = {"success": s["success"], "recovery": s["recovery"], "authority_median": s["authority"]["median"],
+        out[suite] = {"success": s["success"], "recovery": s["recovery"], "stick_gain_median": s["stick_gain"]["median"],
                       "time_to_success_median": s["time_to_success"]["median"], "n_episodes": s["n_episodes"],
                       "diagnosis": without_episodes(s.get("diagnosis"))}
     return out
 
 
 def release(cfg: DictConfig) -> dict:
-    """Gate `cfg.run`; refuse (exit_code 3, nothing written) or publish it as a vetted registry version."""
+    """Gate `cfg.run`; refuse (exit_code 3, nothing written) or publish it as a gate-passed registry version."""
     t0 = time.perf_counter()
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
     os.environ["MLFLOW_TRACKING_URI"] = uri  # load_policy reads runs from the same store
@@ -88,7 +88,7 @@ def release(cfg: DictConfig) -> dict:
         }
         if ok:
             out.update(publish(cfg, client, policy, run, label, ev))
-            out["aliases"] = [registry.VETTED_ALIAS]
+            out["aliases"] = [registry.GATE_PASSED_ALIAS]
         else:
             out["exit_code"] = REFUSED_EXIT
     finally:

@@ -80,7 +80,7 @@ def run_runtime_bench(bundle_folder: str | Path, steps: int = 5000, dt: float = 
     clock = time.perf_counter_ns
     t_session: list[int] = []
     t_bare: list[int] = []
-    runs = belief_updates = interventions = 0
+    runs = belief_updates = limit_scaled = 0
     for i in range(warmup + steps):
         now = i * dt
         angle = 0.5 * now  # one turn of the stick every 12.6 s of simulated time
@@ -106,7 +106,7 @@ def run_runtime_bench(bundle_folder: str | Path, steps: int = 5000, dt: float = 
             t_bare.append(tb)
             runs += info.context is not None
             belief_updates += info.belief_updated
-            interventions += info.intervened
+            limit_scaled += info.intervened
     s50, s99 = _percentiles(t_session)
     b50, b99 = _percentiles(t_bare)
     return {
@@ -123,6 +123,6 @@ def run_runtime_bench(bundle_folder: str | Path, steps: int = 5000, dt: float = 
         "meets_ratio_goal": s99 <= GOAL_RATIO * b99,
         "decoder_runs": runs,
         "belief_updates": belief_updates,
-        "filter_interventions": interventions,
+        "filter_actions": limit_scaled,
         "stages_p50_us": _stages(session, q, np.array([0.5, 0.5] + [0.0] * (m.latent_dim - 2))[: m.latent_dim]),
     }

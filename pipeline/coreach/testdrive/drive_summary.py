@@ -105,12 +105,12 @@ def drive_summary(paths, label: str = "person (recorded drives)", confidence: fl
         "path_efficiency": {"mean": float(np.mean(eff)) if eff else NAN, "n": len(eff)},
         "recovery": {"none": success},  # no scripted goal switch in a person's drive
         "belief": {"at_switch_original_mean": NAN, "at_switch_n": 0},
-        "interventions": {
+        "limit_scaled": {
             "step_share": float(np.mean(step_any)) if n_steps else NAN,
             "episodes_with_any": _rate(any_limit, confidence),
         },
         "limit_scalings": {k: float(np.mean(v)) if v else NAN for k, v in limits.items()},
-        "authority": {"median": a50, "p05": a05, "n": len(auth), "threshold": NAN, "collapsed": False},
+        "stick_gain": {"median": a50, "p05": a05, "n": len(auth), "threshold": NAN, "collapsed": False},
         "reachability": {"share": NAN, "n": 0},
         "mode_switches": {"mean": 0.0},
         "ultimate_bound": [],

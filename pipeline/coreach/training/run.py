@@ -61,7 +61,7 @@ def train(cfg: DictConfig) -> dict:
     if cfg.get("resume"):
         run_id, out = resume_target(client, str(cfg.resume), cfg)
     else:
-        tags = {"coreach.stage": "train", "coreach.label": str(model_name), "coreach.dataset": episodes.fingerprint()}
+        tags = {"coreach.stage": "train", "coreach.label": str(model_name), "coreach.dataset_sha256": episodes.fingerprint()}
         if sweep_tag():
             tags["coreach.sweep"] = sweep_tag()
         commit = tracking.git_commit()

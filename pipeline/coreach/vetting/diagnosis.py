@@ -64,7 +64,7 @@ _FIXES = {
                "left the states the demonstrations cover (start spread, `coreach aggregate`), or the entropy "
                "term's weight is too low to keep the goal reachable"),
     "stuck": ("model / loss", "the arm stops although a stick input toward the goal exists: the decoded "
-              "motion is too small near here (authority, KL weight) or the operator's best choice is to wait"),
+              "motion is too small near here (stick_gain, KL weight) or the operator's best choice is to wait"),
     "progressing": ("model", "the arm is on its way but slow: stick scaling or speed of the decoded motion, "
                     "or a horizon too short for the scene (compare time to success with the baselines)"),
     "oscillating": ("model / data", "the action map flips direction near where episodes end: more epochs or "
@@ -123,7 +123,7 @@ def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict
     missing = [k for k in NEEDED if k not in ex]
     if missing:
         raise ConfigError(f"record {record.interface}/{record.suite}", f"extras lack {missing} for a diagnosis")
-    E, T = record.interventions.shape
+    E, T = record.limit_scaled.shape
     rows = torch.arange(E)
     path = record.ee_path.to(torch.float64)  # [E, T+1, 3]
     W = max(1, min(T, int(round(rules.window_s / record.dt))))
@@ -138,7 +138,7 @@ def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict
     net = (path[rows, T] - path[rows, begin]).norm(dim=-1)  # [E] m
     speed = length / (span * record.dt)
     bits = ex.get("limits")
-    joint = (bits & JOINT_LIMIT) > 0 if bits is not None else record.interventions  # older records: any limit
+    joint = (bits & JOINT_LIMIT) > 0 if bits is not None else record.limit_scaled  # older records: any limit
     limited = (joint & in_win).sum(-1).to(torch.float64) / span
     capped = ((bits & SPEED_CAP) > 0 if bits is not None else torch.zeros_like(joint)) & in_win
     reach = ex.get("reach_goal")

@@ -70,7 +70,7 @@ def plot_failure_action_maps(interface, record, robot, goal_rot, diag: dict, pat
     picks = failure_end_episodes(diag, most)
     if not picks:
         return None
-    T = record.interventions.shape[1]
+    T = record.limit_scaled.shape[1]
     states = [state_from_record(record, robot, episode=r["episode"], step=T, goal_rot=goal_rot) for r in picks]
     fields = [tool_velocities(interface, st, grid) for st in states]
     top, scale = arrow_scale(np.concatenate([v for _, v in fields]), grid)

@@ -104,7 +104,7 @@ def _reachable(dx: Tensor, pos: Tensor, approach: Tensor, tol: float) -> Tensor:
 
 
 def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, plan: EpisodePlan,
-              generator: torch.Generator, progress: Progress | None, authority_every: int,
+              generator: torch.Generator, progress: Progress | None, stick_gain_every: int,
               dtype: torch.dtype) -> dict:  # fmt: skip
     E, T, dt = len(plan), suite.steps, suite.step_dt
     G = len(plan.layout.names)
@@ -212,8 +212,8 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         twist = torch.einsum("eij,emkj->emki", jac, safe) * dt  # [E, M, K, 6] one-step tool motion
         value = _values(twist, to_wp, rot_err, mode, switch_cost, margin)
         rec_reach[:, t] = _reachable(twist[..., :3], pos, approach, tol_pos)
-        if authority_every and t % authority_every == 0:
-            rec_auth[:, t] = interface.authority(state).to(dtype)
+        if stick_gain_every and t % stick_gain_every == 0:
+            rec_auth[:, t] = interface.stick_gain(state).to(dtype)
 
         # --- the operator's choice, perturbed, limited, applied ---
         idx = operator.choose(value, t, generator).long()  # [E], -1 = no input
@@ -250,9 +250,9 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
 
     return dict(
         success=success, success_step=success_step, ee_path=rec_pos, belief=rec_belief,
-        belief_at_switch=belief_at_switch, error=rec_error, interventions=rec_limits > 0, limits=rec_limits,
+        belief_at_switch=belief_at_switch, error=rec_error, limit_scaled=rec_limits > 0, limits=rec_limits,
         reachable=rec_reach.all(dim=-1), reach_goal=rec_reach, orientation_error=rec_ori,
-        authority=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, stick=rec_stick, mode=rec_mode, phase1_step=phase1_step,
+        stick_gain=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, stick=rec_stick, mode=rec_mode, phase1_step=phase1_step,
         initial_done_step=initial_done_step,
     )  # fmt: skip
 
@@ -283,7 +283,7 @@ def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: di
 
 
 def rollout(robot, interface, operator, suite: Suite, belief_model, limits, generator: torch.Generator,
-            progress: Progress | None = None, *, authority_every: int = 10,
+            progress: Progress | None = None, *, stick_gain_every: int = 10,
             dtype: torch.dtype = torch.float64) -> RolloutRecord:  # fmt: skip
     """Run every episode of `suite` with `interface` driven by `operator`, all episodes as one batch.
 
@@ -294,13 +294,13 @@ def rollout(robot, interface, operator, suite: Suite, belief_model, limits, gene
     plan = suite.episodes_plan(generator, robot)
     with torch.no_grad():
         out = _simulate(robot, interface, operator, suite, belief_model, limits, plan, generator, progress,
-                        authority_every, dtype)  # fmt: skip
+                        stick_gain_every, dtype)  # fmt: skip
     return _record(robot, interface, operator, suite, plan, out)
 
 
 def rollout_per_episode(robot, interface, operator, suite: Suite, belief_model, limits,
                         generator: torch.Generator, progress: Progress | None = None, *,
-                        authority_every: int = 10, dtype: torch.dtype = torch.float64) -> RolloutRecord:  # fmt: skip
+                        stick_gain_every: int = 10, dtype: torch.dtype = torch.float64) -> RolloutRecord:  # fmt: skip
     """The same rollouts one episode at a time (a plain Python loop): the reference `coreach bench vet`
     measures the batched loop against. Same plan as `rollout` for the same generator; with a
     deterministic operator (e.g. greedy) the outcomes are identical."""
@@ -311,6 +311,6 @@ def rollout_per_episode(robot, interface, operator, suite: Suite, belief_model, 
         for e in range(E):
             step = None if progress is None else (lambda t, _T, e=e: progress(e * T + t, E * T))
             parts.append(_simulate(robot, interface, operator, suite, belief_model, limits, plan.select([e]),
-                                   generator, step, authority_every, dtype))  # fmt: skip
+                                   generator, step, stick_gain_every, dtype))  # fmt: skip
     out = {k: torch.cat([p[k] for p in parts]) for k in parts[0]}
     return _record(robot, interface, operator, suite, plan, out)

@@ -1,5 +1,5 @@
-"""Closed-loop vetting metrics from a RolloutRecord: rates with Wilson intervals, timing, safety, authority,
-and an empirical ultimate bound on the tracking error as a function of belief confidence.
+"""Closed-loop vetting metrics from a RolloutRecord: rates with Wilson intervals, timing, safety, stick_gain,
+and an empirical ultimate bound on the distance to the waypoint as a function of belief confidence.
 
 Every number is plain Python (float, int, bool, list, dict) so a summary can go to JSON and MLflow as is.
 A step counts as visited while its episode runs: up to its success step, or the whole horizon otherwise.
@@ -32,11 +32,11 @@ class Rate:
 
 @dataclass(frozen=True)
 class Tolerances:
-    """Thresholds of the summary. collapse_authority: median control authority (rad/s per unit stick)
+    """Thresholds of the summary. collapse_stick_gain: median stick gain (rad/s per unit stick)
     below which the latent counts as collapsed (measured in an earlier experiment on this machine); confidence: level of every interval;
     bins: edges of the belief-confidence bins of the ultimate bound."""
 
-    collapse_authority: float = 0.02
+    collapse_stick_gain: float = 0.02
     confidence: float = 0.95
     bins: tuple[float, ...] = (0.0, 0.5, 0.8, 0.95, 1.0)
 
@@ -91,7 +91,7 @@ def rate(successes: Tensor, confidence: float = 0.95) -> Rate:
     return Rate(k / n if n else float("nan"), lo, hi, n)
 
 
-# ---- the ultimate bound of the tracking error ----
+# ---- the ultimate bound of the distance to the waypoint ----
 
 
 def ultimate_bound(error: Tensor, dt: float, mask: Tensor | None = None) -> tuple[float, float, float]:
@@ -146,7 +146,7 @@ def confidence(belief: Tensor) -> Tensor:
 
 
 def bound_by_confidence(record: RolloutRecord, bins=(0.0, 0.5, 0.8, 0.95, 1.0)) -> list[dict]:
-    """Ultimate bound of the tracking error fitted separately on the transitions whose starting state's
+    """Ultimate bound of the distance to the waypoint fitted separately on the transitions whose starting state's
     confidence falls in each bin [lo, hi) (the last bin includes hi)."""
     conf = confidence(record.belief)[:, :-1]  # [E, T]: confidence where each transition starts
     visited = visited_steps(record)
@@ -166,7 +166,7 @@ def bound_by_confidence(record: RolloutRecord, bins=(0.0, 0.5, 0.8, 0.95, 1.0)) 
 
 def visited_steps(record: RolloutRecord) -> Tensor:
     """[E, T] bool: steps taken while the episode ran (before its success step, or all of them)."""
-    T = record.interventions.shape[1]
+    T = record.limit_scaled.shape[1]
     end = torch.where(record.success, record.success_step.clamp(0, T), torch.full_like(record.success_step, T))
     return torch.arange(T)[None, :] < end[:, None]
 
@@ -241,7 +241,7 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
     t_succ = record.success_step[succ].to(torch.float64) * record.dt
     q25, q50, q75 = _quantiles(t_succ, (0.25, 0.5, 0.75))
 
-    auth = record.authority.to(torch.float64)[visited]
+    auth = record.stick_gain.to(torch.float64)[visited]
     auth = auth[torch.isfinite(auth)]
     a05, a50 = _quantiles(auth, (0.05, 0.5))
     reach = record.reachable[visited]
@@ -258,16 +258,16 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
         "path_efficiency": _path_efficiency(record),
         "recovery": _recovery(record, level),
         "belief": _belief(record, level),
-        "interventions": {
-            "step_share": float(record.interventions[visited].float().mean()) if bool(visited.any()) else float("nan"),
-            "episodes_with_any": asdict(rate((record.interventions & visited).any(dim=-1), level)),
+        "limit_scaled": {
+            "step_share": float(record.limit_scaled[visited].float().mean()) if bool(visited.any()) else float("nan"),
+            "episodes_with_any": asdict(rate((record.limit_scaled & visited).any(dim=-1), level)),
         },
-        "authority": {
+        "stick_gain": {
             "median": a50,
             "p05": a05,
             "n": int(auth.numel()),
-            "threshold": tol.collapse_authority,
-            "collapsed": bool(a50 < tol.collapse_authority),  # a nan median (never computed) is not a verdict
+            "threshold": tol.collapse_stick_gain,
+            "collapsed": bool(a50 < tol.collapse_stick_gain),  # a nan median (never computed) is not a verdict
         },
         "reachability": {"share": float(reach.float().mean()) if reach.numel() else float("nan"),
                          "n": int(reach.numel())},  # fmt: skip
@@ -294,15 +294,15 @@ def flat_metrics(summary: dict) -> dict[str, float]:
         if isinstance(value, (bool, int, float)) and math.isfinite(float(value)):
             out[name] = float(value)
 
-    for key in ("success", "time_to_success", "path_efficiency", "authority", "reachability", "mode_switches"):
+    for key in ("success", "time_to_success", "path_efficiency", "stick_gain", "reachability", "mode_switches"):
         for k, v in summary[key].items():
             put(f"{key}/{k}", v)
     for cell, r in summary["recovery"].items():
         for k in ("value", "lo", "hi", "n"):
             put(f"recovery/{cell}/{k}", r[k])
-    put("interventions/step_share", summary["interventions"]["step_share"])
-    for k, v in summary["interventions"]["episodes_with_any"].items():
-        put(f"interventions/episodes_with_any/{k}", v)
+    put("limit_scaled/step_share", summary["limit_scaled"]["step_share"])
+    for k, v in summary["limit_scaled"]["episodes_with_any"].items():
+        put(f"limit_scaled/episodes_with_any/{k}", v)
     put("belief/at_switch_original_mean", summary["belief"]["at_switch_original_mean"])
     for row in summary["ultimate_bound"]:
         for k in ("k", "w", "bound", "n"):

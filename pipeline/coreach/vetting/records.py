@@ -42,9 +42,9 @@ class RolloutRecord:
     belief: Tensor  # [E, T+1, G]
     belief_at_switch: Tensor  # [E] belief on the ORIGINAL goal when the switch happened (nan if none)
     error: Tensor  # [E, T+1] position error (m) to the operator's current waypoint
-    interventions: Tensor  # [E, T] bool: a safety limit changed the command at that step
+    limit_scaled: Tensor  # [E, T] bool: a safety limit changed the command at that step
     reachable: Tensor  # [E, T] bool: for every goal some candidate stick made progress toward it
-    authority: Tensor  # [E, T] smallest singular value of d action / d stick (nan where not computed)
+    stick_gain: Tensor  # [E, T] smallest singular value of d action / d stick (nan where not computed)
     mode_switches: Tensor  # [E] long
     extras: dict = field(default_factory=dict)
 

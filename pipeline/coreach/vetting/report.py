@@ -215,7 +215,7 @@ def plot_recovery(summaries: dict[str, dict], path: Path) -> Path:
 
 
 def plot_bounds(summaries: dict[str, dict], path: Path) -> Path:
-    """Empirical ultimate bound w/k of the tracking error per belief-confidence bin, per interface."""
+    """Empirical ultimate bound w/k of the distance to the waypoint per belief-confidence bin, per interface."""
     fig = Figure(figsize=(6.4, 4.0), layout="constrained")
     ax = fig.subplots()
     bins: list[str] = []
@@ -264,7 +264,7 @@ def fmt_rate(r: dict) -> str:
 
 
 def _rows(s: dict) -> list[tuple[str, str]]:
-    t, a, eff, b = s["time_to_success"], s["authority"], s["path_efficiency"], s["belief"]
+    t, a, eff, b = s["time_to_success"], s["stick_gain"], s["path_efficiency"], s["belief"]
     flag = " — COLLAPSED" if a["collapsed"] else ""
     return [
         ("suite", str(s["suite"])),
@@ -273,9 +273,9 @@ def _rows(s: dict) -> list[tuple[str, str]]:
          f"{fmt_num(t['median'])} [{fmt_num(t['q25'])}, {fmt_num(t['q75'])}] (n={t['n']})"),
         ("path efficiency (mean, successes)", f"{fmt_num(eff['mean'])} (n={eff['n']})"),
         ("belief on original goal at switch (mean)", f"{fmt_num(b['at_switch_original_mean'])} (n={b['at_switch_n']})"),
-        ("safety interventions: share of steps", fmt_num(s["interventions"]["step_share"])),
-        ("episodes with any intervention", fmt_rate(s["interventions"]["episodes_with_any"])),
-        ("control authority, rad/s per stick: median / 5th pct", f"{fmt_num(a['median'])} / {fmt_num(a['p05'])}{flag}"),
+        ("limit scalings: share of steps", fmt_num(s["limit_scaled"]["step_share"])),
+        ("episodes with any limit scaling", fmt_rate(s["limit_scaled"]["episodes_with_any"])),
+        ("stick gain, rad/s per stick: median / 5th pct", f"{fmt_num(a['median'])} / {fmt_num(a['p05'])}{flag}"),
         ("states where every goal was reachable", fmt_num(s["reachability"]["share"])),
         ("mode switches per episode (mean)", fmt_num(s["mode_switches"]["mean"])),
     ]  # fmt: skip
@@ -319,10 +319,10 @@ def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, t
     bound_rows = [[k, r["bin"], fmt_num(r["k"]), fmt_num(r["w"]), fmt_num(r["bound"]), str(r["n"])]
                   for k, s in summaries.items() for r in s["ultimate_bound"]]  # fmt: skip
     bounds = _table(["interface", "confidence", "k (1/s)", "w (m/s)", "bound w/k (m)", "steps"], bound_rows)
-    collapsed = [k for k, s in summaries.items() if s["authority"]["collapsed"]]
+    collapsed = [k for k, s in summaries.items() if s["stick_gain"]["collapsed"]]
     warn = ""
     if collapsed:
-        warn = ('<p class="caution">Control authority collapsed (median below threshold; the stick barely moves '
+        warn = ('<p class="caution">Stick gain collapsed (median below threshold; the stick barely moves '
                 f"the arm) for: {html.escape(', '.join(collapsed))}.</p>")  # fmt: skip
     meta_table = _table(["item", "value"], [[str(k), str(v)] for k, v in meta.items()])
     page = f"""<!DOCTYPE html>
@@ -335,7 +335,7 @@ def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, t
 <h2>Run</h2>{meta_table}
 <h2>Summary</h2>{main}
 <h2>Recovery after a goal switch</h2>{recovery}
-<h2>Ultimate bound of the tracking error by belief confidence</h2>
+<h2>Ultimate bound of the distance to the waypoint by belief confidence</h2>
 <p>Fit of e' = -k e + d with |d| &le; w (w: 95th percentile of the fitted disturbance) on the steps whose
 belief confidence falls in each bin; w/k is where the error settles.</p>{bounds}
 {sections}
@@ -360,13 +360,13 @@ def terminal_table(summaries: dict[str, dict]):
     from rich.table import Table
 
     table = Table(title="Closed-loop vetting (simulated operators; 95% Wilson intervals)")
-    for col in ("interface", "suite", "success", "worst recovery", "time to success (s)", "authority", "interventions"):
+    for col in ("interface", "suite", "success", "worst recovery", "time to success (s)", "stick_gain", "limit_scaled"):
         table.add_column(col)
     for label, s in summaries.items():
         switched = {k: v for k, v in s["recovery"].items() if k != "none"}
         worst = min(switched.items(), key=lambda kv: kv[1]["value"] if not math.isnan(kv[1]["value"]) else 2.0) \
             if switched else None  # fmt: skip
-        a = s["authority"]
+        a = s["stick_gain"]
         auth = f"{fmt_num(a['median'])}" + (" [red]collapsed[/red]" if a["collapsed"] else "")
         table.add_row(
             label,
@@ -376,6 +376,6 @@ def terminal_table(summaries: dict[str, dict]):
             f"{fmt_num(s['time_to_success']['median'])} [{fmt_num(s['time_to_success']['q25'])}, "
             f"{fmt_num(s['time_to_success']['q75'])}]",
             auth,
-            fmt_num(s["interventions"]["step_share"]),
+            fmt_num(s["limit_scaled"]["step_share"]),
         )
     return table

@@ -176,7 +176,7 @@ def _log_vetting(client, exp_id, label, source, suite, summary, out: Path) -> st
     client.log_artifacts(rid, str(out), "report")
     client.set_terminated(rid)
     if source:
-        headline = {k: v for k, v in metrics.items() if k.startswith(("success/", "recovery/", "authority/"))}
+        headline = {k: v for k, v in metrics.items() if k.startswith(("success/", "recovery/", "stick_gain/"))}
         client.log_batch(source, metrics=[Metric(f"vet/{suite.name}/{k}", v, now, 0) for k, v in headline.items()])
         client.set_tag(source, f"coreach.vet.{suite.name}", rid)
     return rid

@@ -3,7 +3,7 @@
 Policy blending (Dragan & Srinivasa 2013): a = (1 - alpha) a_user + alpha a_robot. Here a_user is direct
 control (`direct`), a_robot is the scripted demonstrator's servo law (same gains) toward the most likely
 goal, and alpha grows linearly with how far the belief is from uniform, capped at `alpha_max` so the user
-always keeps part of the authority.
+always keeps part of the stick_gain.
 """
 
 from __future__ import annotations
@@ -96,9 +96,9 @@ class PolicyBlending(DirectControl):
         robot = self.robot_action(state).to(user.dtype)[:, None, None, :]
         return (1.0 - a) * user + a * robot
 
-    def authority(self, state) -> Tensor:
+    def stick_gain(self, state) -> Tensor:
         # The servo term does not depend on the stick, so blending only scales the user's share.
-        return (1.0 - self.alpha(state.belief)).to(state.jac.dtype) * super().authority(state)
+        return (1.0 - self.alpha(state.belief)).to(state.jac.dtype) * super().stick_gain(state)
 
 
 @dataclass

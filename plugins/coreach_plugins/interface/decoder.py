@@ -147,7 +147,7 @@ class DecoderInterface:
                     for i in range(qd.shape[1])]  # fmt: skip
         return torch.stack(rows, dim=1)
 
-    def authority(self, state) -> Tensor:
+    def stick_gain(self, state) -> Tensor:
         # At the stick's centre: for a nonlinear decoder the gain varies over the box, and the centre is where
         # every motion starts from.
         jac = self.stick_jacobian(self._context(state)).detach()

@@ -84,7 +84,7 @@ class DirectControl:
 
     def mode_maps(self, state) -> Tensor:
         """Joint velocity per unit stick, J_dls @ S_m [E, M, n, 2] (linear in the stick, so act and
-        authority share it)."""
+        stick_gain share it)."""
         J = state.jac  # [E, 6, n]
         E, _, n = J.shape
         M = len(MODE_ROWS)
@@ -101,7 +101,7 @@ class DirectControl:
         sticks = episode_sticks(stick, maps.shape[0], f"interface {self.name}").to(maps.dtype)  # [E, K, 2]
         return torch.einsum("emnd,ekd->emkn", maps, sticks)
 
-    def authority(self, state) -> Tensor:
+    def stick_gain(self, state) -> Tensor:
         maps = self.mode_maps(state)  # [E, M, n, 2]
         current = maps[torch.arange(maps.shape[0]), state.mode.long()]  # [E, n, 2]
         return torch.linalg.svdvals(current)[..., -1]

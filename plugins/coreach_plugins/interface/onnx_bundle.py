@@ -1,6 +1,6 @@
 """`onnx_bundle` interface: a released bundle's decoder.onnx, run by onnxruntime inside the vetting loop.
 
-This is how `coreach drive` proves a bundle is the vetted decoder: the loop (plant, operator, limits) is the
+This is how `coreach replay` proves a bundle is the vetted decoder: the loop (plant, operator, limits) is the
 torch vetting loop, but every command comes from the exported graph, loaded from a verified bundle.
 """
 
@@ -17,7 +17,7 @@ from coreach.errors import ConfigError
 from coreach_plugins.interface.direct import STICK_DIM, episode_sticks
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
 
-# Stick step of the central differences behind `authority`: the graph runs in float32, so the rounding error
+# Stick step of the central differences behind `stick_gain`: the graph runs in float32, so the rounding error
 # of a difference quotient is about 1e-7 * |qd| / FD_STEP; the truncation error is zero wherever the decoder
 # is piecewise linear across +-FD_STEP and O(FD_STEP^2) for smooth activations.
 FD_STEP = 1e-2
@@ -84,7 +84,7 @@ class OnnxBundleInterface:
         qd = qd.astype(np.float64).reshape(E, 2, STICK_DIM, -1)  # [E, sign, axis, n]
         return ((qd[:, 0] - qd[:, 1]) / (2 * FD_STEP)).transpose(0, 2, 1)  # [E, n, 2]
 
-    def authority(self, state) -> Tensor:
+    def stick_gain(self, state) -> Tensor:
         jac = self.stick_jacobian(self._context(state))
         return torch.from_numpy(np.linalg.svd(jac, compute_uv=False)[..., -1]).to(state.context.dtype)
 

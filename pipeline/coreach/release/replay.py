@@ -1,4 +1,4 @@
-"""`coreach drive`: close the vetting loop with a released bundle and compare the outcome with its vetting.
+"""`coreach replay`: close the vetting loop with a released bundle and compare the outcome with its vetting.
 
 What comes from where: the plant (forward kinematics, q += qd dt), the simulated operator and the episode
 plan are the torch vetting loop (`coreach.vetting.loop.rollout`); the decoder is the bundle's decoder.onnx
@@ -102,14 +102,14 @@ def compare(summary: dict, vetted: dict | None, tol) -> dict | None:
     add("success/value", summary["success"]["value"], _rate_tol(tol, n))
     for cell, r in summary["recovery"].items():
         add(f"recovery/{cell}/value", r["value"], _rate_tol(tol, r["n"]))
-    add("authority/median", summary["authority"]["median"], float(tol.median_rel), relative=True)
+    add("stick_gain/median", summary["stick_gain"]["median"], float(tol.median_rel), relative=True)
     match = bool(rows) and all(r["ok"] for r in rows)
     return {"comparable": True, "match": match, "rows": rows,
             "note": f"rates within {tol.rate_episodes} episodes' worth; medians within "
                     f"{float(tol.median_rel):.1%} relative"}  # fmt: skip
 
 
-def drive(cfg: DictConfig) -> dict:
+def replay(cfg: DictConfig) -> dict:
     """Replay `cfg.bundle` on `cfg.suite`; the summary, limit checks and the comparison with its vetting."""
     from coreach.tracking import resolve_uri
 
@@ -155,4 +155,4 @@ def drive(cfg: DictConfig) -> dict:
     return out
 
 
-__all__ = ["drive", "compare", "vetted_metrics", "bundle_robot", "bundle_limits", "NOTE"]
+__all__ = ["replay", "compare", "vetted_metrics", "bundle_robot", "bundle_limits", "NOTE"]

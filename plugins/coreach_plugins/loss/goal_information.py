@@ -1,4 +1,4 @@
-"""`goal_entropy` loss term: make the stick box reach every goal by maximising the information a stick
+"""`goal_information` loss term: make the stick box reach every goal by maximising the information a stick
 position carries about which goal the decoded motion heads for."""
 
 from __future__ import annotations
@@ -93,7 +93,7 @@ class GoalReachability:
     stream the rest of training draws from.
     """
 
-    name: str = "goal_entropy"
+    name: str = "goal_information"
 
     def __init__(
         self,
@@ -108,20 +108,20 @@ class GoalReachability:
             ok_type = isinstance(value, int) if integer else isinstance(value, (int, float))
             if isinstance(value, bool) or not ok_type or not math.isfinite(value) or value <= 0:
                 kind = "an integer" if integer else "a finite number"
-                raise ConfigError(f"loss.goal_entropy.{where}", f"expected {kind} > 0, got {value!r}")
+                raise ConfigError(f"loss.goal_information.{where}", f"expected {kind} > 0, got {value!r}")
             return value
 
         if not (isinstance(weight, (int, float)) and math.isfinite(weight) and weight >= 0):
-            raise ConfigError("loss.goal_entropy.weight", f"expected a finite number >= 0, got {weight!r}")
+            raise ConfigError("loss.goal_information.weight", f"expected a finite number >= 0, got {weight!r}")
         if not isinstance(seed_offset, int) or isinstance(seed_offset, bool):
-            raise ConfigError("loss.goal_entropy.seed_offset", f"expected an integer, got {seed_offset!r}")
+            raise ConfigError("loss.goal_information.seed_offset", f"expected an integer, got {seed_offset!r}")
         self.weight = float(weight)
         self.samples = positive("samples", samples, integer=True)
         self.sharpness = float(positive("sharpness", sharpness))  # 1/m
         self.horizon = float(positive("horizon", horizon))  # s
         self.seed_offset = seed_offset
         if contexts is not None and (not isinstance(contexts, int) or isinstance(contexts, bool) or contexts <= 0):
-            raise ConfigError("loss.goal_entropy.contexts", f"expected an integer > 0 or null, got {contexts!r}")
+            raise ConfigError("loss.goal_information.contexts", f"expected an integer > 0 or null, got {contexts!r}")
         self.contexts = contexts
 
     def _generator(self, device: torch.device, global_step: int, stream: int = 0) -> torch.Generator:
@@ -169,9 +169,9 @@ class GoalReachability:
 
 @dataclass
 class GoalReachabilityConfig:
-    """User-settable options of the `goal_entropy` term."""
+    """User-settable options of the `goal_information` term."""
 
-    _target_: str = "coreach_plugins.loss.goal_entropy.GoalReachability"
+    _target_: str = "coreach_plugins.loss.goal_information.GoalReachability"
     weight: float = number(0.1, 0.0)
     samples: int = integer(16, 2, " (sticks decoded per context)")
     sharpness: float = number(200.0, 0.0, open_range=True)
