@@ -16,7 +16,7 @@ from coreach.protocols import Robot
 from coreach.scenario import load_scenario
 
 # Bump when the demonstrator's behaviour changes so stale caches are not reused.
-GENERATOR_VERSION = 2
+GENERATOR_VERSION = 3  # 3: actions pass the shared safety filter (tool-speed cap, look-ahead before the caps)
 
 
 @dataclass(kw_only=True)
