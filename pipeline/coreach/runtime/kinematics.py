@@ -84,8 +84,7 @@ class Chain:
         if self._has_prismatic:  # a slide leaves the rotation at identity
             c = np.where(self._prismatic, 1.0, c)
             s = np.where(self._prismatic, 0.0, s)
-        local = np.empty(q.shape + (4, 4))
-        local[...] = self._m
+        local = self._m.copy() if q.ndim == 1 else np.broadcast_to(self._m, q.shape + (4, 4)).copy()
         local[..., 0:2] = c[..., None, None] * self._m01 + s[..., None, None] * self._m1n0
         if self._has_prismatic:
             slide = np.where(self._prismatic, q, 0.0)[..., None]  # [..., n, 1]
@@ -97,11 +96,13 @@ class Chain:
         q = np.asarray(q, dtype=np.float64)
         local = self._locals(q)
         frames = np.empty_like(local)
-        if q.ndim == 1:  # the control loop's case: np.dot on 2-D arrays has less overhead than matmul
-            frames[0] = local[0]
+        if q.ndim == 1:  # the control loop's case: ndarray.dot on 2-D views has the least call overhead
+            out, steps = list(frames), list(local)
+            acc = out[0]
+            acc[...] = steps[0]
             for i in range(1, self.dof):
-                np.dot(frames[i - 1], local[i], out=frames[i])
-            return frames, np.dot(frames[-1], self._tool)
+                acc = acc.dot(steps[i], out=out[i])
+            return frames, acc.dot(self._tool)
         frames[..., 0, :, :] = local[..., 0, :, :]
         for i in range(1, self.dof):
             np.matmul(frames[..., i - 1, :, :], local[..., i, :, :], out=frames[..., i, :, :])
@@ -120,7 +121,7 @@ class Chain:
         # the motion gives the joint's world axis (column 2) and origin (column 3).
         z = frames[..., :3, 2]  # [..., n, 3]
         p_tool = tool[..., :3, 3]
-        lever = p_tool[..., None, :] - frames[..., :3, 3]  # [..., n, 3]
+        lever = p_tool[..., None, :] - frames[..., :3, 3]  # [..., n, 3] joint origin -> tool
         jac = np.empty(z.shape[:-1] + (6,))  # [..., n, 6]
         jac[..., :3] = z[..., _YZX] * lever[..., _ZXY] - z[..., _ZXY] * lever[..., _YZX]  # z x lever
         jac[..., 3:] = z
