@@ -138,7 +138,7 @@ def read_path(path: str | Path, tool_link: str) -> tuple[str, list[JointSpec]]:
     path = Path(path).expanduser()
     where = str(path)
     if not path.is_file():
-        raise ConfigError(where, "URDF file not found (relative paths are from the working directory)")
+        raise ConfigError(where, "file not found; expected a URDF file (relative paths are from the working directory)")
     try:
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
