@@ -123,7 +123,11 @@ class Chain:
         p_tool = tool[..., :3, 3]
         lever = p_tool[..., None, :] - frames[..., :3, 3]  # [..., n, 3] joint origin -> tool
         jac = np.empty(z.shape[:-1] + (6,))  # [..., n, 6]
-        jac[..., :3] = z[..., _YZX] * lever[..., _ZXY] - z[..., _ZXY] * lever[..., _YZX]  # z x lever
+        if lever.ndim == 2:  # single q: a cross product of seven 3-vectors is cheaper on Python floats
+            jac[:, :3] = [(a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0])
+                          for a, b in zip(z.tolist(), lever.tolist())]
+        else:
+            jac[..., :3] = z[..., _YZX] * lever[..., _ZXY] - z[..., _ZXY] * lever[..., _YZX]  # z x lever
         jac[..., 3:] = z
         if self._has_prismatic:  # a slide moves the tool along its axis and does not turn it
             jac[..., self._prismatic, :3] = z[..., self._prismatic, :]
