@@ -94,3 +94,48 @@ def test_angle_between_matches_scipy_magnitude(rotations):
     ours = angle_between(torch.tensor((rotations * other).as_matrix()), torch.tensor(other.as_matrix())).numpy()
     np.testing.assert_allclose(ours, rotations.magnitude(), atol=1e-7)
     assert ours.shape == (len(rotations),)
+
+
+def test_numpy_and_torch_give_the_same_values(rotations):
+    # one array-API implementation: numpy in, numpy out; torch in, torch out; values equal and equal to scipy
+    other = Rotation.random(len(rotations), random_state=11)
+    rpy = other.as_euler("xyz")
+    R_np, R2_np = (rotations * other).as_matrix(), other.as_matrix()
+    results = {}
+    for name, conv in (("numpy", np.asarray), ("torch", torch.tensor)):
+        out = (
+            rpy_to_matrix(conv(rpy)),
+            matrix_to_quat(conv(R_np)),
+            quat_to_matrix(conv(_wxyz(rotations))),
+            rotation_error(conv(R_np), conv(R2_np)),
+            angle_between(conv(R_np), conv(R2_np)),
+        )
+        expected_type = np.ndarray if name == "numpy" else torch.Tensor
+        assert all(isinstance(x, expected_type) for x in out)
+        results[name] = [np.asarray(x) for x in out]
+    for a, b in zip(results["numpy"], results["torch"]):
+        np.testing.assert_allclose(a, b, atol=1e-12, rtol=0)
+    ours_rpy, ours_quat, ours_mat, ours_err, ours_ang = results["numpy"]
+    # scipy.spatial.transform.Rotation is the reference for each
+    np.testing.assert_allclose(ours_rpy, R2_np, atol=1e-12, rtol=0)
+    assert _same_quat(ours_quat, _wxyz(rotations * other)).max() < 1e-12
+    np.testing.assert_allclose(ours_mat, rotations.as_matrix(), atol=1e-12, rtol=0)
+    np.testing.assert_allclose(ours_ang, np.linalg.norm(rotations.as_rotvec(), axis=-1), atol=1e-6, rtol=0)
+    assert np.isfinite(ours_err).all()
+
+
+def test_torch_gradients_flow_through_rotation_error():
+    rpy = torch.tensor([[0.3, -0.2, 1.1]], dtype=torch.float64, requires_grad=True)
+    target = torch.tensor(Rotation.from_euler("xyz", [0.1, 0.4, -0.5]).as_matrix())[None]
+    rotation_error(target, rpy_to_matrix(rpy)).norm().backward()
+    assert rpy.grad is not None and torch.isfinite(rpy.grad).all() and rpy.grad.abs().sum() > 0
+
+
+def test_geometry_does_not_import_torch():
+    # the runtime imports coreach.geometry and must stay torch-free
+    import subprocess
+    import sys
+
+    code = "import sys, coreach.geometry, coreach.runtime.kinematics; print('torch' in sys.modules)"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"

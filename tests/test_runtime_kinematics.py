@@ -7,7 +7,8 @@ import pytest
 
 from coreach.errors import ConfigError
 from coreach_plugins.robot.urdf_arm import shipped_urdf
-from coreach.runtime.kinematics import Chain, quat_to_matrix, rpy_matrix
+from coreach.geometry import rpy_to_matrix
+from coreach.runtime.kinematics import Chain, quat_to_matrix
 
 pin = pytest.importorskip("pinocchio")
 
@@ -150,7 +151,7 @@ def test_rotation_helpers_match_pinocchio():
     rng = np.random.default_rng(3)
     for rpy in rng.uniform(-3, 3, size=(20, 3)):
         # pinocchio.rpy.rpyToMatrix uses the same URDF convention R = Rz(y) Ry(p) Rx(r)
-        np.testing.assert_allclose(rpy_matrix(rpy), pin.rpy.rpyToMatrix(*rpy), atol=1e-14, rtol=0)
+        np.testing.assert_allclose(rpy_to_matrix(rpy), pin.rpy.rpyToMatrix(*rpy), atol=1e-14, rtol=0)
     quats = rng.standard_normal((20, 4))
     for wxyz, mat in zip(quats, quat_to_matrix(quats)):
         ref = pin.Quaternion(*wxyz).normalized().toRotationMatrix()  # pinocchio's constructor takes w, x, y, z
@@ -179,3 +180,16 @@ def test_bad_urdf_is_one_clear_error(tmp_path, edit, where, problem):
 def test_unknown_tool_link_names_the_links():
     with pytest.raises(ConfigError, match="tool link 'hand' not found"):
         Chain.from_string(MIXED_URDF, tool_link="hand")
+
+
+def test_single_q_with_prismatic_and_continuous_joints_matches_pinocchio(tmp_path):
+    # the single-q path of Chain is separate from the batched one; pinocchio is the reference
+    path = tmp_path / "mixed5.urdf"
+    path.write_text(MIXED_URDF)
+    chain = Chain.from_urdf(path, tool_link="grip")
+    q = np.array([0.4, 0.07, -0.6, 9.0, 1.1])
+    pos, rot, jac = chain.fk_jacobian(q)
+    ref_pos, ref_rot, ref_jac = _pin_reference(str(path), "grip", q[None], chain.joint_names)
+    np.testing.assert_allclose(pos, ref_pos[0], atol=1e-12, rtol=0)
+    np.testing.assert_allclose(rot, ref_rot[0], atol=1e-12, rtol=0)
+    np.testing.assert_allclose(jac, ref_jac[0], atol=1e-12, rtol=0)

@@ -359,20 +359,6 @@ def test_server_modules_import_without_torch():
     assert out.stdout.strip() == "[]"
 
 
-def test_matrix_to_quat_matches_scipy():
-    """Reference: scipy.spatial.transform.Rotation (scalar-last quaternions, reordered to w, x, y, z)."""
-    from scipy.spatial.transform import Rotation
-
-    from coreach.testdrive.sim import matrix_to_quat
-
-    rots = Rotation.random(200, random_state=0)
-    for r in list(rots) + [Rotation.from_rotvec([math.pi, 0, 0]), Rotation.from_rotvec([0, 0, math.pi - 1e-9])]:
-        x, y, z, w = r.as_quat()
-        want = np.array([w, x, y, z]) * (1 if w >= 0 else -1)
-        got = matrix_to_quat(r.as_matrix())
-        assert np.allclose(got, want, atol=1e-9) or (abs(want[0]) < 1e-9 and np.allclose(got, -want, atol=1e-9))
-
-
 def test_drive_summary_values_on_a_hand_made_drive(bundle, tmp_path):
     """Known geometry: the tool goes start -> a corner -> the end of goal 0's fine motion in 20 steps,
     arriving at step 15; speed caps act on 3 steps, the workspace box on 1."""

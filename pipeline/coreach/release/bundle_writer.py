@@ -259,9 +259,6 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
 
 
 def _urdf_robot_name(text: str) -> str | None:
-    import xml.etree.ElementTree as ET
+    from coreach.urdf import robot_name  # the one URDF reader; the text was already parsed by Chain
 
-    try:
-        return ET.fromstring(text).get("name")
-    except ET.ParseError:
-        return None
+    return robot_name(text)

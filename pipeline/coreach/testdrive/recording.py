@@ -28,12 +28,12 @@ def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> 
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    from coreach.testdrive.sim import matrix_to_quat
+    from coreach.geometry import matrix_to_quat
 
     m = drive.manifest
     ep = Episode(
         episode_id=episode, goal=goal, q=np.stack([r["q"] for r in rows]), qd=np.stack([r["qd"] for r in rows]),
-        ee_pos=np.stack([r["pos"] for r in rows]), ee_quat=np.stack([matrix_to_quat(r["rot"]) for r in rows]),
+        ee_pos=np.stack([r["pos"] for r in rows]), ee_quat=matrix_to_quat(np.stack([r["rot"] for r in rows])),
         goal_pos=m.goal_pos.copy(), goal_quat=m.goal_quat.copy(), goal_fine=m.goal_fine.copy(),
     )  # fmt: skip
     table = to_table(EpisodeSet([ep], list(m.goal_names), list(m.joint_names), drive.dt, source=SOURCE))

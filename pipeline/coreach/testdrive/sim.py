@@ -17,6 +17,7 @@ import numpy as np
 import onnxruntime as ort
 
 from coreach.context import build_context
+from coreach.geometry import angle_between
 from coreach.runtime.bundle import BundleError, sha256_bytes, sha256_file
 from coreach.runtime.kinematics import MOVABLE, Chain, parse_chain, quat_to_matrix
 from coreach.runtime.session import Session
@@ -26,33 +27,6 @@ MAP_GRID = 5  # action map: MAP_GRID x MAP_GRID sticks over the box
 MAX_RECORD_STEPS = 60_000  # 20 min at 50 Hz: a forgotten recording stops growing
 NEVER = -1e9  # stick time before any input arrived: finite (a non-finite time would latch a fault), and stale
 FLAGS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")
-
-
-def matrix_to_quat(rot: np.ndarray) -> np.ndarray:
-    """3x3 rotation -> unit quaternion (w, x, y, z), w >= 0 (Shepperd's method: the largest diagonal term)."""
-    m = np.asarray(rot, dtype=np.float64)
-    tr = m[0, 0] + m[1, 1] + m[2, 2]
-    if tr > max(m[0, 0], m[1, 1], m[2, 2]):
-        s = 2.0 * math.sqrt(1.0 + tr)
-        q = [0.25 * s, (m[2, 1] - m[1, 2]) / s, (m[0, 2] - m[2, 0]) / s, (m[1, 0] - m[0, 1]) / s]
-    elif m[0, 0] >= m[1, 1] and m[0, 0] >= m[2, 2]:
-        s = 2.0 * math.sqrt(1.0 + m[0, 0] - m[1, 1] - m[2, 2])
-        q = [(m[2, 1] - m[1, 2]) / s, 0.25 * s, (m[0, 1] + m[1, 0]) / s, (m[0, 2] + m[2, 0]) / s]
-    elif m[1, 1] >= m[2, 2]:
-        s = 2.0 * math.sqrt(1.0 + m[1, 1] - m[0, 0] - m[2, 2])
-        q = [(m[0, 2] - m[2, 0]) / s, (m[0, 1] + m[1, 0]) / s, 0.25 * s, (m[1, 2] + m[2, 1]) / s]
-    else:
-        s = 2.0 * math.sqrt(1.0 + m[2, 2] - m[0, 0] - m[1, 1])
-        q = [(m[1, 0] - m[0, 1]) / s, (m[0, 2] + m[2, 0]) / s, (m[1, 2] + m[2, 1]) / s, 0.25 * s]
-    q = np.array(q)
-    q /= np.linalg.norm(q)
-    return -q if q[0] < 0 else q
-
-
-def rotation_angle(a: np.ndarray, b: np.ndarray) -> float:
-    """Angle (rad) of the rotation between two 3x3 rotations."""
-    c = (np.trace(a.T @ b) - 1.0) / 2.0
-    return math.acos(min(1.0, max(-1.0, c)))
 
 
 def goal_progress(phase: int, pos, rot, targets: np.ndarray, goal_rot: np.ndarray, pos_tol: float,
@@ -65,7 +39,7 @@ def goal_progress(phase: int, pos, rot, targets: np.ndarray, goal_rot: np.ndarra
     """
     if phase >= 2:
         return 2
-    if rotation_angle(rot, goal_rot) >= ang_tol or math.dist(pos, targets[phase]) >= pos_tol:
+    if float(angle_between(rot, goal_rot)) >= ang_tol or math.dist(pos, targets[phase]) >= pos_tol:
         return phase
     return phase + 1
 

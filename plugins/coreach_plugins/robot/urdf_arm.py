@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import copy
-import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from importlib import resources
@@ -15,17 +14,14 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
-from coreach.runtime.kinematics import urdf_floats  # numpy-only: one reading of URDF numbers
+from coreach.geometry import rpy_to_matrix
+from coreach.urdf import MOVABLE, JointSpec, read_path
 
 SHIPPED_URDF = "reach7.urdf"
 # Elbow bent 129 deg, tool 0.35 m in front of the base at z = 0.27 m, approach axis tilted 56 deg below
 # horizontal. Smallest singular value of the 6x7 Jacobian there is 0.12 (about the median over
 # random configurations), so the pose is well clear of a singularity.
 REACH7_HOME = (0.0, -0.15, 0.0, 2.25, 0.0, 0.45, 0.0)
-
-_MOVABLE = ("revolute", "continuous", "prismatic")
-_FIXED = ("fixed",)
-
 
 def shipped_urdf() -> str:
     """Path of the reach7 URDF shipped inside coreach_plugins."""
@@ -43,113 +39,15 @@ class UrdfArmConfig:
     _target_: str = "coreach_plugins.robot.urdf_arm.UrdfArm"
 
 
-@dataclass(frozen=True)
-class _JointSpec:
-    """One joint on the base-to-tool path, read from the URDF in float64."""
-
-    name: str
-    kind: str
-    parent: str
-    child: str
-    xyz: tuple[float, float, float]
-    rpy: tuple[float, float, float]
-    axis: tuple[float, float, float]
-    lower: float
-    upper: float
-    velocity: float
+def _origin_matrix(spec: JointSpec) -> Tensor:
+    """4x4 float64 transform of a URDF <origin> (rotation from coreach.geometry, the shared convention)."""
+    m = torch.eye(4, dtype=torch.float64)
+    m[:3, :3] = rpy_to_matrix(torch.tensor(spec.rpy, dtype=torch.float64))
+    m[:3, 3] = torch.tensor(spec.xyz, dtype=torch.float64)
+    return m
 
 
-def _parse_path(where: str, text: str, tool_link: str) -> list[_JointSpec]:
-    """The joints from the root link to `tool_link`, root first, checked for what kinematics needs."""
-    try:
-        robot = ET.fromstring(text)
-    except ET.ParseError as exc:
-        raise ConfigError(where, f"not a readable URDF: XML error {exc}") from exc
-    if robot.tag != "robot":
-        raise ConfigError(where, f"not a URDF: root element is <{robot.tag}>, expected <robot>")
-    links = [link.get("name") for link in robot.findall("link")]
-    if tool_link not in links:
-        shown = ", ".join(str(n) for n in links[:12]) + (", ..." if len(links) > 12 else "")
-        raise ConfigError(where, f"tool link {tool_link!r} not found; links are: {shown or '(none)'}")
-
-    parent_joint: dict[str, ET.Element] = {}
-    for joint in robot.findall("joint"):
-        child = joint.find("child")
-        child_name = None if child is None else child.get("link")
-        if child_name is None or joint.find("parent") is None:
-            raise ConfigError(where, f"joint {joint.get('name')!r} needs <parent link=...> and <child link=...>")
-        if child_name in parent_joint:
-            raise ConfigError(where, f"link {child_name!r} is the child of two joints; a URDF must be a tree")
-        parent_joint[child_name] = joint
-
-    path: list[ET.Element] = []
-    link = tool_link
-    while link in parent_joint:
-        joint = parent_joint[link]
-        path.append(joint)
-        link = joint.find("parent").get("link")  # type: ignore[union-attr]
-        if len(path) > len(parent_joint):
-            raise ConfigError(where, "joints form a loop; a URDF must be a tree")
-    path.reverse()
-
-    specs = []
-    for joint in path:
-        jname = str(joint.get("name"))
-        jwhere = f"{where} (joint {jname!r})"
-        kind = joint.get("type", "")
-        if kind not in _MOVABLE + _FIXED:
-            raise ConfigError(jwhere, f"joint type {kind!r} unsupported; expected one of "
-                                      f"{', '.join(_MOVABLE + _FIXED)}")
-        if joint.find("mimic") is not None:
-            raise ConfigError(jwhere, "mimic joints between the base and the tool link are unsupported")
-        origin = joint.find("origin")
-        xyz = urdf_floats(None if origin is None else origin.get("xyz"), (0.0, 0.0, 0.0), jwhere, "origin xyz")
-        rpy = urdf_floats(None if origin is None else origin.get("rpy"), (0.0, 0.0, 0.0), jwhere, "origin rpy")
-        axis_el = joint.find("axis")
-        # URDF default axis is x (pytorch_kinematics would assume z; we follow the URDF specification)
-        axis = urdf_floats(None if axis_el is None else axis_el.get("xyz"), (1.0, 0.0, 0.0), jwhere, "axis xyz")
-        lower, upper, velocity = -math.inf, math.inf, math.inf
-        if kind in _MOVABLE:
-            if math.hypot(*axis) < 1e-9:
-                raise ConfigError(jwhere, "axis xyz must be a non-zero vector")
-            limit = joint.find("limit")
-            vel = None if limit is None else limit.get("velocity")
-            if vel is None:
-                raise ConfigError(jwhere, "no velocity limit; expected <limit velocity=...> (rad/s or m/s)")
-            (velocity,) = urdf_floats(vel, (0.0,), jwhere, "limit velocity")
-            if velocity <= 0:
-                raise ConfigError(jwhere, f"limit velocity must be > 0, got {velocity}")
-            if kind != "continuous":
-                lo = urdf_floats(limit.get("lower"), (math.nan,), jwhere, "limit lower")[0]  # type: ignore[union-attr]
-                hi = urdf_floats(limit.get("upper"), (math.nan,), jwhere, "limit upper")[0]  # type: ignore[union-attr]
-                if not lo < hi:  # also catches missing bounds (nan)
-                    raise ConfigError(jwhere, f"expected <limit lower=... upper=...> with lower < upper, "
-                                              f"got lower={limit.get('lower')} upper={limit.get('upper')}")  # type: ignore[union-attr]
-                lower, upper = lo, hi
-        parent = str(joint.find("parent").get("link"))  # type: ignore[union-attr]
-        child = str(joint.find("child").get("link"))  # type: ignore[union-attr]
-        specs.append(_JointSpec(jname, kind, parent, child, xyz, rpy, axis, lower, upper, velocity))  # type: ignore[arg-type]
-    if not any(s.kind in _MOVABLE for s in specs):
-        raise ConfigError(where, f"no movable joint between the root link and tool link {tool_link!r}")
-    return specs
-
-
-def _origin_matrix(xyz: Sequence[float], rpy: Sequence[float]) -> Tensor:
-    """4x4 float64 transform of a URDF <origin>: R = Rz(yaw) Ry(pitch) Rx(roll), fixed axes."""
-    r, p, y = rpy
-    cr, sr, cp, sp, cy, sy = math.cos(r), math.sin(r), math.cos(p), math.sin(p), math.cos(y), math.sin(y)
-    return torch.tensor(
-        [
-            [cy * cp, cy * sp * sr - sy * cr, cy * sp * cr + sy * sr, xyz[0]],
-            [sy * cp, sy * sp * sr + cy * cr, sy * sp * cr - cy * sr, xyz[1]],
-            [-sp, cp * sr, cp * cr, xyz[2]],
-            [0.0, 0.0, 0.0, 1.0],
-        ],
-        dtype=torch.float64,
-    )
-
-
-def _path_urdf(specs: list[_JointSpec]) -> str:
+def _path_urdf(specs: list[JointSpec]) -> str:
     """A URDF holding only the base-to-tool path, so pytorch_kinematics never trips over unrelated
     elements (transmissions, simulator tags, gripper branches) of the user's file."""
     robot = ET.Element("robot", name="coreach_path")
@@ -169,7 +67,7 @@ def _path_urdf(specs: list[_JointSpec]) -> str:
     return ET.tostring(robot, encoding="unicode")
 
 
-def _build_chain(where: str, tool_link: str, specs: list[_JointSpec]) -> pk.SerialChain:
+def _build_chain(where: str, tool_link: str, specs: list[JointSpec]) -> pk.SerialChain:
     """A float64 serial chain from `pytorch_kinematics`, with origins and axes taken from our parse.
 
     pytorch_kinematics reads URDF origins through float32 (errors ~1e-8 m per joint); re-setting them
@@ -179,14 +77,13 @@ def _build_chain(where: str, tool_link: str, specs: list[_JointSpec]) -> pk.Seri
         tree = pk.build_chain_from_urdf(_path_urdf(specs)).to(dtype=torch.float64)
         for spec in specs:
             frame = tree.find_frame(spec.child)
-            frame.joint.offset = pk.Transform3d(matrix=_origin_matrix(spec.xyz, spec.rpy))
-            axis = torch.tensor(spec.axis, dtype=torch.float64)
-            frame.joint.axis = axis / axis.norm()
+            frame.joint.offset = pk.Transform3d(matrix=_origin_matrix(spec))
+            frame.joint.axis = torch.tensor(spec.axis, dtype=torch.float64)  # unit length from the parser
         chain = pk.SerialChain(tree, tool_link, dtype=torch.float64)
     except Exception as exc:  # the URDF reader raises many kinds; the user needs one line
         problem = " ".join(f"{type(exc).__name__}: {exc}".split())
         raise ConfigError(where, f"pytorch_kinematics could not build the chain to {tool_link!r}: {problem}") from exc
-    movable = [s.name for s in specs if s.kind in _MOVABLE]
+    movable = [s.name for s in specs if s.kind in MOVABLE]
     if chain.get_joint_parameter_names() != movable:
         raise ConfigError(where, f"joint order read by pytorch_kinematics {chain.get_joint_parameter_names()} "
                                  f"differs from the URDF path {movable}")
@@ -211,19 +108,12 @@ class UrdfArm:
         shipped = shipped_urdf()
         path = Path(urdf).expanduser() if urdf else Path(shipped)
         where = str(path)
-        if not path.is_file():
-            raise ConfigError(where, "URDF file not found (robot.urdf; relative paths are from the working directory)")
-        try:
-            text = path.read_text(encoding="utf-8")
-        except (OSError, UnicodeDecodeError) as exc:
-            raise ConfigError(where, f"cannot read the URDF file: {exc}") from exc
-
-        specs = _parse_path(where, text, tool_link)
+        _, specs = read_path(path, tool_link)
         self._chains: dict[tuple[torch.dtype, torch.device], pk.SerialChain] = {}
         master = _build_chain(where, tool_link, specs)
         self._chains[(torch.float64, torch.device("cpu"))] = master
 
-        movable = [s for s in specs if s.kind in _MOVABLE]
+        movable = [s for s in specs if s.kind in MOVABLE]
         self.joint_names: list[str] = [s.name for s in movable]
         self._lower = torch.tensor([s.lower for s in movable], dtype=torch.float64)
         self._upper = torch.tensor([s.upper for s in movable], dtype=torch.float64)
