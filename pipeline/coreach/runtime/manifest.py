@@ -138,6 +138,7 @@ class Manifest:
 
 
 def _declared() -> list:
+    """Manifest's fields that live in the JSON (all but `folder` and `raw`), in declaration order."""
     return [f for f in fields(Manifest) if "json" in f.metadata]
 
 
@@ -262,7 +263,8 @@ def _json_numbers(value: Any, null: float | None = None) -> Any:
 
 def _same(a: Any, b: Any) -> bool:
     if isinstance(a, dict) or isinstance(b, dict):
-        return isinstance(a, dict) and isinstance(b, dict) and a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+        return (isinstance(a, dict) and isinstance(b, dict) and a.keys() == b.keys()
+                and all(_same(a[k], b[k]) for k in a))
     if isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
         return np.array_equal(a, b)
     return a == b
@@ -276,6 +278,8 @@ def _check_across(m: Manifest) -> None:
         raise _bad("normalisation.context_cols", f"integer column indices in [0, {m.context_dim})", cols.tolist())
     if m.onnx != onnx_interface(m.latent_dim, m.context_dim, m.action_dim):
         raise _bad("decoder.onnx", f"{onnx_interface(m.latent_dim, m.context_dim, m.action_dim)}", m.onnx)
+    if m.urdf != "robot.urdf":  # the runtime reads the arm from this name
+        raise _bad("robot.urdf", "'robot.urdf'", m.urdf)
     if not np.all(m.q_lower < m.q_upper):
         raise _bad("robot.q_lower", "values below robot.q_upper", m.q_lower.tolist())
     if not np.all(m.workspace_min < m.workspace_max):
