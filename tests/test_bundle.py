@@ -98,6 +98,14 @@ def test_written_bundle_verifies_and_lists_every_file(bundle, policy):
     assert not list(bundle.parent.glob(".bundle.*"))  # the temporary folder was renamed, not left behind
 
 
+def test_manifest_read_back_writes_the_same_json(bundle):
+    """Reading and re-writing loses nothing: same keys, nesting, order and values (json module as reference)."""
+    text = (bundle / MANIFEST).read_text()
+    m = verify_bundle(bundle)
+    assert json.dumps(m.to_json(), indent=2, allow_nan=False) + "\n" == text
+    assert m.speed_fraction == 1.0 and m.urdf == "robot.urdf"
+
+
 def test_safetensors_copy_reloads_to_the_same_policy(bundle, policy):
     again = DecoderPolicy.load(bundle)
     stick, context = (torch.from_numpy(a) for a in sample_inputs(policy, 64, seed=5))

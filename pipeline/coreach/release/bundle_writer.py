@@ -3,6 +3,7 @@ parity check, model card, hashes; written to a temporary folder, verified, then 
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import json
 import math
@@ -16,7 +17,8 @@ import numpy as np
 
 from coreach.errors import ConfigError
 from coreach.runtime.manifest import (CORE_FILES, DEFAULT_DEADBAND, DEFAULT_LOOKAHEAD_S, DEFAULT_WATCHDOG_S,
-                                      MANIFEST, PARITY_TOLERANCE, SCHEMA_VERSION, BundleError)
+                                      MANIFEST, PARITY_TOLERANCE, SCHEMA_VERSION, BundleError, Manifest,
+                                      onnx_interface)
 from coreach.runtime.verify import _check_name, sha256_file, verify_bundle
 
 
@@ -41,7 +43,7 @@ def _plain(value: Any, where: str) -> Any:
     raise ConfigError(where, f"expected JSON data (numbers, strings, lists, mappings), got {type(value).__name__}")
 
 
-def _vector(meta: dict, key: str, length: int, default: Any = ...) -> list[float]:
+def _vector(meta: dict, key: str, length: int, default: Any = ...) -> np.ndarray:
     node: Any = meta
     for part in key.split("."):
         node = node.get(part, ...) if isinstance(node, dict) else ...
@@ -55,10 +57,10 @@ def _vector(meta: dict, key: str, length: int, default: Any = ...) -> list[float
         raise ConfigError(f"release meta.{key}", f"expected {length} numbers, got {node!r}") from None
     if len(out) != length or not all(math.isfinite(v) for v in out):
         raise ConfigError(f"release meta.{key}", f"expected {length} finite numbers, got {node!r}")
-    return out
+    return np.array(out, dtype=np.float64)
 
 
-def _matrix(meta: dict, key: str, rows: int, cols: int) -> list[list[float]]:
+def _matrix(meta: dict, key: str, rows: int, cols: int) -> np.ndarray:
     node = meta.get("nominal_layout", {}).get(key) if isinstance(meta.get("nominal_layout"), dict) else None
     arr = None
     try:
@@ -67,7 +69,7 @@ def _matrix(meta: dict, key: str, rows: int, cols: int) -> list[list[float]]:
         pass
     if arr is None or arr.shape != (rows, cols) or not np.isfinite(arr).all():
         raise ConfigError(f"release meta.nominal_layout.{key}", f"expected {rows} rows of {cols} finite numbers")
-    return arr.tolist()
+    return arr
 
 
 def _number(meta: dict, key: str, default: float, lo: float, hi: float = math.inf) -> float:
@@ -87,10 +89,6 @@ def _text(meta: dict, key: str) -> str:
     if not isinstance(v, str) or not v:
         raise ConfigError(f"release meta.{key}", "missing; expected a non-empty string")
     return v
-
-
-def _limits(values: np.ndarray) -> list[float | None]:
-    return [float(v) if math.isfinite(v) else None for v in values]
 
 
 def _belief_section(meta: dict) -> dict:
@@ -113,13 +111,15 @@ def _belief_section(meta: dict) -> dict:
     return _plain(model.to_manifest(), "release meta.belief")
 
 
-def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parity: dict) -> dict:
-    """The manifest.json content for `policy` on `chain` (coreach.runtime.kinematics.Chain).
+def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parity: dict,
+                   folder: str | Path = ".") -> Manifest:
+    """The manifest of a bundle in `folder` for `policy` on `chain` (coreach.runtime.kinematics.Chain).
 
     meta (required): goal_names, nominal_layout {goal_pos [G,3], goal_quat [G,4] (w,x,y,z), goal_fine
     [G,3]}, dataset_fingerprint, training_run_id, git_commit, safety.workspace_min/max [3] (m, base frame).
     meta (optional): tool_link, q_home, belief {beta, floor, min_motion}, safety {tcp_speed_max,
     watchdog_timeout_s, lookahead_s, speed_fraction}, stick {deadband}, tolerances {...}.
+    Bad metadata is a one-line ConfigError naming `release meta.<key>`; `files` stays empty for write_bundle.
     """
     # imported here so verify_bundle needs no more than numpy
     from coreach.safety import DEFAULT_TCP_SPEED_MAX
@@ -135,59 +135,50 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
                                                 f"(context dof {spec.dof}); expected the same arm")
     fraction = _number(meta, "safety.speed_fraction", 1.0, 1e-6, 1.0)
     home_default = np.where(np.isfinite(chain.q_lower + chain.q_upper), (chain.q_lower + chain.q_upper) / 2, 0.0)
-    q_home = _vector(meta, "q_home", n, home_default.tolist())
-    buf = {k: v.detach().cpu().double().numpy() for k, v in policy.state_dict().items()
-           if k in ("context_cols", "ctx_mean", "ctx_std", "act_mean", "act_std", "stick_scale")}
-    return {
-        "schema_version": SCHEMA_VERSION,
-        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "decoder": {
-            "latent_dim": d,
-            "context_dim": spec.width,
-            "action_dim": n,
-            "n_goals": g,
-            "context_blocks": list(policy.decoder.context_blocks),
-            "onnx": {"file": "decoder.onnx", "inputs": {"stick": ["batch", d], "context": ["batch", spec.width]},
-                     "outputs": {"qd": ["batch", n]}, "dtype": "float32"},
-        },
-        "joint_names": list(chain.joint_names),
-        "goal_names": list(goal_names),
-        "nominal_layout": {
-            "goal_pos": _matrix(meta, "goal_pos", g, 3),
-            "goal_quat": _matrix(meta, "goal_quat", g, 4),
-            "goal_fine": _matrix(meta, "goal_fine", g, 3),
-        },
-        "normalisation": {k: buf[k].tolist() for k in ("context_cols", "ctx_mean", "ctx_std", "act_mean",
-                                                       "act_std", "stick_scale")},
-        "stick": {"box_low": -1.0, "box_high": 1.0,
-                  "deadband": _number(meta, "stick.deadband", DEFAULT_DEADBAND, 0.0, 0.5)},
-        "belief": _belief_section(meta),
-        "robot": {
-            "name": robot_name,
-            "urdf": "robot.urdf",
-            "tool_link": chain.tool_link,
-            "q_lower": _limits(chain.q_lower),
-            "q_upper": _limits(chain.q_upper),
-            "qd_max": (chain.qd_max * fraction).tolist(),
-            "q_home": q_home,
-        },
-        "safety": {
-            "tcp_speed_max": _number(meta, "safety.tcp_speed_max", DEFAULT_TCP_SPEED_MAX, 1e-6),
-            "workspace_min": _vector(meta, "safety.workspace_min", 3),
-            "workspace_max": _vector(meta, "safety.workspace_max", 3),
-            "watchdog_timeout_s": _number(meta, "safety.watchdog_timeout_s", DEFAULT_WATCHDOG_S, 1e-4, 10.0),
-            "lookahead_s": _number(meta, "safety.lookahead_s", DEFAULT_LOOKAHEAD_S, 1e-4, 10.0),
-            "speed_fraction": fraction,
-        },
-        "tolerances": {"onnx_parity_max_abs_diff": PARITY_TOLERANCE,
-                       **_plain(meta.get("tolerances") or {}, "release meta.tolerances")},
-        "gate": _plain(gate or {}, "release gate"),
-        "dataset_fingerprint": _text(meta, "dataset_fingerprint"),
-        "training_run_id": _text(meta, "training_run_id"),
-        "git_commit": _text(meta, "git_commit"),
-        "onnx_parity": parity,
-        "files": {},  # filled by write_bundle once every other file is written
-    }
+    buffers = {k: v.detach().cpu().double().numpy() for k, v in policy.state_dict().items()
+               if k in ("context_cols", "ctx_mean", "ctx_std", "act_mean", "act_std", "stick_scale")}
+    return Manifest(
+        folder=Path(folder),
+        schema_version=SCHEMA_VERSION,
+        created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        latent_dim=d,
+        context_dim=spec.width,
+        action_dim=n,
+        n_goals=g,
+        context_blocks=tuple(policy.decoder.context_blocks),
+        onnx=onnx_interface(d, spec.width, n),
+        joint_names=tuple(chain.joint_names),
+        goal_names=tuple(goal_names),
+        goal_pos=_matrix(meta, "goal_pos", g, 3),
+        goal_quat=_matrix(meta, "goal_quat", g, 4),
+        goal_fine=_matrix(meta, "goal_fine", g, 3),
+        normalisation=buffers,
+        stick_low=-1.0,
+        stick_high=1.0,
+        deadband=_number(meta, "stick.deadband", DEFAULT_DEADBAND, 0.0, 0.5),
+        belief=_belief_section(meta),
+        robot_name=robot_name,
+        urdf="robot.urdf",
+        tool_link=chain.tool_link,
+        q_lower=np.asarray(chain.q_lower, dtype=np.float64),
+        q_upper=np.asarray(chain.q_upper, dtype=np.float64),
+        qd_max=np.asarray(chain.qd_max, dtype=np.float64) * fraction,
+        q_home=_vector(meta, "q_home", n, home_default.tolist()),
+        tcp_speed_max=_number(meta, "safety.tcp_speed_max", DEFAULT_TCP_SPEED_MAX, 1e-6),
+        workspace_min=_vector(meta, "safety.workspace_min", 3),
+        workspace_max=_vector(meta, "safety.workspace_max", 3),
+        watchdog_timeout_s=_number(meta, "safety.watchdog_timeout_s", DEFAULT_WATCHDOG_S, 1e-4, 10.0),
+        lookahead_s=_number(meta, "safety.lookahead_s", DEFAULT_LOOKAHEAD_S, 1e-4, 10.0),
+        speed_fraction=fraction,
+        tolerances={"onnx_parity_max_abs_diff": PARITY_TOLERANCE,
+                    **_plain(meta.get("tolerances") or {}, "release meta.tolerances")},
+        gate=_plain(gate or {}, "release gate"),
+        dataset_fingerprint=_text(meta, "dataset_fingerprint"),
+        training_run_id=_text(meta, "training_run_id"),
+        git_commit=_text(meta, "git_commit"),
+        onnx_parity=dict(parity),
+        files={},  # filled by write_bundle once every other file is written
+    )
 
 
 def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta: dict,
@@ -222,7 +213,7 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
             raise ConfigError(f"release extra_files[{name!r}]", f"source file {src} not found")
 
     # check the metadata before the (slower) export, so a mistake costs nothing
-    manifest = build_manifest(policy, chain, robot_name, meta, gate or {}, {})
+    manifest = build_manifest(policy, chain, robot_name, meta, gate or {}, {}, out_dir)
     n_parity = meta.get("parity_n", 10_000)
     if isinstance(n_parity, bool) or not isinstance(n_parity, int) or n_parity < 1:
         raise ConfigError("release meta.parity_n", f"expected a positive integer, got {n_parity!r}")
@@ -240,12 +231,13 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
         for name, src in extra_files.items():
             (tmp / name).parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(src, tmp / name)
-        manifest["onnx_parity"] = {"n": n_parity, "max_abs_diff": diff}
-        card_meta = {**meta, "robot_name": robot_name, "safety": manifest["safety"]}
-        (tmp / "MODEL_CARD.md").write_text(model_card(card_meta, manifest["gate"], meta.get("metrics") or {}),
+        manifest = dataclasses.replace(manifest, onnx_parity={"n": n_parity, "max_abs_diff": diff})
+        card_meta = {**meta, "robot_name": robot_name, "safety": manifest.to_json()["safety"]}
+        (tmp / "MODEL_CARD.md").write_text(model_card(card_meta, manifest.gate, meta.get("metrics") or {}),
                                            encoding="utf-8")
-        manifest["files"] = {name: sha256_file(tmp / name) for name in [*CORE_FILES, *extra_files]}
-        text = json.dumps(manifest, indent=2, allow_nan=False)
+        manifest = dataclasses.replace(manifest, files={name: sha256_file(tmp / name)
+                                                        for name in [*CORE_FILES, *extra_files]})
+        text = json.dumps(manifest.to_json(), indent=2, allow_nan=False)
         (tmp / MANIFEST).write_text(text + "\n", encoding="utf-8")
         verify_bundle(tmp)
         os.chmod(tmp, 0o755)  # mkdtemp makes the folder private; a release is meant to be read
