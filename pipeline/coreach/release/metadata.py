@@ -37,7 +37,7 @@ def _model_card_metrics(summaries: dict) -> dict:
 
 
 def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
-    """The `meta` write_bundle needs (see coreach.runtime.bundle.build_manifest)."""
+    """The `meta` write_bundle needs (see coreach.release.bundle_writer.build_manifest)."""
     scene = suites[0].scene
     for s in suites[1:]:
         if s.goal_names != scene.goal_names:
