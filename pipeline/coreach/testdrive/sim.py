@@ -19,8 +19,9 @@ import onnxruntime as ort
 from coreach.context import build_context
 from coreach.geometry import angle_between
 from coreach.runtime.bundle import BundleError, sha256_bytes, sha256_file
-from coreach.runtime.kinematics import MOVABLE, Chain, parse_chain, quat_to_matrix
+from coreach.runtime.kinematics import Chain, quat_to_matrix
 from coreach.runtime.session import Session
+from coreach.urdf import parse_path
 
 PATH_POINTS = 400  # tool-path points kept for the page (8 s at 50 Hz)
 MAP_GRID = 5  # action map: MAP_GRID x MAP_GRID sticks over the box
@@ -49,11 +50,11 @@ class LinkFrames:
     runtime's Chain, so the drawing and the Session's kinematics cannot disagree)."""
 
     def __init__(self, urdf: str, tool_link: str):
-        joints = parse_chain(urdf, tool_link)
+        joints = parse_path(urdf, tool_link)
         self.names, self._chains, self._dofs = [], [], []
         n = 0
         for i, j in enumerate(joints):
-            if j.kind in MOVABLE:
+            if j.movable:
                 n += 1
                 self.names.append(j.child)
                 self._chains.append(Chain(joints[: i + 1], j.child))
