@@ -59,3 +59,31 @@ def test_specs_carry_what_the_bundle_check_needs():
     assert all(s.lower < s.upper and s.velocity > 0 for s in movable)
     assert robot_name(text) == "reach7"
 
+
+
+@pytest.mark.parametrize(
+    ("edit", "expected"),
+    [
+        # URDF specification (wiki.ros.org/urdf/XML/joint): a joint's parent and child name links of the robot
+        (lambda t: t.replace('<parent link="link_2"/>', '<parent link="link_two"/>', 1),
+         "joint 'joint_3': parent link 'link_two' is not a <link>"),
+        (lambda t: t.replace('<child link="link_1"/>', '<child link="link_one"/>', 1),
+         "joint 'joint_1': child link 'link_one' is not a <link>"),
+        # ... and names are unique (links among links, joints among joints)
+        (lambda t: t.replace('<joint name="joint_2"', '<joint name="joint_1"', 1), "joint name 'joint_1' used twice"),
+        (lambda t: t.replace('<link name="link_1">', '<link name="base_link">', 1), "link name 'base_link' used twice"),
+        # a child with two parent joints is not a tree
+        (lambda t: t.replace('<child link="link_2"/>', '<child link="link_1"/>', 1), "child of two joints"),
+        (lambda t: t.replace('<parent link="base_link"/>', '<parent link="link_2"/>', 1), "loop"),
+        (lambda t: t.replace('<parent link="link_1"/>', '<parent link="link_1"/><mimic joint="joint_1"/>', 1),
+         "mimic joints"),
+    ],
+    ids=["missing-parent", "missing-child", "duplicate-joint", "duplicate-link", "two-parents", "cycle", "mimic"],
+)
+def test_structural_faults_are_refused_with_one_line_naming_the_element(edit, expected):
+    text = open(shipped_urdf(), encoding="utf-8").read()
+    bad = edit(text)
+    assert bad != text
+    with pytest.raises(ConfigError) as err:
+        parse_path(bad, "tool")
+    assert expected in str(err.value) and "\n" not in str(err.value)

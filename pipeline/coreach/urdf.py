@@ -109,11 +109,23 @@ def parse_path(text: str, tool_link: str, where: str = "robot.urdf") -> list[Joi
     if tool_link not in links:
         shown = ", ".join(str(n) for n in links[:12]) + (", ..." if len(links) > 12 else "")
         raise ConfigError(where, f"tool link {tool_link!r} not found; links are: {shown or '(none)'}")
+    for kind, names in (("link", links), ("joint", [j.get("name") for j in robot.findall("joint")])):
+        seen: set = set()
+        for n in names:
+            if n is None or n in seen:
+                raise ConfigError(where, f"{kind} name {n!r} " + ("missing" if n is None else "used twice") +
+                                  f"; expected every {kind} to have a unique name")
+            seen.add(n)
+    known = set(links)
     parent_joint: dict[str, ET.Element] = {}
     for joint in robot.findall("joint"):
         child, parent = joint.find("child"), joint.find("parent")
         if child is None or parent is None or child.get("link") is None or parent.get("link") is None:
             raise ConfigError(where, f"joint {joint.get('name')!r} needs <parent link=...> and <child link=...>")
+        for role, el in (("parent", parent), ("child", child)):
+            if el.get("link") not in known:
+                raise ConfigError(where, f"joint {joint.get('name')!r}: {role} link {el.get('link')!r} is not a "
+                                         f"<link> of this URDF")
         if child.get("link") in parent_joint:
             raise ConfigError(where, f"link {child.get('link')!r} is the child of two joints; a URDF must be a tree")
         parent_joint[str(child.get("link"))] = joint
