@@ -54,3 +54,38 @@ def test_placement_refusals():
     twice, _ = place_arm(TEXT, "tool", tool_xyz=(0, 0, 0.01))
     with pytest.raises(ConfigError, match="reserved"):
         place_arm(twice, "tool", tool_xyz=(0, 0, 0.01))
+
+
+def test_robot_config_places_the_arm_for_every_stage():
+    """The robot plugin's base pose and tool offset (config options) give the pose pinocchio computes for the
+    composed transform, for the torch chain that trains and vets and the numpy chain that runs on the robot
+    (both read the placed URDF, which is also what a bundle ships)."""
+    import torch
+
+    from coreach.runtime.kinematics import Chain
+    from coreach_plugins.robot.urdf_arm import UrdfArm
+
+    base_xyz, base_rpy_deg, tool_xyz, tool_rpy_deg = [0.2, -0.4, 0.7], [0.0, 0.0, 90.0], [0.0, 0.0, 0.05], [0, 30, 0]
+    arm = UrdfArm(base_xyz=base_xyz, base_rpy_deg=base_rpy_deg, tool_xyz=tool_xyz, tool_rpy_deg=tool_rpy_deg)
+    assert arm.tool_link == TCP_LINK and arm.dof == 7
+    q = np.random.default_rng(3).uniform(arm.q_lower.numpy(), arm.q_upper.numpy(), size=(5, 7))
+    want = [_se3(base_xyz, np.radians(base_rpy_deg)) * _pose(TEXT, "tool", qi) * _se3(tool_xyz, np.radians(tool_rpy_deg))
+            for qi in q]
+    pos, rot = arm.fk(torch.tensor(q))
+    chain = Chain.from_string(arm.urdf_text(), arm.tool_link)
+    n_pos, n_rot, n_jac = chain.fk_jacobian(q)
+    # Jacobians in the world frame agree between the two chains (the numpy one is checked against pinocchio in
+    # tests/test_runtime_kinematics.py)
+    np.testing.assert_allclose(arm.fk_and_jacobian(torch.tensor(q))[2].numpy(), n_jac, atol=1e-10)
+    for i, w in enumerate(want):
+        np.testing.assert_allclose(pos[i].numpy(), w.translation, atol=1e-12)
+        np.testing.assert_allclose(rot[i].numpy(), w.rotation, atol=1e-12)
+        np.testing.assert_allclose(n_pos[i], w.translation, atol=1e-12)
+        np.testing.assert_allclose(n_rot[i], w.rotation, atol=1e-12)
+
+
+def test_robot_config_refuses_a_placement_that_is_not_three_numbers():
+    from coreach_plugins.robot.urdf_arm import UrdfArm
+
+    with pytest.raises(ConfigError, match=r"option robot.base_xyz: expected three finite numbers"):
+        UrdfArm(base_xyz=[0.1, 0.2])

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from importlib import resources
@@ -15,7 +16,8 @@ from torch import Tensor
 
 from coreach.errors import ConfigError
 from coreach.geometry import rpy_to_matrix
-from coreach.urdf import MOVABLE, JointSpec, read_path
+from coreach.urdf import MOVABLE, JointSpec, parse_path, read_path
+from coreach.urdf_placement import place_arm
 
 SHIPPED_URDF = "reach7.urdf"
 # Elbow bent 129 deg, tool 0.35 m in front of the base at z = 0.27 m, approach axis tilted 56 deg below
@@ -36,6 +38,10 @@ class UrdfArmConfig:
     tool_link: str = "tool"
     home: list[float] | None = None
     name: str = "reach7"
+    base_xyz: list[float] | None = None
+    base_rpy_deg: list[float] | None = None
+    tool_xyz: list[float] | None = None
+    tool_rpy_deg: list[float] | None = None
     _target_: str = "coreach_plugins.robot.urdf_arm.UrdfArm"
 
 
@@ -90,11 +96,26 @@ def _build_chain(where: str, tool_link: str, specs: list[JointSpec]) -> pk.Seria
     return chain
 
 
+def _triple(value, option: str) -> list[float]:
+    """Three finite numbers (zeros when unset); ConfigError naming the option otherwise."""
+    if value is None:
+        return [0.0, 0.0, 0.0]
+    try:
+        out = [float(v) for v in value]
+    except (TypeError, ValueError):
+        out = []
+    if len(out) != 3 or not all(map(math.isfinite, out)):
+        raise ConfigError(f"option {option}", f"expected three finite numbers [x, y, z], got {value!r}")
+    return out
+
+
 class UrdfArm:
     """A serial arm from a URDF: limits from the file, batched FK and Jacobian of the tool link."""
 
     def __init__(self, urdf: str = "", tool_link: str = "tool", home: list[float] | None = None,
-                 name: str = "reach7"):
+                 name: str = "reach7", base_xyz: Sequence[float] | None = None,
+                 base_rpy_deg: Sequence[float] | None = None, tool_xyz: Sequence[float] | None = None,
+                 tool_rpy_deg: Sequence[float] | None = None):  # fmt: skip
         if not isinstance(name, str) or not name:
             raise ConfigError("robot.name", f"expected a non-empty string, got {name!r}")
         if not isinstance(tool_link, str) or not tool_link:
@@ -102,13 +123,24 @@ class UrdfArm:
         if not isinstance(urdf, str):
             raise ConfigError("robot.urdf", f"expected a file path string, got {type(urdf).__name__}")
         self.urdf = urdf
-        self.tool_link = tool_link
         self.name = name
 
         shipped = shipped_urdf()
         path = Path(urdf).expanduser() if urdf else Path(shipped)
         where = str(path)
-        _, specs = read_path(path, tool_link)
+        text, specs = read_path(path, tool_link)
+        # The base pose in the scene's world frame and the tool-centre point become fixed joints of the URDF,
+        # so every kinematics reader (this chain, the runtime's, pinocchio) and the bundle's robot.urdf agree.
+        placement = {key: _triple(value, f"robot.{key}") for key, value in
+                     (("base_xyz", base_xyz), ("base_rpy_deg", base_rpy_deg), ("tool_xyz", tool_xyz),
+                      ("tool_rpy_deg", tool_rpy_deg))}  # fmt: skip
+        placed, tool_link = place_arm(text, tool_link, placement["base_xyz"],
+                                      [math.radians(v) for v in placement["base_rpy_deg"]], placement["tool_xyz"],
+                                      [math.radians(v) for v in placement["tool_rpy_deg"]], where)  # fmt: skip
+        if placed is not text:
+            specs = parse_path(placed, tool_link, where)
+        self._urdf_text = placed
+        self.tool_link = tool_link
         self._chains: dict[tuple[torch.dtype, torch.device], pk.SerialChain] = {}
         master = _build_chain(where, tool_link, specs)
         self._chains[(torch.float64, torch.device("cpu"))] = master
@@ -191,6 +223,6 @@ class UrdfArm:
         return f"UrdfArm(name={self.name!r}, dof={self.dof}, urdf={self.urdf or SHIPPED_URDF!r})"
 
     def urdf_text(self) -> str:
-        """The URDF this arm was built from, as text (what a release bundle ships as robot.urdf)."""
-        path = Path(self.urdf).expanduser() if self.urdf else Path(shipped_urdf())
-        return path.read_text(encoding="utf-8")
+        """The URDF this arm was built from, with its placement, as text (what a release bundle ships as
+        robot.urdf)."""
+        return self._urdf_text
