@@ -234,7 +234,9 @@ def recipes(cfg: DictConfig) -> dict:
 
     client, exp_id = tracking.client(cfg.tracking)
     cmd = command_line(given)
-    parent = _start_parent(client, exp_id, plan, cmd)
+    # the code this run loads is the code at its start; commits made while it runs must not be credited with it
+    commit = tracking.git_commit()
+    parent = _start_parent(client, exp_id, plan, cmd, commit)
     try:
         trained = []
         for i, (r, seed, fn, sub) in enumerate(jobs, 1):
@@ -258,7 +260,7 @@ def recipes(cfg: DictConfig) -> dict:
             vetted[name] = vet(vcfg)
             for rid in vetted[name].get("vet_runs", {}).values():
                 _adopt(client, rid, parent)
-        result = assemble(plan, trained, vetted, cmd, given)
+        result = assemble(plan, trained, vetted, cmd, given, commit)
         result["parent_run"] = parent
         result["tracking"] = tracking.resolve_uri(cfg.tracking.get("uri"))
         files = write_results(result, plan.out)
@@ -270,9 +272,8 @@ def recipes(cfg: DictConfig) -> dict:
     return result
 
 
-def _start_parent(client, exp_id, plan: Plan, cmd: str) -> str:
+def _start_parent(client, exp_id, plan: Plan, cmd: str, commit: str | None) -> str:
     tags = {"coreach.stage": "recipes", "coreach.command": cmd[:4900]}
-    commit = tracking.git_commit()
     if commit:
         tags["mlflow.source.git.commit"] = commit
     run = client.create_run(exp_id, run_name="recipes " + ", ".join(r.label for r in plan.recipes), tags=tags)
@@ -397,7 +398,8 @@ def spread(rates: list[dict | None]) -> dict | None:
             "worst_lo": min(los) if los else None, "seeds": len(values)}  # fmt: skip
 
 
-def assemble(plan: Plan, trained: list[dict], vetted: dict[str, dict], cmd: str, given: list[str]) -> dict:
+def assemble(plan: Plan, trained: list[dict], vetted: dict[str, dict], cmd: str, given: list[str],
+             commit: str | None = None) -> dict:
     """Rows per recipe-seed and baseline, a spread row per recipe, and the columns to show them in."""
     suites = list(vetted)
     rows = [{"kind": "seed", "recipe": t["recipe"], "seed": t["seed"], "training_run": t["run_id"], "suites": {}}
@@ -414,7 +416,6 @@ def assemble(plan: Plan, trained: list[dict], vetted: dict[str, dict], cmd: str,
         mine = [row for row in rows if row["kind"] == "seed" and row["recipe"] == r.label]
         spreads.append({"kind": "spread", "recipe": r.label, "seeds": [row["seed"] for row in mine],
                         "columns": {c["id"]: spread([rate_at(row, c) for row in mine]) for c in cols}})  # fmt: skip
-    commit = tracking.git_commit()
     return {
         "command": cmd,
         "overrides": given,
