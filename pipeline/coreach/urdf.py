@@ -9,7 +9,7 @@ from pathlib import Path
 
 from coreach.errors import ConfigError
 
-__all__ = ["MOVABLE", "SUPPORTED", "JointSpec", "parse_path", "read_path", "robot_name", "urdf_floats"]
+__all__ = ["MOVABLE", "SUPPORTED", "JointSpec", "document", "parse_path", "read_path", "robot_name", "urdf_floats"]
 
 MOVABLE = ("revolute", "continuous", "prismatic")
 SUPPORTED = MOVABLE + ("fixed",)
@@ -48,7 +48,8 @@ def urdf_floats(text, default: tuple[float, ...], where: str, what: str) -> tupl
     return values
 
 
-def _root(text: str, where: str) -> ET.Element:
+def document(text: str, where: str = "robot.urdf") -> ET.Element:
+    """The <robot> element of a URDF text; ConfigError (one line) if it is not one."""
     try:
         robot = ET.fromstring(text)
     except ET.ParseError as exc:
@@ -60,7 +61,7 @@ def _root(text: str, where: str) -> ET.Element:
 
 def robot_name(text: str, where: str = "robot.urdf") -> str | None:
     """The <robot name=...> attribute (None when absent); ConfigError if the text is not a URDF."""
-    return _root(text, where).get("name")
+    return document(text, where).get("name")
 
 
 def _joint_spec(el: ET.Element, where: str) -> JointSpec:
@@ -104,7 +105,7 @@ def _joint_spec(el: ET.Element, where: str) -> JointSpec:
 
 def parse_path(text: str, tool_link: str, where: str = "robot.urdf") -> list[JointSpec]:
     """The joints from the root link to `tool_link`, root first; ConfigError (one line) naming what is wrong."""
-    robot = _root(text, where)
+    robot = document(text, where)
     links = [link.get("name") for link in robot.findall("link")]
     if tool_link not in links:
         shown = ", ".join(str(n) for n in links[:12]) + (", ..." if len(links) > 12 else "")

@@ -14,6 +14,7 @@ import xml.etree.ElementTree as ET
 from collections.abc import Sequence
 
 from coreach.errors import ConfigError
+from coreach.urdf import document
 
 WORLD_LINK = "coreach_world"
 TCP_LINK = "coreach_tcp"
@@ -54,10 +55,7 @@ def place_arm(urdf_text: str, tool_link: str, base_xyz: Sequence[float] = _ZERO,
     moved_tool = any(float(v) != 0.0 for v in (*tool_xyz, *tool_rpy))
     if not (moved_base or moved_tool):
         return urdf_text, tool_link
-    try:
-        robot = ET.fromstring(urdf_text)
-    except ET.ParseError as exc:
-        raise ConfigError(where, f"not valid XML ({exc})") from None
+    robot = document(urdf_text, where)  # the one URDF reader's parse and its refusals
     names = {link.get("name") for link in robot.findall("link")}
     if tool_link not in names:
         raise ConfigError(where, f"tool link {tool_link!r} is not a link of the URDF")
