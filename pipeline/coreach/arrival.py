@@ -45,8 +45,10 @@ class GoalArrival:
         if self.approach_reached_share >= 0.5:
             return "fine motion not completed within max_steps (raise dataset.max_steps or check the fine motion)"
         if self.miss_position_m > position_tol:
-            return (f"out of reach: misses end a median {self.miss_position_m:.3f} m from the approach point "
-                    "(move the goal or the arm's base)")  # fmt: skip
+            # the same symptom has two causes; the scene check tells them apart before any data is made
+            return (f"out of reach or too slow: misses end a median {self.miss_position_m:.3f} m from the approach "
+                    "point (coreach check-reach says whether the arm can reach it; if it can, raise "
+                    "dataset.max_steps or lower dataset.noise, else move the goal or the arm's base)")  # fmt: skip
         if self.miss_orientation_deg > math.degrees(orientation_tol):
             return (f"orientation not reachable: misses end a median {self.miss_orientation_deg:.0f} deg from "
                     "the approach orientation")  # fmt: skip
