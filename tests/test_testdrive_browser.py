@@ -283,7 +283,7 @@ def test_a_recording_made_on_the_page_loads_as_episodes(server, browser, bundle)
         assert col in table.column_names
     assert not list(drives.glob(".*.tmp"))
 
-    from coreach.testdrive.drive_summary import drive_summary
+    from coreach.vetting.recorded_drives import drive_summary
     from coreach.vetting.report import write_report
 
     summary = drive_summary(saved)
@@ -366,7 +366,7 @@ def test_drive_summary_values_on_a_hand_made_drive(bundle, tmp_path):
     from types import SimpleNamespace
 
     from coreach.runtime.bundle import verify_bundle
-    from coreach.testdrive.drive_summary import drive_summary
+    from coreach.vetting.recorded_drives import drive_summary
     from coreach.testdrive.recording import save_drive
 
     m = verify_bundle(bundle)

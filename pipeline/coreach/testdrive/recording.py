@@ -13,11 +13,9 @@ from pathlib import Path
 import numpy as np
 
 from coreach.episodes import Episode, EpisodeSet, to_table
+from coreach.episodes.drive_metadata import META_MANIFEST, META_SESSION, META_TOLERANCES
 
 SOURCE = "coreach try-bundle"
-META_MANIFEST = "coreach.bundle_manifest_sha256"
-META_SESSION = "coreach.testdrive_session"
-META_TOLERANCES = "coreach.testdrive_tolerances"
 FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")
 
 

@@ -108,6 +108,8 @@ def vet(cfg: DictConfig) -> dict:
         if spec is not None and spec.dof != robot.dof:
             raise ConfigError(f"candidate {name}", f"decoder was trained for {spec.dof} joints, robot has {robot.dof}")
 
+    drives = _drives_summary(cfg.get("drives") or [], suite)  # checked before any rollout starts
+
     out = Path(cfg.report_dir or f"reports/vet-{suite.name}-{time.strftime('%Y%m%d-%H%M%S')}")
     out.mkdir(parents=True, exist_ok=True)
     goal_rot = suite.episodes_plan(suite.generator(), robot).layout.approach_rot  # same plan the loop draws
@@ -123,10 +125,12 @@ def vet(cfg: DictConfig) -> dict:
     finally:
         progress.close()
 
-    plots += standard_plots(summaries, out)
+    plots += standard_plots(summaries, out)  # simulated operators only: a drive has no belief traces or switches
     plots += [p for p in [plot_reach_by_goal(summaries, out / "reach_by_goal.png")] if p]
     for label, (record, interface, _) in records.items():
         plots += diagnosis_plots(label, record, interface, robot, goal_rot, summaries[label], out)
+    if drives is not None:
+        summaries[_unique(drives["interface"], summaries)] = drives
     meta = {
         "suite": suite.name,
         "episodes": suite.n_episodes,
@@ -136,6 +140,9 @@ def vet(cfg: DictConfig) -> dict:
         "tracking": uri,
         "candidates": ", ".join(f"{k} ({v[2] or 'baseline'})" for k, v in records.items()),
     }
+    if drives is not None:
+        meta["recorded drives"] = (f"{drives['n_episodes']} drives of bundle(s) "
+                                   f"{', '.join(h[:12] for h in drives['bundle_manifest_sha256'])}")  # fmt: skip
     report = write_report(summaries, plots, out, f"coreach vetting: {suite.name}", meta,
                           sections=diagnosis_html(summaries))  # fmt: skip
     (out / "summary.json").write_text(json.dumps(summaries, indent=2, default=str))
@@ -152,6 +159,32 @@ def vet(cfg: DictConfig) -> dict:
         "sources": {k: v[2] for k, v in records.items()},
         "seconds": time.perf_counter() - t0,
     }
+
+
+def _drives_summary(entries, suite) -> dict | None:
+    """The recorded drives' summary (None without drives); ConfigError naming the option for a missing file
+    or drives recorded on other goals than the suite's."""
+    from coreach.vetting.recorded_drives import drive_summary
+
+    paths: list[Path] = []
+    for entry in entries:
+        p = Path(str(entry)).expanduser()
+        if p.is_dir():
+            paths += sorted(p.glob("*.parquet"))
+        elif p.is_file():
+            paths.append(p)
+        else:
+            raise ConfigError("option drives", f"{p}: no such file or folder; expected recorded drives (.parquet)")
+    if not entries:
+        return None
+    if not paths:
+        raise ConfigError("option drives", f"no .parquet files in {[str(e) for e in entries]}")
+    summary = drive_summary(paths)
+    goals = suite.goal_names
+    if list(summary["goal_names"]) != list(goals):
+        raise ConfigError("option drives", f"drives were recorded on goals {summary['goal_names']}, suite "
+                                           f"{suite.name} has {list(goals)}; compare drives on the same scene")
+    return summary
 
 
 def _log_vetting(client, exp_id, label, source, suite, summary, out: Path) -> str:

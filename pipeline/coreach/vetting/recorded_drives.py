@@ -1,8 +1,8 @@
 """Vetting metrics of recorded drives, in the summary dict shape of coreach.vetting.metrics.summarise.
 
 A person's drives then sit next to the simulated operators' summaries in one vetting report
-(coreach.vetting.report.write_report). Host-side (it shares the Wilson interval with vetting); the
-test-drive server itself never imports this module.
+(`coreach vet drives=[...]`). Host-side (it shares the Wilson interval with vetting); the test-drive server
+itself never imports this module.
 """
 
 from __future__ import annotations
@@ -15,7 +15,7 @@ import numpy as np
 
 from coreach.episodes import load_parquet
 from coreach.errors import DataError
-from coreach.testdrive.recording import META_MANIFEST, META_TOLERANCES
+from coreach.episodes.drive_metadata import META_MANIFEST, META_TOLERANCES
 from coreach.vetting.metrics import wilson_interval
 
 NAN = float("nan")
@@ -37,8 +37,8 @@ def drive_summary(paths, label: str = "person (recorded drives)", confidence: fl
     Success: the drive's goal reached (approach pose, then the end of its fine motion, with the tolerances
     the drive was recorded with; the `arrived` column). Time: from the first recorded step to arrival.
     Path efficiency: straight line start -> end of the goal's fine motion over the tool path up to arrival.
-    Interventions: steps where a limit scaled the command (joint position look-ahead, speed caps,
-    workspace box); `limit_scalings` gives each one's share. Authority: decoder output per unit stick.
+    Limit scalings: steps where a limit scaled the command (joint position look-ahead, speed caps,
+    workspace box); `limit_scalings` gives each one's share. Stick gain: decoder output per unit stick.
     Metrics a person's drive cannot give (recovery after a scripted goal switch, reachability, the
     ultimate bound) are reported as not measured.
     """
