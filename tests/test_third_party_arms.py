@@ -123,3 +123,35 @@ def test_a_third_party_arm_from_scene_check_to_vetting(workdir):
     assert summary["success"]["n"] == 4  # whatever a 2-epoch decoder achieves: the loop ran on this arm
     assert 0.0 <= summary["success"]["lo"] <= summary["success"]["value"] <= summary["success"]["hi"] <= 1.0
     assert (workdir / "rep" / "report.html").is_file()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(
+    ("key", "cause"),
+    [
+        # measured with seed 0 (deterministic): each names the goal and a cause a lab can act on
+        ("arm6-a", "fine motion not completed within max_steps"),
+        ("arm7-b", "joint limits: joint2 ends at its position limit"),
+        ("arm6-b", "joint limits: j2s6s200_joint_5 ends at its position limit"),
+    ],
+)
+def test_other_arms_reach_the_scene_but_their_demonstrations_are_refused_with_a_reason(key, cause, tmp_path):
+    """Scene check: every goal reachable from some start. Demonstrations from the arm's default home (the middle
+    of its joint ranges) with the same options as arm-a's end-to-end run: refused, one line, goal and cause."""
+    from coreach.config_check import compose_config
+    from coreach.errors import DataError
+    from coreach.plugin_registry import build_plugin
+    from coreach.reach_check import check_reach
+    from coreach.scenario import load_scenario
+
+    rel, tool = ARMS[key]
+    cfg = compose_config("train", [f"robot.urdf={_robots() / rel}", f"robot.tool_link={tool}", f"robot.name={key}",
+                                   "dataset.episodes=40", "dataset.max_steps=300", "dataset.min_arrival=0.85",
+                                   f"dataset.cache_dir={tmp_path}"])  # fmt: skip
+    robot = build_plugin(cfg.robot, "robot")
+    assert all(r.reachable for r in check_reach(robot, load_scenario("bedside_shelf")))
+    with pytest.raises(DataError) as err:
+        build_plugin(cfg.dataset, "dataset").load(robot)
+    msg = str(err.value)
+    assert "\n" not in msg and f"demonstrations of scenario bedside_shelf on {key}, goal " in msg
+    assert f"likely cause: {cause}" in msg

@@ -77,8 +77,11 @@ def test_specs_carry_what_the_bundle_check_needs():
         (lambda t: t.replace('<parent link="base_link"/>', '<parent link="link_2"/>', 1), "loop"),
         (lambda t: t.replace('<parent link="link_1"/>', '<parent link="link_1"/><mimic joint="joint_1"/>', 1),
          "mimic joints"),
+        # a second tree: the tool link would hang from a root that is not the arm's
+        (lambda t: t.replace("</robot>", '<link name="stray"/></robot>'), "2 root links (base_link, stray)"),
     ],
-    ids=["missing-parent", "missing-child", "duplicate-joint", "duplicate-link", "two-parents", "cycle", "mimic"],
+    ids=["missing-parent", "missing-child", "duplicate-joint", "duplicate-link", "two-parents", "cycle", "mimic",
+         "two-roots"],
 )
 def test_structural_faults_are_refused_with_one_line_naming_the_element(edit, expected):
     text = open(shipped_urdf(), encoding="utf-8").read()

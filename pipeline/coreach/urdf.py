@@ -131,6 +131,10 @@ def parse_path(text: str, tool_link: str, where: str = "robot.urdf") -> list[Joi
             raise ConfigError(where, f"link {child.get('link')!r} is the child of two joints; a URDF must be a tree")
         parent_joint[str(child.get("link"))] = joint
 
+    roots = [n for n in links if n not in parent_joint]
+    if len(roots) != 1:
+        raise ConfigError(where, f"{len(roots)} root links ({', '.join(map(str, roots[:6]))}); expected one tree, "
+                                 f"so that the tool link is reached from the one root")  # fmt: skip
     path: list[ET.Element] = []
     link = tool_link
     while link in parent_joint:
