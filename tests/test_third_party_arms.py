@@ -115,6 +115,11 @@ def test_a_third_party_arm_from_scene_check_to_vetting(workdir):
                              env=cli_env(), timeout=900)  # fmt: skip
     assert trained.returncode == 0, trained.stderr
     run_id = json.loads(trained.stdout)["runs"][0]["run_id"]
+    # forgetting the robot options must not vet this decoder on the shipped 7-joint arm
+    wrong = subprocess.run([COREACH, "vet", f"candidates=[{run_id}]", "suite=nominal", "episodes=1"], cwd=workdir,
+                           capture_output=True, text=True, env=cli_env(), timeout=900)  # fmt: skip
+    assert wrong.returncode == 2 and len(wrong.stderr.strip().splitlines()) == 1, wrong.stderr
+    assert "trained on an arm with joints [panda_joint1," in wrong.stderr and "give the same robot options" in wrong.stderr
     vetted = subprocess.run([COREACH, "--json", "vet", *robot, f"candidates=[{run_id}]", "suite=nominal",
                              "episodes=4", "report_dir=rep"], cwd=workdir, capture_output=True, text=True,
                             env=cli_env(), timeout=900)  # fmt: skip

@@ -89,3 +89,17 @@ def test_robot_config_refuses_a_placement_that_is_not_three_numbers():
 
     with pytest.raises(ConfigError, match=r"option robot.base_xyz: expected three finite numbers"):
         UrdfArm(base_xyz=[0.1, 0.2])
+
+
+def test_a_decoder_is_used_only_on_the_arm_and_placement_it_was_trained_on():
+    from coreach.robot_identity import check_same_robot, robot_tags
+    from coreach_plugins.robot.planar3 import Planar3
+    from coreach_plugins.robot.urdf_arm import UrdfArm
+
+    trained = robot_tags(UrdfArm())
+    check_same_robot(trained, UrdfArm(), "candidate x")  # the same arm passes
+    with pytest.raises(ConfigError, match=r"candidate x: trained on another URDF of this arm .*base placement"):
+        check_same_robot(trained, UrdfArm(base_xyz=[0.0, 0.1, 0.0]), "candidate x")
+    with pytest.raises(ConfigError, match=r"trained on an arm with joints \[joint_1,.*give the same robot options"):
+        check_same_robot(trained, Planar3(), "candidate x")
+    check_same_robot({}, Planar3(), "candidate x")  # runs from before the tags: not checked

@@ -11,6 +11,7 @@ from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin, option_class
 from coreach.release import gate as G
 from coreach.release.bundle_writer import write_bundle
+from coreach.robot_identity import check_same_robot
 from coreach.runtime.bundle import PARITY_TOLERANCE, BundleError, verify_bundle
 from coreach.safety import limits_from_config, workspace_box
 from coreach.vetting.loop import rollout
@@ -76,6 +77,7 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
         suite.validate(robot, spec_n_goals=spec.n_goals)
     if spec.dof != robot.dof:
         raise ConfigError("option run", f"decoder was trained for {spec.dof} joints, robot has {robot.dof}")
+    check_same_robot(run.data.tags if run is not None else {}, robot, f"option run ({run.info.run_id if run else '?'})")
     urdf = _urdf(robot, staging)
 
     interface = option_class("interface", "decoder").from_policy(policy, name=label)

@@ -20,6 +20,7 @@ from coreach.context import ContextSpec
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin, build_terms
 from coreach.policy import DecoderPolicy
+from coreach.robot_identity import robot_tags
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import MlflowEpochLogger, progress_callbacks
 from coreach.training.data import DemoDataModule, replay, split_by_episode
@@ -61,7 +62,8 @@ def train(cfg: DictConfig) -> dict:
     if cfg.get("resume"):
         run_id, out = resume_target(client, str(cfg.resume), cfg)
     else:
-        tags = {"coreach.stage": "train", "coreach.label": str(model_name), "coreach.dataset_sha256": episodes.fingerprint()}
+        tags = {"coreach.stage": "train", "coreach.label": str(model_name), "coreach.dataset_sha256": episodes.fingerprint(),
+                **robot_tags(robot)}
         if sweep_tag():
             tags["coreach.sweep"] = sweep_tag()
         commit = tracking.git_commit()

@@ -13,6 +13,7 @@ from omegaconf import DictConfig, ListConfig, OmegaConf
 from coreach import tracking
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_option, build_plugin
+from coreach.robot_identity import check_same_robot
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import interactive
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
@@ -102,11 +103,13 @@ def vet(cfg: DictConfig) -> dict:
 
     names = candidate_list(cfg.candidates)
     built = [(n, *build_candidate(n, client)) for n in names]
-    for name, interface, _ in built:  # every problem before any rollout starts
+    for name, interface, source in built:  # every problem before any rollout starts
         spec = getattr(getattr(interface, "policy_", None), "spec", None)
         suite.validate(robot, spec_n_goals=None if spec is None else spec.n_goals)
         if spec is not None and spec.dof != robot.dof:
             raise ConfigError(f"candidate {name}", f"decoder was trained for {spec.dof} joints, robot has {robot.dof}")
+        if source is not None and client is not None:
+            check_same_robot(client.get_run(source).data.tags, robot, f"candidate {name}")
 
     drives = _drives_summary(cfg.get("drives") or [], suite)  # checked before any rollout starts
 
