@@ -103,13 +103,9 @@ def _joint_spec(el: ET.Element, where: str) -> JointSpec:
     return JointSpec(name, kind, parent, child, xyz, rpy, axis, lower, upper, velocity)  # type: ignore[arg-type]
 
 
-def parse_path(text: str, tool_link: str, where: str = "robot.urdf") -> list[JointSpec]:
-    """The joints from the root link to `tool_link`, root first; ConfigError (one line) naming what is wrong."""
-    robot = document(text, where)
-    links = [link.get("name") for link in robot.findall("link")]
-    if tool_link not in links:
-        shown = ", ".join(str(n) for n in links[:12]) + (", ..." if len(links) > 12 else "")
-        raise ConfigError(where, f"tool link {tool_link!r} not found; links are: {shown or '(none)'}")
+def _tree(robot: ET.Element, links: list, where: str) -> dict[str, ET.Element]:
+    """child link -> its joint, after checking that names are unique, joints name existing links, no link has
+    two parents and there is one root."""
     for kind, names in (("link", links), ("joint", [j.get("name") for j in robot.findall("joint")])):
         seen: set = set()
         for n in names:
@@ -135,6 +131,17 @@ def parse_path(text: str, tool_link: str, where: str = "robot.urdf") -> list[Joi
     if len(roots) != 1:
         raise ConfigError(where, f"{len(roots)} root links ({', '.join(map(str, roots[:6]))}); expected one tree, "
                                  f"so that the tool link is reached from the one root")  # fmt: skip
+    return parent_joint
+
+
+def parse_path(text: str, tool_link: str, where: str = "robot.urdf") -> list[JointSpec]:
+    """The joints from the root link to `tool_link`, root first; ConfigError (one line) naming what is wrong."""
+    robot = document(text, where)
+    links = [link.get("name") for link in robot.findall("link")]
+    if tool_link not in links:
+        shown = ", ".join(str(n) for n in links[:12]) + (", ..." if len(links) > 12 else "")
+        raise ConfigError(where, f"tool link {tool_link!r} not found; links are: {shown or '(none)'}")
+    parent_joint = _tree(robot, links, where)
     path: list[ET.Element] = []
     link = tool_link
     while link in parent_joint:
