@@ -52,10 +52,7 @@ def _drive(bundle: Path, goal: int, out: Path, rate_hz: float, steps: int) -> st
 
 
 def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
-    from coreach.episodes import EpisodeSet, load_parquet, save_parquet
-    from coreach.testdrive.finetune import relabel_drives
-    from coreach_plugins.labeller.scripted import ScriptedLabeller
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.episodes import load_parquet
 
     trained = run(["--json", "train", *SMALL, "+experiment=cvae_entropy"], workdir)
     run_id = trained["runs"][0]["run_id"]
@@ -77,12 +74,21 @@ def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
     html = (workdir / "rep" / "report.html").read_text()
     assert "person (recorded drives)" in html and "recorded drives" in html
 
-    # one fine-tuning round: the person's states labelled with the demonstrator's action toward their goal
-    relabelled = relabel_drives(paths, UrdfArm(), ScriptedLabeller())
-    assert len(relabelled) == len(paths) and relabelled.dt == demos.dt
-    merged = EpisodeSet(demos.episodes + relabelled.episodes, demos.goal_names, demos.joint_names, demos.dt,
-                        source="demonstrations + relabelled drives")  # fmt: skip
-    save_parquet(merged, workdir / "finetune.parquet")
+    # one fine-tuning round: the person's states labelled with the demonstrator's action toward their goal,
+    # merged with the original demonstrations (the command a lab runs)
+    demos_file = next((workdir / "data").rglob("*.parquet"))
+    relabel = run(["--json", "relabel-drives", f"drives=[{drives}]", "out=finetune.parquet", f"merge={demos_file}"],
+                  workdir)["runs"][0]  # fmt: skip
+    assert relabel["drives"] == len(paths) and relabel["episodes"] == len(demos) + len(paths)
+    merged = load_parquet(workdir / "finetune.parquet")
+    assert len(merged) == len(demos) + len(paths) and merged.dt == demos.dt
+    # the relabelled drives keep their states, with new actions
+    recorded = {ep.goal: ep for p in paths for ep in load_parquet(p)}  # one drive per goal
+    relabelled = [ep for ep in merged if ep.episode_id >= 9_000_000]
+    assert sorted(ep.goal for ep in relabelled) == sorted(recorded)
+    for ep in relabelled:
+        np.testing.assert_array_equal(ep.q, recorded[ep.goal].q)
+        assert not np.allclose(ep.qd, recorded[ep.goal].qd)
     tuned = run(["--json", "train", "dataset=parquet_file", f"dataset.path={workdir / 'finetune.parquet'}",
                  *[o for o in SMALL if not o.startswith("dataset.")], "+experiment=cvae_entropy"], workdir)  # fmt: skip
     tuned_id = tuned["runs"][0]["run_id"]
@@ -92,9 +98,11 @@ def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
     assert revetted["summaries"]["cvae+entropy"]["success"]["n"] == 1
 
 
-def test_a_missing_drives_path_is_refused_in_one_line(workdir, tmp_path):
-    res = subprocess.run([COREACH, "vet", "candidates=[direct]", "suite=nominal", "episodes=1",
-                          f"drives=[{tmp_path / 'nowhere'}]"], cwd=workdir, capture_output=True, text=True,
-                         env=cli_env(), timeout=300)  # fmt: skip
-    assert res.returncode == 2 and len(res.stderr.strip().splitlines()) == 1
+@pytest.mark.parametrize("command", [["vet", "candidates=[direct]", "suite=nominal", "episodes=1"],
+                                     ["relabel-drives", "out=x.parquet"]])
+def test_a_missing_drives_path_is_refused_in_one_line(workdir, tmp_path, command):
+    res = subprocess.run([COREACH, *command, f"drives=[{tmp_path / 'nowhere'}]"], cwd=workdir, capture_output=True,
+                         text=True, env=cli_env(), timeout=300)  # fmt: skip
+    assert res.returncode == 2 and len(res.stderr.strip().splitlines()) == 1, res.stderr
     assert "option drives" in res.stderr and "no such file or folder" in res.stderr
+    assert not (workdir / "x.parquet").exists()

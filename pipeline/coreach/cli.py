@@ -26,6 +26,8 @@ commands:
             (coreach check-reach robot.urdf=arm.urdf robot.tool_link=tcp scene=my_scene.yaml)
   import-recordings  ROS 2 bags (sqlite3, MCAP) and CSV files -> one Parquet file of demonstrations
             (coreach import-recordings 'inputs=[bags/run1,run2.csv]' scene=bedside_shelf out=lab.parquet)
+  relabel-drives  recorded test drives -> training data for one fine-tuning round (the demonstrator's labels)
+            (coreach relabel-drives 'drives=[drives/]' out=person.parquet [merge=demos.parquet])
   plugins   list every registered plugin by kind, with where it came from
   compare   leaderboard of an experiment's runs: table, CSV and PNG
             (coreach compare --experiment NAME --sweep TAG --out DIR)

@@ -44,6 +44,12 @@ def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
     elif command == "import-recordings":
         for s in summaries:
             print_import(console, s)
+    elif command == "relabel-drives":
+        for s in summaries:
+            merged = f", merged with {s['merged_with']}" if s["merged_with"] else ""
+            console.print(f"{s['drives']} drives relabelled ({s['relabelled_states']} states){merged}: "
+                          f"{s['episodes']} episodes in {s['out']}", markup=False)
+            console.print(f"train on it: {s['train']}", markup=False)
     elif command.startswith("bench"):
         for s in summaries:
             table = Table(title=command)

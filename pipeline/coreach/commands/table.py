@@ -19,6 +19,7 @@ HYDRA_COMMANDS = {
     "recipes": ("recipes", "coreach.commands.recipes:recipes"),
     "check-reach": ("check_reach", "coreach.commands.check_reach:run"),
     "import-recordings": ("import_recordings", "coreach.recordings.import_command:import_recordings"),
+    "relabel-drives": ("relabel_drives", "coreach.testdrive.finetune:relabel_command"),
 }
 # Hydra-free commands: name -> "module:function" taking (arguments, as_json) and returning the exit code
 PLAIN_COMMANDS = {

@@ -67,3 +67,43 @@ def relabel_drives(paths, robot, labeller, id_offset: int = 9_000_000) -> Episod
                            ee_quat=ep.ee_quat, goal_pos=ep.goal_pos, goal_quat=ep.goal_quat,
                            goal_fine=ep.goal_fine))  # fmt: skip
     return EpisodeSet(out, list(sets.goal_names), list(sets.joint_names), sets.dt, source="relabelled test drives")
+
+
+def relabel_command(cfg) -> dict:
+    """`coreach relabel-drives`: recorded drives -> one Parquet file of relabelled episodes, optionally merged
+    with a demonstrations file, ready for `coreach train dataset=parquet_file` (one fine-tuning round)."""
+    from pathlib import Path
+
+    from coreach.episodes import save_parquet
+    from coreach.episodes.drive_files import drive_files
+    from coreach.errors import ConfigError
+    from coreach.plugin_registry import build_plugin
+
+    robot = build_plugin(cfg.robot, "robot")
+    labeller = build_plugin(cfg.labeller, "labeller")
+    paths = drive_files(list(cfg.drives), "drives")
+    relabelled = relabel_drives(paths, robot, labeller)
+    if list(relabelled.joint_names) != list(robot.joint_names):
+        raise ConfigError("option robot", f"drives were recorded on joints {relabelled.joint_names}, the robot has "
+                                          f"{list(robot.joint_names)}; give the robot options of the bundle's arm")
+    episodes, merged_with = relabelled, None
+    if cfg.get("merge"):
+        base = load_parquet(cfg.merge)
+        for what in ("goal_names", "joint_names"):
+            if list(getattr(base, what)) != list(getattr(relabelled, what)):
+                raise ConfigError("option merge", f"{cfg.merge} has {what} {list(getattr(base, what))}, the drives "
+                                                  f"{list(getattr(relabelled, what))}")  # fmt: skip
+        if abs(base.dt - relabelled.dt) > 1e-9:
+            raise ConfigError("option merge", f"{cfg.merge} has a time step of {base.dt} s, the drives {relabelled.dt} "
+                                              f"s; record drives at the scene's rate (coreach try-bundle --rate "
+                                              f"{1.0 / base.dt:g})")  # fmt: skip
+        taken = {ep.episode_id for ep in base}
+        if taken & {ep.episode_id for ep in relabelled}:
+            raise ConfigError("option merge", f"{cfg.merge} already holds episode ids of relabelled drives")
+        episodes = EpisodeSet(list(base) + list(relabelled), list(base.goal_names), list(base.joint_names), base.dt,
+                              source=f"{base.source} + relabelled test drives")  # fmt: skip
+        merged_with = str(cfg.merge)
+    out = save_parquet(episodes, Path(str(cfg.out)).expanduser())
+    return {"out": str(out), "drives": len(paths), "relabelled_states": relabelled.total_steps,
+            "episodes": len(episodes), "merged_with": merged_with,
+            "train": f"coreach train dataset=parquet_file dataset.path={out}"}  # fmt: skip

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 
 from coreach.episodes import Episode, EpisodeSet, to_table
-from coreach.episodes.drive_metadata import META_MANIFEST, META_SESSION, META_TOLERANCES
+from coreach.episodes.drive_files import META_MANIFEST, META_SESSION, META_TOLERANCES
 
 SOURCE = "coreach try-bundle"
 FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")

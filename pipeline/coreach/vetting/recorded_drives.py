@@ -15,7 +15,7 @@ import numpy as np
 
 from coreach.episodes import load_parquet
 from coreach.errors import DataError
-from coreach.episodes.drive_metadata import META_MANIFEST, META_TOLERANCES
+from coreach.episodes.drive_files import META_MANIFEST, META_TOLERANCES
 from coreach.vetting.metrics import wilson_interval
 
 NAN = float("nan")

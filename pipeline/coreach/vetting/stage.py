@@ -167,26 +167,15 @@ def vet(cfg: DictConfig) -> dict:
 def _drives_summary(entries, suite) -> dict | None:
     """The recorded drives' summary (None without drives); ConfigError naming the option for a missing file
     or drives recorded on other goals than the suite's."""
+    from coreach.episodes.drive_files import drive_files
     from coreach.vetting.recorded_drives import drive_summary
 
-    paths: list[Path] = []
-    for entry in entries:
-        p = Path(str(entry)).expanduser()
-        if p.is_dir():
-            paths += sorted(p.glob("*.parquet"))
-        elif p.is_file():
-            paths.append(p)
-        else:
-            raise ConfigError("option drives", f"{p}: no such file or folder; expected recorded drives (.parquet)")
     if not entries:
         return None
-    if not paths:
-        raise ConfigError("option drives", f"no .parquet files in {[str(e) for e in entries]}")
-    summary = drive_summary(paths)
-    goals = suite.goal_names
-    if list(summary["goal_names"]) != list(goals):
+    summary = drive_summary(drive_files(entries, "drives"))
+    if list(summary["goal_names"]) != list(suite.goal_names):
         raise ConfigError("option drives", f"drives were recorded on goals {summary['goal_names']}, suite "
-                                           f"{suite.name} has {list(goals)}; compare drives on the same scene")
+                                           f"{suite.name} has {list(suite.goal_names)}; compare drives on the same scene")
     return summary
 
 

@@ -1,0 +1,28 @@
+"""Recorded test drives on disk: their file metadata keys, and the files a list of files and folders names."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from coreach.errors import ConfigError
+
+META_MANIFEST = "coreach.bundle_manifest_sha256"  # sha256 of the bundle's manifest.json the drive ran
+META_SESSION = "coreach.testdrive_session"  # the test-drive session id
+META_TOLERANCES = "coreach.testdrive_tolerances"  # JSON: the arrival tolerances the drive was judged with
+
+
+def drive_files(entries, option: str) -> list[Path]:
+    """The .parquet files named by `entries` (files, or folders whose .parquet files are taken in name order);
+    ConfigError naming `option` for a missing entry or when no file is found."""
+    paths: list[Path] = []
+    for entry in entries:
+        p = Path(str(entry)).expanduser()
+        if p.is_dir():
+            paths += sorted(p.glob("*.parquet"))
+        elif p.is_file():
+            paths.append(p)
+        else:
+            raise ConfigError(f"option {option}", f"{p}: no such file or folder; expected recorded drives (.parquet)")
+    if not paths:
+        raise ConfigError(f"option {option}", f"no .parquet files in {[str(e) for e in entries]}")
+    return paths
