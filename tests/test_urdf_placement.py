@@ -103,3 +103,13 @@ def test_a_decoder_is_used_only_on_the_arm_and_placement_it_was_trained_on():
     with pytest.raises(ConfigError, match=r"trained on an arm with joints \[joint_1,.*give the same robot options"):
         check_same_robot(trained, Planar3(), "candidate x")
     check_same_robot({}, Planar3(), "candidate x")  # runs from before the tags: not checked
+
+
+def test_demonstrations_of_a_moved_arm_are_not_taken_from_the_unmoved_arms_cache(tmp_path):
+    """Same name, joints and limits, another base: the cached demonstrations must not be reused."""
+    from coreach_plugins.dataset.scripted_shelf import ScriptedShelf
+    from coreach_plugins.robot.urdf_arm import UrdfArm
+
+    data = ScriptedShelf(cache_dir=str(tmp_path))
+    assert data.cache_path(UrdfArm()) == data.cache_path(UrdfArm())
+    assert data.cache_path(UrdfArm()) != data.cache_path(UrdfArm(base_xyz=[0.0, 0.0, 0.1]))

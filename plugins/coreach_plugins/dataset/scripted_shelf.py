@@ -13,6 +13,7 @@ from coreach.episodes import SCHEMA_VERSION, EpisodeSet, load_parquet, save_parq
 from coreach.errors import ConfigError
 from coreach.option_specs import integer, number, sizes, text
 from coreach.protocols import Robot
+from coreach.robot_identity import TAG_URDF, robot_tags
 from coreach.scenario import load_scenario
 
 # Bump when the demonstrator's behaviour changes so stale caches are not reused.
@@ -95,6 +96,8 @@ class ScriptedShelf:
             "starts": self.starts,
             "robot": robot.name,
             "joints": list(robot.joint_names),
+            # the kinematics too: a moved base or tool offset keeps name, joints and limits but not the motions
+            "urdf_sha256": robot_tags(robot).get(TAG_URDF),
             # Limits and home pose shape the demonstrations, so an edited robot gets a fresh cache.
             "limits": [t.double().tolist() for t in (robot.q_lower, robot.q_upper, robot.qd_max, robot.q_home)],
         }
