@@ -26,6 +26,7 @@ PLAIN_COMMANDS = {
     "promote": "coreach.release.registry:promote_command",
     "releases": "coreach.release.registry:releases_command",
     "try-bundle": "coreach.testdrive.command:try_bundle_command",
+    "fetch": "coreach.runtime.robot_cli:fetch_command",  # the robot computer's fetch (also coreach-robot fetch)
 }
 
 # commands whose output leads toward a robot: they end with the same cautions as the model card
