@@ -286,14 +286,25 @@ def fetch(ref: str, server: str | None = None, cache: str | Path | None = None, 
     client = StoreClient(server, timeout)
     root = Path(cache) if cache is not None else default_cache()
     folder = root / name
+    mv = client.version_by_alias(name, alias)  # before touching the cache: an unknown model leaves no folder
+    uri, manifest_sha = _published(mv)
+    created = not folder.exists()
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise FetchError(f"cache {root}", f"cannot create {folder} ({exc.strerror})") from None
+    try:
+        return _fetch_into(folder, client, mv, alias, uri, manifest_sha)
+    except BaseException:
+        if created and current_version(folder) is None:  # the first fetch of this model failed: leave no trace
+            shutil.rmtree(folder, ignore_errors=True)
+        raise
+
+
+def _fetch_into(folder: Path, client: StoreClient, mv: ModelVersion, alias: str, uri: str, manifest_sha: str) -> Fetched:
+    name = mv.name
     with _locked(folder):
         _clean_partials(folder)
-        mv = client.version_by_alias(name, alias)
-        uri, manifest_sha = _published(mv)
         where = f"model {name} version {mv.version}"
         target = folder / f"v{mv.version}"
         downloaded = not _cached_ok(target, manifest_sha)
