@@ -102,12 +102,17 @@ def test_passing_release_bundle_registry_and_cautions(released):
     assert "report.html" in m.files and "not a medical device" in (folder / "MODEL_CARD.md").read_text()
 
     mv = client.get_model_version_by_alias(NAME, "gate-passed")
-    assert str(mv.version) == "1" and mv.run_id == run_id
+    rel = client.get_run(mv.tags["coreach.release_run"])
+    assert str(mv.version) == "1" and mv.run_id == rel.info.run_id  # the version's source is the release run's
     assert mv.tags["coreach.gate_passed"] == "true"
-    assert Path(mv.tags["coreach.bundle"]) == folder.resolve()
+    # the whole bundle is in the tracking store, and the version points at it
+    assert mv.source == mv.tags["coreach.bundle_uri"] == rel.info.artifact_uri + "/bundle"
+    stored = Path(client.download_artifacts(rel.info.run_id, "bundle", str(cwd / "fetched")))
+    assert verify_bundle(stored).files == m.files
+    assert (stored / "manifest.json").read_bytes() == (folder / "manifest.json").read_bytes()
+    assert rel.info.status == "FINISHED" and rel.data.tags["coreach.publish"] == "done"
     assert mv.tags["coreach.manifest_sha256"] == hashlib.sha256((folder / "manifest.json").read_bytes()).hexdigest()
     assert json.loads(mv.tags["coreach.gate"])["onnx_parity"]["passed"] is True
-    rel = client.get_run(mv.tags["coreach.release_run"])
     assert rel.data.tags["coreach.stage"] == "release" and rel.data.tags["coreach.source_run"] == run_id
     assert f"vet/{SUITE}/success/value" in train.data.metrics  # what drive compares with
 

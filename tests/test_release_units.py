@@ -23,10 +23,10 @@ from coreach_plugins.robot.planar3 import Planar3
 from coreach_plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
 from coreach.policy import DecoderPolicy
 from coreach.release import gate as G
-from coreach.release import registry
+from coreach.release import bundle_store, registry
 from coreach.release.replay import bundle_limits, compare, replay
 from coreach.release.bundle_writer import write_bundle
-from coreach.runtime.bundle import MANIFEST, BundleError
+from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import wilson_interval
@@ -220,10 +220,30 @@ def test_replay_comparison_tolerances():
 GATE_OK = {"success[s]": {"value": 0.9, "threshold": 0.6, "op": ">=", "passed": True, "what": "", "detail": ""}}
 
 
-def _vetted_version(store, bundle: Path, name: str) -> str:
-    mv, _ = registry.register(store.client, name, store.run_id, "test")
-    registry.mark_gate_passed(store.client, name, str(mv.version), bundle, GATE_OK, "release-run")
-    return str(mv.version)
+def _vetted_version(store, bundle: Path, name: str, usable: bool = True) -> str:
+    """A version published as coreach release leaves it: bundle uploaded to a release run, tags, usable mark."""
+    c = store.client
+    rid = c.create_run(c.get_run(store.run_id).info.experiment_id,
+                       tags={"coreach.stage": "release", "coreach.source_run": store.run_id}).info.run_id  # fmt: skip
+    bundle_store.upload(c, rid, bundle)
+    uri = bundle_store.bundle_uri(c, rid)
+    if registry.get_model(c, name) is None:
+        c.create_registered_model(name)
+    v = str(c.create_model_version(name, uri, rid, tags={"coreach.release_run": rid}).version)
+    for k, val in {"coreach.bundle_uri": uri, "coreach.manifest_sha256": sha256_file(bundle / MANIFEST),
+                   "coreach.gate": json.dumps(registry.compact_gate(GATE_OK))}.items():  # fmt: skip
+        c.set_model_version_tag(name, v, k, val)
+    if usable:
+        c.set_model_version_tag(name, v, "coreach.gate_passed", "true")
+        c.set_registered_model_alias(name, "gate-passed", v)
+    c.set_terminated(rid)
+    return v
+
+
+@pytest.fixture(autouse=True)
+def _releases_cache(tmp_path, monkeypatch):
+    """Each test its own local releases folder (the cache of the store's bundles)."""
+    monkeypatch.setenv("COREACH_RELEASES_DIR", str(tmp_path / "releases"))
 
 
 def test_promote_fields_and_back_restores(store, bundle):
@@ -248,9 +268,9 @@ def test_promote_fields_and_back_restores(store, bundle):
 
 def test_promote_refuses_a_version_that_did_not_pass_the_gate(store, bundle):
     c, name = store.client, "unvetted"
-    mv, _ = registry.register(c, name, store.run_id, "registered by hand, never gated")
+    v = _vetted_version(store, bundle, name, usable=False)  # a publish that never reached its last step
     with pytest.raises(CoreachError, match="has not passed the release gate"):
-        registry.promote(c, name, str(mv.version))
+        registry.promote(c, name, v)
     assert "fielded" not in (c.get_registered_model(name).aliases or {})
 
 
@@ -279,20 +299,37 @@ TAMPER = {
 }
 
 
+def _store_copy(c, name: str, version: str) -> Path:
+    """The bundle's folder in the store's (file) artifact location: what a tamperer with store access changes."""
+    return Path(c.get_model_version(name, version).tags["coreach.bundle_uri"].removeprefix("file://"))
+
+
 @pytest.mark.parametrize("case", list(TAMPER))
-def test_promote_refuses_a_tampered_bundle(store, bundle, tmp_path, case):
+def test_promote_refuses_a_bundle_tampered_in_the_store(store, bundle, case):
     c, name = store.client, f"tamper-{case.replace(' ', '-')}"
-    copy = Path(shutil.copytree(bundle, tmp_path / "b"))
-    good = _vetted_version(store, copy, name)
+    good = _vetted_version(store, bundle, name)
     registry.promote(c, name, good)  # fine before the change
-    bad = _vetted_version(store, copy, name)
+    bad = _vetted_version(store, bundle, name)
     alter, message = TAMPER[case]
-    alter(copy)
+    alter(_store_copy(c, name, bad))
     with pytest.raises(CoreachError, match=message):
         registry.promote(c, name, bad)
     assert str(c.get_model_version_by_alias(name, "fielded").version) == good  # fielding unchanged
-    status = {r["version"]: r["bundle_status"] for r in registry.list_releases(c, name)}
-    assert status[bad].startswith("FAILS")
+    assert not (registry.releases_root() / name / f"v{bad}").exists()  # nothing of it cached
+    assert [p.name for p in (registry.releases_root() / name).iterdir()] == [f"v{good}"]  # no staging left
+
+
+def test_a_changed_local_cache_is_refused_and_listed(store, bundle):
+    c, name = store.client, "tamper-cache"
+    v = _vetted_version(store, bundle, name)
+    folder = Path(registry.promote(c, name, v)["bundle"])  # downloaded from the store into the cache
+    assert folder == (registry.releases_root() / name / f"v{v}").resolve()
+    _flip_byte(folder)
+    with pytest.raises(CoreachError, match="cached copy .* does not verify"):
+        registry.promote(c, name, v)
+    assert registry.list_releases(c, name)[0]["bundle_status"].startswith("FAILS")
+    shutil.rmtree(folder)  # a cache: removed, it is fetched again from the store
+    assert registry.promote(c, name, v)["fielded"] == v
 
 
 def test_model_names_are_checked():

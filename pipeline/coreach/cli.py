@@ -136,8 +136,8 @@ def main(argv: list[str] | None = None) -> int:
         if debug:
             traceback.print_exc()
         return _fail(str(exc))
-    except KeyboardInterrupt:
-        return _fail("interrupted", 130)
+    except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM where a command turns it into one (release)
+        return _fail(getattr(exc, "message", "interrupted"), getattr(exc, "exit_code", 130))
     except SystemExit as exc:
         return int(exc.code or 0)
     except Exception as exc:  # a bug, not bad input: say so, and how to see more

@@ -11,7 +11,7 @@ import os
 import shutil
 import tempfile
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -182,14 +182,17 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
 
 
 def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta: dict,
-                 extra_files: dict[str, str | Path] | None = None, gate: dict | None = None) -> Path:
+                 extra_files: dict[str, str | Path] | None = None, gate: dict | None = None,
+                 staging_prefix: str | None = None, before_rename: Callable[[], None] | None = None) -> Path:
     """Write a complete bundle for `policy` (a coreach.policy.DecoderPolicy) to the new folder `out_dir`.
 
     Everything is written into a temporary sibling folder, verified, and renamed into place only when
     complete; an existing `out_dir` is never overwritten. The ONNX export must match torch within
     PARITY_TOLERANCE on meta.get("parity_n", 10_000) samples, or nothing is written. `extra_files` maps bundle
     names (e.g. "report.html") to source files. See `build_manifest` for the keys of `meta`; meta["metrics"]
-    (optional) goes into the model card.
+    (optional) goes into the model card. `staging_prefix` names the temporary folder (a publish puts its run id
+    there, so a clean-up after a crash can tell whose it is); `before_rename` runs when the staged bundle is
+    complete and verified.
     """
     from coreach.release.export import export_onnx, onnx_parity  # torch side, only when writing
     from coreach.runtime.kinematics import Chain
@@ -219,7 +222,7 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
         raise ConfigError("release meta.parity_n", f"expected a positive integer, got {n_parity!r}")
 
     out_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", suffix=".partial", dir=out_dir.parent))
+    tmp = Path(tempfile.mkdtemp(prefix=staging_prefix or f".{out_dir.name}.", suffix=".partial", dir=out_dir.parent))
     try:
         policy.save(tmp)  # decoder.safetensors + decoder.json
         onnx_path = export_onnx(policy, tmp / "decoder.onnx")
@@ -241,6 +244,8 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
         (tmp / MANIFEST).write_text(text + "\n", encoding="utf-8")
         verify_bundle(tmp)
         os.chmod(tmp, 0o755)  # mkdtemp makes the folder private; a release is meant to be read
+        if before_rename is not None:
+            before_rename()
         if out_dir.exists():  # appeared while we were writing
             raise BundleError(str(out_dir), "appeared while the bundle was being written; not overwritten")
         os.rename(tmp, out_dir)

@@ -1,10 +1,27 @@
-"""Publishing a passed release as one transaction: bundle, registry version, release run and vetting metrics."""
+"""Publishing a passed release so that a crash at any moment leaves nothing half-done.
+
+The steps, in order (STEPS; the design is in coreach.release.settle and DEVELOPERS.md):
+  intent    the release run, tagged coreach.publish=pending with this process as owner
+  register  the model version (registered model first if new), source = the bundle's place in the store
+  bundle    the bundle folder <out_dir>/<name>/v<version>/, staged beside it and renamed
+  renamed   (the staged bundle is complete and verified; the rename follows)
+  upload    every bundle file to the release run's `bundle/` artifacts
+  record    gate metrics, params and summaries on the release run, vetting metrics and a release tag on the
+            training run, the version's tags (bundle URI, manifest hash, gate results)
+  usable    coreach.gate_passed=true on the version and the gate-passed alias: from here it is released
+  finish    coreach.publish=done, the release run FINISHED
+An exception or SIGTERM part-way settles the publish at once (coreach.release.settle.settle_run: rolled back
+unless it was already usable); a SIGKILL leaves the intent for the next `coreach release` or `coreach
+releases` to settle.
+"""
 
 from __future__ import annotations
 
 import json
+import os
 import re
-import shutil
+import signal
+import sys
 import time
 from pathlib import Path
 
@@ -12,8 +29,23 @@ from omegaconf import OmegaConf
 
 from coreach.release import gate as G
 from coreach.release import registry
+from coreach.release.bundle_store import bundle_uri, releases_root, staging_prefix, upload
 from coreach.release.bundle_writer import write_bundle
+from coreach.release.settle import owner, settle_run
+from coreach.release.tags import (GATE_PASSED_ALIAS, TAG_BUNDLE_URI, TAG_CREATED_MODEL, TAG_GATE, TAG_GATE_PASSED,
+                                  TAG_MANIFEST, TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT,
+                                  TAG_SOURCE_RUN, TAG_VERSION)
+from coreach.runtime.bundle import MANIFEST, sha256_file
 from coreach.vetting.metrics import flat_metrics
+
+STEPS = ("intent", "register", "bundle", "renamed", "upload", "record", "usable", "finish")
+# Fault injection for the crash tests: the process SIGKILLs itself on reaching this step.
+KILL_AT_ENV = "COREACH_FAULT_KILL_AT"
+
+
+def _boundary(step: str) -> None:
+    if os.environ.get(KILL_AT_ENV) == step:
+        os.kill(os.getpid(), signal.SIGKILL)
 
 
 def gate_metric_name(gate: str) -> str:
@@ -29,51 +61,98 @@ def _headline(summary: dict) -> dict:
     return {k: v for k, v in flat_metrics(summary).items() if k.startswith(("success/", "recovery/", "stick_gain/"))}
 
 
+def _warn(line: str) -> None:
+    print(f"coreach: {line}", file=sys.stderr)
+
+
 def publish(cfg, client, policy, run, label: str, ev: dict) -> dict:
-    """Bundle, registry version (gate passed), release run, and vetting metrics on the training run; all or nothing."""
+    """Bundle, store copy, registry version (usable last) and release run for a decoder that passed the gate."""
+    name = registry.check_name(str(cfg.name))
+    root = releases_root(cfg.out_dir)
+    run_id = run.info.run_id
+    _boundary("intent")
+    rid = client.create_run(run.info.experiment_id, run_name=f"release {name} ({label})", tags={
+        "coreach.stage": "release", TAG_SOURCE_RUN: run_id, "coreach.label": label, TAG_MODEL_NAME: name,
+        TAG_PUBLISH: "pending", TAG_OWNER: owner(), TAG_ROOT: str(root.resolve()),
+    }).info.run_id  # fmt: skip
+    try:
+        return _steps(cfg, client, policy, run, label, ev, name, root, rid)
+    except BaseException:  # an error, Ctrl-C or SIGTERM (see terminate_as_interrupt): settle before leaving
+        settle_run(client, client.get_run(rid), _warn)
+        raise
+
+
+def _steps(cfg, client, policy, run, label, ev, name, root: Path, rid: str) -> dict:
     from mlflow.entities import Metric, Param
 
-    name = registry.check_name(str(cfg.name))
-    gate = G.as_json(ev["results"])
     run_id = run.info.run_id
-    release_run = client.create_run(run.info.experiment_id, run_name=f"release {name} ({label})", tags={
-        "coreach.stage": "release", "coreach.source_run": run_id, "coreach.label": label, "coreach.model_name": name,
-    })  # fmt: skip
-    rid = release_run.info.run_id
-    version, created, folder = None, False, None
-    root = Path(cfg.out_dir).expanduser()
-    fresh = [d for d in (root, root / name) if not d.exists()]  # folders to remove again on failure
-    try:
-        mv, created = registry.register(client, name, run_id, f"{label} from training run {run_id}")
-        version = str(mv.version)
-        folder = root / name / f"v{version}"
-        meta = {**ev["meta"], "name": f"{name} v{version} ({label})"}
-        write_bundle(folder, policy, ev["urdf"], meta, {"report.html": ev["report"]}, gate=gate)
-        registry.mark_gate_passed(client, name, version, folder, gate, rid)
-        client.set_tag(rid, "coreach.model_version", version)
-        client.set_tag(rid, "coreach.bundle", str(folder.resolve()))
-        now = int(time.time() * 1000)
-        params = {"name": name, "suites": ",".join(ev["summaries"]), "training_run": run_id,
-                  **{f"gates.{k}": str(v) for k, v in OmegaConf.to_container(cfg.gates).items()}}  # fmt: skip
-        client.log_batch(rid, params=[Param(k, v) for k, v in params.items()])
-        values = [Metric(gate_metric_name(k), v["value"], now, 0) for k, v in gate.items()
-                  if v["value"] is not None]  # fmt: skip
-        client.log_batch(rid, metrics=values)
-        for fname in ("manifest.json", "MODEL_CARD.md", "report.html"):
-            client.log_artifact(rid, str(folder / fname), "bundle")
-        client.log_text(rid, json.dumps(ev["summaries"], indent=2, default=str), "summaries.json")
-        # the vetting metrics `coreach replay` compares a replay with, as `coreach vet` records them
-        for suite, s in ev["summaries"].items():
-            client.log_batch(run_id, metrics=[Metric(f"vet/{suite}/{k}", v, now, 0) for k, v in _headline(s).items()])
-        client.set_tag(run_id, f"coreach.release.{name}", version)
-        client.set_terminated(rid)
-    except BaseException:
-        if folder is not None and folder.exists():
-            shutil.rmtree(folder, ignore_errors=True)
-        for d in reversed(fresh):
-            if d.is_dir() and not any(d.iterdir()):
-                d.rmdir()
-        registry.unregister(client, name, version, created)
-        client.delete_run(rid)
-        raise
-    return {"version": version, "bundle": str(folder.resolve()), "release_run": rid}
+    gate = G.as_json(ev["results"])
+    _boundary("register")
+    if registry.get_model(client, name) is None:
+        client.set_tag(rid, TAG_CREATED_MODEL, "true")  # before creating it: a roll-back knows it may remove it
+        client.create_registered_model(name, description="coreach latent-action decoders that passed the release gate")
+    uri = bundle_uri(client, rid)
+    mv = client.create_model_version(name, source=uri, run_id=rid, tags={TAG_RELEASE_RUN: rid},
+                                     description=f"{label} from training run {run_id}")  # fmt: skip
+    version = str(mv.version)
+    client.set_tag(rid, TAG_VERSION, version)
+
+    _boundary("bundle")
+    folder = root / name / f"v{version}"
+    meta = {**ev["meta"], "name": f"{name} v{version} ({label})"}
+    write_bundle(folder, policy, ev["urdf"], meta, {"report.html": ev["report"]}, gate=gate,
+                 staging_prefix=staging_prefix(version, rid), before_rename=lambda: _boundary("renamed"))  # fmt: skip
+    _boundary("upload")
+    upload(client, rid, folder)
+
+    _boundary("record")
+    now = int(time.time() * 1000)
+    params = {"name": name, "suites": ",".join(ev["summaries"]), "training_run": run_id,
+              **{f"gates.{k}": str(v) for k, v in OmegaConf.to_container(cfg.gates).items()}}  # fmt: skip
+    client.log_batch(rid, params=[Param(k, v) for k, v in params.items()])
+    client.log_batch(rid, metrics=[Metric(gate_metric_name(k), v["value"], now, 0) for k, v in gate.items()
+                                   if v["value"] is not None])  # fmt: skip
+    client.log_text(rid, json.dumps(ev["summaries"], indent=2, default=str), "summaries.json")
+    # the vetting metrics `coreach replay` compares a replay with, as `coreach vet` records them
+    for suite, s in ev["summaries"].items():
+        client.log_batch(run_id, metrics=[Metric(f"vet/{suite}/{k}", v, now, 0) for k, v in _headline(s).items()])
+    client.set_tag(run_id, f"coreach.release.{name}", version)
+    for key, value in {TAG_BUNDLE_URI: uri, TAG_MANIFEST: sha256_file(folder / MANIFEST),
+                       TAG_GATE: json.dumps(registry.compact_gate(gate), separators=(",", ":"))}.items():  # fmt: skip
+        client.set_model_version_tag(name, version, key, value)
+
+    _boundary("usable")
+    client.set_model_version_tag(name, version, TAG_GATE_PASSED, "true")
+    client.set_registered_model_alias(name, GATE_PASSED_ALIAS, version)
+
+    _boundary("finish")
+    client.set_tag(rid, TAG_PUBLISH, "done")
+    client.set_terminated(rid)
+    return {"version": version, "bundle": str(folder.resolve()), "bundle_uri": uri, "release_run": rid}
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (cluster pre-emption) while publishing: unwinds like Ctrl-C, so the publish is settled first."""
+
+    exit_code = 143
+    message = "stopped by SIGTERM; nothing was published (an unfinished publish was rolled back)"
+
+
+class terminate_as_interrupt:
+    def __enter__(self):
+        def on_term(signum, frame):
+            raise Terminated()
+
+        try:
+            self.previous = signal.signal(signal.SIGTERM, on_term)
+        except ValueError:  # not the main thread: leave signals alone
+            self.previous = None
+        return self
+
+    def __exit__(self, *exc):
+        if self.previous is not None:
+            signal.signal(signal.SIGTERM, self.previous)
+        return False
+
+
+__all__ = ["publish", "gate_metric_name", "STEPS", "KILL_AT_ENV", "Terminated", "terminate_as_interrupt"]

@@ -15,16 +15,12 @@ import sys
 from pathlib import Path
 
 from coreach.errors import ConfigError, CoreachError
+from coreach.release.bundle_store import cached, releases_root
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
 
-GATE_PASSED_ALIAS = "gate-passed"
-FIELDED_ALIAS = "fielded"
-TAG_GATE_PASSED = "coreach.gate_passed"
-TAG_BUNDLE = "coreach.bundle"
-TAG_MANIFEST = "coreach.manifest_sha256"
-TAG_GATE = "coreach.gate"
-TAG_RELEASE_RUN = "coreach.release_run"
-TAG_HISTORY = "coreach.fielded_history"
+from coreach.release.tags import (FIELDED_ALIAS, GATE_PASSED_ALIAS, TAG_BUNDLE_URI, TAG_GATE, TAG_GATE_PASSED,
+                                  TAG_HISTORY, TAG_MANIFEST, TAG_RELEASE_RUN, TAG_SOURCE_RUN)
+
 HISTORY_KEEP = 40  # entries kept in the history tag (tag values are limited to a few thousand characters)
 NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")  # also a folder name under releases/
 
@@ -73,72 +69,29 @@ def get_version(client, name: str, version: str):
         raise
 
 
-# ------------------------------------------------------------------------------------- release side
-def register(client, name: str, run_id: str, description: str) -> tuple[object, bool]:
-    """A new model version of `name` from the training run's decoder artifact; (version, model was created)."""
-    created = get_model(client, name) is None
-    if created:
-        client.create_registered_model(name, description="coreach latent-action decoders that passed the release "
-                                                          "gate")  # fmt: skip
-    version = client.create_model_version(name, source=f"runs:/{run_id}/decoder", run_id=run_id,
-                                          description=description)  # fmt: skip
-    return version, created
-
-
-def mark_gate_passed(client, name: str, version: str, bundle: Path, gate: dict, release_run: str) -> None:
-    """Tags that tie the version to its bundle (path and manifest hash), then the gate-passed alias."""
-    tags = {
-        TAG_BUNDLE: str(Path(bundle).resolve()),
-        TAG_MANIFEST: sha256_file(Path(bundle) / MANIFEST),
-        TAG_GATE: json.dumps(_compact(gate), separators=(",", ":")),
-        TAG_RELEASE_RUN: release_run,
-        TAG_GATE_PASSED: "true",  # last: a version has passed the gate only once everything above is in place
-    }
-    for k, v in tags.items():
-        client.set_model_version_tag(name, version, k, v)
-    client.set_registered_model_alias(name, GATE_PASSED_ALIAS, version)
-
-
-def unregister(client, name: str, version: str | None, created_model: bool) -> None:
-    """Undo `register` after a failed release (best effort: the original error is what the user needs)."""
-    try:
-        if created_model:
-            client.delete_registered_model(name)
-        elif version is not None:
-            client.delete_model_version(name, version)
-    except Exception as exc:  # noqa: BLE001 - reported, not raised over the first failure
-        print(f"coreach: warning: could not remove model version {name}/{version}: {exc}", file=sys.stderr)
-
-
-def _compact(gate: dict) -> dict:
+def compact_gate(gate: dict) -> dict:
     """Gate results small enough for a tag: value, threshold, passed."""
     return {k: {"value": v["value"], "threshold": v["threshold"], "op": v["op"], "passed": v["passed"]}
             for k, v in gate.items()}  # fmt: skip
 
 
 # ------------------------------------------------------------------------------------- fielding
-def check_fieldable(client, name: str, version: str) -> dict:
-    """Refuse (CoreachError) unless `version` passed the release gate and its bundle verifies and is the one registered."""
+def check_fieldable(client, name: str, version: str, root: Path | None = None) -> dict:
+    """Refuse (CoreachError) unless `version` passed the release gate and its bundle, from the store or the
+    local cache under `root`, verifies and is the one registered."""
     mv = get_version(client, name, version)
     where = f"model {name} version {version}"
     tags = dict(mv.tags or {})
     if tags.get(TAG_GATE_PASSED) != "true":
         raise CoreachError(where, f"has not passed the release gate (no {TAG_GATE_PASSED}=true tag); only versions made by coreach release "
                                   "can be fielded")  # fmt: skip
-    bundle = tags.get(TAG_BUNDLE)
-    if not bundle:
-        raise CoreachError(where, f"has no {TAG_BUNDLE} tag naming its bundle folder")
-    try:
-        manifest = verify_bundle(bundle)
-    except BundleError as exc:
-        raise CoreachError(where, f"bundle does not verify ({exc}); not fielded") from None
-    digest = sha256_file(Path(bundle) / MANIFEST)
-    if digest != tags.get(TAG_MANIFEST):
-        raise CoreachError(where, f"bundle {bundle} has a manifest other than the one released (sha256 {digest[:16]}"
-                                  f"... vs {str(tags.get(TAG_MANIFEST))[:16]}...); not fielded")  # fmt: skip
-    if mv.run_id and manifest.training_run_id != mv.run_id:
-        raise CoreachError(where, f"bundle names training run {manifest.training_run_id}, the version {mv.run_id}")
-    return {"version": str(mv.version), "bundle": bundle, "run_id": mv.run_id}
+    folder = cached(client, mv, releases_root(root))
+    manifest = verify_bundle(folder)
+    source = client.get_run(tags[TAG_RELEASE_RUN]).data.tags.get(TAG_SOURCE_RUN)
+    if source and manifest.training_run_id != source:
+        raise CoreachError(where, f"bundle names training run {manifest.training_run_id}, its release run names {source}")
+    return {"version": str(mv.version), "bundle": str(folder.resolve()), "bundle_uri": tags[TAG_BUNDLE_URI],
+            "run_id": source}  # fmt: skip
 
 
 def _history(model) -> list[dict]:
@@ -154,12 +107,12 @@ def _now() -> str:
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
 
 
-def promote(client, name: str, version: str) -> dict:
+def promote(client, name: str, version: str, root: Path | None = None) -> dict:
     """Field `version` of `name` (alias `fielded`) after `check_fieldable`; push it on the history."""
     model = get_model(client, name)
     if model is None:
         raise ConfigError(f"model {name}", "no such registered model; see coreach releases")
-    info = check_fieldable(client, name, str(version))
+    info = check_fieldable(client, name, str(version), root)
     history = _history(model)
     current = (model.aliases or {}).get(FIELDED_ALIAS)
     if current is not None and (not history or history[-1]["version"] != str(current)):
@@ -173,7 +126,7 @@ def promote(client, name: str, version: str) -> dict:
             "history": [h["version"] for h in history[-HISTORY_KEEP:]]}  # fmt: skip
 
 
-def promote_back(client, name: str) -> dict:
+def promote_back(client, name: str, root: Path | None = None) -> dict:
     """Restore the version fielded before the current one (it must still pass `check_fieldable`)."""
     model = get_model(client, name)
     if model is None:
@@ -183,7 +136,7 @@ def promote_back(client, name: str) -> dict:
         raise CoreachError(f"model {name}", f"no earlier fielded version to go back to (history: "
                                             f"{[h['version'] for h in history]})")  # fmt: skip
     current, earlier = history[-1]["version"], history[-2]["version"]
-    info = check_fieldable(client, name, earlier)
+    info = check_fieldable(client, name, earlier, root)
     client.set_registered_model_alias(name, FIELDED_ALIAS, earlier)
     history = history[:-1]
     client.set_registered_model_tag(name, TAG_HISTORY, json.dumps(history, separators=(",", ":")))
@@ -192,23 +145,25 @@ def promote_back(client, name: str) -> dict:
 
 
 # ------------------------------------------------------------------------------------- listing
-def _bundle_status(tags: dict) -> str:
-    bundle = tags.get(TAG_BUNDLE)
-    if not bundle:
-        return "none"
+def _bundle_status(name: str, version: str, tags: dict, root: Path) -> tuple[str, str]:
+    """Where the bundle is (local cache folder, else its place in the store) and whether it checks out."""
+    folder = root / name / f"v{version}"
+    if not folder.is_dir():
+        return (tags.get(TAG_BUNDLE_URI) or "-", "in store" if tags.get(TAG_BUNDLE_URI) else "none")
     try:
-        verify_bundle(bundle)
+        verify_bundle(folder)
     except BundleError as exc:
-        return f"FAILS: {exc.problem[:60]}"
-    return "ok" if sha256_file(Path(bundle) / MANIFEST) == tags.get(TAG_MANIFEST) else "FAILS: manifest replaced"
+        return str(folder), f"FAILS: {exc.problem[:60]}"
+    ok = sha256_file(folder / MANIFEST) == tags.get(TAG_MANIFEST)
+    return str(folder), "ok" if ok else "FAILS: manifest replaced"
 
 
-def list_releases(client, name: str | None = None) -> list[dict]:
+def list_releases(client, name: str | None = None, root: Path | None = None) -> list[dict]:
     """Every version of `name` (or of every registered model): aliases, gate-passed tag, gates, bundle status."""
     models = [get_model(client, name)] if name else list(client.search_registered_models())
     if name and models[0] is None:
         raise ConfigError(f"model {name}", "no such registered model")
-    rows = []
+    rows, root = [], releases_root(root)
     for model in models:
         by_version: dict[str, list[str]] = {}
         for alias, v in (model.aliases or {}).items():
@@ -219,6 +174,7 @@ def list_releases(client, name: str | None = None) -> list[dict]:
                 gate = json.loads(tags.get(TAG_GATE, "{}"))
             except json.JSONDecodeError:
                 gate = {}
+            bundle, status = _bundle_status(model.name, str(mv.version), tags, root)
             rows.append({
                 "name": model.name,
                 "version": str(mv.version),
@@ -226,9 +182,9 @@ def list_releases(client, name: str | None = None) -> list[dict]:
                 "gate_passed": tags.get(TAG_GATE_PASSED) == "true",
                 "gates_passed": sum(bool(g.get("passed")) for g in gate.values()),
                 "gates": gate,
-                "bundle": tags.get(TAG_BUNDLE),
-                "bundle_status": _bundle_status(tags),
-                "run_id": mv.run_id,
+                "bundle": bundle,
+                "bundle_status": status,
+                "release_run": tags.get(TAG_RELEASE_RUN),
                 "created": _dt.datetime.fromtimestamp(mv.creation_timestamp / 1000, _dt.timezone.utc)
                 .isoformat(timespec="seconds"),
             })  # fmt: skip
@@ -257,11 +213,28 @@ def promote_command(args: list[str], as_json: bool) -> int:
     return 0
 
 
+RELEASES_USAGE = "coreach releases [NAME] [--repair] [--json]"
+
+
 def releases_command(args: list[str], as_json: bool) -> int:
-    rest = [a for a in args if not a.startswith("-")]
-    if len(rest) > 1 or len(rest) != len(args):
-        raise ConfigError("coreach releases", f"usage: coreach releases [NAME] [--json]; got {' '.join(args)}")
-    rows = list_releases(client_for(), check_name(rest[0]) if rest else None)
+    from coreach.release.settle import repair, settle
+
+    fix = "--repair" in args
+    rest = [a for a in args if a != "--repair"]
+    if len(rest) > 1 or any(a.startswith("-") for a in rest):
+        raise ConfigError("coreach releases", f"usage: {RELEASES_USAGE}; got {' '.join(args)}")
+    client = client_for()
+    said: list[str] = []
+
+    def say(line: str) -> None:
+        said.append(line)
+        print(f"coreach releases: {line}", file=sys.stderr)
+
+    # what an earlier crash left is finished or rolled back before anything is listed
+    repair(client, None, say) if fix else settle(client, say)
+    if fix and not said:
+        print("coreach releases: --repair found nothing half-done", file=sys.stderr)
+    rows = list_releases(client, check_name(rest[0]) if rest else None)
     if as_json:
         print(json.dumps(rows, indent=2))
         return 0
@@ -284,5 +257,5 @@ def releases_command(args: list[str], as_json: bool) -> int:
     return 0
 
 
-__all__ = ["GATE_PASSED_ALIAS", "FIELDED_ALIAS", "register", "mark_gate_passed", "unregister", "promote", "promote_back",
+__all__ = ["GATE_PASSED_ALIAS", "FIELDED_ALIAS", "compact_gate", "promote", "promote_back",
            "list_releases", "check_fieldable", "promote_command", "releases_command", "check_name", "client_for"]

@@ -2,15 +2,17 @@
 
 Everything the gate needs (rollouts, vetting report, a staged bundle for the parity and latency checks) is
 made in a temporary folder that is always deleted. A refusal leaves nothing: no bundle folder, no MLflow
-run, no registry version. A pass writes the bundle to <out_dir>/<name>/v<version>/ (renamed into place
-when complete), registers the version from the training run's `decoder` artifact, ties it to the bundle
-with tags, marks it gate-passed and logs a release run; a failure part-way undoes what was done.
+run, no registry version. A pass publishes (coreach.release.publish): intent, model version, bundle under
+<out_dir>/<name>/v<version>/, the bundle uploaded to the tracking store, records, and last the mark that
+makes the version usable. Before anything, what an earlier crashed publish left is settled
+(coreach.release.settle); SIGTERM unwinds like Ctrl-C, so an interrupted publish is settled before exit.
 """
 
 from __future__ import annotations
 
 import os
 import shutil
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -25,7 +27,8 @@ from coreach.release import registry
 from coreach.runtime.model_card import CAUTIONS
 from coreach.vetting.diagnosis import without_episodes
 from coreach.release.evaluation import evaluate, suite_refs
-from coreach.release.publish import publish
+from coreach.release.publish import publish, terminate_as_interrupt
+from coreach.release.settle import scratch_prefix, settle
 
 REFUSED_EXIT = 3  # distinct from 2 (bad input): the input was fine, the decoder did not pass
 
@@ -68,8 +71,15 @@ def release(cfg: DictConfig) -> dict:
     client = registry.client_for(uri)
     policy, run_id, run = _training_run(client, "" if OmegaConf.is_missing(cfg, "run") else str(cfg.run))
     label = run.data.tags.get("coreach.label") or f"decoder-{run_id[:8]}"
+    settle(client, lambda line: print(f"coreach release: {line}", file=sys.stderr))
 
-    staging = Path(tempfile.mkdtemp(prefix="coreach-release-"))
+    with terminate_as_interrupt():
+        return _gate_and_publish(cfg, client, policy, run, label, uri, t0)
+
+
+def _gate_and_publish(cfg, client, policy, run, label: str, uri: str, t0: float) -> dict:
+    run_id = run.info.run_id
+    staging = Path(tempfile.mkdtemp(prefix=scratch_prefix()))
     try:
         ev = evaluate(cfg, policy, run, label, staging)
         ok = G.passed(ev["results"])
