@@ -66,29 +66,15 @@ def released(tmp_path_factory):
         res = run_cli(["release", f"run={run_id}", f"name={name}", *RELEASE, *server], cwd, env)
         assert res.returncode == 0, res.stderr[-3000:]
     client = MlflowClient(uri)
-    for v in ("1", "2"):
-        _publish_per_contract_if_missing(client, name, v, cwd / "releases" / name / f"v{v}")
     versions = {v: client.get_model_version(name, v) for v in ("1", "2")}
+    for mv in versions.values():  # the release's side of the contract: the version's source is its bundle
+        assert mv.source == mv.tags["coreach.bundle_uri"] and mv.tags["coreach.gate_passed"] == "true"
     released = {"uri": uri, "name": name, "cwd": cwd, "env": env, "client": client, "run_id": run_id,
             "bundle_uri": {v: mv.tags["coreach.bundle_uri"] for v, mv in versions.items()},
             "manifest_sha256": {v: mv.tags["coreach.manifest_sha256"] for v, mv in versions.items()},
             "release_run": {v: mv.tags["coreach.release_run"] for v, mv in versions.items()}}
     promote(released, "1")
     return released
-
-
-def _publish_per_contract_if_missing(client, name: str, version: str, folder: Path) -> None:
-    """TEMPORARY, until main's `coreach release` keeps the bundle in the tracking store: upload the local bundle
-    to the release run's `bundle/` and tag the version as the contract says (coreach.gate_passed last)."""
-    mv = client.get_model_version(name, version)
-    if "coreach.bundle_uri" in mv.tags:
-        return
-    rid = mv.tags["coreach.release_run"]
-    client.log_artifacts(rid, str(folder), "bundle")
-    uri = client.get_run(rid).info.artifact_uri.rstrip("/") + "/bundle"
-    client.delete_model_version_tag(name, version, "coreach.gate_passed")
-    client.set_model_version_tag(name, version, "coreach.bundle_uri", uri)
-    client.set_model_version_tag(name, version, "coreach.gate_passed", "true")
 
 
 def promote(released, *args: str) -> None:
