@@ -172,9 +172,9 @@ def test_trainer_sweep_is_a_valid_coreach_command(services, workdir):
 # ---- the image ----------------------------------------------------------------------------------------
 
 
-def dockerfile_instructions() -> list[tuple[str, str]]:
+def dockerfile_instructions(path: Path = DOCKERFILE) -> list[tuple[str, str]]:
     """(INSTRUCTION, arguments) with continuation lines joined and comments dropped."""
-    lines, out, buf = DOCKERFILE.read_text().splitlines(), [], ""
+    lines, out, buf = path.read_text().splitlines(), [], ""
     for line in lines:
         if not buf and (not line.strip() or line.lstrip().startswith("#")):
             continue
@@ -247,3 +247,70 @@ def test_image_base_user_and_entrypoint():
         if i == "COPY":
             for src in a.split()[:-1]:
                 assert (ROOT / src).exists(), src
+
+
+# ---- the robot computer's image and service -----------------------------------------------------------
+ROBOT_DOCKERFILE = ROOT / "docker" / "Dockerfile.robot"
+ROBOT_DIST = ROOT / "pipeline" / "coreach-robot"
+
+
+def robot_instructions() -> list[tuple[str, str]]:
+    return dockerfile_instructions(ROBOT_DOCKERFILE)
+
+
+def test_robot_image_installs_only_the_runtime_distribution():
+    ins = robot_instructions()
+    assert ins[0] == ("FROM", "python:3.11-slim")
+    text = " ".join(f"{i} {a}" for i, a in ins).lower()  # the instructions, not the comments
+    assert "torch" not in text and "mlflow" not in text
+    runs = [a for i, a in ins if i == "RUN" and "pip install" in a]
+    assert len(runs) == 1
+    tokens = shlex.split(runs[0].split("&&")[0])
+    targets = [t for t in tokens[tokens.index("install") + 1 :] if not t.startswith("-")]
+    assert targets == ["./pipeline/coreach-robot"]  # its dependencies are numpy, onnxruntime, array-api-compat
+    # everything the distribution force-includes is copied into the build, at the same place
+    workdir = [a for i, a in ins if i == "WORKDIR"][0]
+    copied = {a.split()[0] for i, a in ins if i == "COPY"}
+    assert all((ROOT / src).exists() for src in copied)
+    included = tomllib.loads((ROBOT_DIST / "pyproject.toml").read_text())["tool"]["hatch"]["build"]["targets"]["wheel"]
+    for src in included["force-include"]:
+        rel = (ROBOT_DIST / src).resolve().relative_to(ROOT)
+        assert rel.parts[0] in copied, f"{rel} is not copied into {workdir}"
+    ignore = (ROOT / "docker" / "Dockerfile.robot.dockerignore").read_text().split()
+    assert {"*", "!pipeline/", "!plugins/"} <= set(ignore)  # the build context holds what the COPYs take
+
+
+def test_robot_image_user_cache_and_entrypoint():
+    ins = robot_instructions()
+    names = [i for i, _ in ins]
+    users = [a for i, a in ins if i == "USER"]
+    assert users and users[-1] not in ("root", "0")
+    assert names.index("USER") > max(k for k, n in enumerate(names) if n == "RUN")
+    assert [json.loads(a) for i, a in ins if i == "ENTRYPOINT"] == [["coreach-robot"]]
+    scripts = tomllib.loads((ROBOT_DIST / "pyproject.toml").read_text())["project"]["scripts"]
+    assert "coreach-robot" in scripts
+    env = " ".join(a for i, a in ins if i == "ENV")
+    cache = re.search(r"COREACH_ROBOT_CACHE=(\S+)", env).group(1)
+    run_text = " ".join(a for i, a in ins if i == "RUN")
+    assert f"mkdir -p {cache}" in run_text and f"chown {users[-1]}:{users[-1]} {cache}" in run_text
+
+
+def test_robot_service_fetches_the_fielded_bundle_from_the_stack(services):
+    from coreach.runtime.fetch import parse_ref
+    from coreach.runtime.robot_cli import parser
+
+    robot = services["robot"]
+    assert robot["build"]["dockerfile"] == "docker/Dockerfile.robot"
+    assert (ROOT / "docker" / robot["build"]["context"] / robot["build"]["dockerfile"]).resolve() == ROBOT_DOCKERFILE
+    env = env_of(robot)
+    uri = urlsplit(env["COREACH_TRACKING_URI"])
+    port = listen_port(services, "mlflow")
+    assert (uri.hostname, uri.port) == ("mlflow", port)
+    assert f"mlflow:{port}" in args_of(services["mlflow"])["allowed-hosts"].split(",")
+    assert "serve-artifacts" in args_of(services["mlflow"])  # the robot has no S3 credentials
+    assert not {"AWS_ACCESS_KEY_ID", "AWS_SECRET_ACCESS_KEY"} & set(env)
+    assert robot["depends_on"]["mlflow"]["condition"] == "service_healthy"
+    ns = parser().parse_args(list(robot["command"]))  # a valid coreach-robot command line
+    assert ns.command == "fetch" and parse_ref(ns.ref)[1] == "fielded"
+    mounts = {v.split(":", 1)[1]: v.split(":", 1)[0] for v in robot["volumes"]}
+    assert env["COREACH_ROBOT_CACHE"] in mounts  # fetched bundles survive the container
