@@ -11,11 +11,15 @@ hashlib, the registry through MLflow's own client.
 from __future__ import annotations
 
 import hashlib
+import http.server
 import json
 import os
 import subprocess
 import sys
 import textwrap
+import threading
+import urllib.error
+import urllib.request
 from pathlib import Path
 
 import pytest
@@ -287,3 +291,42 @@ def test_what_cannot_be_fetched_is_one_line_and_changes_nothing(released, shared
     res = robot(["fetch", ref, "--server", server, "--cache", str(cache), "--timeout", "3"], tmp_path)
     one_line_error(res, 2, *words)
     _left_alone(cache, released["name"])
+
+
+class _CuttingProxy(http.server.BaseHTTPRequestHandler):
+    """Forwards GETs to the real server; answers for decoder.onnx are cut off halfway (a dropped link)."""
+
+    upstream = ""
+
+    def do_GET(self):  # noqa: N802 - http.server's name
+        try:
+            with urllib.request.urlopen(self.upstream + self.path, timeout=30) as resp:
+                status, body, kind = resp.status, resp.read(), resp.headers.get("Content-Type", "")
+        except urllib.error.HTTPError as exc:
+            status, body, kind = exc.code, exc.read(), exc.headers.get("Content-Type", "")
+        self.send_response(status)
+        self.send_header("Content-Type", kind)
+        self.send_header("Content-Length", str(len(body)))
+        self.end_headers()
+        cut = self.path.endswith("/decoder.onnx")
+        self.wfile.write(body[: len(body) // 2] if cut else body)
+        if cut:
+            self.close_connection = True
+
+    def log_message(self, *args):
+        pass
+
+
+def test_a_download_cut_off_midway_changes_nothing(released, fielded_cache, tmp_path):
+    name, cache = released["name"], fielded_cache
+    promote(released, "2")
+    handler = type("Proxy", (_CuttingProxy,), {"upstream": released["uri"]})
+    proxy = http.server.ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    threading.Thread(target=proxy.serve_forever, daemon=True).start()
+    try:
+        res = robot(["fetch", name, "--server", f"http://127.0.0.1:{proxy.server_port}", "--cache", str(cache),
+                     "--timeout", "5"], tmp_path)  # fmt: skip
+    finally:
+        proxy.shutdown()
+    one_line_error(res, 2, "decoder.onnx", "cut off")
+    _left_alone(cache, name)

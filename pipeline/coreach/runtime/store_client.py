@@ -197,7 +197,11 @@ class StoreClient:
                                                                "the bundle there is incomplete") from None  # fmt: skip
             raise self._http_error(exc, what) from None
         with resp:
-            copy_stream(resp, sink, limit, f"{PROXIED_SCHEME}{path}")
+            got = copy_stream(resp, sink, limit, f"{PROXIED_SCHEME}{path}")
+            declared = resp.headers.get("Content-Length")
+        # http.client ends a chunked read quietly when the connection drops: compare with what was announced
+        if declared is not None and declared.isdigit() and got != int(declared):
+            raise FetchError(f"{PROXIED_SCHEME}{path}", f"download was cut off ({got} of {declared} bytes arrived)")
 
 
 def copy_stream(src: BinaryIO, sink, limit: int | None, where: str) -> int:
