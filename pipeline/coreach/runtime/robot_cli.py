@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 import traceback
 from typing import Any
@@ -145,6 +146,9 @@ def main(argv: list[str] | None = None) -> int:
         return _fail(exc, REFUSED, debug)
     except CoreachError as exc:
         return _fail(exc, 2, debug)
+    except BrokenPipeError:  # the reader of stdout went away (`| head`): nothing more to say
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         print(f"{PROG}: error: interrupted; the current bundle is unchanged", file=sys.stderr)
         return 130
