@@ -88,6 +88,8 @@ def _quiet_library_warnings() -> None:
     warnings.filterwarnings("ignore", message=r".*validation_step.*no `val_dataloader`.*")
     warnings.filterwarnings("ignore", message=r".*The `srun` command is available on your system.*")
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+    # stdout belongs to --json; MLflow prints a "View run at" link there when a run on a server ends
+    os.environ.setdefault("MLFLOW_SUPPRESS_PRINTING_URL_TO_STDOUT", "true")
 
 
 def main(argv: list[str] | None = None) -> int:
