@@ -37,7 +37,8 @@ commands:
             (coreach replay bundle=releases/<name>/v<version> suite=held-out)
   promote   field a gate-passed version (coreach promote NAME VERSION) or restore the previous one
             (coreach promote NAME --back)
-  releases  registered versions, aliases and gate results (coreach releases [NAME])
+  releases  registered versions, aliases and gate results; settles crashed publishes first
+            (coreach releases [NAME] [--repair]: --repair also removes older leftovers, saying what)
   try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
             (coreach try-bundle releases/<name>/v<version> [--port 8765] [--record-dir drives])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
