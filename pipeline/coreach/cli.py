@@ -37,7 +37,8 @@ commands:
             (coreach replay bundle=releases/<name>/v<version> suite=held-out)
   promote   field a gate-passed version (coreach promote NAME VERSION) or restore the previous one
             (coreach promote NAME --back)
-  releases  registered versions, aliases and gate results (coreach releases [NAME])
+  releases  registered versions, aliases and gate results; settles crashed publishes first
+            (coreach releases [NAME] [--repair]: --repair also removes older leftovers, saying what)
   try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
             (coreach try-bundle releases/<name>/v<version> [--port 8765] [--record-dir drives])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
@@ -88,6 +89,8 @@ def _quiet_library_warnings() -> None:
     warnings.filterwarnings("ignore", message=r".*validation_step.*no `val_dataloader`.*")
     warnings.filterwarnings("ignore", message=r".*The `srun` command is available on your system.*")
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+    # stdout belongs to --json; MLflow prints a "View run at" link there when a run on a server ends
+    os.environ.setdefault("MLFLOW_SUPPRESS_PRINTING_URL_TO_STDOUT", "true")
 
 
 def main(argv: list[str] | None = None) -> int:

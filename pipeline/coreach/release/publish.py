@@ -39,13 +39,16 @@ from coreach.runtime.bundle import MANIFEST, sha256_file
 from coreach.vetting.metrics import flat_metrics
 
 STEPS = ("intent", "register", "bundle", "renamed", "upload", "record", "usable", "finish")
-# Fault injection for the crash tests: the process SIGKILLs itself on reaching this step.
+# Fault injection for the crash tests: on reaching the named step the process sends itself SIGKILL (as a
+# power cut would) or SIGTERM (as a cluster's pre-emption would).
 KILL_AT_ENV = "COREACH_FAULT_KILL_AT"
+TERM_AT_ENV = "COREACH_FAULT_TERM_AT"
 
 
 def _boundary(step: str) -> None:
-    if os.environ.get(KILL_AT_ENV) == step:
-        os.kill(os.getpid(), signal.SIGKILL)
+    for env, sig in ((KILL_AT_ENV, signal.SIGKILL), (TERM_AT_ENV, signal.SIGTERM)):
+        if os.environ.get(env) == step:
+            os.kill(os.getpid(), sig)
 
 
 def gate_metric_name(gate: str) -> str:
@@ -155,4 +158,4 @@ class terminate_as_interrupt:
         return False
 
 
-__all__ = ["publish", "gate_metric_name", "STEPS", "KILL_AT_ENV", "Terminated", "terminate_as_interrupt"]
+__all__ = ["publish", "gate_metric_name", "STEPS", "KILL_AT_ENV", "TERM_AT_ENV", "Terminated", "terminate_as_interrupt"]
