@@ -1,6 +1,6 @@
 """The robot fetch without a tracking server: bad input in one line (exit 2), a silent or wrong server, storage
 the robot cannot read, the `current` pointer and `status`. Fetches against the real server are in
-tests/lab/test_robot_fetch.py."""
+tests/lab/test_robot_fetch_server.py."""
 
 from __future__ import annotations
 

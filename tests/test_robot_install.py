@@ -1,6 +1,6 @@
 """The runtime-only distribution (pipeline/coreach-robot/pyproject.toml) ships exactly the modules the robot side
 imports, and its version and dependencies follow the full package. Building and running it in a fresh venv is
-tests/lab/test_robot_fetch.py."""
+tests/lab/test_robot_fetch_server.py."""
 
 from __future__ import annotations
 
