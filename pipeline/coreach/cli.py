@@ -39,6 +39,8 @@ commands:
             (coreach promote NAME --back)
   releases  registered versions, aliases and gate results; settles crashed publishes first
             (coreach releases [NAME] [--repair]: --repair also removes older leftovers, saying what)
+  fetch     the robot computer's fetch: NAME[@ALIAS] from a tracking server, verified, then made current
+            (coreach fetch NAME@fielded --server URL --cache DIR; torch-free: coreach-robot fetch|status)
   try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
             (coreach try-bundle releases/<name>/v<version> [--port 8765] [--record-dir drives])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
