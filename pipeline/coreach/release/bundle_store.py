@@ -13,7 +13,7 @@ import tempfile
 from pathlib import Path
 
 from coreach.errors import CoreachError
-from coreach.release.tags import TAG_BUNDLE_URI, TAG_MANIFEST, TAG_RELEASE_RUN
+from coreach.runtime.registry_tags import TAG_BUNDLE_URI, TAG_MANIFEST, TAG_RELEASE_RUN
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
 
 BUNDLE_ARTIFACT = "bundle"  # artifact path of the bundle inside its release run

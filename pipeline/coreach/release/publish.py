@@ -32,7 +32,7 @@ from coreach.release import registry
 from coreach.release.bundle_store import bundle_uri, releases_root, staging_prefix, upload
 from coreach.release.bundle_writer import write_bundle
 from coreach.release.settle import owner, settle_run
-from coreach.release.tags import (GATE_PASSED_ALIAS, TAG_BUNDLE_URI, TAG_CREATED_MODEL, TAG_GATE, TAG_GATE_PASSED,
+from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, TAG_BUNDLE_URI, TAG_CREATED_MODEL, TAG_GATE, TAG_GATE_PASSED,
                                   TAG_MANIFEST, TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT,
                                   TAG_SOURCE_RUN, TAG_VERSION)
 from coreach.runtime.bundle import MANIFEST, sha256_file

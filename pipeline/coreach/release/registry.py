@@ -10,23 +10,21 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import re
 import sys
 from pathlib import Path
 
 from coreach.errors import ConfigError, CoreachError
 from coreach.release.bundle_store import cached, releases_root
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
-
-from coreach.release.tags import (FIELDED_ALIAS, GATE_PASSED_ALIAS, TAG_BUNDLE_URI, TAG_GATE, TAG_GATE_PASSED,
-                                  TAG_HISTORY, TAG_MANIFEST, TAG_RELEASE_RUN, TAG_SOURCE_RUN)
+from coreach.runtime.registry_tags import (FIELDED_ALIAS, GATE_PASSED_ALIAS, MODEL_NAME_RE, TAG_BUNDLE_URI,
+                                           TAG_GATE, TAG_GATE_PASSED, TAG_HISTORY, TAG_MANIFEST, TAG_RELEASE_RUN,
+                                           TAG_SOURCE_RUN)
 
 HISTORY_KEEP = 40  # entries kept in the history tag (tag values are limited to a few thousand characters)
-NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")  # also a folder name under releases/
 
 
 def check_name(name) -> str:
-    if not isinstance(name, str) or not NAME_RE.match(name) or ".." in name:
+    if not isinstance(name, str) or not MODEL_NAME_RE.match(name) or ".." in name:
         raise ConfigError("option name", f"expected a model name of letters, digits, '-', '_' or '.' (it is also a "
                                          f"folder name), got {name!r}")  # fmt: skip
     return name

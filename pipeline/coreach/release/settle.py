@@ -24,7 +24,7 @@ from pathlib import Path
 from typing import Callable
 
 from coreach.release.bundle_store import PARTIAL, releases_root
-from coreach.release.tags import (GATE_PASSED_ALIAS, TAG_CREATED_MODEL, TAG_GATE_PASSED, TAG_MODEL_NAME, TAG_OWNER,
+from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, TAG_CREATED_MODEL, TAG_GATE_PASSED, TAG_MODEL_NAME, TAG_OWNER,
                                   TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT, TAG_SOURCE_RUN)
 # A publish takes seconds; one owned by another computer counts as abandoned after this long. On the
 # owner's own computer the process table decides at once.

@@ -39,20 +39,14 @@ from typing import Any, Iterator
 from coreach.runtime.manifest import MANIFEST, BundleError, Manifest
 from coreach.runtime.store_client import (PROXIED_SCHEME, FetchError, ModelVersion, RefusedBundle, StoreClient,
                                           copy_stream)
+# registry tags and aliases a release writes: the contract with `coreach release` / `coreach promote`
+from coreach.runtime.registry_tags import (FIELDED_ALIAS, MODEL_NAME_RE, TAG_BUNDLE_URI, TAG_GATE, TAG_GATE_PASSED,
+                                           TAG_MANIFEST, TAG_RELEASE_RUN)
 from coreach.runtime.verify import _check_name, sha256_bytes, sha256_file, verify_bundle
-
-# registry tags and aliases a release writes (the contract with `coreach release` / `coreach promote`)
-TAG_BUNDLE_URI = "coreach.bundle_uri"
-TAG_MANIFEST = "coreach.manifest_sha256"
-TAG_RELEASE_RUN = "coreach.release_run"
-TAG_GATE = "coreach.gate"
-TAG_GATE_PASSED = "coreach.gate_passed"
-FIELDED_ALIAS = "fielded"
 
 CURRENT = "current"
 PARTIAL = ".partial-"
 LOCK = ".lock"
-NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
 ALIAS_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_-]{0,254}$")
 HEX64 = re.compile(r"^[0-9a-f]{64}$")
 
@@ -69,7 +63,7 @@ def parse_ref(ref: str) -> tuple[str, str]:
     """`NAME` or `NAME@ALIAS` -> (name, alias); the alias defaults to `fielded`."""
     name, sep, alias = str(ref).partition("@")
     alias = alias if sep else FIELDED_ALIAS
-    if not NAME_RE.match(name) or ".." in name:
+    if not MODEL_NAME_RE.match(name) or ".." in name:
         raise FetchError(f"model {ref!r}", "expected NAME or NAME@ALIAS, NAME of letters, digits, '-', '_' or '.' "
                                            "(it is also a folder name in the cache)")  # fmt: skip
     if not ALIAS_RE.match(alias):
@@ -359,7 +353,7 @@ def status(cache: str | Path | None = None, name: str | None = None) -> list[dic
             raise FetchError(str(root / name), f"nothing fetched for {name} in this cache")
         names = [name]
     else:
-        names = sorted(p.name for p in root.iterdir() if p.is_dir() and NAME_RE.match(p.name)) if root.is_dir() else []
+        names = sorted(p.name for p in root.iterdir() if p.is_dir() and MODEL_NAME_RE.match(p.name)) if root.is_dir() else []
     rows = []
     for n in names:
         folder = root / n

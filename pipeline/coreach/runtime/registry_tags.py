@@ -1,4 +1,5 @@
-"""Names of our own that releases write into the tracking store, in one place.
+"""Names of our own that releases write into the tracking store, in one place: the contract between
+`coreach release` / `coreach promote` (the workstation) and `coreach-robot fetch` (the robot computer).
 
 Model version: `coreach.release_run` (the run that published it), `coreach.bundle_uri` (the bundle's folder
 in the store, also the version's source), `coreach.manifest_sha256`, `coreach.gate` (compact gate results)
@@ -6,6 +7,11 @@ and, written last, `coreach.gate_passed=true`: a version without it was never fu
 Registered model: aliases `gate-passed` (newest release) and `fielded` (on the robots), and the fielding
 history tag. Release run: `coreach.publish` (pending -> done | rolled-back) and the intent's details.
 """
+
+import re
+
+# a registered model name; it is also a folder name under releases/ and in the robot's cache
+MODEL_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
 
 GATE_PASSED_ALIAS = "gate-passed"
 FIELDED_ALIAS = "fielded"
