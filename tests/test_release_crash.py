@@ -64,6 +64,8 @@ def _nothing_half_done(cwd: Path, uri: str, name: str, run_id: str) -> list[int]
     exp = client.get_run(run_id).info.experiment_id
     runs = client.search_runs([exp], f"tags.`coreach.model_name` = '{name}'", run_view_type=ViewType.ACTIVE_ONLY)
     assert [r.info.status for r in runs] == ["FINISHED"] * len(usable), [(r.info.status, r.data.tags) for r in runs]
+    gone = client.search_runs([exp], f"tags.`coreach.model_name` = '{name}'", run_view_type=ViewType.DELETED_ONLY)
+    assert all(client.list_artifacts(r.info.run_id) == [] for r in gone)  # no uploaded bundle of a rolled-back run
     tag = client.get_run(run_id).data.tags.get(f"coreach.release.{name}")
     assert tag is None or int(tag) in usable
     return usable

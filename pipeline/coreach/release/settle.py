@@ -116,11 +116,26 @@ def settle_run(client, run, say: Say) -> str:
         if model_versions is not None and not model_versions:
             client.delete_registered_model(name)
             say(f"removed registered model {name}: the unfinished publish had created it and it holds no version")
+    _remove_artifacts(client, run, say)
     client.set_tag(rid, TAG_PUBLISH, "rolled-back")
     client.set_terminated(rid, "FAILED")
     client.delete_run(rid)
     say(f"removed release run {rid} of {name}: its publish did not finish")
     return "rolled back"
+
+
+def _remove_artifacts(client, run, say: Say) -> None:
+    """The bundle files an unfinished publish uploaded (best effort: `mlflow gc` removes what is left)."""
+    from mlflow.store.artifact.artifact_repository_registry import get_artifact_repository
+
+    try:
+        repo = get_artifact_repository(run.info.artifact_uri, tracking_uri=client.tracking_uri)
+        if repo.list_artifacts():
+            repo.delete_artifacts()
+            say(f"removed the artifacts of release run {run.info.run_id}: an unfinished upload")
+    except Exception as exc:  # noqa: BLE001 - the roll-back goes on; the run is deleted either way
+        say(f"could not remove the artifacts of release run {run.info.run_id} ({str(exc).splitlines()[0][:120]}); "
+            "`mlflow gc` removes them with the deleted run")
 
 
 def _has_model(client, name: str) -> bool:
