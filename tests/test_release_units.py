@@ -332,6 +332,23 @@ def test_a_changed_local_cache_is_refused_and_listed(store, bundle):
     assert registry.promote(c, name, v)["fielded"] == v
 
 
+def test_bundle_references_resolve_through_the_store(store, bundle, monkeypatch):
+    """replay, bench runtime and try-bundle take a folder or NAME@ALIAS / NAME/VERSION from the store."""
+    c, name = store.client, "by-reference"
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", c.tracking_uri)
+    v = _vetted_version(store, bundle, name)
+    folder = bundle_store.bundle_folder(f"{name}@gate-passed")
+    assert folder == registry.releases_root() / name / f"v{v}"
+    assert (folder / MANIFEST).read_bytes() == (bundle / MANIFEST).read_bytes()
+    assert bundle_store.bundle_folder(f"models:/{name}/{v}") == folder
+    assert bundle_store.bundle_folder(str(bundle)) == bundle  # a folder stays a folder
+    unfinished = _vetted_version(store, bundle, name, usable=False)
+    for ref, needle in ((f"{name}@fielded", "has no alias @fielded"), (f"{name}/{unfinished}", "not a finished release"),
+                        ("nobody@fielded", "no registered model 'nobody'"), ("no/such/folder", "neither a bundle folder")):  # fmt: skip
+        with pytest.raises(CoreachError, match=needle):
+            bundle_store.bundle_folder(ref)
+
+
 def test_model_names_are_checked():
     assert registry.check_name("bedside-shelf-decoder") == "bedside-shelf-decoder"
     for bad in ("../x", "a/b", "", "x" * 200):

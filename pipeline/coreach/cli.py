@@ -34,7 +34,8 @@ commands:
   release   gate a trained decoder and, if it passes, bundle, register and mark it gate-passed
             (coreach release run=<run id> [name=bedside-shelf-decoder]; refusal: gate table, exit 3)
   replay    replay a release bundle's ONNX decoder through a suite and compare with its vetting
-            (coreach replay bundle=releases/<name>/v<version> suite=held-out)
+            (coreach replay bundle=releases/<name>/v<version> suite=held-out; or bundle=<name>@fielded,
+            bundle=<name>/<version>: taken from the tracking store, verified, cached under releases/)
   promote   field a gate-passed version (coreach promote NAME VERSION) or restore the previous one
             (coreach promote NAME --back)
   releases  registered versions, aliases and gate results; settles crashed publishes first
@@ -42,12 +43,12 @@ commands:
   fetch     the robot computer's fetch: NAME[@ALIAS] from a tracking server, verified, then made current
             (coreach fetch NAME@fielded --server URL --cache DIR; torch-free: coreach-robot fetch|status)
   try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
-            (coreach try-bundle releases/<name>/v<version> [--port 8765] [--record-dir drives])
+            (coreach try-bundle releases/<name>/v<version>|<name>@<alias> [--port 8765] [--record-dir drives])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
                 cVAE with and without goal_information (goal: <= 2x the time); bench.threads=1 on shared cores
   bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)
   bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
-                (coreach bench runtime bundle=<folder>; goals: p99 <= 100 us and <= 2x the bare call)
+                (coreach bench runtime bundle=<folder>|<name>@<alias>; goals: p99 <= 100 us, <= 2x the bare call)
   bench vet     closed-loop throughput: batched loop against a per-episode loop and a bare decoder pass
 
 options:

@@ -8,12 +8,13 @@ downloaded from the store, verified in a staging folder beside it and renamed in
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import tempfile
 from pathlib import Path
 
 from coreach.errors import CoreachError
-from coreach.runtime.registry_tags import TAG_BUNDLE_URI, TAG_MANIFEST, TAG_RELEASE_RUN
+from coreach.runtime.registry_tags import TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST, TAG_RELEASE_RUN
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
 
 BUNDLE_ARTIFACT = "bundle"  # artifact path of the bundle inside its release run
@@ -77,6 +78,38 @@ def cached(client, mv, root: Path) -> Path:
     return folder
 
 
+_REF = re.compile(r"^(?:models:/)?(?P<name>[A-Za-z0-9][A-Za-z0-9_.-]{0,99})(?:@(?P<alias>[A-Za-z0-9_-]+)|/(?P<version>\d+))$")
+
+
+def bundle_folder(ref: str, where: str = "option bundle") -> Path:
+    """A bundle folder from `ref`: an existing folder, or a released version in the tracking store named as
+    NAME@ALIAS or NAME/VERSION (also with a models:/ prefix), verified and cached under releases/."""
+    folder = Path(str(ref)).expanduser()
+    if folder.is_dir():
+        return folder
+    m = _REF.match(str(ref))
+    if not m or ".." in m["name"]:
+        raise CoreachError(where, f"{ref!r} is neither a bundle folder nor a released model as NAME@ALIAS or "
+                                  "NAME/VERSION (e.g. bedside-shelf-decoder@fielded)")  # fmt: skip
+    from coreach.release.registry import client_for, get_model, get_version
+
+    client = client_for()
+    if get_model(client, m["name"]) is None:
+        raise CoreachError(where, f"no registered model {m['name']!r} in the tracking store; see coreach releases")
+    if m["alias"]:
+        aliases = dict(get_model(client, m["name"]).aliases or {})
+        if m["alias"] not in aliases:
+            raise CoreachError(where, f"model {m['name']} has no alias @{m['alias']} (it has "
+                                      f"{', '.join('@' + a for a in sorted(aliases)) or 'none'})")  # fmt: skip
+        mv = get_version(client, m["name"], str(aliases[m["alias"]]))
+    else:
+        mv = get_version(client, m["name"], m["version"])
+    if (mv.tags or {}).get(TAG_GATE_PASSED) != "true":
+        raise CoreachError(where, f"model {m['name']} version {mv.version} is not a finished release (no "
+                                  f"{TAG_GATE_PASSED}=true)")  # fmt: skip
+    return cached(client, mv, releases_root())
+
+
 def _check(folder: Path, expected: str, where: str, advice: str) -> None:
     try:
         verify_bundle(folder)
@@ -88,5 +121,5 @@ def _check(folder: Path, expected: str, where: str, advice: str) -> None:
                                   f"{expected[:16]}...){advice}")  # fmt: skip
 
 
-__all__ = ["BUNDLE_ARTIFACT", "PARTIAL", "releases_root", "staging_prefix",
+__all__ = ["BUNDLE_ARTIFACT", "PARTIAL", "bundle_folder", "releases_root", "staging_prefix",
            "bundle_uri", "upload", "cached"]

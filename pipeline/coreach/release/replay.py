@@ -22,6 +22,7 @@ from coreach.errors import ConfigError
 from coreach.plugin_registry import build_option
 from coreach.runtime.belief_manifest import belief_from_manifest
 from coreach.release.gate import count_violations
+from coreach.release.bundle_store import bundle_folder
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes
 from coreach.runtime.session import limits_from_manifest
 from coreach.safety import SafetyLimits
@@ -115,8 +116,9 @@ def replay(cfg: DictConfig) -> dict:
 
     t0 = time.perf_counter()
     if OmegaConf.is_missing(cfg, "bundle") or not str(cfg.bundle):
-        raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>)")
-    folder = Path(str(cfg.bundle)).expanduser()
+        raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>) or a "
+                                           "released model as NAME@ALIAS or NAME/VERSION")  # fmt: skip
+    folder = bundle_folder(str(cfg.bundle))
     interface = build_option("interface", "onnx_bundle", bundle=str(folder),
                              name=f"bundle {folder.resolve().parent.name}/{folder.name}",
                              threads=int(cfg.get("threads", 1)))  # fmt: skip

@@ -9,7 +9,7 @@ import threading
 
 from coreach.errors import ConfigError
 
-USAGE = ("coreach try-bundle BUNDLE_FOLDER [--host 127.0.0.1] [--port 8765] [--rate 50] [--record-dir drives] "
+USAGE = ("coreach try-bundle BUNDLE_FOLDER|NAME@ALIAS [--host 127.0.0.1] [--port 8765] [--rate 50] [--record-dir drives] "
          "[--position-tol 0.02] [--orientation-tol-deg 15]")
 OPTIONS = {"--host": str, "--port": int, "--rate": float, "--record-dir": str, "--position-tol": float,
            "--orientation-tol-deg": float}  # fmt: skip
@@ -54,8 +54,10 @@ def try_bundle_command(args: list[str], as_json: bool) -> int:
     from coreach.testdrive.server import TestDriveServer
     from coreach.testdrive.sim import Drive
 
-    folder, opts = parse(args)
-    session = Session.open(folder)  # verifies the bundle; a tampered one raises BundleError (one line, exit 2)
+    from coreach.release.bundle_store import bundle_folder
+
+    ref, opts = parse(args)
+    session = Session.open(bundle_folder(ref, "coreach try-bundle"))  # verifies the bundle; a tampered one raises BundleError (one line, exit 2)
     drive = Drive(session, opts["--rate"], opts["--position-tol"], opts["--orientation-tol-deg"], opts["--record-dir"])
     try:
         server = TestDriveServer(drive, opts["--host"], opts["--port"])
