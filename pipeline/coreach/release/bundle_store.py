@@ -14,7 +14,7 @@ import tempfile
 from pathlib import Path
 
 from coreach.errors import CoreachError
-from coreach.runtime.registry_tags import TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST, TAG_RELEASE_RUN
+from coreach.runtime.registry_tags import MODEL_NAME_RE, TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST, TAG_RELEASE_RUN
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
 
 BUNDLE_ARTIFACT = "bundle"  # artifact path of the bundle inside its release run
@@ -78,7 +78,8 @@ def cached(client, mv, root: Path) -> Path:
     return folder
 
 
-_REF = re.compile(r"^(?:models:/)?(?P<name>[A-Za-z0-9][A-Za-z0-9_.-]{0,99})(?:@(?P<alias>[A-Za-z0-9_-]+)|/(?P<version>\d+))$")
+_REF = re.compile(r"^(?:models:/)?(?P<name>" + MODEL_NAME_RE.pattern.strip("^$") +
+                  r")(?:@(?P<alias>[A-Za-z0-9_-]+)|/(?P<version>\d+))$")  # fmt: skip
 
 
 def bundle_folder(ref: str, where: str = "option bundle") -> Path:
@@ -94,10 +95,11 @@ def bundle_folder(ref: str, where: str = "option bundle") -> Path:
     from coreach.release.registry import client_for, get_model, get_version
 
     client = client_for()
-    if get_model(client, m["name"]) is None:
+    model = get_model(client, m["name"])
+    if model is None:
         raise CoreachError(where, f"no registered model {m['name']!r} in the tracking store; see coreach releases")
     if m["alias"]:
-        aliases = dict(get_model(client, m["name"]).aliases or {})
+        aliases = dict(model.aliases or {})
         if m["alias"] not in aliases:
             raise CoreachError(where, f"model {m['name']} has no alias @{m['alias']} (it has "
                                       f"{', '.join('@' + a for a in sorted(aliases)) or 'none'})")  # fmt: skip

@@ -24,6 +24,7 @@ from pathlib import Path
 from typing import Callable
 
 from coreach.release.bundle_store import PARTIAL, releases_root
+from coreach.release.registry import get_model
 from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, TAG_CREATED_MODEL, TAG_GATE_PASSED, TAG_MODEL_NAME, TAG_OWNER,
                                   TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT, TAG_SOURCE_RUN)
 # A publish takes seconds; one owned by another computer counts as abandoned after this long. On the
@@ -112,7 +113,7 @@ def settle_run(client, run, say: Say) -> str:
         except Exception:  # noqa: BLE001 - the training run may be gone; nothing of ours to undo there
             pass
     if run.data.tags.get(TAG_CREATED_MODEL) == "true":
-        model_versions = client.search_model_versions(f"name='{name}'") if _has_model(client, name) else None
+        model_versions = client.search_model_versions(f"name='{name}'") if get_model(client, name) else None
         if model_versions is not None and not model_versions:
             client.delete_registered_model(name)
             say(f"removed registered model {name}: the unfinished publish had created it and it holds no version")
@@ -138,16 +139,8 @@ def _remove_artifacts(client, run, say: Say) -> None:
             "`mlflow gc` removes them with the deleted run")
 
 
-def _has_model(client, name: str) -> bool:
-    from coreach.release.registry import get_model
-
-    return get_model(client, name) is not None
-
-
 def _point_gate_alias(client, name: str, version: str) -> None:
     """`gate-passed` names the newest usable version."""
-    from coreach.release.registry import get_model
-
     model = get_model(client, name)
     current = (model.aliases or {}).get(GATE_PASSED_ALIAS) if model else None
     if current is None or int(current) < int(version):
@@ -201,8 +194,6 @@ def settle(client, say: Say) -> list[str]:
 
 def repair(client, root: str | os.PathLike | None, say: Say) -> None:
     """`settle`, then what no intent covers: versions never made usable, RUNNING release runs, stray folders."""
-    from coreach.release.registry import get_model
-
     settle(client, say)
     live = {run.info.run_id for run in pending_runs(client)}  # still being published by a live process
     usable: dict[str, set[str]] = {}
