@@ -159,9 +159,11 @@ def print_release(console, s: dict) -> None:
         print(refusal_line(s), file=sys.stderr)
         return
     console.print(f"released {s['name']} version {s['version']} (@{', @'.join(s.get('aliases', []))}): {s['bundle']}")
-    console.print(f"release run {s['release_run']} in {s['tracking']}")
+    console.print(f"release run {s['release_run']} in {s['tracking']}; the bundle is stored there ({s.get('bundle_uri')})"
+                  " and the folder above is this computer's cached copy", markup=False)
     console.print(f"replay it: coreach replay bundle={s['bundle']} suite={(s.get('suite_refs') or ['held-out'])[0]}")
-    console.print(f"field it:  coreach promote {s['name']} {s['version']}")
+    console.print(f"field it:  coreach promote {s['name']} {s['version']}; on the robot computer: coreach-robot fetch "
+                  f"{s['name']}", markup=False)
     print_cautions(console)
 
 
