@@ -122,7 +122,9 @@ def test_repair_removes_what_no_intent_covers(tmp_path):
     client.create_model_version("old-model", "runs:/x/decoder", old)
     (tmp_path / "releases" / "old-model" / ".v1.abc.partial").mkdir(parents=True)
     (tmp_path / "releases" / "old-model" / "v7").mkdir()
-    res = _cli(["releases", "--repair"], tmp_path, uri)
+    scratch = tmp_path / "tmp"  # its own temp folder: repair also clears killed releases' scratch folders there
+    scratch.mkdir()
+    res = _cli(["releases", "--repair"], tmp_path, uri, TMPDIR=str(scratch))
     assert res.returncode == 0, res.stderr
     said = res.stderr
     for needle in ("model version old-model 1", f"release run {old}", ".v1.abc.partial", "v7", "registered model old-model"):
@@ -130,5 +132,5 @@ def test_repair_removes_what_no_intent_covers(tmp_path):
     assert client.search_registered_models() == []
     assert client.get_run(old).info.lifecycle_stage == "deleted"
     assert not (tmp_path / "releases").exists()
-    again = _cli(["releases", "--repair"], tmp_path, uri)
+    again = _cli(["releases", "--repair"], tmp_path, uri, TMPDIR=str(scratch))
     assert "found nothing half-done" in again.stderr
