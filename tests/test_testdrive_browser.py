@@ -212,10 +212,11 @@ def test_a_page_that_stops_sending_stops_the_arm_within_the_watchdog_timeout(ser
             break
         assert time.monotonic() - t_cut < timeout + 1.0, "the arm kept moving without input"
         time.sleep(0.01)
-    # stopped by the watchdog (not by a released key) and no later than one timeout plus one control period
-    # after the last sample the server received
+    # stopped by the watchdog (not by a released key) at the first control step after the timeout: no later
+    # than one timeout plus one control period after the last sample the server received (plus 50 ms for a
+    # tick that a loaded machine runs late; the loop is not real-time)
     assert st["filters"]["stale"] and st["stopped_by_watchdog"]
-    assert st["input_age_s"] <= timeout + 2 * dt + 0.05
+    assert timeout < st["watchdog_stop_age_s"] <= timeout + dt + 0.05
     # the page may first show the server's stall report (from a state poll), then its own lost connection
     page.wait_for_function("document.querySelector('#lost.on')?.textContent.includes('DISCONNECTED')", timeout=3000)
     assert "watchdog" in page.inner_text("#lost")

@@ -173,6 +173,8 @@ class Drive:
                     self.arrived_at[g] = now - self.t_reset
             if getattr(info, "stale", False) and self.stick_time > NEVER:
                 self.watchdog_at = now - self.t_reset  # input had been arriving, then stopped
+                if self._stopped_for != self.stick_time:  # the first stop after this sample
+                    self._stopped_for, self.watchdog_stop_age = self.stick_time, now - self.stick_time
             self.q = q + qd * self.dt
             self.path.append(pos.tolist())
             self.last_qd, self.steps = qd, self.steps + 1
@@ -220,7 +222,7 @@ class Drive:
                 "input_source": self.input_source, "phase": list(self.phase),
                 "arrived_at": list(self.arrived_at), "recording": self._recording is not None,
                 "recorded_steps": len(self._recording or ()), "saved": list(self.saved), "error": self.error,
-                "watchdog_at": self.watchdog_at,
+                "watchdog_at": self.watchdog_at, "watchdog_stop_age_s": self.watchdog_stop_age,
             }  # fmt: skip
         filters = {k: bool(getattr(info, k, False)) for k in FLAGS} if info is not None else {}
         filters["workspace_limited"] = info is not None and float(getattr(info, "workspace_scale", 1.0)) < 1.0
@@ -257,6 +259,10 @@ class Drive:
         self.path: deque = deque(maxlen=PATH_POINTS)
         self.t_reset = self.now()
         self.watchdog_at: float | None = None  # elapsed time of the latest watchdog stop after input had arrived
+        # how old the last sample was at the step where the watchdog first stopped the arm for it: the
+        # reaction time, which a later state poll's input age would overstate by the poll's own delay
+        self.watchdog_stop_age: float | None = None
+        self._stopped_for = NEVER
         self.last_qd = np.zeros(self.manifest.action_dim)
         self.steps = 0
 
