@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -24,6 +25,9 @@ from mlflow.entities import ViewType
 from mlflow.tracking import MlflowClient
 
 from coreach.release.publish import STEPS
+from coreach.release.settle import owner
+from coreach.runtime.registry_tags import (MODEL_DESCRIPTION, TAG_GATE_PASSED, TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH,
+                                           TAG_RELEASE_RUN, TAG_VERSION)
 
 COREACH = str(Path(sys.executable).parent / "coreach")
 SUITE = "held-out-short"
@@ -118,10 +122,20 @@ def test_repair_removes_what_no_intent_covers(tmp_path):
     client = MlflowClient(uri)
     exp = client.create_experiment("old")
     old = client.create_run(exp, tags={"coreach.stage": "release"}).info.run_id
-    client.create_registered_model("old-model")
+    client.create_registered_model("old-model", description=MODEL_DESCRIPTION)  # as coreach created it
     client.create_model_version("old-model", "runs:/x/decoder", old)
     (tmp_path / "releases" / "old-model" / ".v1.abc.partial").mkdir(parents=True)
     (tmp_path / "releases" / "old-model" / "v7").mkdir()
+    # not coreach's: a model another tool registered, one version without any coreach tag
+    other = client.create_run(exp).info.run_id
+    client.create_registered_model("other-tool-model")
+    client.create_model_version("other-tool-model", "runs:/x/model", other)
+    # a publish still running (its owner, this test process, is alive): its version and folder must stay
+    live = client.create_run(exp, tags={"coreach.stage": "release", TAG_PUBLISH: "pending", TAG_OWNER: owner(),
+                                        TAG_MODEL_NAME: "live-model", TAG_VERSION: "1"}).info.run_id  # fmt: skip
+    client.create_registered_model("live-model", description=MODEL_DESCRIPTION)
+    client.create_model_version("live-model", "runs:/x/bundle", live, tags={TAG_RELEASE_RUN: live})
+    (tmp_path / "releases" / "live-model" / "v1").mkdir(parents=True)
     scratch = tmp_path / "tmp"  # its own temp folder: repair also clears killed releases' scratch folders there
     scratch.mkdir()
     res = _cli(["releases", "--repair"], tmp_path, uri, TMPDIR=str(scratch))
@@ -129,8 +143,36 @@ def test_repair_removes_what_no_intent_covers(tmp_path):
     said = res.stderr
     for needle in ("model version old-model 1", f"release run {old}", ".v1.abc.partial", "v7", "registered model old-model"):
         assert needle in said, (needle, said)
-    assert client.search_registered_models() == []
+    assert "other-tool-model" not in said and "live-model" not in said, said
+    assert sorted(m.name for m in client.search_registered_models()) == ["live-model", "other-tool-model"]
+    assert [str(mv.version) for mv in client.search_model_versions("name='other-tool-model'")] == ["1"]
+    assert [str(mv.version) for mv in client.search_model_versions("name='live-model'")] == ["1"]
     assert client.get_run(old).info.lifecycle_stage == "deleted"
-    assert not (tmp_path / "releases").exists()
+    assert client.get_run(live).info.status == "RUNNING"
+    assert sorted(p.name for p in (tmp_path / "releases").iterdir()) == ["live-model"]
+    assert (tmp_path / "releases" / "live-model" / "v1").is_dir()
+    client.delete_registered_model("live-model")  # the live publish "ends"; what is left is not half-done
+    client.set_terminated(live)
+    client.set_tag(live, TAG_PUBLISH, "done")
+    shutil.rmtree(tmp_path / "releases")
     again = _cli(["releases", "--repair"], tmp_path, uri, TMPDIR=str(scratch))
-    assert "found nothing half-done" in again.stderr
+    assert "found nothing half-done" in again.stderr, again.stderr
+    assert [m.name for m in client.search_registered_models()] == ["other-tool-model"]
+
+
+def test_sigterm_after_usable_reports_the_release(tmp_path):
+    """SIGTERM once the version is usable: the process finishes the publish and says it is released."""
+    uri = f"sqlite:///{tmp_path / 'mlflow.db'}"
+    run_id = train_small(tmp_path, uri)
+    res = _cli(["release", f"run={run_id}", "name=late-stop", *QUICK], tmp_path, uri, COREACH_FAULT_TERM_AT="finish")
+    assert res.returncode == 143, res.stderr
+    last = res.stderr.strip().splitlines()[-1]
+    assert "after the publish had finished: late-stop version 1 is released" in last, res.stderr
+    client = MlflowClient(uri)
+    (mv,) = client.search_model_versions("name='late-stop'")
+    assert mv.tags.get(TAG_GATE_PASSED) == "true"
+    assert client.get_run(run_id).data.tags.get("coreach.release.late-stop") == "1"
+    exps = [e.experiment_id for e in client.search_experiments()]
+    (rel,) = client.search_runs(exps, "tags.`coreach.stage` = 'release'")
+    assert rel.info.status == "FINISHED" and rel.data.tags[TAG_PUBLISH] == "done"
+    assert _cli(["promote", "late-stop", "1"], tmp_path, uri).returncode == 0

@@ -332,7 +332,7 @@ def test_a_changed_local_cache_is_refused_and_listed(store, bundle):
     assert registry.promote(c, name, v)["fielded"] == v
 
 
-def test_bundle_references_resolve_through_the_store(store, bundle, monkeypatch):
+def test_bundle_references_resolve_through_the_store(store, bundle, monkeypatch, tmp_path):
     """replay, bench runtime and try-bundle take a folder or NAME@ALIAS / NAME/VERSION from the store."""
     c, name = store.client, "by-reference"
     monkeypatch.setenv("MLFLOW_TRACKING_URI", c.tracking_uri)
@@ -342,6 +342,14 @@ def test_bundle_references_resolve_through_the_store(store, bundle, monkeypatch)
     assert (folder / MANIFEST).read_bytes() == (bundle / MANIFEST).read_bytes()
     assert bundle_store.bundle_folder(f"models:/{name}/{v}") == folder
     assert bundle_store.bundle_folder(str(bundle)) == bundle  # a folder stays a folder
+    # the store a command was configured with (tracking.uri) is the one asked, not the default
+    monkeypatch.delenv("MLFLOW_TRACKING_URI")
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    assert bundle_store.bundle_folder(f"{name}/{v}", uri=c.tracking_uri).name == f"v{v}"
+    assert not (elsewhere / "mlflow.db").exists()
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", c.tracking_uri)
     unfinished = _vetted_version(store, bundle, name, usable=False)
     for ref, needle in ((f"{name}@fielded", "has no alias @fielded"), (f"{name}/{unfinished}", "not a finished release"),
                         ("nobody@fielded", "no registered model 'nobody'"), ("no/such/folder", "neither a bundle folder")):  # fmt: skip
@@ -388,3 +396,25 @@ def test_gate_metric_names_are_readable_paths():
     assert gate_metric_name("recovery@0.8[held-out]") == "gate/held-out/recovery_at_0.8"
     assert gate_metric_name("success[held-out]") == "gate/held-out/success"
     assert gate_metric_name("latency_p99_us") == "gate/latency_p99_us"
+
+
+def test_a_failing_settle_does_not_hide_why_the_publish_failed(tmp_path, monkeypatch, capsys):
+    """The publish's own error reaches the user even when settling it fails too (the store went away)."""
+    from coreach.release import publish as P
+
+    client = MlflowClient(f"sqlite:///{tmp_path / 'mlflow.db'}")
+    run = client.get_run(client.create_run(client.create_experiment("p")).info.run_id)
+
+    def broken_steps(*args, **kwargs):
+        raise ValueError("disk full while writing the bundle")
+
+    def broken_settle(*args, **kwargs):
+        raise RuntimeError("tracking store unreachable")
+
+    monkeypatch.setattr(P, "_steps", broken_steps)
+    monkeypatch.setattr(P, "settle_run", broken_settle)
+    cfg = OmegaConf.create({"name": "m", "out_dir": str(tmp_path / "releases")})
+    with pytest.raises(ValueError, match="disk full"):
+        P.publish(cfg, client, None, run, "label", {})
+    err = capsys.readouterr().err
+    assert "could not settle release run" in err and "tracking store unreachable" in err, err

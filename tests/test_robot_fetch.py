@@ -227,3 +227,32 @@ def test_json_record_of_a_fetch_is_written_beside_the_bundle(tmp_path):
     F._write_json(path, {"version": "3", "alias": "fielded"})
     assert json.loads(path.read_text()) == {"alias": "fielded", "version": "3"}
     assert [p.name for p in tmp_path.iterdir()] == ["v3.json"]
+
+
+def test_a_fetch_refused_by_the_lock_leaves_the_other_fetchs_folder(tmp_path, monkeypatch):
+    """Two first fetches of one model: the one that loses the lock must not remove the folder the winner is
+    filling. (The registry answer is a stand-in here; the race is between the two fetches, not the server.)"""
+    import fcntl
+
+    from coreach.runtime.registry_tags import TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST
+    from coreach.runtime.store_client import ModelVersion
+
+    folder = tmp_path / "cache" / "arm"
+    held = []
+    monkeypatch.setattr(StoreClient, "version_by_alias", lambda self, name, alias: ModelVersion(
+        name, "2", "", "r", {TAG_GATE_PASSED: "true", TAG_BUNDLE_URI: str(tmp_path), TAG_MANIFEST: "0" * 64}))
+    real_fetch_into = F._fetch_into
+
+    def winner_takes_the_lock_first(*args):
+        # the other fetch, which also found no folder, takes the lock just before this one and starts writing
+        (folder / "v2-being-written").mkdir()
+        fh = open(folder / F.LOCK, "a+")
+        fcntl.flock(fh, fcntl.LOCK_EX)
+        held.append(fh)
+        return real_fetch_into(*args)
+
+    monkeypatch.setattr(F, "_fetch_into", winner_takes_the_lock_first)
+    with pytest.raises(FetchError, match="another fetch of this model is running"):
+        F.fetch("arm", server="http://127.0.0.1:9", cache=tmp_path / "cache")
+    assert (folder / "v2-being-written").is_dir()
+    held[0].close()

@@ -17,7 +17,7 @@ def run(cfg: DictConfig) -> dict:
     if not bundle:
         raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>) or a "
                                            "released model as NAME@ALIAS or NAME/VERSION")  # fmt: skip
-    folder = bundle_folder(bundle)
+    folder = bundle_folder(bundle, uri=cfg.get("tracking", {}).get("uri"))
     for key in ("steps", "warmup"):
         if int(cfg[key]) < (1 if key == "steps" else 0):
             raise ConfigError(f"option {key}", f"expected a positive integer, got {cfg[key]!r}")

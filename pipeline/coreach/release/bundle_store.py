@@ -82,9 +82,10 @@ _REF = re.compile(r"^(?:models:/)?(?P<name>" + MODEL_NAME_RE.pattern.strip("^$")
                   r")(?:@(?P<alias>[A-Za-z0-9_-]+)|/(?P<version>\d+))$")  # fmt: skip
 
 
-def bundle_folder(ref: str, where: str = "option bundle") -> Path:
-    """A bundle folder from `ref`: an existing folder, or a released version in the tracking store named as
-    NAME@ALIAS or NAME/VERSION (also with a models:/ prefix), verified and cached under releases/."""
+def bundle_folder(ref: str, where: str = "option bundle", uri: str | None = None) -> Path:
+    """A bundle folder from `ref`: an existing folder, or a released version in the tracking store `uri`
+    (None: coreach.tracking.resolve_uri's default) named as NAME@ALIAS or NAME/VERSION (also with a models:/
+    prefix), verified and cached under releases/."""
     folder = Path(str(ref)).expanduser()
     if folder.is_dir():
         return folder
@@ -94,7 +95,7 @@ def bundle_folder(ref: str, where: str = "option bundle") -> Path:
                                   "NAME/VERSION (e.g. bedside-shelf-decoder@fielded)")  # fmt: skip
     from coreach.release.registry import client_for, get_model, get_version
 
-    client = client_for()
+    client = client_for(uri)
     model = get_model(client, m["name"])
     if model is None:
         raise CoreachError(where, f"no registered model {m['name']!r} in the tracking store; see coreach releases")

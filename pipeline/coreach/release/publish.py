@@ -32,9 +32,10 @@ from coreach.release import registry
 from coreach.release.bundle_store import bundle_uri, releases_root, staging_prefix, upload
 from coreach.release.bundle_writer import write_bundle
 from coreach.release.settle import owner, settle_run
-from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, TAG_BUNDLE_URI, TAG_CREATED_MODEL, TAG_GATE, TAG_GATE_PASSED,
-                                  TAG_MANIFEST, TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT,
-                                  TAG_SOURCE_RUN, TAG_VERSION)
+from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, MODEL_DESCRIPTION, TAG_BUNDLE_URI, TAG_CREATED_MODEL,
+                                           TAG_GATE, TAG_GATE_PASSED, TAG_MANIFEST, TAG_MODEL_NAME, TAG_OWNER,
+                                           TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT, TAG_SOURCE_RUN, TAG_VERSION,
+                                           release_tag)
 from coreach.runtime.bundle import MANIFEST, sha256_file
 from coreach.vetting.metrics import flat_metrics
 
@@ -80,8 +81,16 @@ def publish(cfg, client, policy, run, label: str, ev: dict) -> dict:
     }).info.run_id  # fmt: skip
     try:
         return _steps(cfg, client, policy, run, label, ev, name, root, rid)
-    except BaseException:  # an error, Ctrl-C or SIGTERM (see terminate_as_interrupt): settle before leaving
-        settle_run(client, client.get_run(rid), _warn)
+    except BaseException as exc:  # an error, Ctrl-C or SIGTERM (see terminate_as_interrupt): settle before leaving
+        try:
+            outcome = settle_run(client, client.get_run(rid), _warn)
+        except Exception as settle_exc:  # noqa: BLE001 - the original failure is what the user must see
+            _warn(f"could not settle release run {rid} ({str(settle_exc).splitlines()[0][:160]}); the next "
+                  "`coreach releases` settles it")
+            raise exc from None
+        if outcome == "finished" and isinstance(exc, Terminated):
+            raise Terminated(f"stopped by SIGTERM after the publish had finished: {name} version "
+                             f"{client.get_run(rid).data.tags.get(TAG_VERSION, '?')} is released") from None
         raise
 
 
@@ -93,7 +102,7 @@ def _steps(cfg, client, policy, run, label, ev, name, root: Path, rid: str) -> d
     _boundary("register")
     if registry.get_model(client, name) is None:
         client.set_tag(rid, TAG_CREATED_MODEL, "true")  # before creating it: a roll-back knows it may remove it
-        client.create_registered_model(name, description="coreach latent-action decoders that passed the release gate")
+        client.create_registered_model(name, description=MODEL_DESCRIPTION)
     uri = bundle_uri(client, rid)
     mv = client.create_model_version(name, source=uri, run_id=rid, tags={TAG_RELEASE_RUN: rid},
                                      description=f"{label} from training run {run_id}")  # fmt: skip
@@ -119,7 +128,6 @@ def _steps(cfg, client, policy, run, label, ev, name, root: Path, rid: str) -> d
     # the vetting metrics `coreach replay` compares a replay with, as `coreach vet` records them
     for suite, s in ev["summaries"].items():
         client.log_batch(run_id, metrics=[Metric(f"vet/{suite}/{k}", v, now, 0) for k, v in _headline(s).items()])
-    client.set_tag(run_id, f"coreach.release.{name}", version)
     for key, value in {TAG_BUNDLE_URI: uri, TAG_MANIFEST: sha256_file(folder / MANIFEST),
                        TAG_GATE: json.dumps(registry.compact_gate(gate), separators=(",", ":"))}.items():  # fmt: skip
         client.set_model_version_tag(name, version, key, value)
@@ -127,6 +135,8 @@ def _steps(cfg, client, policy, run, label, ev, name, root: Path, rid: str) -> d
     _boundary("usable")
     client.set_model_version_tag(name, version, TAG_GATE_PASSED, "true")
     client.set_registered_model_alias(name, GATE_PASSED_ALIAS, version)
+    # on the training run only once usable: a roll-back then never has to undo it (and lose an earlier value)
+    client.set_tag(run_id, release_tag(name), version)
 
     _boundary("finish")
     client.set_tag(rid, TAG_PUBLISH, "done")
@@ -138,7 +148,11 @@ class Terminated(KeyboardInterrupt):
     """SIGTERM (cluster pre-emption) while publishing: unwinds like Ctrl-C, so the publish is settled first."""
 
     exit_code = 143
-    message = "stopped by SIGTERM; nothing was published (an unfinished publish was rolled back)"
+
+    def __init__(self, message: str = "stopped by SIGTERM; nothing was published (an unfinished publish was "
+                                      "rolled back)"):  # fmt: skip
+        super().__init__(message)
+        self.message = message
 
 
 class terminate_as_interrupt:

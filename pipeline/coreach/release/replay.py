@@ -118,7 +118,8 @@ def replay(cfg: DictConfig) -> dict:
     if OmegaConf.is_missing(cfg, "bundle") or not str(cfg.bundle):
         raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>) or a "
                                            "released model as NAME@ALIAS or NAME/VERSION")  # fmt: skip
-    folder = bundle_folder(str(cfg.bundle))
+    uri = resolve_uri(cfg.tracking.get("uri"))
+    folder = bundle_folder(str(cfg.bundle), uri=uri)
     interface = build_option("interface", "onnx_bundle", bundle=str(folder),
                              name=f"bundle {folder.resolve().parent.name}/{folder.name}",
                              threads=int(cfg.get("threads", 1)))  # fmt: skip
@@ -137,7 +138,6 @@ def replay(cfg: DictConfig) -> dict:
     record = rollout(robot, interface, suite.build_operator(), suite, belief, limits, suite.generator())
     summary = summarise(record, suite.tolerances)
     violations = count_violations(record, robot, limits, (m.workspace_min.tolist(), m.workspace_max.tolist()))
-    uri = resolve_uri(cfg.tracking.get("uri"))
     vetted, source = vetted_metrics(uri, m.training_run_id, suite.name)
     comparison = compare(summary, vetted, cfg.tolerance)
     out = {

@@ -25,8 +25,9 @@ from typing import Callable
 
 from coreach.release.bundle_store import PARTIAL, releases_root
 from coreach.release.registry import get_model
-from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, TAG_CREATED_MODEL, TAG_GATE_PASSED, TAG_MODEL_NAME, TAG_OWNER,
-                                  TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT, TAG_SOURCE_RUN)
+from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, MODEL_DESCRIPTION, TAG_CREATED_MODEL, TAG_GATE_PASSED,
+                                           TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT,
+                                           TAG_SOURCE_RUN, TAG_VERSION, release_tag)
 # A publish takes seconds; one owned by another computer counts as abandoned after this long. On the
 # owner's own computer the process table decides at once.
 STALE_AFTER_S = 600.0
@@ -96,6 +97,7 @@ def settle_run(client, run, say: Say) -> str:
     if usable:
         mv = usable[0]
         _point_gate_alias(client, name, str(mv.version))
+        _record_on_training_run(client, run.data.tags.get(TAG_SOURCE_RUN), name, str(mv.version))
         client.set_tag(rid, TAG_PUBLISH, "done")
         client.set_terminated(rid, "FINISHED")
         say(f"finished the publish of {name} version {mv.version} (release run {rid})")
@@ -105,11 +107,10 @@ def settle_run(client, run, say: Say) -> str:
         say(f"removed model version {name} {mv.version}: its publish did not finish (release run {rid})")
     _remove_local(run, [str(mv.version) for mv in versions], say)
     source = run.data.tags.get(TAG_SOURCE_RUN)
-    if source:
+    if source:  # written only once usable (so not by this publish), unless an older coreach wrote it earlier
         try:
-            tags = client.get_run(source).data.tags
-            if tags.get(f"coreach.release.{name}") in {str(mv.version) for mv in versions}:
-                client.delete_tag(source, f"coreach.release.{name}")
+            if client.get_run(source).data.tags.get(release_tag(name)) in {str(mv.version) for mv in versions}:
+                client.delete_tag(source, release_tag(name))
         except Exception:  # noqa: BLE001 - the training run may be gone; nothing of ours to undo there
             pass
     if run.data.tags.get(TAG_CREATED_MODEL) == "true":
@@ -137,6 +138,18 @@ def _remove_artifacts(client, run, say: Say) -> None:
     except Exception as exc:  # noqa: BLE001 - the roll-back goes on; the run is deleted either way
         say(f"could not remove the artifacts of release run {run.info.run_id} ({str(exc).splitlines()[0][:120]}); "
             "`mlflow gc` removes them with the deleted run")
+
+
+def _record_on_training_run(client, source: str | None, name: str, version: str) -> None:
+    """The training run's release tag names the newest version released from it."""
+    if not source:
+        return
+    try:
+        current = client.get_run(source).data.tags.get(release_tag(name))
+        if current is None or not current.isdigit() or int(current) < int(version):
+            client.set_tag(source, release_tag(name), version)
+    except Exception:  # noqa: BLE001 - the training run may be gone; the release itself is complete
+        pass
 
 
 def _point_gate_alias(client, name: str, version: str) -> None:
@@ -192,39 +205,67 @@ def settle(client, say: Say) -> list[str]:
     return [settle_run(client, run, say) for run in pending_runs(client) if not owner_alive(run)]
 
 
+def _made_by_coreach(client, model, mv) -> bool:
+    """A model version coreach created: it carries coreach tags, or (releases before crash-safe publishing
+    tagged nothing until the end) it sits in a registered model coreach created and comes from a coreach run.
+    Anything else (registered by hand or by another tool) is not ours to remove."""
+    if any(key.startswith("coreach.") for key in (mv.tags or {})):
+        return True
+    if (model.description or "") != MODEL_DESCRIPTION or not mv.run_id:
+        return False
+    try:
+        return "coreach.stage" in client.get_run(mv.run_id).data.tags
+    except Exception:  # noqa: BLE001 - no such run: nothing says coreach made it
+        return False
+
+
 def repair(client, root: str | os.PathLike | None, say: Say) -> None:
-    """`settle`, then what no intent covers: versions never made usable, RUNNING release runs, stray folders."""
+    """`settle`, then what no intent covers: versions never made usable, RUNNING release runs, stray folders.
+
+    Only what coreach made is touched (see _made_by_coreach): versions registered by hand or by another tool
+    stay, and a registered model is removed only when this repair removed its last version.
+    """
     settle(client, say)
-    live = {run.info.run_id for run in pending_runs(client)}  # still being published by a live process
+    live_runs = pending_runs(client)  # still being published by a live process
+    live = {run.info.run_id for run in live_runs}
+    busy: dict[str, set[str]] = {}  # model name -> version numbers a live publish is writing
+    for run in live_runs:
+        name, version = run.data.tags.get(TAG_MODEL_NAME), run.data.tags.get(TAG_VERSION)
+        if name and version:
+            busy.setdefault(name, set()).add(version)
     usable: dict[str, set[str]] = {}
     for model in client.search_registered_models():
+        removed = False
         for mv in client.search_model_versions(f"name='{model.name}'"):
             tags = mv.tags or {}
             if tags.get(TAG_GATE_PASSED) == "true":
                 usable.setdefault(model.name, set()).add(str(mv.version))
-            elif tags.get(TAG_RELEASE_RUN) not in live:
+            elif _made_by_coreach(client, model, mv) and tags.get(TAG_RELEASE_RUN) not in live:
                 client.delete_model_version(model.name, str(mv.version))
+                removed = True
                 say(f"removed model version {model.name} {mv.version}: it never passed the release gate")
-        if get_model(client, model.name) and not client.search_model_versions(f"name='{model.name}'"):
+        if removed and not client.search_model_versions(f"name='{model.name}'"):
             client.delete_registered_model(model.name)
-            say(f"removed registered model {model.name}: it holds no version")
+            say(f"removed registered model {model.name}: this repair removed its last version")
     exps = _all_experiments(client)
     for run in client.search_runs(exps, "tags.`coreach.stage` = 'release' and attributes.status = 'RUNNING'") if exps else []:
         if run.info.run_id not in live:
             client.set_terminated(run.info.run_id, "FAILED")
             client.delete_run(run.info.run_id)
             say(f"removed release run {run.info.run_id}: left RUNNING by an earlier release")
-    _repair_folders(releases_root(root), usable, live, say)
+    _repair_folders(releases_root(root), usable, busy, live, say)
 
 
-def _repair_folders(root: Path, usable: dict[str, set[str]], live: set[str], say: Say) -> None:
+def _repair_folders(root: Path, usable: dict[str, set[str]], busy: dict[str, set[str]], live: set[str],
+                    say: Say) -> None:
     if not root.is_dir():
         return
     markers = {f".{rid[:12]}." for rid in live}
     for folder in sorted(p for p in root.iterdir() if p.is_dir()):
+        keep = usable.get(folder.name, set()) | busy.get(folder.name, set())
         for path in sorted(folder.iterdir()):
             staging = path.name.endswith(PARTIAL) and not any(m in path.name for m in markers)
-            orphan = path.name.startswith("v") and path.name[1:] not in usable.get(folder.name, set())
+            orphan = path.name.startswith("v") and path.name[1:] not in keep
             if path.is_dir() and (staging or orphan):
                 shutil.rmtree(path, ignore_errors=True)
                 why = "a staging folder of no running release" if staging else "its model version is not released in this store"

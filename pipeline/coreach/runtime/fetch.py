@@ -132,6 +132,10 @@ def bundle_source(uri: str, client: StoreClient):
                                       "server --artifacts-destination ... --serve-artifacts) and release again")  # fmt: skip
 
 
+class _Busy(FetchError):
+    """Another fetch holds the model folder's lock: the folder is theirs, not ours to clean up."""
+
+
 # ------------------------------------------------------------------------------------------ the cache
 @contextlib.contextmanager
 def _locked(folder: Path) -> Iterator[None]:
@@ -141,7 +145,7 @@ def _locked(folder: Path) -> Iterator[None]:
             fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError as exc:
             if exc.errno in (errno.EAGAIN, errno.EACCES):
-                raise FetchError(str(folder), "another fetch of this model is running; try again when it ends") from None
+                raise _Busy(str(folder), "another fetch of this model is running; try again when it ends") from None
             raise
         try:
             yield
@@ -289,6 +293,8 @@ def fetch(ref: str, server: str | None = None, cache: str | Path | None = None, 
         raise FetchError(f"cache {root}", f"cannot create {folder} ({exc.strerror})") from None
     try:
         return _fetch_into(folder, client, mv, alias, uri, manifest_sha)
+    except _Busy:
+        raise
     except BaseException:
         if created and current_version(folder) is None:  # the first fetch of this model failed: leave no trace
             shutil.rmtree(folder, ignore_errors=True)

@@ -13,6 +13,9 @@ import re
 # a registered model name; it is also a folder name under releases/ and in the robot's cache
 MODEL_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
 
+# the description of a registered model coreach created (how `releases --repair` tells its own models apart)
+MODEL_DESCRIPTION = "coreach latent-action decoders that passed the release gate"
+
 GATE_PASSED_ALIAS = "gate-passed"
 FIELDED_ALIAS = "fielded"
 
@@ -30,3 +33,8 @@ TAG_CREATED_MODEL = "coreach.created_model"  # the publish created the registere
 TAG_VERSION = "coreach.model_version"
 TAG_MODEL_NAME = "coreach.model_name"
 TAG_SOURCE_RUN = "coreach.source_run"
+
+
+def release_tag(name: str) -> str:
+    """Training-run tag: the newest version of model `name` released from that run (written once usable)."""
+    return f"coreach.release.{name}"
