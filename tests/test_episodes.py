@@ -13,7 +13,7 @@ import torch
 from scipy.spatial.transform import Rotation
 
 from coreach.episodes import Episode, EpisodeSet, load_parquet, save_parquet, to_table
-from coreach.errors import DataError
+from coreach.errors import ConfigError, DataError
 from coreach_plugins.dataset.parquet_file import ParquetFile
 
 GOALS = ["switch", "cup", "knob"]
@@ -351,3 +351,23 @@ def test_velocities_far_beyond_the_robot_limits_are_refused(saved, tmp_path):
                  robot=TwoLink())  # fmt: skip
     es.episodes[3].qd[2, 1] = 1.4  # within half again the limit: kept
     assert len(load_parquet(save_parquet(es, tmp_path / "ok.parquet"), robot=TwoLink())) == len(es)
+
+
+def test_a_demonstrations_file_is_not_taken_for_a_recorded_drive(saved):
+    """Drive commands read only recorded test drives; a demonstrations file gets one line naming what is missing."""
+    from coreach.episodes.drive_files import check_drive_file
+
+    _, path = saved
+    with pytest.raises(DataError, match=r"not a recorded test drive \(missing metadata coreach.bundle_manifest_sha256, "
+                                        r"column arrived, column phase\)"):  # fmt: skip
+        check_drive_file(path)
+
+
+def test_one_drive_file_given_without_brackets_is_one_entry(saved, tmp_path):
+    """`drives=x.parquet` on the command line arrives as a string: one entry, not one per character."""
+    from coreach.episodes.drive_files import drive_files
+
+    _, path = saved
+    assert drive_files(str(path), "drives") == [path]
+    with pytest.raises(ConfigError, match=f"option drives: {tmp_path / 'gone.parquet'}: no such file"):
+        drive_files(str(tmp_path / "gone.parquet"), "drives")

@@ -340,3 +340,13 @@ def test_cli_prints_one_line_and_exits_2_for_a_refused_bag(tmp_path):
     assert res.returncode == 2
     (line,) = res.stderr.strip().splitlines()
     assert line.startswith(f"coreach: error: bag {bag}: topic /joint_states: no message names the robot's joints")
+
+
+def test_one_input_given_without_brackets_is_one_entry():
+    """`inputs=run.csv` arrives as a string; it is one input, and a number is refused in one line."""
+    from coreach.errors import ConfigError
+    from coreach.recordings.options import read_options
+
+    assert read_options(compose_config("import_recordings", ["inputs=run.csv"]))[0] == ["run.csv"]
+    with pytest.raises(ConfigError, match="option inputs: expected a list of bag folders"):
+        read_options(compose_config("import_recordings", ["inputs=3"]))

@@ -44,7 +44,8 @@ class RunOptions:
 
 def read_options(cfg: DictConfig) -> tuple[list[str], TopicMap, Checks, float | None, int]:
     """Inputs, topic map, checks, dt (None = the scenario's) and min_steps; ConfigError names the option."""
-    inputs = OmegaConf.to_container(cfg.inputs) if cfg.get("inputs") is not None else None
+    inputs = cfg.get("inputs")
+    inputs = OmegaConf.to_container(inputs) if OmegaConf.is_config(inputs) else inputs
     if isinstance(inputs, str):
         inputs = [inputs]
     if not isinstance(inputs, list) or not inputs or not all(isinstance(x, str) and x for x in inputs):

@@ -14,6 +14,7 @@ import torch
 
 from coreach.aggregation.visits import Visits
 from coreach.episodes import Episode, EpisodeSet, load_parquet
+from coreach.episodes.drive_files import check_drive_file
 from coreach.errors import DataError
 from coreach.geometry import quat_to_matrix
 
@@ -25,6 +26,7 @@ def drive_visits(paths) -> tuple[Visits, list[tuple[Episode, np.ndarray]], Episo
     parts, sets = [], None
     for path in paths:
         es = load_parquet(path)
+        check_drive_file(path)
         table = pq.read_table(path, columns=["episode", "step", "phase"])
         if sets is not None and (es.goal_names != sets.goal_names or es.joint_names != sets.joint_names
                                  or abs(es.dt - sets.dt) > 1e-12):  # fmt: skip
@@ -81,7 +83,7 @@ def relabel_command(cfg) -> dict:
 
     robot = build_plugin(cfg.robot, "robot")
     labeller = build_plugin(cfg.labeller, "labeller")
-    paths = drive_files(list(cfg.drives), "drives")
+    paths = drive_files(cfg.drives, "drives")
     relabelled = relabel_drives(paths, robot, labeller)
     if list(relabelled.joint_names) != list(robot.joint_names):
         raise ConfigError("option robot", f"drives were recorded on joints {relabelled.joint_names}, the robot has "

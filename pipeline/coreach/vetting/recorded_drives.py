@@ -15,7 +15,7 @@ import numpy as np
 
 from coreach.episodes import load_parquet
 from coreach.errors import DataError
-from coreach.episodes.drive_files import META_MANIFEST, META_TOLERANCES
+from coreach.episodes.drive_files import META_MANIFEST, META_TOLERANCES, check_drive_file
 from coreach.vetting.metrics import wilson_interval
 
 NAN = float("nan")
@@ -52,10 +52,9 @@ def drive_summary(paths, label: str = "person (recorded drives)", confidence: fl
     any_limit, goal_names, hashes = [], None, set()
     for path in paths:
         eps = load_parquet(path)  # the same checks as any demonstration file
+        check_drive_file(path)
         table = pq.read_table(path)
         meta = table.schema.metadata or {}
-        if META_MANIFEST.encode() not in meta or "arrived" not in table.column_names:
-            raise DataError(str(path), "not a recorded test drive (no bundle hash or arrived column)")
         hashes.add(meta[META_MANIFEST.encode()].decode())
         goal_names, dt = eps.goal_names, eps.dt
         cols = table.to_pydict()
