@@ -132,3 +132,18 @@ def test_unquoted_overrides_inside_a_list_get_a_hint(tmp_path):
     lines = [ln for ln in res.stderr.splitlines() if ln.strip()]
     assert len(lines) == 1 and lines[0].startswith("coreach: error: option train_overrides=")
     assert 'need quotes: key=["a.b=1","c=2"]' in lines[0]
+
+
+def test_a_tracking_server_that_does_not_answer_is_one_line(tmp_path):
+    """Nobody listens at the configured server: one line within seconds (MLflow's own retries last minutes)."""
+    import socket
+
+    with socket.socket() as s:  # a port nobody listens on once closed
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    res = subprocess.run([COREACH, "releases"], cwd=tmp_path, capture_output=True, text=True, timeout=120,
+                         env=cli_env(MLFLOW_TRACKING_URI=f"http://127.0.0.1:{port}"))  # fmt: skip
+    assert res.returncode == 2, res.stderr
+    (line,) = res.stderr.strip().splitlines()
+    assert line == (f"coreach: error: tracking server http://127.0.0.1:{port}: does not answer (after retries); "
+                    "start it, or check tracking.uri / COREACH_TRACKING_URI / MLFLOW_TRACKING_URI")  # fmt: skip

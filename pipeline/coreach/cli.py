@@ -94,6 +94,23 @@ def _quiet_library_warnings() -> None:
     os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
     # stdout belongs to --json; MLflow prints a "View run at" link there when a run on a server ends
     os.environ.setdefault("MLFLOW_SUPPRESS_PRINTING_URL_TO_STDOUT", "true")
+    # MLflow's own default (7 retries, backoff factor 2) keeps a command silent for minutes when the tracking
+    # server is down; 3 retries, factor 1 (about 7 s) still rides out a server restart. A user's own setting wins.
+    os.environ.setdefault("MLFLOW_HTTP_REQUEST_MAX_RETRIES", "3")
+    os.environ.setdefault("MLFLOW_HTTP_REQUEST_BACKOFF_FACTOR", "1")
+
+
+def _unreachable_store(exc: Exception) -> str | None:
+    """One line for a tracking server that does not answer (MLflow reports it as a long exception chain)."""
+    text = str(exc)
+    if type(exc).__name__ != "MlflowException" or "API request to" not in text:
+        return None
+    if not any(k in text for k in ("Max retries exceeded", "Connection refused", "timed out", "Name or service")):
+        return None
+    url = text.split("API request to ", 1)[1].split(" ", 1)[0]
+    base = url.split("/api/", 1)[0]
+    return (f"tracking server {base}: does not answer (after retries); start it, or check tracking.uri / "
+            "COREACH_TRACKING_URI / MLFLOW_TRACKING_URI")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -150,6 +167,9 @@ def main(argv: list[str] | None = None) -> int:
         if debug:
             traceback.print_exc()
             return 1
+        unreachable = _unreachable_store(exc)
+        if unreachable:
+            return _fail(unreachable)
         return _fail(f"internal error: {type(exc).__name__}: {exc} (rerun with --debug for the traceback)", 1)
     from coreach.commands.summaries import print_summary
 
@@ -191,6 +211,10 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
         except Exception as exc:  # a bug: one line unless --debug (Hydra would print a traceback)
             if debug:
                 raise
+            unreachable = _unreachable_store(exc)
+            if unreachable:
+                print(f"coreach: error: {unreachable}", file=sys.stderr)
+                raise SystemExit(2) from None
             print(f"coreach: error: internal error: {type(exc).__name__}: {exc} (rerun with --debug)", file=sys.stderr)
             raise SystemExit(1) from None
         summary = summary or {}
