@@ -256,3 +256,29 @@ def test_a_fetch_refused_by_the_lock_leaves_the_other_fetchs_folder(tmp_path, mo
         F.fetch("arm", server="http://127.0.0.1:9", cache=tmp_path / "cache")
     assert (folder / "v2-being-written").is_dir()
     held[0].close()
+
+
+def test_status_refuses_a_bundle_replaced_after_the_fetch(capsys, tmp_path):
+    """A bundle swapped whole (files and a manifest that agree) still verifies on its own; status compares its
+    manifest with the hash the registry gave at fetch time (the fetch record) and refuses it."""
+    import shutil
+
+    from test_release_units import _meta, _policy
+
+    from coreach.release.bundle_writer import write_bundle
+    from coreach.runtime.verify import sha256_file
+    from coreach_plugins.robot.urdf_arm import shipped_urdf
+
+    released = write_bundle(tmp_path / "a", _policy(0), shipped_urdf(), _meta("run-a"), {}, {"ok": True})
+    other = write_bundle(tmp_path / "b", _policy(1), shipped_urdf(), _meta("run-b"), {}, {"ok": True})
+    folder = tmp_path / "cache" / "arm"
+    shutil.copytree(released, folder / "v1")
+    F.switch_current(folder, "v1")
+    (folder / "v1.json").write_text(json.dumps({"manifest_sha256": sha256_file(released / "manifest.json")}))
+    code, out, _ = run_robot(capsys, "status", "--cache", str(tmp_path / "cache"))
+    assert code == 0 and "version 1 is current (verified)" in out, out
+    shutil.rmtree(folder / "v1")
+    shutil.copytree(other, folder / "v1")  # consistent in itself, but not what was released
+    code, out, _ = run_robot(capsys, "status", "--cache", str(tmp_path / "cache"))
+    assert code == 3, out
+    assert "FAILS verification" in out and "differs from the fetch record's manifest_sha256" in out, out

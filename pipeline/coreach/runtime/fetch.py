@@ -370,13 +370,19 @@ def status(cache: str | Path | None = None, name: str | None = None) -> list[dic
         if version:
             bundle = folder / version
             row["bundle"] = str(bundle)
+            with contextlib.suppress(OSError, ValueError):
+                row["record"] = json.loads((folder / f"{version}.json").read_text(encoding="utf-8"))
             try:
                 verify_bundle(bundle)
                 row["verified"] = True
             except BundleError as exc:
                 row["verified"], row["problem"] = False, str(exc)
-            with contextlib.suppress(OSError, ValueError):
-                row["record"] = json.loads((folder / f"{version}.json").read_text(encoding="utf-8"))
+            released = (row["record"] or {}).get("manifest_sha256") if isinstance(row["record"], dict) else None
+            if row["verified"] and released and sha256_file(bundle / MANIFEST) != released:
+                # every file matches its manifest, but the manifest is not the one the registry named at fetch
+                row["verified"] = False
+                row["problem"] = (f"{bundle / MANIFEST}: sha256 differs from the fetch record's manifest_sha256 "
+                                  f"{released[:16]}... (the registry's); the bundle was replaced after the fetch")
         rows.append(row)
     return rows
 
