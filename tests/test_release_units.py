@@ -121,7 +121,8 @@ def test_count_violations_against_hand_computed_planar_arm():
     path[0, 3] = torch.tensor([2.0, 0.0, 0.0])  # step 2 ends outside the box
     record = SimpleNamespace(extras={"q": q, "qd": qd}, ee_path=path)
     out = G.count_violations(record, robot, limits, ([-1.0] * 3, [1.0] * 3))
-    assert out == {"joint_speed": 1, "joint_position": 1, "tool_speed": 1, "workspace": 1, "total": 3, "steps": 5}
+    assert out == {"joint_speed": 1, "joint_position": 1, "tool_speed": 1, "workspace": 1,
+                   "workspace_max_overshoot_m": 1.0, "total": 3, "steps": 5}  # 2.0 m against the box's 1.0 m face
 
 
 # ------------------------------------------------------------------------------------------ bundles

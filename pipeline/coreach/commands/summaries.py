@@ -172,9 +172,9 @@ def print_replay(console, s: dict) -> None:
     from coreach.vetting.report import terminal_table
 
     console.print(terminal_table(s["summaries"]))
-    v = s["violations"]
-    console.print("limit violations in the replay: " + ", ".join(f"{k.replace('_', ' ')} {n}" for k, n in v.items()
-                                                                  if k != "steps") + f" (of {v['steps']} steps)")
+    from coreach.release.gate import violation_text
+
+    console.print(f"limit violations in the replay: {violation_text(s['violations'])}")
     c = s.get("comparison")
     if not c:
         console.print(f"no comparison with vetting: {s['comparison_source']}")

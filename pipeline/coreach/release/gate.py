@@ -105,9 +105,8 @@ def suite_gates(suite: str, summary: dict, violations: dict, th: Thresholds) -> 
         r = summary["recovery"][cell]
         out.append(_check(f"recovery@{cell}[{suite}]", f"success after a switch at {cell} of the horizon, Wilson "
                           "lower bound", r["lo"], th.recovery_lo, ">=", _rate_text(r)))  # fmt: skip
-    parts = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in violations.items() if k != "steps")
     out.append(_check(f"violations[{suite}]", "steps beyond the limits (scalings are not violations)",
-                      violations["total"], th.max_violations, "<=", f"{parts} of {violations['steps']} steps"))
+                      violations["total"], th.max_violations, "<=", violation_text(violations)))
     a = summary["stick_gain"]
     auth = _check(f"stick_gain[{suite}]", "stick gain, median (rad/s per unit stick), not collapsed",
                   a["median"], th.stick_gain_median, ">=",
@@ -129,6 +128,15 @@ def artifact_gates(parity: float | None, parity_n: int, latency: dict | None, th
                th.parity_max_abs, "<=", "" if parity is not None else "export failed"),
         _check("latency_p99", "runtime session step, p99 (us)", lat, th.latency_p99_us, "<=", lat_detail),
     ]  # fmt: skip
+
+
+def violation_text(violations: dict) -> str:
+    """`count_violations`'s result in words: counts per kind, the worst workspace overshoot, of how many steps."""
+    parts = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in violations.items()
+                      if k not in ("steps", "workspace_max_overshoot_m"))
+    if violations.get("workspace"):
+        parts += f" (worst {violations['workspace_max_overshoot_m'] * 1e3:.1f} mm beyond the box)"
+    return f"{parts} of {violations['steps']} steps"
 
 
 def count_violations(record, robot, limits, workspace: tuple | None = None) -> dict:
@@ -162,6 +170,10 @@ def count_violations(record, robot, limits, workspace: tuple | None = None) -> d
         path = record.ee_path.to(torch.float64)[:, 1:]  # [E, T, 3] tool position each step led to
         box = ((path < lo - 1e-9) | (path > hi + 1e-9)).any(-1)
         out["workspace"] = int(box.sum())
+        # how far (m) beyond the box the worst step went: the filter bounds a linear look-ahead
+        # (pos + J_lin qd dt), so on a curved tool path a step can end slightly outside
+        beyond = torch.maximum(lo - path, path - hi).clamp(min=0.0).amax(-1)
+        out["workspace_max_overshoot_m"] = float(beyond.max()) if beyond.numel() else 0.0
         any_step = any_step | box
     out["total"] = int(any_step.sum())
     out["steps"] = E * T
