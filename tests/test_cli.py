@@ -147,3 +147,15 @@ def test_a_tracking_server_that_does_not_answer_is_one_line(tmp_path):
     (line,) = res.stderr.strip().splitlines()
     assert line == (f"coreach: error: tracking server http://127.0.0.1:{port}: does not answer (after retries); "
                     "start it, or check tracking.uri / COREACH_TRACKING_URI / MLFLOW_TRACKING_URI")  # fmt: skip
+
+
+def test_cfg_job_prints_only_the_composed_config(tmp_path):
+    """`coreach train --cfg job` prints the config as YAML (Hydra) and nothing after it: the output parses."""
+    import yaml  # PyYAML, installed with hydra-core
+
+    res = subprocess.run([COREACH, "train", "model=vae", "--cfg", "job"], cwd=tmp_path, capture_output=True,
+                         text=True, env=cli_env(), timeout=120)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    cfg = yaml.safe_load(res.stdout)
+    assert cfg["model"]["_target_"].endswith("VAE") or "vae" in str(cfg["model"]).lower(), cfg["model"]
+    assert not (tmp_path / "mlflow.db").exists()  # nothing ran

@@ -155,6 +155,8 @@ def main(argv: list[str] | None = None) -> int:
             known = sorted([*HYDRA_COMMANDS, *PLAIN_COMMANDS, "plugins", "compare"])
             raise CoreachError(f"command {command!r}", f"unknown; expected one of {known}")
         summaries = run_hydra(command, overrides, multirun, debug)
+        if _hydra_info_only(overrides):  # --cfg job and the like print the config and run nothing
+            return 0
     except CoreachError as exc:
         if debug:
             traceback.print_exc()
@@ -179,6 +181,11 @@ def main(argv: list[str] | None = None) -> int:
     return max([0, *(int(s.get("exit_code", 0)) for s in summaries if isinstance(s, dict))])
 
 
+def _hydra_info_only(overrides: list[str]) -> bool:
+    """Hydra's own flags that print the config or help instead of running the command."""
+    return any(o.startswith(("--cfg", "-c", "--info", "-i", "--help", "-h", "--hydra-help")) for o in overrides)
+
+
 def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -> list[dict]:
     """Run a subcommand through hydra.main (so Hydra's launchers serve sweeps) and collect summaries."""
     import hydra
@@ -188,7 +195,7 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
 
     config_name, target = HYDRA_COMMANDS[command]
     extra = search_path_overrides()
-    if not any(o.startswith(("--cfg", "-c", "--info", "-i", "--help", "-h", "--hydra-help")) for o in overrides):
+    if not _hydra_info_only(overrides):
         preflight(config_name, extra + overrides, multirun)
     stamp = f"{time.strftime('%Y-%m-%d_%H-%M-%S')}-{os.getpid()}"
     sweep_dir = Path(".coreach") / "sweeps" / stamp
