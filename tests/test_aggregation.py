@@ -115,3 +115,27 @@ def test_table_output_names_every_round_and_how_to_vet_the_result():
     text = console.export_text()
     assert "a" * 32 in text and "3200" in text and "0.25 (n=16)" in text and "0.50 (n=16)" in text
     assert f"candidates=[{'b' * 32},direct,blend]" in text
+
+
+@pytest.mark.slow
+def test_a_start_run_gives_its_recipe_to_every_round(workdir):
+    """From `aggregate.start_run`, rounds retrain the start run's model, loss and data (its logged config), not
+    the command's defaults; setting one of those on the command line as well is refused in one line."""
+    res = run(["--json", "train", "model=vae", "dataset.episodes=30", *FAST, "label=start-vae"], workdir)
+    assert res.returncode == 0, res.stderr
+    start = json.loads(res.stdout)["runs"][0]["run_id"]
+    rollout = ["aggregate.rollout.episodes=2", "aggregate.rollout.horizon_s=8.0", "aggregate.rollout_seeds=[3]"]
+    clash = run(["aggregate", f"aggregate.start_run={start}", "model=linear", *rollout], workdir)
+    assert clash.returncode == 2, clash.stderr
+    (line,) = clash.stderr.strip().splitlines()
+    assert "the command line also sets model" in line, line
+    res = run(["--json", "aggregate", f"aggregate.start_run={start}", *rollout], workdir)
+    assert res.returncode == 0, res.stderr
+    (summary,) = json.loads(res.stdout)["runs"]
+    first, second = summary["rounds"]
+    assert first["run_id"] == start and first["episodes"] == 30  # the start run's dataset, not the default's
+    assert summary["label"] == "start-vae"
+    client = MlflowClient(f"sqlite:///{workdir / 'mlflow.db'}")
+    params = {k: client.get_run(r).data.params for k, r in (("start", start), ("round", second["run_id"]))}
+    model_keys = [k for k in params["start"] if k.startswith("model.")]
+    assert model_keys and all(params["round"].get(k) == params["start"][k] for k in model_keys)

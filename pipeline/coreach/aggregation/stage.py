@@ -125,12 +125,59 @@ def _round_config(cfg: DictConfig, path: Path | None, label: str) -> DictConfig:
     return sub
 
 
+# What a start run's recipe fixes for every retraining round: its arm, data, belief, model, loss, filter,
+# data split, trainer and seed (from the config.yaml it logged).
+INHERITED = ("robot", "dataset", "belief", "model", "loss", "safety", "data", "trainer", "seed")
+
+
+def _user_overrides() -> list[str]:
+    """The command line's overrides (empty when not run as a Hydra app, e.g. inside `coreach recipes`)."""
+    try:
+        from hydra.core.hydra_config import HydraConfig
+
+        return list(HydraConfig.get().overrides.task)
+    except (ImportError, ValueError):
+        return []
+
+
+def _inherit_recipe(cfg: DictConfig, run_id: str) -> DictConfig:
+    """`cfg` with the start run's recipe (INHERITED), so the rounds retrain what the start run trained.
+
+    Refuses a command line that also sets one of those options: which of the two was meant is not clear."""
+    import tempfile
+
+    client, _ = tracking.client(cfg.tracking)
+    try:
+        with tempfile.TemporaryDirectory() as tmp:
+            start = OmegaConf.load(client.download_artifacts(run_id, "config.yaml", tmp))
+    except Exception as exc:  # noqa: BLE001 - the store's own words, in one line
+        raise ConfigError(f"{WHERE}.start_run", f"{run_id!r}: cannot read its config.yaml (the recipe a round "
+                                                f"retrains): {str(exc).splitlines()[0][:160]}") from None  # fmt: skip
+    clash = sorted({o.lstrip("+~").split("=", 1)[0].split(".", 1)[0] for o in _user_overrides()}
+                   & {*INHERITED, "experiment"})  # an experiment sets model and loss
+    if clash:
+        raise ConfigError(f"{WHERE}.start_run", f"the rounds retrain the start run's recipe; the command line also "
+                                                f"sets {', '.join(clash)}: leave those out, or leave start_run out")  # fmt: skip
+    out = OmegaConf.create(OmegaConf.to_container(cfg, resolve=False))
+    OmegaConf.set_struct(out, False)
+    for key in INHERITED:
+        if key in start:
+            out[key] = start[key]
+    if not out.get("label") and start.get("label"):
+        out.label = start.label
+    return out
+
+
 def aggregate(cfg: DictConfig) -> dict:
     """Run `len(aggregate.rollout_seeds)` rounds of data aggregation; the summary's `run_id` is the last
-    round's training run (the aggregated decoder)."""
+    round's training run (the aggregated decoder). With `aggregate.start_run`, round 0 is that run and every
+    round retrains its recipe (arm, data, model, loss, trainer: the run's logged config)."""
     t0 = time.perf_counter()
     opts = cfg.aggregate
     seeds = _seeds(opts)
+    if opts.get("start_run"):
+        _decoder(str(opts.start_run))  # refuse a run that is not a decoder first
+        cfg = _inherit_recipe(cfg, str(opts.start_run))
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
     labeller = build_plugin(cfg.labeller, "labeller")
