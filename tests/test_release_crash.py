@@ -26,8 +26,8 @@ from mlflow.tracking import MlflowClient
 
 from coreach.release.publish import STEPS
 from coreach.release.settle import owner
-from coreach.runtime.registry_tags import (MODEL_DESCRIPTION, TAG_GATE_PASSED, TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH,
-                                           TAG_RELEASE_RUN, TAG_VERSION)
+from coreach.runtime.registry_tags import (MODEL_DESCRIPTION, TAG_GATE_PASSED, TAG_GATE_RELAXED, TAG_MODEL_NAME,
+                                           TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_VERSION)
 
 COREACH = str(Path(sys.executable).parent / "coreach")
 SUITE = "held-out-short"
@@ -175,4 +175,8 @@ def test_sigterm_after_usable_reports_the_release(tmp_path):
     exps = [e.experiment_id for e in client.search_experiments()]
     (rel,) = client.search_runs(exps, "tags.`coreach.stage` = 'release'")
     assert rel.info.status == "FINISHED" and rel.data.tags[TAG_PUBLISH] == "done"
-    assert _cli(["promote", "late-stop", "1"], tmp_path, uri).returncode == 0
+    # QUICK relaxes the gates: the version says so, and so does promote
+    assert "gates.success_lo=0 (shipped 0.3)" in mv.tags.get(TAG_GATE_RELAXED, "")
+    promoted = _cli(["promote", "late-stop", "1"], tmp_path, uri)
+    assert promoted.returncode == 0, promoted.stderr
+    assert "was released with gate settings looser than shipped, so it is NOT a vetted decoder" in promoted.stderr

@@ -419,3 +419,25 @@ def test_a_failing_settle_does_not_hide_why_the_publish_failed(tmp_path, monkeyp
         P.publish(cfg, client, None, run, "label", {})
     err = capsys.readouterr().err
     assert "could not settle release run" in err and "tracking store unreachable" in err, err
+
+
+def test_release_settings_looser_than_shipped_are_named():
+    """The shipped release settings are not relaxed; each loosened gate, fewer episodes than a suite's own, other
+    suites, fewer parity samples or latency steps is named with its shipped value."""
+    from coreach.config_check import compose_config
+    from coreach.release.relaxation import relaxed_settings
+    from coreach.runtime.model_card import model_card
+
+    own = {"held-out": load_suite("held-out").episodes}
+    assert relaxed_settings(compose_config("release", ["run=x"]), own) == []
+    # stricter than shipped is not relaxed
+    assert relaxed_settings(compose_config("release", ["run=x", "gates.success_lo=0.5", "episodes=80"]), own) == []
+    cfg = compose_config("release", ["run=x", "gates.success_lo=0", "gates.max_violations=5", "episodes=1",
+                                     "parity_n=1000", "latency.steps=100"])  # fmt: skip
+    assert relaxed_settings(cfg, own) == [
+        "gates.success_lo=0 (shipped 0.3)", "gates.max_violations=5 (shipped 0)",
+        f"episodes=1 per switch cell (the suites' own: held-out {own['held-out']})",
+        "parity_n=1000 (shipped 10000)", "latency.steps=100 (shipped 3000)"]  # fmt: skip
+    card = model_card({"gate_relaxed": ["gates.success_lo=0 (shipped 0.3)"]}, {}, {})
+    assert "**Warning: released with gate settings looser than shipped, so it is NOT a vetted decoder" in card
+    assert "Warning" not in model_card({}, {}, {})

@@ -159,6 +159,11 @@ def print_release(console, s: dict) -> None:
         print(refusal_line(s), file=sys.stderr)
         return
     console.print(f"released {s['name']} version {s['version']} (@{', @'.join(s.get('aliases', []))}): {s['bundle']}")
+    if s.get("gate_relaxed"):
+        from coreach.runtime.model_card import relaxed_warning
+
+        console.print(f"[bold red]warning:[/bold red] version {s['version']} was "
+                      f"{relaxed_warning(s['gate_relaxed'])}", highlight=False)
     console.print(f"release run {s['release_run']} in {s['tracking']}; the bundle is stored there ({s.get('bundle_uri')})"
                   " and the folder above is this computer's cached copy", markup=False)
     console.print(f"replay it: coreach replay bundle={s['bundle']} suite={(s.get('suite_refs') or ['held-out'])[0]}")

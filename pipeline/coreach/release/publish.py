@@ -33,9 +33,9 @@ from coreach.release.bundle_store import bundle_uri, releases_root, staging_pref
 from coreach.release.bundle_writer import write_bundle
 from coreach.release.settle import owner, settle_run
 from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, MODEL_DESCRIPTION, TAG_BUNDLE_URI, TAG_CREATED_MODEL,
-                                           TAG_GATE, TAG_GATE_PASSED, TAG_MANIFEST, TAG_MODEL_NAME, TAG_OWNER,
-                                           TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT, TAG_SOURCE_RUN, TAG_VERSION,
-                                           release_tag)
+                                           TAG_GATE, TAG_GATE_PASSED, TAG_GATE_RELAXED, TAG_MANIFEST, TAG_MODEL_NAME,
+                                           TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT, TAG_SOURCE_RUN,
+                                           TAG_VERSION, release_tag)
 from coreach.runtime.bundle import MANIFEST, sha256_file
 from coreach.vetting.metrics import flat_metrics
 
@@ -128,8 +128,11 @@ def _steps(cfg, client, policy, run, label, ev, name, root: Path, rid: str) -> d
     # the vetting metrics `coreach replay` compares a replay with, as `coreach vet` records them
     for suite, s in ev["summaries"].items():
         client.log_batch(run_id, metrics=[Metric(f"vet/{suite}/{k}", v, now, 0) for k, v in _headline(s).items()])
-    for key, value in {TAG_BUNDLE_URI: uri, TAG_MANIFEST: sha256_file(folder / MANIFEST),
-                       TAG_GATE: json.dumps(registry.compact_gate(gate), separators=(",", ":"))}.items():  # fmt: skip
+    tags = {TAG_BUNDLE_URI: uri, TAG_MANIFEST: sha256_file(folder / MANIFEST),
+            TAG_GATE: json.dumps(registry.compact_gate(gate), separators=(",", ":"))}
+    if ev.get("relaxed"):
+        tags[TAG_GATE_RELAXED] = "; ".join(ev["relaxed"])[:4900]  # tag values are limited to 5000 characters
+    for key, value in tags.items():
         client.set_model_version_tag(name, version, key, value)
 
     _boundary("usable")

@@ -17,8 +17,9 @@ from coreach.errors import ConfigError, CoreachError
 from coreach.release.bundle_store import cached, releases_root
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
 from coreach.runtime.registry_tags import (FIELDED_ALIAS, GATE_PASSED_ALIAS, MODEL_NAME_RE, TAG_BUNDLE_URI,
-                                           TAG_GATE, TAG_GATE_PASSED, TAG_HISTORY, TAG_MANIFEST, TAG_RELEASE_RUN,
-                                           TAG_SOURCE_RUN)
+                                           TAG_GATE, TAG_GATE_PASSED, TAG_GATE_RELAXED, TAG_HISTORY, TAG_MANIFEST,
+                                           TAG_RELEASE_RUN, TAG_SOURCE_RUN)
+from coreach.runtime.model_card import relaxed_warning
 
 HISTORY_KEEP = 40  # entries kept in the history tag (tag values are limited to a few thousand characters)
 
@@ -89,7 +90,7 @@ def check_fieldable(client, name: str, version: str, root: Path | None = None) -
     if source and manifest.training_run_id != source:
         raise CoreachError(where, f"bundle names training run {manifest.training_run_id}, its release run names {source}")
     return {"version": str(mv.version), "bundle": str(folder.resolve()), "bundle_uri": tags[TAG_BUNDLE_URI],
-            "run_id": source}  # fmt: skip
+            "run_id": source, "gate_relaxed": tags.get(TAG_GATE_RELAXED)}  # fmt: skip
 
 
 def _history(model) -> list[dict]:
@@ -121,7 +122,7 @@ def promote(client, name: str, version: str, root: Path | None = None) -> dict:
     client.set_registered_model_alias(name, FIELDED_ALIAS, info["version"])
     client.set_registered_model_tag(name, TAG_HISTORY, json.dumps(history[-HISTORY_KEEP:], separators=(",", ":")))
     return {"name": name, "fielded": info["version"], "previous": previous, "bundle": info["bundle"],
-            "history": [h["version"] for h in history[-HISTORY_KEEP:]]}  # fmt: skip
+            "history": [h["version"] for h in history[-HISTORY_KEEP:]], "gate_relaxed": info["gate_relaxed"]}  # fmt: skip
 
 
 def promote_back(client, name: str, root: Path | None = None) -> dict:
@@ -139,7 +140,7 @@ def promote_back(client, name: str, root: Path | None = None) -> dict:
     history = history[:-1]
     client.set_registered_model_tag(name, TAG_HISTORY, json.dumps(history, separators=(",", ":")))
     return {"name": name, "fielded": earlier, "previous": current, "bundle": info["bundle"],
-            "history": [h["version"] for h in history]}  # fmt: skip
+            "history": [h["version"] for h in history], "gate_relaxed": info["gate_relaxed"]}  # fmt: skip
 
 
 # ------------------------------------------------------------------------------------- listing
@@ -183,6 +184,7 @@ def list_releases(client, name: str | None = None, root: Path | None = None) -> 
                 "bundle": bundle,
                 "bundle_status": status,
                 "release_run": tags.get(TAG_RELEASE_RUN),
+                "gate_relaxed": tags.get(TAG_GATE_RELAXED),
                 "created": _dt.datetime.fromtimestamp(mv.creation_timestamp / 1000, _dt.timezone.utc)
                 .isoformat(timespec="seconds"),
             })  # fmt: skip
@@ -208,6 +210,9 @@ def promote_command(args: list[str], as_json: bool) -> int:
         was = f" (was {result['previous']})" if result["previous"] else ""
         print(f"{name}: version {result['fielded']} {verb} as @{FIELDED_ALIAS}{was}; bundle {result['bundle']}")
         print(f"fielding history (oldest first): {', '.join(result['history'])}")
+    if result["gate_relaxed"]:
+        print(f"coreach promote: warning: version {result['fielded']} was {relaxed_warning(result['gate_relaxed'])}",
+              file=sys.stderr)
     return 0
 
 
@@ -247,7 +252,9 @@ def releases_command(args: list[str], as_json: bool) -> int:
         key = "; ".join(f"{k} {v['value']:.3g}" for k, v in g.items()
                         if k.startswith(("success", "recovery", "latency")) and v["value"] is not None)  # fmt: skip
         table.add_row(r["name"], r["version"], ", ".join("@" + a for a in r["aliases"]) or "-",
-                      "yes" if r["gate_passed"] else "no", f"{r['gates_passed']}/{len(g)} passed", key or "-",
+                      "yes" if r["gate_passed"] else "no",
+                      f"{r['gates_passed']}/{len(g)} passed" + (" (RELAXED gates)" if r["gate_relaxed"] else ""),
+                      key or "-",
                       f"{r['bundle'] or '-'} ({r['bundle_status']})", r["created"])  # fmt: skip
     Console(width=None if sys.stdout.isatty() else 200).print(table)
     if not rows:

@@ -93,6 +93,7 @@ def _gate_and_publish(cfg, client, policy, run, label: str, uri: str, t0: float)
             "vetting": _vetting_view(ev["summaries"]),
             "suite_refs": suite_refs(cfg),
             "latency": ev["latency"],
+            "gate_relaxed": ev["relaxed"],
             "cautions": list(CAUTIONS),
             "tracking": uri,
         }

@@ -41,7 +41,7 @@ from coreach.runtime.store_client import (PROXIED_SCHEME, FetchError, ModelVersi
                                           copy_stream)
 # registry tags and aliases a release writes: the contract with `coreach release` / `coreach promote`
 from coreach.runtime.registry_tags import (FIELDED_ALIAS, MODEL_NAME_RE, TAG_BUNDLE_URI, TAG_GATE, TAG_GATE_PASSED,
-                                           TAG_MANIFEST, TAG_RELEASE_RUN)
+                                           TAG_GATE_RELAXED, TAG_MANIFEST, TAG_RELEASE_RUN)
 from coreach.runtime.verify import _check_name, sha256_bytes, sha256_file, verify_bundle
 
 CURRENT = "current"
@@ -233,7 +233,8 @@ class Fetched:
         return {"name": self.name, "alias": self.alias, "version": self.version, "bundle": str(self.bundle),
                 "current": str(self.bundle.parent / CURRENT), "previous": self.previous,
                 "downloaded": self.downloaded, **{k: self.record[k] for k in (
-                    "training_run", "release_run", "manifest_sha256", "bundle_uri", "gate", "server", "fetched_at")}}
+                    "training_run", "release_run", "manifest_sha256", "bundle_uri", "gate", "server", "fetched_at")},
+                "gate_relaxed": self.record.get("gate_relaxed")}
 
 
 def _published(mv: ModelVersion) -> tuple[str, str]:
@@ -331,6 +332,7 @@ def _fetch_into(folder: Path, client: StoreClient, mv: ModelVersion, alias: str,
             "name": name, "alias": alias, "version": mv.version, "server": client.server, "bundle_uri": uri,
             "manifest_sha256": manifest_sha, "release_run": mv.tags.get(TAG_RELEASE_RUN, ""),
             "training_run": manifest.training_run_id, "registry_run": mv.run_id, "gate": _gate(mv, manifest),
+            "gate_relaxed": mv.tags.get(TAG_GATE_RELAXED),
             "fetched_at": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         }  # fmt: skip
         _write_json(folder / f"v{mv.version}.json", record)

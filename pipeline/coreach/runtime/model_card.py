@@ -50,11 +50,19 @@ def _metric_row(name: str, value: Any) -> str:
     return f"| {name} | {_fmt(value)} |"
 
 
+def relaxed_warning(relaxed) -> str:
+    """The line every place that shows a release made with gate settings looser than shipped prints."""
+    listed = "; ".join(relaxed) if isinstance(relaxed, (list, tuple)) else str(relaxed)
+    return ("released with gate settings looser than shipped, so it is NOT a vetted decoder; do not use it with "
+            f"people: {listed}")
+
+
 def model_card(meta: dict, gate: dict, metrics: dict) -> str:
     """Markdown model card from the release metadata, the gate's results and the evaluation metrics.
 
     meta keys used (all optional): name, robot_name, goal_names, intended_use, dataset_fingerprint,
-    episodes, training_run_id, git_commit, safety (dict), known_limits (list of str).
+    episodes, training_run_id, git_commit, safety (dict), known_limits (list of str), gate_relaxed (list of str:
+    settings looser than shipped; the card then opens with a warning).
     """
     meta, gate, metrics = meta or {}, gate or {}, metrics or {}
     safety = meta.get("safety") or {}
@@ -62,6 +70,7 @@ def model_card(meta: dict, gate: dict, metrics: dict) -> str:
     lines = [
         f"# Model card: {meta.get('name', 'latent-action decoder')}",
         "",
+        *([f"**Warning: {relaxed_warning(meta['gate_relaxed'])}.**", ""] if meta.get("gate_relaxed") else []),
         "## Cautions",
         "",
         *[f"- {c}" for c in CAUTIONS],

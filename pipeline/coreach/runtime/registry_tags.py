@@ -23,6 +23,7 @@ TAG_GATE_PASSED = "coreach.gate_passed"
 TAG_BUNDLE_URI = "coreach.bundle_uri"
 TAG_MANIFEST = "coreach.manifest_sha256"
 TAG_GATE = "coreach.gate"
+TAG_GATE_RELAXED = "coreach.gate_relaxed"  # set only when released with settings looser than shipped: which
 TAG_RELEASE_RUN = "coreach.release_run"
 TAG_HISTORY = "coreach.fielded_history"
 

@@ -19,7 +19,7 @@ from typing import Any
 
 from coreach.errors import CoreachError
 from coreach.runtime.fetch import FIELDED_ALIAS, Fetched, default_cache, fetch, status
-from coreach.runtime.model_card import CAUTIONS
+from coreach.runtime.model_card import CAUTIONS, relaxed_warning
 from coreach.runtime.store_client import RefusedBundle
 
 PROG = "coreach-robot"
@@ -89,6 +89,7 @@ def fetched_lines(r: Fetched) -> list[str]:
         f"  manifest      sha256 {rec['manifest_sha256']} (as the registry records it)",
         f"  from          {rec['bundle_uri']}",
         *_gate_lines(rec["gate"]),
+        *([f"  WARNING       this version was {relaxed_warning(rec['gate_relaxed'])}"] if rec.get("gate_relaxed") else []),
     ]  # fmt: skip
 
 
@@ -110,6 +111,8 @@ def status_lines(rows: list[dict[str, Any]], cache: str) -> list[str]:
                 "alias back and fetching again)"]  # fmt: skip
         if rec.get("gate"):
             out += _gate_lines(rec["gate"])
+        if rec.get("gate_relaxed"):
+            out.append(f"  WARNING       this version was {relaxed_warning(rec['gate_relaxed'])}")
     return out
 
 

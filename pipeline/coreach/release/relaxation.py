@@ -1,0 +1,49 @@
+"""Which release settings were looser than the shipped ones (conf/coreach_conf/release.yaml).
+
+A release with relaxed gates (thresholds a barely trained decoder meets, fewer episodes, other suites) is
+useful for trying the pipeline out, and must never be mistaken for a vetted decoder: the version's registry
+tag, the model card, the release summary, the listing, `promote` and the robot's fetch all say so (in the
+words of coreach.runtime.model_card.relaxed_warning).
+"""
+
+from __future__ import annotations
+
+from importlib.resources import files
+
+from omegaconf import OmegaConf
+
+# the direction in which each gate threshold gets looser
+LOOSER_IF_LOWER = ("success_lo", "recovery_lo", "stick_gain_median")
+LOOSER_IF_HIGHER = ("max_violations", "parity_max_abs", "latency_p99_us")
+
+
+def shipped_release_config():
+    """The release command's shipped settings, read from the packaged YAML (no Hydra composition needed)."""
+    return OmegaConf.load(str(files("coreach_conf") / "release.yaml"))
+
+
+def relaxed_settings(cfg, suite_own_episodes: dict[str, int]) -> list[str]:
+    """One entry per setting of `cfg` looser than shipped, e.g. "gates.success_lo=0 (shipped 0.3)".
+
+    suite_own_episodes: each gate suite's own episodes per switch cell, to judge an `episodes` override."""
+    shipped = shipped_release_config()
+    out = []
+    for key in (*LOOSER_IF_LOWER, *LOOSER_IF_HIGHER):
+        value, default = float(cfg.gates[key]), float(shipped.gates[key])
+        if (value < default) if key in LOOSER_IF_LOWER else (value > default):
+            out.append(f"gates.{key}={value:g} (shipped {default:g})")
+    if list(cfg.gate_suites) != list(shipped.gate_suites):
+        out.append(f"gate_suites={list(cfg.gate_suites)} (shipped {list(shipped.gate_suites)})")
+    if cfg.get("episodes") is not None:
+        fewer = {name: own for name, own in suite_own_episodes.items() if int(cfg.episodes) < own}
+        if fewer:
+            out.append(f"episodes={int(cfg.episodes)} per switch cell (the suites' own: "
+                       + ", ".join(f"{name} {own}" for name, own in fewer.items()) + ")")
+    if int(cfg.parity_n) < int(shipped.parity_n):
+        out.append(f"parity_n={int(cfg.parity_n)} (shipped {int(shipped.parity_n)})")
+    if int(cfg.latency.steps) < int(shipped.latency.steps):
+        out.append(f"latency.steps={int(cfg.latency.steps)} (shipped {int(shipped.latency.steps)})")
+    return out
+
+
+__all__ = ["relaxed_settings", "shipped_release_config"]
