@@ -16,6 +16,7 @@ def workdir(tmp_path, monkeypatch):
     """A fresh working folder: MLflow store, caches and run folders land here."""
     monkeypatch.chdir(tmp_path)
     monkeypatch.delenv("MLFLOW_TRACKING_URI", raising=False)
+    monkeypatch.delenv("COREACH_TRACKING_URI", raising=False)
     return tmp_path
 
 
@@ -30,7 +31,7 @@ def small_cfg(workdir):
 
 
 def cli_env(**extra: str) -> dict:
-    env = {k: v for k, v in os.environ.items() if k != "MLFLOW_TRACKING_URI"}
+    env = {k: v for k, v in os.environ.items() if k not in ("MLFLOW_TRACKING_URI", "COREACH_TRACKING_URI")}
     env.update(CI="true", **extra)
     if os.environ.get("PYTEST_XDIST_WORKER"):
         env.setdefault("OMP_NUM_THREADS", "1")

@@ -159,3 +159,33 @@ def test_cfg_job_prints_only_the_composed_config(tmp_path):
     cfg = yaml.safe_load(res.stdout)
     assert cfg["model"]["_target_"].endswith("VAE") or "vae" in str(cfg["model"]).lower(), cfg["model"]
     assert not (tmp_path / "mlflow.db").exists()  # nothing ran
+
+
+def test_every_command_finds_the_store_the_same_way(tmp_path, monkeypatch):
+    """tracking.uri / --uri, else COREACH_TRACKING_URI (what the robot's fetch reads too), else
+    MLFLOW_TRACKING_URI, else ./mlflow.db; a plain path to a sqlite file means that file."""
+    from coreach.tracking import resolve_uri
+
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("COREACH_TRACKING_URI", raising=False)
+    monkeypatch.delenv("MLFLOW_TRACKING_URI", raising=False)
+    assert resolve_uri(None) == f"sqlite:///{tmp_path / 'mlflow.db'}"
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", "http://mlflow-var:5000")
+    assert resolve_uri(None) == "http://mlflow-var:5000"
+    monkeypatch.setenv("COREACH_TRACKING_URI", "http://coreach-var:5000")
+    assert resolve_uri(None) == "http://coreach-var:5000"
+    assert resolve_uri("http://given:5000") == "http://given:5000"
+    assert resolve_uri("./lab.db") == f"sqlite:///{tmp_path / 'lab.db'}"
+    (tmp_path / "store.sqlite").write_bytes(b"")
+    assert resolve_uri("store.sqlite") == f"sqlite:///{tmp_path / 'store.sqlite'}"
+
+
+def test_compare_takes_a_plain_sqlite_path(workdir):
+    """`coreach compare --uri ./mlflow.db` reads that file (was: MLflow refused a URI without a scheme)."""
+    res = subprocess.run([COREACH, "train", "model=linear", *SMALL], cwd=workdir, capture_output=True, text=True,
+                         env=cli_env(), timeout=600)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    res = subprocess.run([COREACH, "--json", "compare", "--uri", "./mlflow.db", "--out", "cmp"], cwd=workdir,
+                         capture_output=True, text=True, env=cli_env(), timeout=300)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    assert (workdir / "cmp" / "leaderboard.csv").is_file()

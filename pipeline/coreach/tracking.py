@@ -18,13 +18,27 @@ from omegaconf import DictConfig, OmegaConf
 LIBRARIES = ("coreach", "torch", "lightning", "hydra-core", "mlflow", "numpy", "pytorch-kinematics", "pyarrow")
 
 
+# the environment variables that name the tracking store, first found wins (the robot's fetch reads the same)
+URI_VARIABLES = ("COREACH_TRACKING_URI", "MLFLOW_TRACKING_URI")
+
+
 def resolve_uri(uri: str | None) -> str:
-    """`tracking.uri` if set, else MLFLOW_TRACKING_URI, else sqlite:///<cwd>/mlflow.db."""
-    if uri:
-        return str(uri)
-    if os.environ.get("MLFLOW_TRACKING_URI"):
-        return os.environ["MLFLOW_TRACKING_URI"]
-    return f"sqlite:///{Path.cwd() / 'mlflow.db'}"
+    """The tracking store: `uri` (tracking.uri, --uri) if given, else COREACH_TRACKING_URI, else
+    MLFLOW_TRACKING_URI, else sqlite:///<cwd>/mlflow.db. A plain file path (e.g. ./mlflow.db) means that
+    sqlite file."""
+    chosen = str(uri) if uri else next((os.environ[v] for v in URI_VARIABLES if os.environ.get(v)), None)
+    if not chosen:
+        return f"sqlite:///{Path.cwd() / 'mlflow.db'}"
+    if "://" not in chosen and (chosen.endswith(".db") or Path(chosen).expanduser().is_file()):
+        return f"sqlite:///{Path(chosen).expanduser().resolve()}"
+    return chosen
+
+
+def use_store(uri: str) -> None:
+    """Make `uri` the store of everything this process resolves without an explicit URI (decoder plugins
+    that load a run by id), whichever variable the user had set."""
+    for var in URI_VARIABLES:
+        os.environ[var] = uri
 
 
 def artifact_root(uri: str, configured: str | None) -> str | None:

@@ -64,7 +64,8 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--experiment", default="coreach", help="MLflow experiment name (default: coreach)")
     p.add_argument("--sweep", default=None, help="only runs of this sweep (their coreach.sweep tag)")
     p.add_argument("--out", default="reports/compare", help="folder for leaderboard.csv and leaderboard.png")
-    p.add_argument("--uri", default=None, help="tracking URI (default: MLFLOW_TRACKING_URI, else ./mlflow.db)")
+    p.add_argument("--uri", default=None, help="tracking URI or sqlite file (default: COREACH_TRACKING_URI, else "
+                                               "MLFLOW_TRACKING_URI, else ./mlflow.db)")
     p.add_argument("--sort", default=None, help="metric to rank by, lowest first (default: best val reconstruction)")
     p.add_argument("--limit", type=int, default=None, help="show only the best N runs")
     p.add_argument("-h", "--help", action="store_true")
@@ -117,7 +118,7 @@ def fetch_runs(uri: str, experiment: str, sweep: str | None) -> list:
 
     db = sqlite_path(uri)
     if db is not None and not db.exists():  # reading must not create an empty store
-        raise CoreachError(f"tracking store {db}", "does not exist (train first, or pass --uri / MLFLOW_TRACKING_URI)")
+        raise CoreachError(f"tracking store {db}", "does not exist (train first, or pass --uri / set COREACH_TRACKING_URI)")
     client = MlflowClient(tracking_uri=uri)
     try:
         exp = client.get_experiment_by_name(experiment)

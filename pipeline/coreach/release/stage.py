@@ -10,7 +10,6 @@ makes the version usable. Before anything, what an earlier crashed publish left 
 
 from __future__ import annotations
 
-import os
 import shutil
 import sys
 import tempfile
@@ -66,7 +65,7 @@ def release(cfg: DictConfig) -> dict:
     """Gate `cfg.run`; refuse (exit_code 3, nothing written) or publish it as a gate-passed registry version."""
     t0 = time.perf_counter()
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
-    os.environ["MLFLOW_TRACKING_URI"] = uri  # load_policy reads runs from the same store
+    tracking.use_store(uri)  # load_policy reads runs from the same store
     registry.check_name(str(cfg.name))
     client = registry.client_for(uri)
     policy, run_id, run = _training_run(client, "" if OmegaConf.is_missing(cfg, "run") else str(cfg.run))

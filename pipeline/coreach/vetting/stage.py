@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import logging
-import os
 import time
 from pathlib import Path
 
@@ -91,7 +90,7 @@ def vet(cfg: DictConfig) -> dict:
     """Vet `cfg.candidates` on `cfg.suite`; returns the summaries, the report path and the MLflow run ids."""
     t0 = time.perf_counter()
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
-    os.environ["MLFLOW_TRACKING_URI"] = uri  # decoder interfaces read runs from the same store
+    tracking.use_store(uri)  # decoder interfaces read runs from the same store
     overrides = {"episodes": cfg.episodes} if cfg.get("episodes") is not None else {}
     if cfg.get("operator_preset"):
         overrides["operator"] = cfg.operator_preset

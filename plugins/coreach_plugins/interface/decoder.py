@@ -84,7 +84,8 @@ def load_policy(run: str) -> tuple[DecoderPolicy, str]:
 class DecoderInterface:
     """stick [K, 2] (or [E, K, 2]) -> policy(stick, context) in every episode; one mode. `run`: MLflow run id,
     models:/<name>/<version>, models:/<name>@<alias>, or a local folder holding decoder.safetensors and
-    decoder.json. The store is MLFLOW_TRACKING_URI, else ./mlflow.db."""
+    decoder.json. The store is coreach.tracking.resolve_uri's (COREACH_TRACKING_URI, MLFLOW_TRACKING_URI, else
+    ./mlflow.db)."""
 
     n_modes = 1
 
