@@ -441,3 +441,30 @@ def test_release_settings_looser_than_shipped_are_named():
     card = model_card({"gate_relaxed": ["gates.success_lo=0 (shipped 0.3)"]}, {}, {})
     assert "**Warning: released with gate settings looser than shipped, so it is NOT a vetted decoder" in card
     assert "Warning" not in model_card({}, {}, {})
+
+
+def test_model_card_gate_table_parses_as_a_table():
+    """Every gate row has the header's five cells when a Markdown parser reads the card (markdown-it-py, the
+    CommonMark parser rich uses, with its GFM table rule); a `|` inside a gate's description stays text."""
+    from markdown_it import MarkdownIt
+
+    from coreach.runtime.model_card import model_card
+
+    th = G.Thresholds(success_lo=0.3, recovery_lo=0.15, max_violations=0, stick_gain_median=0.02,
+                      parity_max_abs=1e-5, latency_p99_us=2000.0)  # fmt: skip
+    latency = {"session_p50_us": 120.0, "session_p99_us": 250.0, "bare_p99_us": 30.0, "steps": 3000}
+    gate = G.as_json(G.artifact_gates(3e-7, 1000, latency, th))
+    assert any("|" in v["what"] for v in gate.values())  # the case that broke the table
+    tokens = MarkdownIt("commonmark").enable("table").parse(model_card({}, gate, {"success": 0.9}))
+    rows, cells, table = [], 0, 0
+    for t in tokens:
+        if t.type == "table_open":
+            table += 1
+        elif t.type == "tr_open":
+            cells = 0
+        elif t.type in ("th_open", "td_open"):
+            cells += 1
+        elif t.type == "tr_close" and table == 2:  # the second table: the release gate
+            rows.append(cells)
+    assert rows == [5] * (len(gate) + 1), rows
+    assert "| pass |" in model_card({}, gate, {}) and "{'value'" not in model_card({}, gate, {})

@@ -36,6 +36,21 @@ def _fmt(value: Any) -> str:
     return str(value)
 
 
+def _cell(text: Any) -> str:
+    """A Markdown table cell: `|` escaped, line breaks flattened (a gate's description holds "|x - y|")."""
+    return str(text).replace("|", "\\|").replace("\n", " ")
+
+
+def _gate_row(name: str, result: Any) -> str:
+    """A gate result (value, op, threshold, passed, what, detail; see coreach.release.gate.as_json) as one row."""
+    if not isinstance(result, dict):
+        return f"| {_cell(name)} | {_cell(_fmt(result))} | | | |"
+    verdict = "pass" if result.get("passed") else "FAIL"
+    rule = f"{result.get('op', '')} {_fmt(result.get('threshold'))}".strip()
+    what = "; ".join(str(x) for x in (result.get("what"), result.get("detail")) if x)
+    return f"| {_cell(name)} | {_cell(_fmt(result.get('value')))} | {_cell(rule)} | {verdict} | {_cell(what)} |"
+
+
 def _metric_row(name: str, value: Any) -> str:
     """A metric is a number, or a dict with `value` and optionally `low`/`high` (interval), `level`, `unit`."""
     if isinstance(value, dict):
@@ -46,8 +61,8 @@ def _metric_row(name: str, value: Any) -> str:
             text += f" ({label}interval {_fmt(value['low'])} to {_fmt(value['high'])})"
         if value.get("unit"):
             text += f" {value['unit']}"
-        return f"| {name} | {text} |"
-    return f"| {name} | {_fmt(value)} |"
+        return f"| {_cell(name)} | {_cell(text)} |"
+    return f"| {_cell(name)} | {_cell(_fmt(value))} |"
 
 
 def relaxed_warning(relaxed) -> str:
@@ -102,7 +117,8 @@ def model_card(meta: dict, gate: dict, metrics: dict) -> str:
         lines.append("No metrics were supplied with this release.")
     lines += ["", "## Release gate", ""]
     if gate:
-        lines += ["| check | result |", "|---|---|", *[f"| {k} | {_fmt(v)} |" for k, v in gate.items()]]
+        lines += ["| check | measured | threshold | verdict | what |", "|---|---|---|---|---|",
+                  *[_gate_row(k, v) for k, v in gate.items()]]
     else:
         lines.append("No gate results were supplied with this release.")
     lines += ["", "## Safety filter settings", ""]
