@@ -324,6 +324,13 @@ def test_import_command_then_training_on_its_file(workdir):
     assert res.returncode == 0, res.stderr
     (summary,) = json.loads(res.stdout)["runs"]
     assert summary["episodes"] == 16 and summary["train"].endswith("dataset.path=lab/demos.parquet")
+    # the suggested training command repeats the robot options the import was checked against
+    res = subprocess.run([COREACH, "--json", "import-recordings", "inputs=[a]", "out=placed.parquet",
+                          "robot.base_xyz=[0,0,0]"], cwd=workdir, capture_output=True, text=True, env=cli_env(),
+                         timeout=600)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    hint = json.loads(res.stdout)["runs"][0]["train"]
+    assert hint == "coreach train dataset=parquet_file dataset.path=placed.parquet 'robot.base_xyz=[0,0,0]'"
     assert not [p for p in (workdir / "lab").iterdir() if p.name != "demos.parquet"]  # no temporary file left
     res = subprocess.run([COREACH, "--json", "train", "dataset=parquet_file", "dataset.path=lab/demos.parquet",
                           "model=vae", "trainer.max_epochs=1", *FAST[1:]],
