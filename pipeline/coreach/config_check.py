@@ -88,3 +88,4 @@ def preflight(config_name: str, overrides: list[str], multirun: bool) -> None:
             trial = list(base)
             trial[index] = f"{key}={v}"
             compose_config(config_name, trial)
+

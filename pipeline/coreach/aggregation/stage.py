@@ -20,6 +20,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from coreach import tracking
 from coreach.aggregation.visits import visit_episodes, visits_from_record
+from coreach.command_line import command_line_options
 from coreach.episodes import EpisodeSet, save_parquet
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_option, build_plugin, builtin_option
@@ -130,16 +131,6 @@ def _round_config(cfg: DictConfig, path: Path | None, label: str) -> DictConfig:
 INHERITED = ("robot", "dataset", "belief", "model", "loss", "safety", "data", "trainer", "seed")
 
 
-def _user_overrides() -> list[str]:
-    """The command line's overrides (empty when not run as a Hydra app, e.g. inside `coreach recipes`)."""
-    try:
-        from hydra.core.hydra_config import HydraConfig
-
-        return list(HydraConfig.get().overrides.task)
-    except (ImportError, ValueError):
-        return []
-
-
 def _inherit_recipe(cfg: DictConfig, run_id: str) -> DictConfig:
     """`cfg` with the start run's recipe (INHERITED), so the rounds retrain what the start run trained.
 
@@ -153,8 +144,7 @@ def _inherit_recipe(cfg: DictConfig, run_id: str) -> DictConfig:
     except Exception as exc:  # noqa: BLE001 - the store's own words, in one line
         raise ConfigError(f"{WHERE}.start_run", f"{run_id!r}: cannot read its config.yaml (the recipe a round "
                                                 f"retrains): {str(exc).splitlines()[0][:160]}") from None  # fmt: skip
-    clash = sorted({o.lstrip("+~").split("=", 1)[0].split(".", 1)[0] for o in _user_overrides()}
-                   & {*INHERITED, "experiment"})  # an experiment sets model and loss
+    clash = sorted(set(command_line_options().values()) & {*INHERITED, "experiment"})  # experiment: model, loss
     if clash:
         raise ConfigError(f"{WHERE}.start_run", f"the rounds retrain the start run's recipe; the command line also "
                                                 f"sets {', '.join(clash)}: leave those out, or leave start_run out")  # fmt: skip

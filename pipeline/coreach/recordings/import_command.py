@@ -3,13 +3,13 @@
 from __future__ import annotations
 
 import shlex
-
 from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 from omegaconf import DictConfig
 
+from coreach.command_line import command_line_options
 from coreach.episodes import EpisodeSet
 from coreach.errors import ConfigError, DataError
 from coreach.recordings.bag_reader import read_bag
@@ -17,18 +17,6 @@ from coreach.recordings.csv_reader import read_csv
 from coreach.recordings.options import WHERE, read_options
 from coreach.recordings.stick_parquet import save_with_stick
 from coreach.recordings.to_episodes import ArmLimits, build_episodes, recording_pieces
-
-
-def _robot_overrides() -> list[str]:
-    """The command line's robot options (robot=..., robot.urdf=...), so the suggested `coreach train` trains
-    on the same arm the recordings were checked against."""
-    try:
-        from hydra.core.hydra_config import HydraConfig
-
-        task = list(HydraConfig.get().overrides.task)
-    except (ImportError, ValueError):  # not run as a Hydra app
-        return []
-    return [o for o in task if o.lstrip("+~").split("=", 1)[0].split(".", 1)[0] == "robot"]
 
 
 def import_recordings(cfg: DictConfig) -> dict:
@@ -77,7 +65,8 @@ def import_recordings(cfg: DictConfig) -> dict:
     save_with_stick(episode_set, sticks, out)
     found = {k: sum(s[k] for r in reports for s in r["streams"]) for k in ("gaps", "duplicates", "backwards")}
     counts = np.bincount(episode_set.goals, minlength=len(scenario.goal_names))
-    robot_override = "".join(f" {shlex.quote(o)}" for o in _robot_overrides())
+    # the robot options the recordings were checked against, so the suggested training uses the same arm
+    robot_override = "".join(f" {shlex.quote(o)}" for o, root in command_line_options().items() if root == "robot")
     return {
         "out": str(out), "episodes": len(episodes), "samples": episode_set.total_steps, "dt": dt,
         "robot": robot.name, "scenario": scenario.name, "fingerprint": episode_set.fingerprint(),
