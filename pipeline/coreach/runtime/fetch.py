@@ -379,7 +379,7 @@ def status(cache: str | Path | None = None, name: str | None = None) -> list[dic
                 row["verified"] = True
             except BundleError as exc:
                 row["verified"], row["problem"] = False, str(exc)
-            released = (row["record"] or {}).get("manifest_sha256") if isinstance(row["record"], dict) else None
+            released = row["record"].get("manifest_sha256") if isinstance(row["record"], dict) else None
             if row["verified"] and released and sha256_file(bundle / MANIFEST) != released:
                 # every file matches its manifest, but the manifest is not the one the registry named at fetch
                 row["verified"] = False
