@@ -468,3 +468,25 @@ def test_model_card_gate_table_parses_as_a_table():
             rows.append(cells)
     assert rows == [5] * (len(gate) + 1), rows
     assert "| pass |" in model_card({}, gate, {}) and "{'value'" not in model_card({}, gate, {})
+
+
+def test_scratch_folders_of_dead_release_processes_are_cleared(tmp_path, monkeypatch):
+    """A release killed during the gate leaves its scratch folder; the next settle removes it, but never the
+    folder of a release process that still runs."""
+    import subprocess
+    import sys
+
+    from coreach.release import settle as S
+
+    monkeypatch.setattr(S.tempfile, "gettempdir", lambda: str(tmp_path))
+    done = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    dead_pid = int(done.stdout)  # that process has exited
+    dead = tmp_path / f"{S.TMP_PREFIX}{dead_pid}-abc"
+    live = tmp_path / f"{S.scratch_prefix()}def"  # this process's own
+    other = tmp_path / "coreach-release-notapid-x"
+    for folder in (dead, live, other):
+        folder.mkdir()
+    said = []
+    S._clean_scratch(said.append)
+    assert not dead.exists() and live.is_dir() and other.is_dir()
+    assert said == [f"removed {dead}: scratch folder of a release that was killed"]
