@@ -282,3 +282,39 @@ def test_status_refuses_a_bundle_replaced_after_the_fetch(capsys, tmp_path):
     code, out, _ = run_robot(capsys, "status", "--cache", str(tmp_path / "cache"))
     assert code == 3, out
     assert "FAILS verification" in out and "differs from the fetch record's manifest_sha256" in out, out
+
+
+def test_a_full_disk_is_not_reported_as_a_cut_download():
+    """A write error on this computer (ENOSPC) says so; only a read error is "cut off"."""
+    import errno
+    import io
+
+    from coreach.runtime.store_client import copy_stream
+
+    def full_disk(chunk):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    with pytest.raises(FetchError, match="could not be written to this computer's disk \\(No space left on device\\)"):
+        copy_stream(io.BytesIO(b"x" * 10), full_disk, None, "bundle/decoder.onnx")
+
+    class Dropped(io.RawIOBase):
+        def read(self, n=-1):
+            raise ConnectionResetError(errno.ECONNRESET, "Connection reset by peer")
+
+    with pytest.raises(FetchError, match="download was cut off"):
+        copy_stream(Dropped(), lambda b: None, None, "bundle/decoder.onnx")
+
+
+def test_a_cache_that_cannot_be_written_is_one_line_exit_2(capsys, tmp_path, monkeypatch):
+    """An OSError from this computer's disk during a fetch (here: the lock file cannot be created because a
+    folder stands in its way) is one line and exit 2, not an internal error."""
+    from coreach.runtime.registry_tags import TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST
+    from coreach.runtime.store_client import ModelVersion
+
+    monkeypatch.setattr(StoreClient, "version_by_alias", lambda self, name, alias: ModelVersion(
+        name, "2", "", "r", {TAG_GATE_PASSED: "true", TAG_BUNDLE_URI: str(tmp_path), TAG_MANIFEST: "0" * 64}))
+    (tmp_path / "cache" / "arm" / F.LOCK).mkdir(parents=True)  # open(".lock", "a+") fails: IsADirectoryError
+    code, _, err = run_robot(capsys, "fetch", "arm", "--server", "http://127.0.0.1:9", "--cache", str(tmp_path / "cache"))
+    assert code == 2, err
+    (line,) = err.strip().splitlines()
+    assert line.startswith("coreach-robot: error: ") and "Is a directory" in line and "unchanged" in line, line

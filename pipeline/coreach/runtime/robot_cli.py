@@ -155,12 +155,21 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print(f"{PROG}: error: interrupted; the current bundle is unchanged", file=sys.stderr)
         return 130
+    except OSError as exc:  # this computer's disk or cache folder, not a bug
+        if debug:
+            traceback.print_exc()
+        print(f"{PROG}: error: {_disk_problem(exc)}", file=sys.stderr)
+        return 2
     except Exception as exc:  # a bug, not bad input
         if debug:
             traceback.print_exc()
         print(f"{PROG}: error: internal error: {type(exc).__name__}: {exc} (rerun with --debug for the traceback)",
               file=sys.stderr)  # fmt: skip
         return 1
+
+
+def _disk_problem(exc: OSError) -> str:
+    return f"{exc.filename or 'the bundle cache'}: {exc.strerror or exc}; the current bundle is unchanged"
 
 
 def _fail(exc: CoreachError, code: int, debug: bool) -> int:
@@ -180,6 +189,9 @@ def fetch_command(args: list[str], as_json: bool) -> int:
     except RefusedBundle as exc:
         print(f"coreach: error: {exc}", file=sys.stderr)
         return REFUSED
+    except OSError as exc:  # this computer's disk or cache folder, not a bug
+        print(f"coreach: error: {_disk_problem(exc)}", file=sys.stderr)
+        return 2
 
 
 if __name__ == "__main__":

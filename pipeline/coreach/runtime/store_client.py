@@ -215,7 +215,11 @@ def copy_stream(src: BinaryIO, sink, limit: int | None, where: str) -> int:
             total += len(chunk)
             if limit is not None and total > limit:
                 raise FetchError(where, f"larger than {limit} bytes; not a bundle manifest")
-            sink(chunk)
+            try:
+                sink(chunk)
+            except OSError as exc:  # this computer's disk (full, read-only, failing), not the download
+                raise FetchError(where, f"could not be written to this computer's disk ({exc.strerror or exc}); "
+                                        "free space or fix the cache folder, then fetch again") from None  # fmt: skip
     except (TimeoutError, socket.timeout, ConnectionError, http.client.HTTPException, OSError) as exc:
         raise FetchError(where, f"download was cut off ({type(exc).__name__}: {exc})") from None
     return total
