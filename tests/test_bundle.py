@@ -151,6 +151,54 @@ def test_model_card_carries_the_cautions_and_metrics(bundle):
         assert phrase in card, phrase
 
 
+def test_model_card_tables_keep_their_columns_and_show_dicts_readably():
+    """Every row of the card's tables has as many cells as its header, counted on the Markdown source (a GFM
+    parser pads or drops cells, so it would hide a stray `|`); a Markdown parser (reference: markdown-it-py,
+    CommonMark with its GFM table rule) reads each escaped `|` back as text; a dict value reads `key: value, ...`
+    instead of a Python dict."""
+    import re
+
+    from markdown_it import MarkdownIt
+
+    from coreach.runtime.model_card import model_card
+
+    gate = {"onnx_parity": {"what": "max |onnxruntime - torch| (rad/s)", "value": 2e-6, "threshold": 1e-5,
+                            "op": "<=", "passed": True, "detail": {"n": 10000, "worst joint": 3}},
+            "latency_p99": 250.0}  # fmt: skip
+    metrics = {"success | nominal": {"value": 0.9, "low": 0.8, "high": 0.96, "level": 0.95},
+               "step time": {"p50": 120.0, "p99": 250.5}, "episodes": 200}  # fmt: skip
+    card = model_card({}, gate, metrics)
+    assert "{'" not in card and '{"' not in card
+
+    # the source: a table is a run of lines starting with `|`; cells are split at unescaped `|`
+    tables: list[list[int]] = []
+    previous = ""
+    for line in card.splitlines():
+        if line.startswith("|"):
+            if not previous.startswith("|"):
+                tables.append([])
+            tables[-1].append(len(re.split(r"(?<!\\)\|", line.strip())) - 2)
+        previous = line
+    assert tables == [[2] * (2 + len(metrics)), [5] * (2 + len(gate))], tables  # header, delimiter row, rows
+
+    # the parsed cells: escaped `|` is text again, dicts read as key: value
+    rows, cells = [], None
+    for t in MarkdownIt("commonmark").enable("table").parse(card):
+        if t.type == "tr_open":
+            cells = []
+            rows.append(cells)
+        elif t.type == "inline" and cells is not None:
+            cells.append(t.content)
+        elif t.type == "tr_close":
+            cells = None
+    parsed = {r[0]: r[1:] for r in rows}
+    assert parsed["step time"] == ["p50: 120, p99: 250.5"]
+    assert parsed["success | nominal"] == ["0.9 (95% interval 0.8 to 0.96)"]
+    assert parsed["onnx_parity"] == ["2e-06", "<= 1e-05", "pass",
+                                     "max |onnxruntime - torch| (rad/s); n: 10000, worst joint: 3"]
+    assert parsed["latency_p99"] == ["250", "", "", ""]
+
+
 # ------------------------------------------------------------------------------------------ refusals
 @pytest.mark.parametrize("name", ["decoder.onnx", "robot.urdf", "MODEL_CARD.md", "report.html"])
 def test_changed_byte_is_refused(copy, name):

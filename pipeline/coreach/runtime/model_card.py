@@ -29,10 +29,13 @@ DEFAULT_LIMITS = (
 
 
 def _fmt(value: Any) -> str:
+    """A value as the card shows it: floats to 4 significant digits, a mapping as `key: value, ...`."""
     if isinstance(value, float):
         return "n/a" if not math.isfinite(value) else f"{value:.4g}"
     if value is None:
         return "n/a"
+    if isinstance(value, dict):
+        return ", ".join(f"{k}: {_fmt(v)}" for k, v in value.items()) or "n/a"
     return str(value)
 
 
@@ -47,13 +50,14 @@ def _gate_row(name: str, result: Any) -> str:
         return f"| {_cell(name)} | {_cell(_fmt(result))} | | | |"
     verdict = "pass" if result.get("passed") else "FAIL"
     rule = f"{result.get('op', '')} {_fmt(result.get('threshold'))}".strip()
-    what = "; ".join(str(x) for x in (result.get("what"), result.get("detail")) if x)
+    what = "; ".join(_fmt(x) for x in (result.get("what"), result.get("detail")) if x)
     return f"| {_cell(name)} | {_cell(_fmt(result.get('value')))} | {_cell(rule)} | {verdict} | {_cell(what)} |"
 
 
 def _metric_row(name: str, value: Any) -> str:
-    """A metric is a number, or a dict with `value` and optionally `low`/`high` (interval), `level`, `unit`."""
-    if isinstance(value, dict):
+    """A metric is a number, or a dict with `value` and optionally `low`/`high` (interval), `level`, `unit`
+    (any other dict is shown as `key: value, ...`)."""
+    if isinstance(value, dict) and "value" in value:
         text = _fmt(value.get("value"))
         if "low" in value and "high" in value:
             level = value.get("level")  # e.g. 0.95
