@@ -357,3 +357,24 @@ def test_one_input_given_without_brackets_is_one_entry():
     assert read_options(compose_config("import_recordings", ["inputs=run.csv"]))[0] == ["run.csv"]
     with pytest.raises(ConfigError, match="option inputs: expected a list of bag folders"):
         read_options(compose_config("import_recordings", ["inputs=3"]))
+
+
+def test_train_hint_trains_the_same_arm(tmp_path):
+    """The printed follow-up (`train on it: ...`) repeats the import's robot options and quotes the output path,
+    and `train` composes from it the very robot config the import used (it used to print robot=<name>, no
+    config group option for a URDF arm)."""
+    import shlex
+
+    t = uneven_times(3.0, seed=2)
+    lines = ["time_s,goal," + ",".join(f"q_{j}" for j in JOINTS)]
+    lines += [",".join([f"{tk:.6f}", "bottle", *[f"{v:.12f}" for v in row]]) for tk, row in zip(t, motion(t))]
+    (tmp_path / "run.csv").write_text("\n".join(lines) + "\n")
+    arm = ["robot.name=myarm", "robot.tool_link=tool", f"robot.home=[{','.join(f'{v:g}' for v in HOME)}]"]
+    res = subprocess.run([COREACH, "import-recordings", "inputs=[run.csv]", "out=my demos.parquet", *arm],
+                         cwd=tmp_path, capture_output=True, text=True, env=cli_env(), timeout=600)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    (hint,) = [ln.split("train on it: ", 1)[1] for ln in res.stdout.splitlines() if "train on it: " in ln]
+    words = shlex.split(hint)
+    assert words == ["coreach", "train", "dataset=parquet_file", "dataset.path=my demos.parquet", *arm], words
+    imported = compose_config("import_recordings", ["inputs=[run.csv]", *arm]).robot
+    assert compose_config("train", words[2:]).robot == imported

@@ -73,5 +73,5 @@ def import_recordings(cfg: DictConfig) -> dict:
         "goals": {g: int(c) for g, c in zip(scenario.goal_names, counts)}, "found": found,
         "stick": None if sticks is None else int(sticks[0].shape[1]), "stick_note": stick_note,
         "recordings": reports,
-        "train": f"coreach train dataset=parquet_file dataset.path={out}{robot_override}",
+        "train": f"coreach train dataset=parquet_file {shlex.quote(f'dataset.path={out}')}{robot_override}",
     }  # fmt: skip
