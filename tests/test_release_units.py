@@ -444,8 +444,9 @@ def test_release_settings_looser_than_shipped_are_named():
 
 
 def test_model_card_gate_table_parses_as_a_table():
-    """Every gate row has the header's five cells when a Markdown parser reads the card (markdown-it-py, the
-    CommonMark parser rich uses, with its GFM table rule); a `|` inside a gate's description stays text."""
+    """A Markdown parser (markdown-it-py with its GFM table rule) reads the gate table as five columns with a
+    verdict per gate, not a Python dict. (A GFM parser pads or drops cells, so the cell count on the raw source,
+    which catches an unescaped `|`, is checked in tests/test_bundle.py.)"""
     from markdown_it import MarkdownIt
 
     from coreach.runtime.model_card import model_card

@@ -238,7 +238,7 @@ def rollout(
             J = robot.jacobian(qa).to(f64)  # [B, 6, n]
             qd = expert_action(robot, qa, J, twist, dt, damping, noise * qd_max * noise_draw[keep])
             # label_clean: the noise moves the arm off the expert's path, the recorded label is the expert's
-            # own correction from there (noise injection, Laskey et al. 2017, DART)
+            # own correction from there (noise injection, the published DART method)
             label = expert_action(robot, qa, J, twist, dt, damping) if label_clean else qd
 
             sel = ~heading_via | bool(record_via)  # heading elsewhere first is recorded only with record_via

@@ -1,4 +1,4 @@
-"""`coreach aggregate`: closed-loop data aggregation (DAgger; Ross, Gordon & Bagnell 2011) for a decoder.
+"""`coreach aggregate`: closed-loop data aggregation (the published DAgger method) for a decoder.
 
 Each round: roll the current decoder out against simulated operators, label every visited state with the
 labeller's action toward the goal the operator wanted there, add those episodes to the dataset and
