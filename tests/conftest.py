@@ -7,12 +7,22 @@ from pathlib import Path
 
 import pytest
 
+
 @pytest.fixture(autouse=True)
-def _store_only_where_asked(request, monkeypatch):
+def _store_only_where_asked(request):
     """COREACH_TRACKING_URI names the store every command uses first; .ci/run exports it (the lab server) for
-    tests/lab. Elsewhere a test names its own store, so the variable is cleared there."""
+    tests/lab. Elsewhere a test names its own store, so the variable is cleared there. Stages that run in
+    the test process point both variables at their store (coreach.tracking.use_store), so both are put
+    back after every test: one test's store must not become the next one's."""
+    saved = {v: os.environ.get(v) for v in ("COREACH_TRACKING_URI", "MLFLOW_TRACKING_URI")}
     if "lab" not in Path(str(request.node.fspath)).parts:
-        monkeypatch.delenv("COREACH_TRACKING_URI", raising=False)
+        os.environ.pop("COREACH_TRACKING_URI", None)
+    yield
+    for var, value in saved.items():
+        if value is None:
+            os.environ.pop(var, None)
+        else:
+            os.environ[var] = value
 
 
 # Small enough for seconds on 2 cores, large enough that every goal appears in both splits.
