@@ -180,6 +180,11 @@ class RobotOptional(Protocol):
         """The arm's URDF as text (what a release bundle ships as robot.urdf), or None for an arm that has no
         URDF; `coreach release` refuses such an arm with one line."""
 
+    def link_model(self, clearance: float) -> Any:
+        """The links as spheres (a `coreach.link_model.LinkModel`) for separation from the scene's bodies, with
+        self-collision pairs at least `clearance` apart at home. Without it the arm has no bodies: vetting
+        measures no separation and `coreach release` refuses the arm in a scene with bodies."""
+
 
 class BeliefOptional(Protocol):
     """What a belief model may add to `BeliefModel`; a model without both cannot be released."""

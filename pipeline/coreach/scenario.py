@@ -12,8 +12,11 @@ import numpy as np
 import torch
 from torch import Tensor
 
+from coreach.control.bodies import Primitive
+from coreach.control.separation import SeparationSettings
 from coreach.errors import ConfigError
 from coreach.geometry import matrix_to_quat, rpy_to_matrix
+from coreach.scene_bodies import check_goals_clear, parse_obstacles, parse_person
 
 __all__ = ["Goal", "Scenario", "Layout", "EpisodeLayout", "load_scenario", "builtin_scenarios"]
 
@@ -90,12 +93,20 @@ def _number(value: Any, where: str, lo: float, hi: float, what: str) -> float:
 
 @dataclass
 class Scenario:
-    """A scene of G goals; each episode picks one and jitters all approach points by up to +-jitter."""
+    """A scene of G goals; each episode picks one and jitters all approach points by up to +-jitter. The bodies
+    the arm must keep clear of: furniture (`obstacles`) and the person, with the separation settings."""
 
     name: str
     goals: list[Goal]
     jitter: float = 0.02  # m, uniform per axis, per goal and episode
     dt: float = 0.1  # s between recorded steps
+    obstacles: list[Primitive] = field(default_factory=list)
+    person: list[Primitive] = field(default_factory=list)
+    separation: SeparationSettings = field(default_factory=SeparationSettings)
+
+    @property
+    def has_bodies(self) -> bool:
+        return bool(self.obstacles or self.person)
 
     @property
     def goal_names(self) -> list[str]:
@@ -113,7 +124,7 @@ class Scenario:
         """Build from plain data (parsed YAML); `where` prefixes error locations (e.g. the file name)."""
         if not isinstance(d, dict):
             raise ConfigError(where, f"expected a mapping with keys name, goals, jitter, dt; got {type(d).__name__}")
-        known = {"name", "goals", "jitter", "dt"}
+        known = {"name", "goals", "jitter", "dt", "clearance", "obstacles", "person"}
         extra = sorted(set(d) - known)
         if extra:
             raise ConfigError(f"{where}, option {extra[0]}", f"unknown option; expected one of {sorted(known)}")
@@ -152,7 +163,19 @@ class Scenario:
             )
         jitter = _number(d.get("jitter", 0.02), f"{where}, option jitter", 0.0, 1.0, "m")
         dt = _number(d.get("dt", 0.1), f"{where}, option dt", 1e-4, 10.0, "s")
-        return cls(name=name, goals=goals, jitter=jitter, dt=dt)
+        clearance = _number(d.get("clearance", SeparationSettings.clearance), f"{where}, option clearance", 0.0,
+                            1.0, "m kept from furniture")
+        taken = {g.name for g in goals}
+        obstacles = parse_obstacles(d.get("obstacles"), where, taken)
+        person, separation = parse_person(d.get("person"), where, taken)
+        from dataclasses import replace
+
+        separation = replace(separation, clearance=clearance)
+        points = [p for g in goals for p in (g.position, [a + b for a, b in zip(g.position, g.fine_motion)])]
+        labels = [f"{g.name} ({what})" for g in goals for what in ("approach point", "end of fine motion")]
+        check_goals_clear(np.array(points), labels, obstacles, person, separation.keep_out, where)
+        return cls(name=name, goals=goals, jitter=jitter, dt=dt, obstacles=obstacles, person=person,
+                   separation=separation)
 
     def sample_layouts(self, n_episodes: int, generator: torch.Generator) -> Layout:
         """E layouts: every approach point shifted by U(-jitter, jitter) per axis; orientations and

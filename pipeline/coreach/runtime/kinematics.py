@@ -9,7 +9,7 @@ import numpy as np
 from coreach.geometry import quat_to_matrix, rpy_to_matrix
 from coreach.urdf import JointSpec, parse_path, read_path
 
-__all__ = ["Chain", "quat_to_matrix"]  # quat_to_matrix re-exported for the runtime session
+__all__ = ["Chain", "SpherePoints", "quat_to_matrix"]  # quat_to_matrix re-exported for the runtime session
 
 _YZX = np.array([1, 2, 0])
 _ZXY = np.array([2, 0, 1])
@@ -33,6 +33,16 @@ def _axis_to_z(axis: np.ndarray) -> np.ndarray:
     return a
 
 
+class SpherePoints:
+    """Points rigidly attached to links of a Chain: moving-frame index [S] (-1 = root, static), the point in
+    that frame [S, 3], and which joints move it, upstream [S, n]."""
+
+    def __init__(self, frame: np.ndarray, local: np.ndarray, chain: Chain):
+        self.frame, self.local = frame, local
+        self.static = frame < 0
+        self.upstream = np.arange(chain.dof)[None, :] <= frame[:, None]
+
+
 class Chain:
     """Tool pose and geometric Jacobian (base = root link frame) of a serial chain, batched over q [..., n]."""
 
@@ -50,12 +60,18 @@ class Chain:
         # is M_i Rz(q_i) (M_i Tz(q_i) if prismatic), which changes only columns 0-1 (column 3), and the
         # world axis and origin of joint i are columns 2 and 3 of its frame.
         origins, pending, turn_back = [], np.eye(4), np.eye(4)
+        # every link on the path: (index of the moving frame it rides on, -1 = the root; its pose in that frame)
+        self.link_frames: dict[str, tuple[int, np.ndarray]] = {joints[0].parent: (-1, np.eye(4))} if joints else {}
         for j in joints:
             pending = pending @ _transform(j)
             if j.movable:
                 turn = _axis_to_z(np.array(j.axis))
                 origins.append(turn_back @ pending @ turn)
                 pending, turn_back = np.eye(4), turn.T
+                self.link_frames[j.child] = (len(origins) - 1, turn.T.copy())
+            else:
+                k, pose = self.link_frames[j.parent]
+                self.link_frames[j.child] = (k, pose @ _transform(j))
         self._m = np.stack(origins)  # [n, 4, 4] M_i
         self._tool = turn_back @ pending  # [4, 4] last joint frame (axis = z) -> tool link
         self._m01 = self._m[:, :, 0:2].copy()  # [n, 4, 2] columns 0-1 of M
@@ -136,3 +152,32 @@ class Chain:
 
     def jacobian(self, q) -> np.ndarray:
         return self.fk_jacobian(q)[2]
+
+    def attach(self, links: list[str], centres) -> SpherePoints:
+        """Points fixed to links (centres [S, 3] in each link's frame) -> SpherePoints, for `points`."""
+        idx, local = [], []
+        for name, c in zip(links, np.asarray(centres, dtype=np.float64)):
+            if name not in self.link_frames:
+                raise ValueError(f"link {name!r} is not on the root-to-tool path {sorted(self.link_frames)}")
+            k, pose = self.link_frames[name]
+            idx.append(k)
+            local.append(pose[:3, :3] @ c + pose[:3, 3])
+        return SpherePoints(np.array(idx, dtype=np.int64), np.array(local).reshape(-1, 3), self)
+
+    def points(self, q, attached: SpherePoints, frames=None) -> tuple[np.ndarray, np.ndarray]:
+        """World positions [..., S, 3] of attached points and their linear Jacobians [..., S, 3, n] at q."""
+        if frames is None:
+            frames = self._frames(q)[0]
+        k = attached.frame
+        moving = np.maximum(k, 0)
+        f = frames[..., moving, :, :]  # [..., S, 4, 4]
+        pos = (f[..., :3, :3] @ attached.local[..., None])[..., 0] + f[..., :3, 3]
+        pos = np.where(attached.static[:, None], attached.local, pos)
+        z = frames[..., :3, 2]  # [..., n, 3] joint axes
+        lever = pos[..., :, None, :] - frames[..., None, :, :3, 3]  # [..., S, n, 3]
+        zz = np.broadcast_to(z[..., None, :, :], lever.shape)
+        cross = zz[..., _YZX] * lever[..., _ZXY] - zz[..., _ZXY] * lever[..., _YZX]
+        if self._has_prismatic:
+            cross = np.where(self._prismatic[:, None], zz, cross)
+        jac = np.where(attached.upstream[..., None], cross, 0.0)  # joints after the point's link do not move it
+        return pos, np.swapaxes(jac, -1, -2)

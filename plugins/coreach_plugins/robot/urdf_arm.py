@@ -17,6 +17,7 @@ from torch import Tensor
 from coreach.errors import ConfigError
 from coreach.geometry import rpy_to_matrix
 from coreach.urdf import MOVABLE, JointSpec, parse_path, read_path
+from coreach.link_model import LinkModel, link_model
 from coreach.urdf_placement import place_arm
 
 SHIPPED_URDF = "reach7.urdf"
@@ -42,6 +43,7 @@ class UrdfArmConfig:
     base_rpy_deg: list[float] | None = None
     tool_xyz: list[float] | None = None
     tool_rpy_deg: list[float] | None = None
+    collision_override: str = ""
     _target_: str = "coreach_plugins.robot.urdf_arm.UrdfArm"
 
 
@@ -115,15 +117,18 @@ class UrdfArm:
     def __init__(self, urdf: str = "", tool_link: str = "tool", home: list[float] | None = None,
                  name: str = "reach7", base_xyz: Sequence[float] | None = None,
                  base_rpy_deg: Sequence[float] | None = None, tool_xyz: Sequence[float] | None = None,
-                 tool_rpy_deg: Sequence[float] | None = None):  # fmt: skip
+                 tool_rpy_deg: Sequence[float] | None = None, collision_override: str = ""):  # fmt: skip
         if not isinstance(name, str) or not name:
             raise ConfigError("robot.name", f"expected a non-empty string, got {name!r}")
         if not isinstance(tool_link, str) or not tool_link:
             raise ConfigError("robot.tool_link", f"expected a non-empty link name, got {tool_link!r}")
         if not isinstance(urdf, str):
             raise ConfigError("robot.urdf", f"expected a file path string, got {type(urdf).__name__}")
+        if not isinstance(collision_override, str):
+            raise ConfigError("robot.collision_override", f"expected a file path string, got {collision_override!r}")
         self.urdf = urdf
         self.name = name
+        self.collision_override = collision_override
 
         shipped = shipped_urdf()
         path = Path(urdf).expanduser() if urdf else Path(shipped)
@@ -140,6 +145,8 @@ class UrdfArm:
         if placed is not text:
             specs = parse_path(placed, tool_link, where)
         self._urdf_text = placed
+        self._urdf_dir = path.parent
+        self._link_models: dict[float, LinkModel] = {}
         self.tool_link = tool_link
         self._chains: dict[tuple[torch.dtype, torch.device], pk.SerialChain] = {}
         master = _build_chain(where, tool_link, specs)
@@ -221,6 +228,15 @@ class UrdfArm:
 
     def __repr__(self) -> str:
         return f"UrdfArm(name={self.name!r}, dof={self.dof}, urdf={self.urdf or SHIPPED_URDF!r})"
+
+    def link_model(self, clearance: float) -> LinkModel:
+        """The links as spheres (coreach.link_model): the URDF's collision geometry, meshes resolved beside the
+        URDF, then `collision_override`; self-collision pairs at least `clearance` apart at home."""
+        if clearance not in self._link_models:
+            self._link_models[clearance] = link_model(
+                self._urdf_text, self.tool_link, urdf_dir=self._urdf_dir, override=self.collision_override or None,
+                home=self._home.numpy(), clearance=clearance, where=str(self._urdf_dir / Path(self.urdf or SHIPPED_URDF).name))
+        return self._link_models[clearance]
 
     def urdf_text(self) -> str:
         """The URDF this arm was built from, with its placement, as text (what a release bundle ships as

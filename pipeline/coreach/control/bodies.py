@@ -1,0 +1,162 @@
+"""Signed distances from points to the scene's primitives (box, cylinder, sphere, capsule), batched, array API.
+
+Every primitive is written as one shape: a box of half extents h, rounded by a radius r, in its own frame
+(rotation R, centre t). Its signed distance at a local point p is the box's, minus r:
+
+    q = |p| - h;   sdf_box(p) = |max(q, 0)| + min(max_i q_i, 0);   sdf(p) = sdf_box(p) - r
+
+- sphere of radius R:                 h = (0, 0, 0),        r = R
+- capsule (axis z, half length L):    h = (0, 0, L),        r = R
+- box of half extents (a, b, c):      h = (a, b, c),        r = 0
+- cylinder (axis z, radius R, half length L): the point is first folded onto its radial plane,
+  p' = (sqrt(x^2 + y^2), 0, z), and the box is h = (R, BIG, L), r = 0 (BIG keeps the unused axis out of
+  max_i q_i), which is the exact signed distance of a solid cylinder.
+(Textbook signed distance functions of convex primitives; the comparison is tests/test_bodies_coal.py, against
+the coal collision library.)
+
+A link of the arm is modelled as spheres (coreach.link_model), so the distance between a link body and an
+obstacle is `sdf(centre) - sphere radius`: exact for a sphere, and one code path for every obstacle at once.
+The gradient of the distance with respect to the sphere centre (a unit vector, the direction in which the
+distance grows fastest) is returned with it: the separation filter needs it to predict how a command changes
+each distance.
+
+The functions take numpy arrays on the robot computer and torch tensors in vetting (coreach.control.arrays).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from coreach.control.arrays import namespace
+
+__all__ = ["SHAPES", "BIG", "Primitive", "PackedBodies", "pack", "point_distances", "sphere_pair_distances"]
+
+SHAPES = ("box", "cylinder", "sphere", "capsule")
+# half extent of a cylinder's unused axis after folding: far larger than any scene, small enough for float32
+BIG = 1e6
+
+
+@dataclass(frozen=True)
+class Primitive:
+    """One body: `shape` in SHAPES, `size` as written in a scene (box: [x, y, z] full lengths; cylinder and
+    capsule: [radius, length], the length along the body's z-axis, a capsule's without its end caps;
+    sphere: [radius]), pose `xyz` (m) and `rpy` (rad, URDF roll-pitch-yaw) in the world frame."""
+
+    name: str
+    shape: str
+    size: tuple[float, ...]
+    xyz: tuple[float, float, float] = (0.0, 0.0, 0.0)
+    rpy: tuple[float, float, float] = (0.0, 0.0, 0.0)
+
+    def half_extents_and_radius(self) -> tuple[tuple[float, float, float], float, bool]:
+        """(h, r, folded) of the rounded-box form in the module docstring."""
+        s = self.size
+        if self.shape == "box":
+            return (s[0] / 2, s[1] / 2, s[2] / 2), 0.0, False
+        if self.shape == "sphere":
+            return (0.0, 0.0, 0.0), s[0], False
+        if self.shape == "capsule":
+            return (0.0, 0.0, s[1] / 2), s[0], False
+        if self.shape == "cylinder":
+            return (s[0], BIG, s[1] / 2), 0.0, True
+        raise ValueError(f"unknown shape {self.shape!r}; expected one of {SHAPES}")
+
+
+@dataclass
+class PackedBodies:
+    """O primitives as arrays, the form the distance functions take: rotations [O, 3, 3] (body -> world),
+    centres [O, 3], half extents [O, 3], radii [O], folded [O] bool (cylinders)."""
+
+    names: list[str]
+    rot: np.ndarray
+    centre: np.ndarray
+    half: np.ndarray
+    radius: np.ndarray
+    folded: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    def as_namespace(self, xp, like) -> PackedBodies:
+        """The same bodies as arrays of `like`'s namespace and dtype (torch in vetting)."""
+        if xp is np or type(like) is np.ndarray:
+            return self
+        conv = {k: xp.asarray(getattr(self, k), dtype=like.dtype) for k in ("rot", "centre", "half", "radius")}
+        return PackedBodies(self.names, folded=xp.asarray(self.folded), **conv)
+
+
+def _rpy_matrix(rpy) -> np.ndarray:
+    r, p, y = rpy
+    cr, sr, cp, sp, cy, sy = math.cos(r), math.sin(r), math.cos(p), math.sin(p), math.cos(y), math.sin(y)
+    return np.array([[cy * cp, cy * sp * sr - sy * cr, cy * sp * cr + sy * sr],
+                     [sy * cp, sy * sp * sr + cy * cr, sy * sp * cr - cy * sr],
+                     [-sp, cp * sr, cp * cr]])  # fmt: skip
+
+
+def pack(bodies: list[Primitive]) -> PackedBodies:
+    """Primitives -> PackedBodies (float64 numpy)."""
+    forms = [b.half_extents_and_radius() for b in bodies]
+    if not bodies:
+        z = np.zeros((0, 3))
+        return PackedBodies([], np.zeros((0, 3, 3)), z, z.copy(), np.zeros(0), np.zeros(0, dtype=bool))
+    return PackedBodies(
+        names=[b.name for b in bodies],
+        rot=np.stack([_rpy_matrix(b.rpy) for b in bodies]),
+        centre=np.array([b.xyz for b in bodies], dtype=np.float64),
+        half=np.array([f[0] for f in forms], dtype=np.float64),
+        radius=np.array([f[1] for f in forms], dtype=np.float64),
+        folded=np.array([f[2] for f in forms], dtype=bool),
+    )
+
+
+def point_distances(points, bodies: PackedBodies):
+    """Signed distances from points [..., S, 3] (world frame) to every body: (d [..., S, O] m, negative
+    inside; grad [..., S, O, 3] unit vectors, world frame, d's gradient with respect to the point)."""
+    xp = namespace(points)
+    b = bodies.as_namespace(xp, points)
+    # body frame: p_local = R^T (p - t); [..., S, O, 3]
+    rel = points[..., :, None, :] - b.centre
+    local = xp.sum(rel[..., :, :, :, None] * b.rot, axis=-2)  # sum_j rel_j R_jk
+    # cylinders: fold (x, y) onto the radial axis
+    rho = xp.sqrt(local[..., 0] ** 2 + local[..., 1] ** 2)
+    folded = b.folded
+    px = xp.where(folded, rho, local[..., 0])
+    py = xp.where(folded, 0.0, local[..., 1])
+    p = xp.stack([px, py, local[..., 2]], axis=-1)
+    sgn = xp.where(p >= 0.0, 1.0, -1.0)
+    q = xp.abs(p) - b.half  # [..., S, O, 3]
+    out = xp.maximum(q, 0.0)
+    out_norm = xp.sqrt(xp.sum(out * out, axis=-1))  # [..., S, O]
+    qmax = xp.max(q, axis=-1)
+    d = out_norm + xp.minimum(qmax, 0.0) - b.radius
+    # gradient in the folded frame: outside, along max(q, 0); inside, along the axis of the nearest face
+    outside = out_norm > 0.0
+    face = xp.astype(q == qmax[..., None], p.dtype)
+    face = face / xp.sum(face, axis=-1, keepdims=True)  # a tie (corner) splits evenly, then renormalised
+    g = xp.where(outside[..., None], out / xp.where(outside, out_norm, 1.0)[..., None], face) * sgn
+    g = g / xp.sqrt(xp.sum(g * g, axis=-1, keepdims=True))
+    # unfold: the radial component points along (x, y) / rho (any direction on the axis itself)
+    on_axis = rho < 1e-12
+    ux = xp.where(on_axis, 1.0, local[..., 0] / xp.where(on_axis, 1.0, rho))
+    uy = xp.where(on_axis, 0.0, local[..., 1] / xp.where(on_axis, 1.0, rho))
+    gx = xp.where(folded, g[..., 0] * ux, g[..., 0])
+    gy = xp.where(folded, g[..., 0] * uy, g[..., 1])
+    g_local = xp.stack([gx, gy, g[..., 2]], axis=-1)
+    grad = xp.sum(b.rot * g_local[..., None, :], axis=-1)  # R g_local
+    return d, grad
+
+
+def sphere_pair_distances(centres, radii, first, second):
+    """Distances between sphere pairs (first[i], second[i]) of centres [..., S, 3] with radii [S]:
+    (d [..., P] = |c_a - c_b| - r_a - r_b, u [..., P, 3] unit vector from b to a)."""
+    xp = namespace(centres)
+    diff = centres[..., first, :] - centres[..., second, :]
+    norm = xp.sqrt(xp.sum(diff * diff, axis=-1))
+    safe = xp.where(norm > 1e-12, norm, 1.0)
+    u = diff / safe[..., None]
+    r = xp.asarray(radii[first] + radii[second], dtype=centres.dtype) if type(centres) is not np.ndarray else (
+        radii[first] + radii[second])
+    return norm - r, u

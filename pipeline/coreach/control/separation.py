@@ -1,0 +1,188 @@
+"""Separation from furniture and from the person: the safety filter's last step, and what vetting measures.
+
+The arm is a set of spheres (coreach.link_model), each attached to one link. For every pair of (sphere,
+body) and every allowed pair of spheres on non-adjacent links (self-collision), the filter knows the distance
+d (coreach.control.bodies) and its gradient with respect to the joint positions, g = n^T J_s (n: the unit
+direction in which d grows, J_s [3, n]: the sphere centre's linear Jacobian). A command qd then closes the gap
+at the rate a = -g . qd (m/s).
+
+Rule (one line per pair): a <= max(d - d_p, 0) / tau, where
+- furniture and self-collision pairs: d_p = `clearance` (m), tau = the filter's look-ahead (s): the linear
+  prediction d - a tau stays at or above the clearance; a sphere already closer may only keep its distance
+  or move away;
+- the person's bodies: d_p = the protective separation distance at zero robot speed (the keep-out zone), and
+  tau = max(look-ahead, T_r + T_s / 2), from speed and separation monitoring (ISO/TS 15066, clause 5.5.4; the
+  formula as remembered, check it against the standard):
+
+      S_p = S_h + S_r + S_s + C + Z_d + Z_r
+      S_h = v_h (T_r + T_s)      the person's own motion while the robot reacts and stops
+      S_r = v_r T_r              the robot's motion during its reaction time
+      S_s = v_r T_s / 2          its stopping distance (constant deceleration from v_r over T_s)
+      C, Z_d, Z_r                intrusion distance, position uncertainty of the person and of the robot
+
+  With v_r the robot's speed toward the person, S >= S_p gives v_r <= (S - K) / (T_r + T_s / 2) with
+  K = v_h (T_r + T_s) + C + Z_d + Z_r, the keep-out distance (v_r = 0). Between K and the distance at which
+  that bound reaches the tool speed cap lies the reduced-speed zone, where every sphere's approach speed falls
+  linearly with its separation.
+
+Every pair's bound scales the whole command by one factor (as the speed caps do: the direction is kept), so
+this step never increases a joint speed and keeps the earlier steps' guarantees. Array API: numpy on the
+robot, torch in vetting; `qd` may carry extra leading candidate axes ([..., B, n] against g [..., P, n]).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from coreach.control.arrays import namespace
+from coreach.control.bodies import PackedBodies, pack, point_distances, sphere_pair_distances, Primitive
+
+__all__ = ["SeparationSettings", "World", "Geometry", "pair_rates", "scale_for_separation", "sphere_speed"]
+
+
+@dataclass(frozen=True)
+class SeparationSettings:
+    """The numbers of the rule in the module docstring (m, s, m/s)."""
+
+    clearance: float = 0.02  # m kept from furniture and between non-adjacent links
+    person_speed: float = 0.5  # v_h, m/s
+    reaction_time: float = 0.1  # T_r, s
+    stopping_time: float = 0.2  # T_s, s
+    intrusion: float = 0.0  # C, m
+    person_uncertainty: float = 0.02  # Z_d, m
+    robot_uncertainty: float = 0.01  # Z_r, m
+
+    @property
+    def keep_out(self) -> float:
+        """K = v_h (T_r + T_s) + C + Z_d + Z_r: the protective separation distance at zero robot speed."""
+        return (self.person_speed * (self.reaction_time + self.stopping_time) + self.intrusion
+                + self.person_uncertainty + self.robot_uncertainty)  # fmt: skip
+
+    @property
+    def person_tau(self) -> float:
+        """T_r + T_s / 2: separation above K divided by this is the allowed approach speed."""
+        return self.reaction_time + self.stopping_time / 2
+
+    def reduced_zone(self, speed_cap: float) -> float:
+        """Outer edge of the reduced-speed zone: where the allowed approach speed reaches `speed_cap`."""
+        return self.keep_out + speed_cap * self.person_tau
+
+
+@dataclass
+class World:
+    """What the filter keeps the arm clear of: furniture and the person as primitives, the link spheres
+    (centres in their link frames and radii, from coreach.link_model), the self-collision pairs, and the
+    rule's settings. `set_poses` moves bodies at run time (e.g. the head from a lab's perception)."""
+
+    furniture: list[Primitive]
+    person: list[Primitive]
+    settings: SeparationSettings = field(default_factory=SeparationSettings)
+    self_pairs: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.int64))  # [P, 2] sphere ids
+
+    def __post_init__(self):
+        self.bodies: PackedBodies = pack(list(self.furniture) + list(self.person))
+        n_f = len(self.furniture)
+        self.is_person = np.arange(len(self.bodies)) >= n_f  # [O]
+        self.self_pairs = np.asarray(self.self_pairs, dtype=np.int64).reshape(-1, 2)
+        self._first, self._second = self.self_pairs[:, 0].copy(), self.self_pairs[:, 1].copy()
+
+    @property
+    def body_names(self) -> list[str]:
+        return self.bodies.names
+
+    def set_poses(self, poses: dict[str, tuple]) -> None:
+        """Move named bodies: {name: (xyz, rpy)} in the world frame (rpy in rad)."""
+        from dataclasses import replace
+
+        index = {b.name: i for i, b in enumerate(self.furniture + self.person)}
+        moved = list(self.furniture) + list(self.person)
+        for name, (xyz, rpy) in poses.items():
+            i = index[name]
+            moved[i] = replace(moved[i], xyz=tuple(float(v) for v in xyz), rpy=tuple(float(v) for v in rpy))
+        n_f = len(self.furniture)
+        self.furniture, self.person = moved[:n_f], moved[n_f:]
+        self.bodies = pack(moved)
+
+    def thresholds(self, lookahead: float):
+        """Per body and per self pair: (protective distance d_p [O + P], tau [O + P]) of the rule."""
+        s = self.settings
+        d_p = np.concatenate([np.where(self.is_person, s.keep_out, s.clearance),
+                              np.full(len(self.self_pairs), s.clearance)])  # fmt: skip
+        tau = np.concatenate([np.where(self.is_person, max(lookahead, s.person_tau), lookahead),
+                              np.full(len(self.self_pairs), lookahead)])  # fmt: skip
+        return d_p, tau
+
+
+@dataclass
+class Geometry:
+    """Distances of one arm state (or a batch) to everything in the world, and their joint gradients.
+
+    body_d [..., S, O] sphere-surface-to-body distances; self_d [..., P]; and the rule's rows: d [..., R],
+    g [..., R, n] (R = S*O + P pair rows, flattened)."""
+
+    body_d: object
+    self_d: object
+    d: object
+    g: object
+
+
+def measure(world: World, centres, jac, radii) -> Geometry:
+    """Geometry at sphere centres [..., S, 3] with linear Jacobians jac [..., S, 3, n] and radii [S]."""
+    xp = namespace(centres, jac)
+    d_c, normal = point_distances(centres, world.bodies)  # [..., S, O], [..., S, O, 3]
+    r = radii if type(centres) is np.ndarray else xp.asarray(radii, dtype=centres.dtype)
+    body_d = d_c - r[:, None]
+    g_body = xp.sum(normal[..., :, :, :, None] * jac[..., :, None, :, :], axis=-2)  # n^T J_s: [..., S, O, n]
+    S, O = body_d.shape[-2], body_d.shape[-1]
+    lead = body_d.shape[:-2]
+    n = jac.shape[-1]
+    rows_d = [xp.reshape(body_d, (*lead, S * O))]
+    rows_g = [xp.reshape(g_body, (*lead, S * O, n))]
+    if len(world.self_pairs):
+        self_d, u = sphere_pair_distances(centres, radii, world._first, world._second)
+        j_rel = jac[..., world._first, :, :] - jac[..., world._second, :, :]  # [..., P, 3, n]
+        rows_d.append(self_d)
+        rows_g.append(xp.sum(u[..., None] * j_rel, axis=-2))
+    else:
+        self_d = xp.zeros((*lead, 0), dtype=centres.dtype)
+    return Geometry(body_d, self_d, xp.concat(rows_d, axis=-1), xp.concat(rows_g, axis=-2))
+
+
+def pair_rates(geo: Geometry, qd):
+    """Closing rates a = -g . qd [..., B, R] (m/s) for commands qd [..., B, n]."""
+    xp = namespace(qd)
+    return -(qd @ xp.matrix_transpose(geo.g))
+
+
+def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float):
+    """The factor [..., B] in [0, 1] that makes every pair meet a <= max(d - d_p, 0) / tau, for commands
+    qd [..., B, n]. A pair that is not closing (a <= 0) never limits the command."""
+    xp = namespace(qd)
+    d_p, tau = _thresholds_per_row(world, geo, lookahead, xp, qd)
+    allowed = xp.maximum(geo.d - d_p, 0.0) / tau  # [..., R]
+    a = pair_rates(geo, qd)  # [..., B, R]
+    allowed = allowed[..., None, :]
+    over = a > allowed
+    pair = xp.where(over, allowed / xp.where(over, a, 1.0), 1.0)
+    return xp.min(pair, axis=-1)
+
+
+def _thresholds_per_row(world: World, geo: Geometry, lookahead: float, xp, like):
+    d_body, tau_body = world.thresholds(lookahead)
+    O, P = len(world.bodies), len(world.self_pairs)
+    S = geo.body_d.shape[-2]
+    d_p = np.concatenate([np.tile(d_body[:O], S), d_body[O:]])
+    tau = np.concatenate([np.tile(tau_body[:O], S), tau_body[O:]])
+    assert d_p.shape[0] == S * O + P
+    if type(like) is np.ndarray:
+        return d_p, tau
+    return xp.asarray(d_p, dtype=like.dtype), xp.asarray(tau, dtype=like.dtype)
+
+
+def sphere_speed(jac, qd):
+    """Speed of every sphere centre [..., S] (m/s) for commands qd [..., n] (jac [..., S, 3, n])."""
+    xp = namespace(jac, qd)
+    v = xp.sum(jac * qd[..., None, None, :], axis=-1)
+    return xp.sqrt(xp.sum(v * v, axis=-1))

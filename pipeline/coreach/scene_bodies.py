@@ -1,0 +1,119 @@
+"""A scene's bodies from YAML: furniture as primitives with poses, and the person with their separation zones."""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from coreach.control.bodies import SHAPES, Primitive, pack, point_distances
+from coreach.control.separation import SeparationSettings
+from coreach.errors import ConfigError
+
+__all__ = ["parse_obstacles", "parse_person", "check_goals_clear", "SIZE_FORMS"]
+
+# what `size` holds per shape (m)
+SIZE_FORMS = {"box": ("x", "y", "z"), "cylinder": ("radius", "length"), "capsule": ("radius", "length"),
+              "sphere": ("radius",)}  # fmt: skip
+_BODY_KEYS = {"name", "shape", "size", "xyz", "rpy_deg"}
+# the person's settings (ISO/TS 15066 speed and separation monitoring terms; coreach.control.separation)
+_PERSON_KEYS = {"bodies", "speed", "reaction_time", "stopping_time", "intrusion", "person_uncertainty",
+                "robot_uncertainty"}  # fmt: skip
+
+
+def _finite_list(value: Any, n: int, at: str, what: str) -> tuple[float, ...]:
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__len__") or len(value) != n:
+        raise ConfigError(at, f"expected {n} numbers ({what}), got {value!r}")
+    try:
+        out = tuple(float(v) for v in value)
+    except (TypeError, ValueError):
+        raise ConfigError(at, f"expected {n} numbers ({what}), got {value!r}") from None
+    if any(isinstance(v, bool) for v in value) or not all(math.isfinite(v) for v in out):
+        raise ConfigError(at, f"expected {n} finite numbers ({what}), got {value!r}")
+    return out
+
+
+def _body(raw: Any, at: str, shapes: tuple[str, ...]) -> Primitive:
+    if not isinstance(raw, dict):
+        raise ConfigError(at, f"expected a mapping with keys {sorted(_BODY_KEYS)}")
+    extra = sorted(set(raw) - _BODY_KEYS)
+    if extra:
+        raise ConfigError(f"{at}.{extra[0]}", f"unknown option; expected one of {sorted(_BODY_KEYS)}")
+    name = raw.get("name")
+    if not isinstance(name, str) or not name:
+        raise ConfigError(f"{at}.name", f"expected a non-empty string, got {name!r}")
+    shape = raw.get("shape")
+    if shape not in shapes:
+        raise ConfigError(f"{at}.shape", f"unknown shape {shape!r}; expected one of {list(shapes)}")
+    form = SIZE_FORMS[shape]
+    size = _finite_list(raw.get("size"), len(form), f"{at}.size", f"{shape} {', '.join(form)} in m")
+    if not all(v > 0 for v in size):
+        raise ConfigError(f"{at}.size", f"expected positive sizes ({shape} {', '.join(form)} in m), got {list(size)}")
+    if "xyz" not in raw:
+        raise ConfigError(f"{at}.xyz", "missing; expected the body's centre [x, y, z] in m")
+    xyz = _finite_list(raw["xyz"], 3, f"{at}.xyz", "centre, m")
+    rpy = _finite_list(raw.get("rpy_deg", [0.0, 0.0, 0.0]), 3, f"{at}.rpy_deg", "roll pitch yaw, deg")
+    return Primitive(name, shape, size, xyz, tuple(math.radians(v) for v in rpy))
+
+
+def _bodies(raw: Any, at: str, shapes: tuple[str, ...], taken: set[str]) -> list[Primitive]:
+    if raw is None:
+        return []
+    if not isinstance(raw, list):
+        raise ConfigError(at, "expected a list of bodies")
+    out = []
+    for i, item in enumerate(raw):
+        body = _body(item, f"{at}[{i}]", shapes)
+        if body.name in taken:
+            raise ConfigError(f"{at}[{i}].name", f"duplicate body name {body.name!r}; body names must be unique")
+        taken.add(body.name)
+        out.append(body)
+    return out
+
+
+def parse_obstacles(raw: Any, where: str, taken: set[str]) -> list[Primitive]:
+    """The scene's furniture (`obstacles:`): boxes, cylinders, spheres and capsules."""
+    return _bodies(raw, f"{where}, option obstacles", SHAPES, taken)
+
+
+def parse_person(raw: Any, where: str, taken: set[str]) -> tuple[list[Primitive], SeparationSettings]:
+    """The person (`person:`): capsules and spheres, and the speed and separation monitoring terms."""
+    at = f"{where}, option person"
+    if raw is None:
+        return [], SeparationSettings()
+    if not isinstance(raw, dict):
+        raise ConfigError(at, f"expected a mapping with keys {sorted(_PERSON_KEYS)}")
+    extra = sorted(set(raw) - _PERSON_KEYS)
+    if extra:
+        raise ConfigError(f"{at}.{extra[0]}", f"unknown option; expected one of {sorted(_PERSON_KEYS)}")
+    bodies = _bodies(raw.get("bodies"), f"{at}.bodies", ("capsule", "sphere"), taken)
+    defaults = SeparationSettings()
+    values = {}
+    for key, field in (("speed", "person_speed"), ("reaction_time", "reaction_time"),
+                       ("stopping_time", "stopping_time"), ("intrusion", "intrusion"),
+                       ("person_uncertainty", "person_uncertainty"), ("robot_uncertainty", "robot_uncertainty")):
+        v = raw.get(key, getattr(defaults, field))
+        try:
+            f = float(v)
+        except (TypeError, ValueError):
+            f = math.nan
+        if isinstance(v, bool) or not math.isfinite(f) or f < 0 or f > 10:
+            raise ConfigError(f"{at}.{key}", f"expected a finite number in [0, 10], got {v!r}")
+        values[field] = f
+    return bodies, SeparationSettings(**values)
+
+
+def check_goals_clear(points: np.ndarray, labels: list[str], obstacles: list[Primitive], person: list[Primitive],
+                      keep_out: float, where: str) -> None:  # fmt: skip
+    """ConfigError naming the first goal point [k, 3] (labels [k]) inside an obstacle or the person's keep-out."""
+    for bodies, limit, what in ((obstacles, 0.0, "inside obstacle"), (person, keep_out, "inside the person's "
+                                f"keep-out zone ({keep_out:.3f} m) around")):  # fmt: skip
+        if not bodies:
+            continue
+        d, _ = point_distances(np.asarray(points, dtype=np.float64), pack(bodies))  # [k, O]
+        bad = np.argwhere(d < limit)
+        if len(bad):
+            k, o = bad[0]
+            raise ConfigError(f"{where}, goal {labels[k]}",
+                              f"lies {what} {bodies[o].name} (distance {d[k, o]:.3f} m); move the goal or the body")
