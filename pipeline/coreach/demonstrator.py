@@ -27,6 +27,7 @@ from coreach.control.safety_filter import SafetyLimits
 from coreach.control.servo import dls_step, servo_twist
 from coreach.protocols import Robot
 from coreach.scenario import Layout, Scenario, load_scenario
+from coreach.world import arm_world, check_episodes_clear
 
 __all__ = ["dls_step", "scale_to_speed_limits", "clamp_to_joint_limits", "Rollout", "rollout", "generate", "completed_mask",
            "expert_twist", "expert_action"]
@@ -108,7 +109,8 @@ def expert_twist(pos: Tensor, rot: Tensor, target: Tensor, target_rot: Tensor, k
 
 
 def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, damping: float,
-                  noise: Tensor | None = None, limits: SafetyLimits | None = None) -> Tensor:  # fmt: skip
+                  noise: Tensor | None = None, limits: SafetyLimits | None = None,
+                  separation=None) -> Tensor:  # fmt: skip
     """Joint velocity [B, n] for a twist: damped least squares, plus `noise` [B, n] (rad/s) when given, then
     the shared safety filter (joint look-ahead over dt, joint and tool speed caps; `limits` defaults to the
     robot's with the default tool speed cap), the filter vetting and the runtime apply. Shared by `rollout`
@@ -119,7 +121,7 @@ def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, 
     if noise is not None:
         qd = qd + noise
     limits = SafetyLimits.for_robot(robot) if limits is None else limits
-    return limits.limit(q.to(f64), qd, J[..., :3, :], None, dt)[0]
+    return limits.limit(q.to(f64), qd, J[..., :3, :], None, dt, separation)[0]
 
 
 def rollout(
@@ -195,8 +197,12 @@ def rollout(
 
     n = robot.dof
     qd_max = robot.qd_max.to(f64)
+    world = arm_world(robot, scenario)
     if uses_starts:
         q = _start_poses(robot, E, gen, start_jitter, spread_share, start_spread)
+        if world is not None:  # a start among the bodies (or too near the person) is replaced by home
+            clear = torch.as_tensor(world.clear(world.geometry(q.numpy()), dt))
+            q = torch.where(clear[:, None], q, robot.q_home.to(f64))
     else:
         q = robot.q_home.to(f64).expand(E, n).clone()
     rec_q = torch.zeros(E, T_max, n, dtype=f64)
@@ -236,10 +242,11 @@ def rollout(
             target_rot = torch.where(heading_via[:, None, None], R_via[idx], R_app[idx])
             twist = expert_twist(pos, rot, target, target_rot, k_p, k_r, v_max, w_max)
             J = robot.jacobian(qa).to(f64)  # [B, 6, n]
-            qd = expert_action(robot, qa, J, twist, dt, damping, noise * qd_max * noise_draw[keep])
+            sep = None if world is None else world.separation(qa)
+            qd = expert_action(robot, qa, J, twist, dt, damping, noise * qd_max * noise_draw[keep], None, sep)
             # label_clean: the noise moves the arm off the expert's path, the recorded label is the expert's
             # own correction from there (noise injection, the published DART method)
-            label = expert_action(robot, qa, J, twist, dt, damping) if label_clean else qd
+            label = expert_action(robot, qa, J, twist, dt, damping, None, None, sep) if label_clean else qd
 
             sel = ~heading_via | bool(record_via)  # heading elsewhere first is recorded only with record_via
             record = idx[sel]
@@ -295,6 +302,10 @@ def generate(
     report = arrival_by_goal(r, robot, scenario.goal_names)
     check_arrival(report, min_arrival, f"demonstrations of scenario {scenario.name} on {robot.name}",
                   float(options.get("arrive_tol", 0.01)), float(options.get("approach_rot_tol", 0.1)))  # fmt: skip
+    kept = [i for i in range(int(n_episodes)) if int(r.lengths[i]) >= 2 and (keep_incomplete or bool(r.completed[i]))]
+    check_episodes_clear(robot, scenario, [r.q[i, : int(r.lengths[i])].numpy() for i in kept],
+                         [scenario.goal_names[int(r.goals[i])] for i in kept],
+                         f"demonstrations of scenario {scenario.name} on {robot.name}")  # fmt: skip
     goal_quat = r.layout.approach_quat.numpy()  # [E, G, 4], converted in one batch
     episodes = []
     for i in range(int(n_episodes)):

@@ -18,10 +18,11 @@ A sphere model is what coreach.control.bodies measures exactly against every obs
 the enlargement (at most 12% of the radius with s <= R).
 
 Links that never move (on the root side of the first movable joint) are left out: nothing can bring them
-closer to anything. Self-collision pairs: spheres on two links that are not the same rigid body and not
-joined by a single joint, and that are not already within `clearance` of each other at the home
-configuration (common practice when listing allowed collision pairs: a pair touching at rest is treated as
-adjacent).
+closer to anything. Self-collision pairs: spheres on two links with at least two links between them (links
+joined by one or two joints, such as the two sides of an elbow or of a wrist, are left to the joint limits:
+spheres that round a short joint housing would otherwise meet at every bend), and that are not already
+within `clearance` of each other at the home configuration (common practice when listing allowed collision
+pairs: a pair touching at rest is treated as adjacent).
 """
 
 from __future__ import annotations
@@ -238,8 +239,8 @@ def link_model(urdf_text: str, tool_link: str, *, urdf_dir: str | Path | None = 
 
 def _self_pairs(chain, links: list[str], centres: np.ndarray, radii: np.ndarray, home, clearance: float) -> np.ndarray:
     frame = np.array([chain.link_frames[n][0] for n in links])
-    # same moving frame = one rigid body; frames k and k + 1 are joined by joint k + 1
-    apart = np.abs(frame[:, None] - frame[None, :]) >= 2
+    # same moving frame = one rigid body; frames k and k + 1 are joined by joint k + 1 (module docstring)
+    apart = np.abs(frame[:, None] - frame[None, :]) >= 3
     i, j = np.nonzero(np.triu(apart, k=1))
     if home is not None and len(i):
         attached = chain.attach(links, centres)

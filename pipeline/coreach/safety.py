@@ -1,9 +1,10 @@
 """The safety filter's settings from a config: one factory, so every stage builds the same filter."""
 
-from coreach.control.safety_filter import DEFAULT_TCP_SPEED_MAX, JOINT_LIMIT, SPEED_CAP, WORKSPACE, SafetyLimits
+from coreach.control.safety_filter import (DEFAULT_TCP_SPEED_MAX, JOINT_LIMIT, SEPARATION, SPEED_CAP, WORKSPACE,
+                                          SafetyLimits)
 from coreach.errors import ConfigError
 
-__all__ = ["DEFAULT_TCP_SPEED_MAX", "JOINT_LIMIT", "SPEED_CAP", "WORKSPACE", "SafetyLimits", "limits_from_config",
+__all__ = ["DEFAULT_TCP_SPEED_MAX", "JOINT_LIMIT", "SEPARATION", "SPEED_CAP", "WORKSPACE", "SafetyLimits", "limits_from_config",
            "workspace_box"]
 
 

@@ -80,9 +80,22 @@ class PackedBodies:
     def __len__(self) -> int:
         return len(self.names)
 
+    @property
+    def reach(self) -> np.ndarray:
+        """[O] radius of a sphere about each centre that holds the whole body (a cylinder's folded axis is
+        its radius, not BIG)."""
+        half = np.where(self.folded[:, None] & (np.arange(3) == 1), 0.0, self.half)
+        return np.sqrt((half**2).sum(axis=-1)) + self.radius
+
+    def take(self, index) -> PackedBodies:
+        """Bodies index [K] as K groups of one ([K, 1, 1, ...] arrays): with points [K, 1, 3], point_distances
+        then measures point k against body index[k] only."""
+        pick = {k: getattr(self, k)[index][:, None, None] for k in ("rot", "centre", "half", "radius", "folded")}
+        return PackedBodies([], **pick)
+
     def as_namespace(self, xp, like) -> PackedBodies:
         """The same bodies as arrays of `like`'s namespace and dtype (torch in vetting)."""
-        if xp is np or type(like) is np.ndarray:
+        if xp is np or type(like) is np.ndarray or type(self.rot) is type(like):
             return self
         conv = {k: xp.asarray(getattr(self, k), dtype=like.dtype) for k in ("rot", "centre", "half", "radius")}
         return PackedBodies(self.names, folded=xp.asarray(self.folded), **conv)
@@ -112,32 +125,34 @@ def pack(bodies: list[Primitive]) -> PackedBodies:
     )
 
 
-def point_distances(points, bodies: PackedBodies):
+def point_distances(points, bodies: PackedBodies, grad: bool = True):
     """Signed distances from points [..., S, 3] (world frame) to every body: (d [..., S, O] m, negative
-    inside; grad [..., S, O, 3] unit vectors, world frame, d's gradient with respect to the point)."""
+    inside; grad [..., S, O, 3] unit vectors, world frame, d's gradient with respect to the point, or None
+    when `grad` is false)."""
     xp = namespace(points)
     b = bodies.as_namespace(xp, points)
-    # body frame: p_local = R^T (p - t); [..., S, O, 3]
+    # body frame: p_local = R^T (p - t), as the row vector (p - t)^T R; [..., S, O, 3]
     rel = points[..., :, None, :] - b.centre
-    local = xp.sum(rel[..., :, :, :, None] * b.rot, axis=-2)  # sum_j rel_j R_jk
+    local = (rel[..., None, :] @ b.rot)[..., 0, :]
     # cylinders: fold (x, y) onto the radial axis
     rho = xp.sqrt(local[..., 0] ** 2 + local[..., 1] ** 2)
     folded = b.folded
     px = xp.where(folded, rho, local[..., 0])
     py = xp.where(folded, 0.0, local[..., 1])
     p = xp.stack([px, py, local[..., 2]], axis=-1)
-    sgn = xp.where(p >= 0.0, 1.0, -1.0)
     q = xp.abs(p) - b.half  # [..., S, O, 3]
     out = xp.maximum(q, 0.0)
     out_norm = xp.sqrt(xp.sum(out * out, axis=-1))  # [..., S, O]
     qmax = xp.max(q, axis=-1)
     d = out_norm + xp.minimum(qmax, 0.0) - b.radius
+    if not grad:
+        return d, None
     # gradient in the folded frame: outside, along max(q, 0); inside, along the axis of the nearest face
+    sgn = xp.where(p >= 0.0, 1.0, -1.0)
     outside = out_norm > 0.0
     face = xp.astype(q == qmax[..., None], p.dtype)
-    face = face / xp.sum(face, axis=-1, keepdims=True)  # a tie (corner) splits evenly, then renormalised
     g = xp.where(outside[..., None], out / xp.where(outside, out_norm, 1.0)[..., None], face) * sgn
-    g = g / xp.sqrt(xp.sum(g * g, axis=-1, keepdims=True))
+    g = g / xp.sqrt(xp.sum(g * g, axis=-1, keepdims=True))  # a tie (an edge or corner inside) splits evenly
     # unfold: the radial component points along (x, y) / rho (any direction on the axis itself)
     on_axis = rho < 1e-12
     ux = xp.where(on_axis, 1.0, local[..., 0] / xp.where(on_axis, 1.0, rho))
@@ -145,18 +160,17 @@ def point_distances(points, bodies: PackedBodies):
     gx = xp.where(folded, g[..., 0] * ux, g[..., 0])
     gy = xp.where(folded, g[..., 0] * uy, g[..., 1])
     g_local = xp.stack([gx, gy, g[..., 2]], axis=-1)
-    grad = xp.sum(b.rot * g_local[..., None, :], axis=-1)  # R g_local
-    return d, grad
+    return d, (b.rot @ g_local[..., None])[..., 0]  # R g_local
 
 
 def sphere_pair_distances(centres, radii, first, second):
-    """Distances between sphere pairs (first[i], second[i]) of centres [..., S, 3] with radii [S]:
+    """Distances between sphere pairs (first[i], second[i]) of centres [..., S, 3] with radii [S] (numpy):
     (d [..., P] = |c_a - c_b| - r_a - r_b, u [..., P, 3] unit vector from b to a)."""
     xp = namespace(centres)
+    r = radii[first] + radii[second]
+    if type(centres) is not np.ndarray:
+        first, second, r = xp.asarray(first), xp.asarray(second), xp.asarray(r, dtype=centres.dtype)
     diff = centres[..., first, :] - centres[..., second, :]
     norm = xp.sqrt(xp.sum(diff * diff, axis=-1))
-    safe = xp.where(norm > 1e-12, norm, 1.0)
-    u = diff / safe[..., None]
-    r = xp.asarray(radii[first] + radii[second], dtype=centres.dtype) if type(centres) is not np.ndarray else (
-        radii[first] + radii[second])
+    u = diff / xp.where(norm > 1e-12, norm, 1.0)[..., None]
     return norm - r, u

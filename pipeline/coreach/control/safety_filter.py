@@ -11,9 +11,14 @@ Order of one control step (SafetyFilter):
    b. joint speed and tool speed caps: the whole command scaled down uniformly (its direction is kept);
    c. workspace box: the command scaled down uniformly so the predicted tool position pos + J_lin qd *
       lookahead_s stays inside the box (an axis already outside may only move back).
-   Scaling in b and c never increases any joint speed and keeps q + qd * lookahead_s on the segment between
+   d. separation (with a scene's bodies, coreach.control.separation): the command scaled down uniformly so
+      that no link sphere's look-ahead comes closer than the clearance to furniture or another link, nor
+      closer than the keep-out distance to the person; a sphere already closer may only move away; and in
+      the person's reduced-speed zone every sphere's speed toward the person obeys the ISO/TS 15066 bound.
+   Scaling in b, c and d never increases any joint speed and keeps q + qd * lookahead_s on the segment between
    q and the look-ahead-clipped target, so each later step keeps the earlier guarantees.
-   Returns the filtered command and flags saying which of a, b, c acted (JOINT_LIMIT | SPEED_CAP | WORKSPACE).
+   Returns the filtered command and flags saying which of a-d acted (JOINT_LIMIT | SPEED_CAP | WORKSPACE |
+   SEPARATION).
 
 Array-API code (numpy at runtime, torch in training and vetting), batched over any leading shape [...].
 """
@@ -26,11 +31,12 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from coreach.control.arrays import NUMPY, namespace
+from coreach.control.separation import cutoff_for, measure, scale_for_separation
 
 # Reduced speed for collaborative operation in ISO 10218-1 (from memory: 250 mm/s).
 DEFAULT_TCP_SPEED_MAX = 0.25
 # Which part of `limit` changed a command (bits; 0 = none).
-JOINT_LIMIT, SPEED_CAP, WORKSPACE = 1, 2, 4
+JOINT_LIMIT, SPEED_CAP, WORKSPACE, SEPARATION = 1, 2, 4, 8
 
 
 @dataclass(frozen=True)
@@ -105,12 +111,14 @@ class SafetyLimits:
         return out, clipped, released
 
     # -------------------------------------------------------------------------------- 4: the command
-    def limit(self, q, qd, jac_lin, pos=None, dt: float | None = None):
+    def limit(self, q, qd, jac_lin, pos=None, dt: float | None = None, separation=None):
         """Filter joint velocities qd [..., n] at joint positions q [..., n], tool Jacobian jac_lin [..., 3, n] and
         tool position pos [..., 3] (needed only with a workspace box). Look-ahead: `lookahead_s`, else dt.
+        `separation`: (World, sphere centres [..., S, 3], their Jacobians [..., S, 3, n]) of the state(s), with
+        a leading shape that is a prefix of qd's (e.g. [E] for candidate commands [E, M, K, n]).
 
-        Returns (qd, flags [...] int: JOINT_LIMIT | SPEED_CAP | WORKSPACE bits, workspace scale [...] or 1.0
-        without a box).
+        Returns (qd, flags [...] int: JOINT_LIMIT | SPEED_CAP | WORKSPACE | SEPARATION bits, workspace scale
+        [...] or 1.0 without a box).
         """
         horizon = self.lookahead_s if self.lookahead_s is not None else dt
         qd, outside = self.keep_inside(q, qd, horizon)
@@ -121,7 +129,25 @@ class SafetyLimits:
         else:
             scale, boxed = 1.0, False
         flags = outside * JOINT_LIMIT | fast * SPEED_CAP | boxed * WORKSPACE
+        if separation is not None:
+            qd, held = self.keep_apart(qd, *separation, horizon)
+            flags = flags | held * SEPARATION
         return qd, flags, scale
+
+    @staticmethod
+    def keep_apart(qd, world, centres, jac, horizon: float):
+        """4d. Scale qd [..., n] by the separation rule's factor (coreach.control.separation) at link spheres
+        centres [..., S, 3] with Jacobians jac [..., S, 3, n], whose leading shape is a prefix of qd's (one
+        state, many commands). Only pairs near enough to bind one of the commands are measured exactly.
+        Returns (qd, intervened [...])."""
+        xp = namespace(qd)
+        lead = centres.shape[:-2]
+        shape = qd.shape
+        flat = xp.reshape(qd, (*lead, -1, shape[-1]))  # [..., B, n]: every command at one state
+        geo = measure(world, centres, jac, cutoff_for(world, jac, flat, horizon))
+        scale = scale_for_separation(world, geo, flat, horizon)  # [..., B]
+        out = xp.reshape(flat * scale[..., None], shape)
+        return out, xp.reshape(scale < 1.0, shape[:-1])
 
     def keep_inside(self, q, qd, dt: float):
         """4a. Clip qd [..., n] per joint so q + qd * dt stays within the position limits.

@@ -39,7 +39,7 @@ import numpy as np
 from coreach.control.arrays import namespace
 from coreach.control.bodies import PackedBodies, pack, point_distances, sphere_pair_distances, Primitive
 
-__all__ = ["SeparationSettings", "World", "Geometry", "pair_rates", "scale_for_separation", "sphere_speed"]
+__all__ = ["SeparationSettings", "World", "Geometry", "measure", "cutoff_for", "pair_rates", "scale_for_separation", "sphere_speed"]
 
 
 @dataclass(frozen=True)
@@ -78,15 +78,37 @@ class World:
 
     furniture: list[Primitive]
     person: list[Primitive]
+    radii: np.ndarray  # [S] link sphere radii (m)
     settings: SeparationSettings = field(default_factory=SeparationSettings)
     self_pairs: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.int64))  # [P, 2] sphere ids
 
     def __post_init__(self):
-        self.bodies: PackedBodies = pack(list(self.furniture) + list(self.person))
-        n_f = len(self.furniture)
-        self.is_person = np.arange(len(self.bodies)) >= n_f  # [O]
+        self.radii = np.asarray(self.radii, dtype=np.float64)
         self.self_pairs = np.asarray(self.self_pairs, dtype=np.int64).reshape(-1, 2)
         self._first, self._second = self.self_pairs[:, 0].copy(), self.self_pairs[:, 1].copy()
+        self._repack()
+
+    def _repack(self) -> None:
+        self.bodies: PackedBodies = pack(list(self.furniture) + list(self.person))
+        self.is_person = np.arange(len(self.bodies)) >= len(self.furniture)  # [O]
+        self._rows: dict = {}  # per (look-ahead, namespace, dtype): the rule's d_p and tau per pair row
+
+    def rows(self, lookahead: float, xp, like):
+        """(d_p [R], tau [R]) of the rule per pair row (R = S*O body rows, sphere-major, then the self pairs),
+        as arrays of `like`'s kind; made once per look-ahead."""
+        key = (float(lookahead), type(like), getattr(like, "dtype", None))
+        if key not in self._rows:
+            s = self.settings
+            S = len(self.radii)
+            d_body = np.where(self.is_person, s.keep_out, s.clearance)
+            tau_body = np.where(self.is_person, max(lookahead, s.person_tau), lookahead)
+            P = len(self.self_pairs)
+            d_p = np.concatenate([np.tile(d_body, S), np.full(P, s.clearance)])
+            tau = np.concatenate([np.tile(tau_body, S), np.full(P, float(lookahead))])
+            if type(like) is not np.ndarray:
+                d_p, tau = xp.asarray(d_p, dtype=like.dtype), xp.asarray(tau, dtype=like.dtype)
+            self._rows[key] = (d_p, tau)
+        return self._rows[key]
 
     @property
     def body_names(self) -> list[str]:
@@ -103,16 +125,7 @@ class World:
             moved[i] = replace(moved[i], xyz=tuple(float(v) for v in xyz), rpy=tuple(float(v) for v in rpy))
         n_f = len(self.furniture)
         self.furniture, self.person = moved[:n_f], moved[n_f:]
-        self.bodies = pack(moved)
-
-    def thresholds(self, lookahead: float):
-        """Per body and per self pair: (protective distance d_p [O + P], tau [O + P]) of the rule."""
-        s = self.settings
-        d_p = np.concatenate([np.where(self.is_person, s.keep_out, s.clearance),
-                              np.full(len(self.self_pairs), s.clearance)])  # fmt: skip
-        tau = np.concatenate([np.where(self.is_person, max(lookahead, s.person_tau), lookahead),
-                              np.full(len(self.self_pairs), lookahead)])  # fmt: skip
-        return d_p, tau
+        self._repack()
 
 
 @dataclass
@@ -128,26 +141,69 @@ class Geometry:
     g: object
 
 
-def measure(world: World, centres, jac, radii) -> Geometry:
-    """Geometry at sphere centres [..., S, 3] with linear Jacobians jac [..., S, 3, n] and radii [S]."""
-    xp = namespace(centres, jac)
-    d_c, normal = point_distances(centres, world.bodies)  # [..., S, O], [..., S, O, 3]
+def measure(world: World, centres, jac=None, cutoff=None) -> Geometry:
+    """Geometry at sphere centres [..., S, 3] with linear Jacobians jac [..., S, 3, n] (without jac: only the
+    distances; d and g are None).
+
+    cutoff (broadcastable to [..., S, O]): pairs whose distance provably exceeds it (the centre distance less
+    the body's bounding radius and the sphere's radius, a lower bound) are not measured exactly; their entry
+    is that lower bound, with a zero gradient. The filter passes a cutoff beyond which a pair cannot bind
+    (`cutoff_for`), so the result of the rule is the same as with every pair measured."""
+    xp = namespace(centres)
+    radii = world.radii
     r = radii if type(centres) is np.ndarray else xp.asarray(radii, dtype=centres.dtype)
-    body_d = d_c - r[:, None]
-    g_body = xp.sum(normal[..., :, :, :, None] * jac[..., :, None, :, :], axis=-2)  # n^T J_s: [..., S, O, n]
+    bodies = world.bodies.as_namespace(xp, centres)
+    if cutoff is None:
+        d_c, normal = point_distances(centres, bodies, grad=jac is not None)  # [..., S, O], [..., S, O, 3]
+        body_d = d_c - r[:, None]
+        g_body = None if jac is None else normal @ jac  # n^T J_s: [..., S, O, 3] @ [..., S, 3, n] -> [..., S, O, n]
+    else:
+        reach = world.bodies.reach if type(centres) is np.ndarray else xp.asarray(world.bodies.reach, dtype=centres.dtype)
+        rel = centres[..., :, None, :] - bodies.centre
+        body_d = xp.sqrt(xp.sum(rel * rel, axis=-1)) - reach - r[:, None]  # lower bounds [..., S, O]
+        near = xp.nonzero(body_d < cutoff)
+        body_d = xp.asarray(body_d, copy=True)
+        d_k, n_k = point_distances(centres[near[:-1]][:, None, :], bodies.take(near[-1]), grad=jac is not None)
+        body_d[near] = d_k[:, 0, 0] - r[near[-2]]
+        g_body = None
+        if jac is not None:
+            g_body = xp.zeros((*body_d.shape, jac.shape[-1]), dtype=centres.dtype)
+            g_body[near] = (n_k[:, 0, 0, None, :] @ jac[near[:-1]])[:, 0, :]
     S, O = body_d.shape[-2], body_d.shape[-1]
     lead = body_d.shape[:-2]
+    if len(world.self_pairs):
+        self_d, u = sphere_pair_distances(centres, radii, world._first, world._second)
+    else:
+        self_d, u = xp.zeros((*lead, 0), dtype=centres.dtype), None
+    if jac is None:
+        return Geometry(body_d, self_d, None, None)
     n = jac.shape[-1]
     rows_d = [xp.reshape(body_d, (*lead, S * O))]
     rows_g = [xp.reshape(g_body, (*lead, S * O, n))]
-    if len(world.self_pairs):
-        self_d, u = sphere_pair_distances(centres, radii, world._first, world._second)
-        j_rel = jac[..., world._first, :, :] - jac[..., world._second, :, :]  # [..., P, 3, n]
+    if u is not None:
+        first, second = world._first, world._second
+        if type(jac) is not np.ndarray:
+            first, second = xp.asarray(first), xp.asarray(second)
+        j_rel = jac[..., first, :, :] - jac[..., second, :, :]  # [..., P, 3, n]
         rows_d.append(self_d)
-        rows_g.append(xp.sum(u[..., None] * j_rel, axis=-2))
-    else:
-        self_d = xp.zeros((*lead, 0), dtype=centres.dtype)
+        rows_g.append((u[..., None, :] @ j_rel)[..., 0, :])
     return Geometry(body_d, self_d, xp.concat(rows_d, axis=-1), xp.concat(rows_g, axis=-2))
+
+
+def cutoff_for(world: World, jac, qd, lookahead: float, floor=None):
+    """Per (sphere, body) [..., S, O]: the distance beyond which the pair cannot bind any command qd
+    [..., B, n]: d_p + tau * (the sphere's fastest speed over the commands); a pair farther away closes at
+    most at that speed, which its allowance already covers. `floor` [O] raises it (exact distances wanted
+    up to there, e.g. for the reduced-speed zone's measurements)."""
+    xp = namespace(jac, qd)
+    v = jac[..., None, :, :, :] @ qd[..., :, None, :, None]  # [..., B, S, 3, 1]
+    vmax = xp.max(xp.sqrt(xp.sum(v[..., 0] ** 2, axis=-1)), axis=-2)  # [..., S]
+    d_p, tau = world.rows(lookahead, xp, qd)
+    O = len(world.bodies)
+    cut = d_p[:O] + tau[:O] * vmax[..., None]
+    if floor is not None:
+        cut = xp.maximum(cut, floor if type(qd) is np.ndarray else xp.asarray(floor, dtype=qd.dtype))
+    return cut
 
 
 def pair_rates(geo: Geometry, qd):
@@ -160,25 +216,13 @@ def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float):
     """The factor [..., B] in [0, 1] that makes every pair meet a <= max(d - d_p, 0) / tau, for commands
     qd [..., B, n]. A pair that is not closing (a <= 0) never limits the command."""
     xp = namespace(qd)
-    d_p, tau = _thresholds_per_row(world, geo, lookahead, xp, qd)
+    d_p, tau = world.rows(lookahead, xp, qd)
     allowed = xp.maximum(geo.d - d_p, 0.0) / tau  # [..., R]
     a = pair_rates(geo, qd)  # [..., B, R]
     allowed = allowed[..., None, :]
     over = a > allowed
     pair = xp.where(over, allowed / xp.where(over, a, 1.0), 1.0)
     return xp.min(pair, axis=-1)
-
-
-def _thresholds_per_row(world: World, geo: Geometry, lookahead: float, xp, like):
-    d_body, tau_body = world.thresholds(lookahead)
-    O, P = len(world.bodies), len(world.self_pairs)
-    S = geo.body_d.shape[-2]
-    d_p = np.concatenate([np.tile(d_body[:O], S), d_body[O:]])
-    tau = np.concatenate([np.tile(tau_body[:O], S), tau_body[O:]])
-    assert d_p.shape[0] == S * O + P
-    if type(like) is np.ndarray:
-        return d_p, tau
-    return xp.asarray(d_p, dtype=like.dtype), xp.asarray(tau, dtype=like.dtype)
 
 
 def sphere_speed(jac, qd):

@@ -164,8 +164,9 @@ class Chain:
             local.append(pose[:3, :3] @ c + pose[:3, 3])
         return SpherePoints(np.array(idx, dtype=np.int64), np.array(local).reshape(-1, 3), self)
 
-    def points(self, q, attached: SpherePoints, frames=None) -> tuple[np.ndarray, np.ndarray]:
-        """World positions [..., S, 3] of attached points and their linear Jacobians [..., S, 3, n] at q."""
+    def points(self, q, attached: SpherePoints, frames=None, jacobian: bool = True):
+        """World positions [..., S, 3] of attached points and their linear Jacobians [..., S, 3, n] at q (None
+        without `jacobian`)."""
         if frames is None:
             frames = self._frames(q)[0]
         k = attached.frame
@@ -173,6 +174,8 @@ class Chain:
         f = frames[..., moving, :, :]  # [..., S, 4, 4]
         pos = (f[..., :3, :3] @ attached.local[..., None])[..., 0] + f[..., :3, 3]
         pos = np.where(attached.static[:, None], attached.local, pos)
+        if not jacobian:
+            return pos, None
         z = frames[..., :3, 2]  # [..., n, 3] joint axes
         lever = pos[..., :, None, :] - frames[..., None, :, :3, 3]  # [..., S, n, 3]
         zz = np.broadcast_to(z[..., None, :, :], lever.shape)

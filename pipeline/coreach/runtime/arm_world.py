@@ -1,0 +1,76 @@
+"""The arm among the scene's bodies: joint positions -> link spheres -> distances and their joint gradients.
+
+Shared by the demonstrator, vetting and the robot's Session: the spheres ride on the numpy kinematics chain
+(coreach.runtime.kinematics), the distances and the rule are coreach.control.separation's.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from coreach.control.arrays import namespace
+from coreach.control.bodies import Primitive
+from coreach.control.separation import Geometry, SeparationSettings, World, measure
+from coreach.runtime.kinematics import Chain
+
+__all__ = ["ArmWorld", "contact_report"]
+
+
+class ArmWorld:
+    """A Chain with spheres on its links (links [S], centres [S, 3] in the link frames) and the World."""
+
+    def __init__(self, chain: Chain, links: list[str], centres, world: World):
+        self.chain = chain
+        self.links = list(links)
+        self.centres = np.asarray(centres, dtype=np.float64).reshape(-1, 3)
+        self.attached = chain.attach(self.links, self.centres)
+        self.world = world
+
+    @classmethod
+    def build(cls, chain: Chain, links: list[str], centres, radii, self_pairs, furniture: list[Primitive],
+              person: list[Primitive], settings: SeparationSettings) -> ArmWorld:  # fmt: skip
+        return cls(chain, links, centres, World(list(furniture), list(person), radii, settings, self_pairs))
+
+    def clear(self, geo: Geometry, lookahead: float) -> np.ndarray:
+        """[...] bool: every pair at or beyond its protective distance (numpy Geometry)."""
+        d_p, _ = self.world.rows(lookahead, np, np.zeros(0))
+        return (np.asarray(geo.d) >= d_p).all(axis=-1)
+
+    def spheres(self, q, frames=None, jacobian: bool = True):
+        """Sphere centres [..., S, 3] and their linear Jacobians [..., S, 3, n] (None without `jacobian`) at
+        q [..., n] (numpy)."""
+        return self.chain.points(np.asarray(q, dtype=np.float64), self.attached, frames, jacobian)
+
+    def separation(self, q):
+        """(World, centres [..., S, 3], Jacobians [..., S, 3, n]) at q [..., n], in q's namespace: what the
+        safety filter's `separation` argument takes."""
+        if type(q) is np.ndarray:
+            return (self.world, *self.spheres(q))
+        xp = namespace(q)
+        centres, jac = self.spheres(q.detach().cpu().numpy())
+        return self.world, xp.asarray(centres, dtype=q.dtype), xp.asarray(jac, dtype=q.dtype)
+
+    def geometry(self, q, frames=None, grad: bool = True) -> Geometry:
+        """Distances (and gradients, with `grad`) at q: numpy for a numpy q, torch (float64 kinematics) for a
+        torch q."""
+        if type(q) is np.ndarray or isinstance(q, (list, tuple)):
+            centres, jac = self.spheres(q, frames)
+            return measure(self.world, centres, jac if grad else None)
+        xp = namespace(q)
+        centres, jac = self.spheres(np.asarray(q.detach().cpu().numpy(), dtype=np.float64))
+        return measure(self.world, xp.asarray(centres, dtype=q.dtype), xp.asarray(jac, dtype=q.dtype))
+
+
+def contact_report(world: World, geo: Geometry) -> tuple[np.ndarray, np.ndarray]:
+    """Per state (numpy Geometry of [..., ] states): (touching [...] bool: a sphere inside furniture or two
+    non-adjacent spheres overlapping, or a sphere inside the person's keep-out zone; the body involved [...],
+    an index into world.body_names, or -1 for a self contact)."""
+    body_d = np.asarray(geo.body_d)  # [..., S, O]
+    limit = np.where(world.is_person, world.settings.keep_out, 0.0)  # [O]
+    worst_body = (body_d - limit).min(axis=-2)  # [..., O]
+    worst = worst_body.min(axis=-1)
+    body = worst_body.argmin(axis=-1)
+    self_d = np.asarray(geo.self_d)
+    self_min = self_d.min(axis=-1) if self_d.shape[-1] else np.full(worst.shape, np.inf)
+    touching = (worst < 0) | (self_min < 0)
+    return touching, np.where(worst < 0, body, -1)
