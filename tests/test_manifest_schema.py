@@ -14,6 +14,16 @@ import pytest
 from coreach.runtime.manifest import MANIFEST, BundleError, Manifest, onnx_interface
 
 FOLDER = Path("/bundles/b1")
+# a scene with one board and a person's head, and an arm of two spheres (coreach.scene_bodies.world_json)
+WORLD = {"clearance": 0.02,
+         "obstacles": [{"name": "board", "shape": "box", "size": [0.2, 0.6, 0.02], "xyz": [0.7, 0.0, 0.1],
+                        "rpy_deg": [0.0, 0.0, 0.0]}],
+         "person": {"bodies": [{"name": "head", "shape": "sphere", "size": [0.1], "xyz": [-0.3, 0.5, 0.6],
+                                "rpy_deg": [0.0, 0.0, 0.0]}],
+                    "speed": 0.5, "reaction_time": 0.1, "stopping_time": 0.2, "intrusion": 0.0,
+                    "person_uncertainty": 0.02, "robot_uncertainty": 0.01},
+         "links": {"links": ["b", "c"], "centres": [[0.0, 0.0, 0.1], [0.0, 0.0, 0.05]], "radii": [0.05, 0.04],
+                   "self_pairs": []}}  # fmt: skip
 
 
 def sample_manifest() -> Manifest:
@@ -34,7 +44,7 @@ def sample_manifest() -> Manifest:
         q_lower=np.array([-math.inf, -2.0, -1.5]), q_upper=np.array([math.inf, 2.0, 1.5]),
         qd_max=np.array([1.0, 1.2, 1.5]), q_home=np.array([0.0, 0.3, -0.2]),
         tcp_speed_max=0.25, workspace_min=np.array([-0.3, -0.8, -0.1]), workspace_max=np.array([1.0, 0.8, 1.2]),
-        watchdog_timeout_s=0.2, lookahead_s=0.1, speed_fraction=0.5,
+        watchdog_timeout_s=0.2, lookahead_s=0.1, speed_fraction=0.5, world=copy.deepcopy(WORLD),
         tolerances={"onnx_parity_max_abs_diff": 1e-5}, gate={"passed": True, "success_rate_low": 0.8},
         dataset_fingerprint="sha256:0123abcd", training_run_id="run-1", git_commit="0" * 40,
         onnx_parity={"n": 100, "max_abs_diff": 2e-7}, files={"decoder.onnx": "ab" * 32},
@@ -126,6 +136,12 @@ def _set(data: dict, dotted: str, value) -> None:
     ("onnx_parity", {"n": 0, "max_abs_diff": 0.0}, "onnx_parity.n"),
     ("belief", {"model": "boltzmann", "beta": "40"}, "belief.beta"),
     ("gate", [], "gate"),
+    # the scene's bodies are checked as a scene file is (coreach.scene_bodies): size, shape, sphere indices
+    ("safety.world", {**WORLD, "obstacles": [{**WORLD["obstacles"][0], "size": [0.2, -0.6, 0.02]}]},
+     r"safety.world, option obstacles\[0\]\.size"),
+    ("safety.world", {**WORLD, "obstacles": [{**WORLD["obstacles"][0], "shape": "cone"}]},
+     r"safety.world, option obstacles\[0\]\.shape"),
+    ("safety.world", {**WORLD, "links": {**WORLD["links"], "self_pairs": [[0, 5]]}}, "safety.world.links"),
 ])  # fmt: skip
 def test_a_malformed_field_is_refused_by_name(path, value, named):
     data = copy.deepcopy(sample_manifest().to_json())

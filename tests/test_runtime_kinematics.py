@@ -142,7 +142,7 @@ def test_single_and_batched_shapes_agree():
 def test_limits_are_the_urdf_values():
     chain = Chain.from_urdf(shipped_urdf())
     # the values written in plugins/robot/assets/reach7.urdf
-    np.testing.assert_array_equal(chain.q_upper, [2.9671, 2.0944, 2.9671, 2.6180, 2.9671, 2.0944, 3.0543])
+    np.testing.assert_array_equal(chain.q_upper, [2.9671, 2.0944, 2.9671, 2.4000, 2.9671, 2.0944, 3.0543])
     np.testing.assert_array_equal(chain.q_lower, -chain.q_upper)
     np.testing.assert_array_equal(chain.qd_max, [1.2, 1.2, 1.3, 1.3, 1.5, 1.5, 1.5])
 

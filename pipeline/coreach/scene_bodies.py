@@ -11,7 +11,7 @@ from coreach.control.bodies import SHAPES, Primitive, pack, point_distances
 from coreach.control.separation import SeparationSettings
 from coreach.errors import ConfigError
 
-__all__ = ["parse_obstacles", "parse_person", "check_goals_clear", "SIZE_FORMS"]
+__all__ = ["parse_obstacles", "parse_person", "check_goals_clear", "world_json", "world_from_json", "SIZE_FORMS"]
 
 # what `size` holds per shape (m)
 SIZE_FORMS = {"box": ("x", "y", "z"), "cylinder": ("radius", "length"), "capsule": ("radius", "length"),
@@ -117,3 +117,57 @@ def check_goals_clear(points: np.ndarray, labels: list[str], obstacles: list[Pri
             k, o = bad[0]
             raise ConfigError(f"{where}, goal {labels[k]}",
                               f"lies {what} {bodies[o].name} (distance {d[k, o]:.3f} m); move the goal or the body")
+
+
+def _body_json(b: Primitive) -> dict:
+    return {"name": b.name, "shape": b.shape, "size": list(b.size), "xyz": list(b.xyz),
+            "rpy_deg": [math.degrees(v) for v in b.rpy]}
+
+
+def world_json(obstacles: list[Primitive], person: list[Primitive], settings: SeparationSettings,
+               links: dict | None) -> dict:  # fmt: skip
+    """The release manifest's `world` section: the scene's bodies, the separation settings and the arm's
+    sphere model (links, centres, radii, self_pairs); {} for a scene without bodies."""
+    if not (obstacles or person):
+        return {}
+    return {
+        "clearance": settings.clearance,
+        "obstacles": [_body_json(b) for b in obstacles],
+        "person": {"bodies": [_body_json(b) for b in person], "speed": settings.person_speed,
+                   "reaction_time": settings.reaction_time, "stopping_time": settings.stopping_time,
+                   "intrusion": settings.intrusion, "person_uncertainty": settings.person_uncertainty,
+                   "robot_uncertainty": settings.robot_uncertainty},
+        "links": links,
+    }
+
+
+def world_from_json(section: dict, where: str) -> tuple[list[Primitive], list[Primitive], SeparationSettings, dict]:
+    """(obstacles, person, settings, link model dict) of a manifest's `world` section; ConfigError naming the
+    field for anything malformed (the same checks as a scene file)."""
+    from dataclasses import replace
+
+    extra = sorted(set(section) - {"clearance", "obstacles", "person", "links"})
+    if extra:
+        raise ConfigError(f"{where}.{extra[0]}", "unknown field; expected clearance, obstacles, person, links")
+    taken: set[str] = set()
+    obstacles = parse_obstacles(section.get("obstacles"), where, taken)
+    person, settings = parse_person(section.get("person"), where, taken)
+    clearance = section.get("clearance")
+    if not isinstance(clearance, (int, float)) or isinstance(clearance, bool) or not 0 <= clearance <= 1:
+        raise ConfigError(f"{where}.clearance", f"expected a number in [0, 1] (m), got {clearance!r}")
+    links = section.get("links")
+    if not isinstance(links, dict) or set(links) != {"links", "centres", "radii", "self_pairs"}:
+        raise ConfigError(f"{where}.links", "expected a mapping with links, centres, radii, self_pairs")
+    names = links["links"]
+    try:
+        centres = np.asarray(links["centres"], dtype=np.float64).reshape(len(names), 3)
+        radii = np.asarray(links["radii"], dtype=np.float64).reshape(len(names))
+        pairs = np.asarray(links["self_pairs"], dtype=np.int64).reshape(-1, 2)
+    except (TypeError, ValueError):
+        raise ConfigError(f"{where}.links", "expected centres [S, 3], radii [S] and self_pairs [P, 2] for the S "
+                                            "links listed") from None  # fmt: skip
+    if (not all(isinstance(n, str) for n in names) or not np.isfinite(centres).all() or not (radii > 0).all()
+            or (pairs < 0).any() or (pairs >= len(names)).any()):  # fmt: skip
+        raise ConfigError(f"{where}.links", "expected link names, finite centres, positive radii and pairs of "
+                                            "sphere indices")  # fmt: skip
+    return obstacles, person, replace(settings, clearance=float(clearance)), links

@@ -118,7 +118,8 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
     meta (required): goal_names, nominal_layout {goal_pos [G,3], goal_quat [G,4] (w,x,y,z), goal_fine
     [G,3]}, dataset_fingerprint, training_run_id, git_commit, safety.workspace_min/max [3] (m, base frame).
     meta (optional): tool_link, q_home, belief {beta, floor, min_motion}, safety {tcp_speed_max,
-    watchdog_timeout_s, lookahead_s, speed_fraction}, stick {deadband}, tolerances {...}.
+    watchdog_timeout_s, lookahead_s, speed_fraction}, stick {deadband}, tolerances {...}, world (the manifest's
+    safety.world section, coreach.scene_bodies.world_json; {} without bodies).
     Bad metadata is a one-line ConfigError naming `release meta.<key>`; `files` stays empty for write_bundle.
     """
     # imported here so verify_bundle needs no more than numpy
@@ -170,6 +171,7 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
         watchdog_timeout_s=_number(meta, "safety.watchdog_timeout_s", DEFAULT_WATCHDOG_S, 1e-4, 10.0),
         lookahead_s=_number(meta, "safety.lookahead_s", DEFAULT_LOOKAHEAD_S, 1e-4, 10.0),
         speed_fraction=fraction,
+        world=_plain(meta.get("world") or {}, "release meta.world"),
         tolerances={"onnx_parity_max_abs_diff": PARITY_TOLERANCE,
                     **_plain(meta.get("tolerances") or {}, "release meta.tolerances")},
         gate=_plain(gate or {}, "release gate"),

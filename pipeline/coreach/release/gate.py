@@ -33,6 +33,9 @@ class Thresholds:
     stick_gain_median: float
     parity_max_abs: float
     latency_p99_us: float
+    max_contacts: int = 0
+    max_keep_out: int = 0
+    min_separation_m: float = 0.01
 
     @classmethod
     def from_config(cls, node, parity_ceiling: float) -> Thresholds:
@@ -55,9 +58,13 @@ class Thresholds:
                 raise ConfigError(f"option gates.{key}", f"expected a number in [{lo}, {hi}], got {v!r}")
             return float(v)
 
-        viol = items["max_violations"]
-        if isinstance(viol, bool) or not isinstance(viol, int) or viol < 0:
-            raise ConfigError("option gates.max_violations", f"expected an integer >= 0, got {viol!r}")
+        def count(key: str) -> int:
+            v = items[key]
+            if isinstance(v, bool) or not isinstance(v, int) or v < 0:
+                raise ConfigError(f"option gates.{key}", f"expected an integer >= 0, got {v!r}")
+            return v
+
+        viol = count("max_violations")
         return cls(
             success_lo=number("success_lo", 0.0, 1.0),
             recovery_lo=number("recovery_lo", 0.0, 1.0),
@@ -65,6 +72,9 @@ class Thresholds:
             stick_gain_median=number("stick_gain_median", 0.0, math.inf),
             parity_max_abs=number("parity_max_abs", 0.0, parity_ceiling),
             latency_p99_us=number("latency_p99_us", 1e-3, 1e9),
+            max_contacts=count("max_contacts"),
+            max_keep_out=count("max_keep_out"),
+            min_separation_m=number("min_separation_m", 0.0, 1.0),
         )
 
 
@@ -114,7 +124,35 @@ def suite_gates(suite: str, summary: dict, violations: dict, th: Thresholds) -> 
     if a["collapsed"]:  # below vetting's own collapse threshold: never released, whatever the gate says
         auth = GateResult(**{**asdict(auth), "passed": False})
     out.append(auth)
+    out += separation_gates(suite, summary.get("separation"), th)
     return out
+
+
+def separation_gates(suite: str, sep: dict | None, th: Thresholds) -> list[GateResult]:
+    """Contacts (a link inside furniture or two non-adjacent links overlapping), keep-out entries and the
+    closest approach to furniture and between links, over the whole suite (none without scene bodies)."""
+    if not sep:
+        return []
+    a = sep["all"]
+    per_goal = sep["per_goal"]
+
+    def worst(key: str, low: bool = False) -> str:
+        if not per_goal:
+            return ""
+        pick = (min if low else max)(per_goal, key=lambda g: per_goal[g][key])
+        return f"worst goal {pick}: {per_goal[pick][key]:.4g}"
+
+    closest = min(a["min_furniture_m"], a["min_self_m"])
+    return [
+        _check(f"contacts[{suite}]", "steps with a link touching furniture or another link", a["contact_steps"],
+               th.max_contacts, "<=", f"{a['contact_episodes']} of {a['episodes']} episodes; {worst('contact_steps')}"),
+        _check(f"keep_out[{suite}]", "steps with a link inside the person's keep-out zone "
+               f"({sep['world']['keep_out']:.3f} m)", a["keep_out_steps"], th.max_keep_out, "<=",
+               f"closest link to the person {a['min_person_m']:.3f} m; {worst('keep_out_steps')}"),
+        _check(f"separation[{suite}]", "closest link to furniture or to another link (m)",
+               closest if math.isfinite(closest) else 1.0, th.min_separation_m, ">=",
+               f"furniture {a['min_furniture_m']:.4f} m, links {a['min_self_m']:.4f} m; {worst('min_furniture_m', True)}"),
+    ]  # fmt: skip
 
 
 def artifact_gates(parity: float | None, parity_n: int, latency: dict | None, th: Thresholds) -> list[GateResult]:
@@ -206,5 +244,5 @@ def gate_table(results, title: str):
     return table
 
 
-__all__ = ["Thresholds", "GateResult", "suite_gates", "artifact_gates", "count_violations", "passed", "as_json",
+__all__ = ["Thresholds", "GateResult", "suite_gates", "separation_gates", "artifact_gates", "count_violations", "passed", "as_json",
            "gate_table", "latest_switch"]

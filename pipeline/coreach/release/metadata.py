@@ -19,6 +19,18 @@ def _nominal_layout(scene) -> dict:
     }
 
 
+def _separation_card(s: dict, suite: str) -> dict:
+    sep = s.get("separation")
+    if not sep:
+        return {}
+    a = sep["all"]
+    return {f"closest link to furniture, {suite}": {"value": a["min_furniture_m"], "unit": "m"},
+            f"closest link to the person, {suite}": {"value": a["min_person_m"], "unit": "m"},
+            f"contact steps, {suite}": {"value": a["contact_steps"]},
+            f"keep-out entries (steps), {suite}": {"value": a["keep_out_steps"]},
+            f"time in the reduced-speed zone per episode, {suite}": {"value": a["zone_time_s"], "unit": "s"}}
+
+
 def _model_card_metrics(summaries: dict) -> dict:
     out = {}
     for suite, s in summaries.items():
@@ -33,7 +45,21 @@ def _model_card_metrics(summaries: dict) -> dict:
                 out[f"success after a switch at {cell}, {suite} (n={r['n']})"] = rate(r)
         out[f"time to success, median, {suite}"] = {"value": s["time_to_success"]["median"], "unit": "s"}
         out[f"stick gain, median, {suite}"] = {"value": s["stick_gain"]["median"], "unit": "rad/s per stick"}
+        out.update(_separation_card(s, suite))
     return out
+
+
+def _world_section(robot, scene) -> dict:
+    """The manifest's safety.world: the gate suites' scene bodies and the arm's sphere model."""
+    from coreach.scene_bodies import world_json
+    from coreach.world import arm_world
+
+    world = arm_world(robot, scene)
+    if world is None:
+        return {}
+    links = {"links": world.links, "centres": world.centres.tolist(), "radii": world.world.radii.tolist(),
+             "self_pairs": world.world.self_pairs.tolist()}  # fmt: skip
+    return world_json(scene.obstacles, scene.person, scene.separation, links)
 
 
 def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
@@ -67,6 +93,7 @@ def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
             "lookahead_s": float(rt.lookahead_s),
         },
         "stick": {"deadband": float(rt.deadband)},
+        "world": _world_section(robot, scene),
         "tolerances": {"arrival": suites[0].tolerances},
         "metrics": _model_card_metrics(summaries),
         "parity_n": int(cfg.parity_n),

@@ -90,6 +90,9 @@ class Manifest:
     watchdog_timeout_s: float = _at("safety.watchdog_timeout_s", "number", lo=0.0, open_lo=True)
     lookahead_s: float = _at("safety.lookahead_s", "number", lo=0.0, open_lo=True)
     speed_fraction: float = _at("safety.speed_fraction", "number", lo=0.0, hi=1.0, open_lo=True)  # of URDF limits
+    # the scene's bodies, the separation settings and the arm's sphere model (coreach.scene_bodies.world_json);
+    # {} = no bodies (the separation step is off)
+    world: dict[str, Any] = _at("safety.world", "mapping")
     tolerances: dict[str, Any] = _at("tolerances", "mapping")
     gate: dict[str, Any] = _at("gate", "mapping")
     dataset_fingerprint: str = _at("dataset_fingerprint", "string")
@@ -291,6 +294,13 @@ def _check_across(m: Manifest) -> None:
     _integer("onnx_parity.n", _get(m.onnx_parity, "n", "onnx_parity"), min=1)
     _number("onnx_parity.max_abs_diff", _get(m.onnx_parity, "max_abs_diff", "onnx_parity"), lo=0.0)
     _check_belief(m.belief)
+    if m.world:
+        from coreach.scene_bodies import world_from_json
+
+        try:
+            _, _, _, links = world_from_json(m.world, "safety.world")
+        except ConfigError as exc:
+            raise _Bad(f"field {exc.where!r}: {exc.problem}") from None
 
 
 def _check_belief(section: dict[str, Any]) -> None:

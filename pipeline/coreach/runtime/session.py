@@ -30,7 +30,9 @@ from coreach.runtime.belief_manifest import belief_from_manifest
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
 from coreach.runtime.kinematics import Chain, quat_to_matrix
 from coreach.control.belief_tracker import track
-from coreach.control.safety_filter import JOINT_LIMIT, SPEED_CAP, SafetyLimits
+from coreach.control.safety_filter import JOINT_LIMIT, SEPARATION, SPEED_CAP, SafetyLimits
+from coreach.runtime.arm_world import ArmWorld
+from coreach.scene_bodies import world_from_json
 
 # keep_inside computes 0 * (limit - q): an infinite (continuous-joint) limit would give nan, so unbounded
 # joints get a bound no arm reaches instead.
@@ -54,6 +56,7 @@ class StepInfo:
     position_limited: bool = False  # look-ahead clipped a joint approaching its position limit
     speed_capped: bool = False  # joint speed or tool speed cap scaled the command down
     workspace_scale: float = 1.0  # < 1 when the workspace box scaled the command down
+    separation_held: bool = False  # the separation step scaled the command down (bodies near)
     belief_updated: bool = False
 
     @property
@@ -69,7 +72,7 @@ class StepInfo:
     def intervened(self) -> bool:
         """Any filter changed what the stick and decoder asked for."""
         return (self.zeroed or self.stick_clipped or self.position_limited or self.speed_capped
-                or self.workspace_limited)
+                or self.workspace_limited or self.separation_held)
 
 
 @dataclass
@@ -98,6 +101,7 @@ class Session:
         self._out_names = [self._ort.get_outputs()[0].name]
         self._fault: str | None = None
         self._stick_in = np.zeros((1, self._d), dtype=np.float32)
+        self.arm: ArmWorld | None = arm_world_from_manifest(m, chain)
         self.set_goals(m.goal_pos, m.goal_quat, m.goal_fine)
         self.reset()
 
@@ -137,6 +141,25 @@ class Session:
             raise DataError("session.set_goals goal_quat", "expected non-zero quaternions (w, x, y, z)")
         targets, goal_rot = np.stack([pos, pos + fine], axis=1)[None], quat_to_matrix(quat)[None]
         self._layout = _Layout(targets, goal_rot, goal_features(targets, goal_rot))
+
+    def set_obstacles(self, poses: dict) -> None:
+        """Move bodies of the bundle's scene (furniture or the person's) from the robot computer's perception:
+        {name: (xyz [3] m, rpy [3] rad)} in the world frame; shapes and sizes stay the bundle's. An unknown name
+        or a non-finite pose raises DataError and changes nothing."""
+        if self.arm is None:
+            raise DataError("session.set_obstacles", "the bundle has no scene bodies (manifest safety.world is {})")
+        names = set(self.arm.world.body_names)
+        checked = {}
+        for name, pose in dict(poses).items():
+            if name not in names:
+                raise DataError("session.set_obstacles", f"unknown body {name!r}; expected one of {sorted(names)}")
+            try:
+                xyz, rpy = pose
+            except (TypeError, ValueError):
+                raise DataError(f"session.set_obstacles {name}", "expected (xyz [3], rpy [3])") from None
+            checked[name] = (_array(xyz, (3,), f"session.set_obstacles {name} xyz"),
+                             _array(rpy, (3,), f"session.set_obstacles {name} rpy"))
+        self.arm.world.set_poses(checked)
 
     def reset(self) -> None:
         """Start a new task: belief back to the uniform prior; the next step's tool position is the
@@ -210,9 +233,11 @@ class Session:
         if not np.isfinite(qd).all():
             return self._latch(info, "decoder output is not finite")
 
-        qd, flags, scale = limits.limit(q, qd, jac[:3], pos)
+        separation = None if self.arm is None else self.arm.separation(q)
+        qd, flags, scale = limits.limit(q, qd, jac[:3], pos, None, separation)
         info.position_limited = bool(flags & JOINT_LIMIT)
         info.speed_capped = bool(flags & SPEED_CAP)
+        info.separation_held = bool(flags & SEPARATION)
         info.workspace_scale = float(scale)
         qd = np.minimum(np.maximum(qd, -self._qd_max), self._qd_max)  # guards the last ulp of the scalings
         if not np.isfinite(qd).all():
@@ -249,6 +274,15 @@ class Session:
         self._belief, self._anchor, _ = track(self.belief_model, self._belief, self._anchor, pos[None],
                                               self._layout.targets)
         return True
+
+
+def arm_world_from_manifest(m: Manifest, chain: Chain) -> ArmWorld | None:
+    """The bundle's scene bodies and sphere model on its arm (None when the manifest has none)."""
+    if not m.world:
+        return None
+    obstacles, person, settings, links = world_from_json(m.world, "safety.world")
+    return ArmWorld.build(chain, links["links"], links["centres"], links["radii"], links["self_pairs"], obstacles,
+                          person, settings)
 
 
 def limits_from_manifest(m: Manifest) -> SafetyLimits:

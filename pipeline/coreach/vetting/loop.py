@@ -32,19 +32,28 @@ from torch import Tensor
 
 from coreach.context import build_context
 from coreach.control.belief_tracker import track
-from coreach.control.safety_filter import JOINT_LIMIT, SPEED_CAP, WORKSPACE
+from coreach.control.safety_filter import JOINT_LIMIT, SEPARATION, SPEED_CAP, WORKSPACE
+from coreach.control.separation import measure
 from coreach.errors import ConfigError
 from coreach.protocols import takes_dt
 from coreach.geometry import rotation_error
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.suite import EpisodePlan, Suite
+from coreach.world import arm_world
 
 __all__ = ["rollout", "rollout_per_episode", "ORIENTATION_WEIGHT", "REACH_PROGRESS", "JOINT_LIMIT", "SPEED_CAP",
-           "WORKSPACE"]
+           "WORKSPACE", "SEPARATION", "EXCESS_TOL"]
 
 ORIENTATION_WEIGHT = 0.05  # m per rad: 1 rad of orientation progress is worth 5 cm of position progress
 REACH_PROGRESS = 1e-3  # m per step a candidate must gain toward a goal for that goal to count as reachable
 Progress = Callable[[int, int], None]
+# m/s: a sphere's measured approach to the person (finite difference over one step) may exceed the allowed
+# speed by this much before it counts as an excess; the filter bounds the linear prediction, and the arc a
+# link really travels in 0.1 s departs from it by well under 1 mm at these speeds (common practice: a
+# tolerance an order above the rounding of the measurement)
+EXCESS_TOL = 0.01
+# m: separations below these are measured exactly; above them a cheaper lower bound is recorded
+_EXACT_FURNITURE = 0.10
 
 
 def _kinematics(robot, q: Tensor, jacobian: bool):
@@ -58,11 +67,29 @@ def _kinematics(robot, q: Tensor, jacobian: bool):
     return pos.to(q.dtype), rot.to(q.dtype), None if jac is None else jac.to(q.dtype)
 
 
-def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, pos: Tensor, dt: float) -> tuple[Tensor, Tensor]:
-    """The shared safety filter on commands qd [..., n] at q, jac_lin [..., 3, n], pos [..., 3] (broadcastable)
-    -> (limited qd, which parts acted [...]: JOINT_LIMIT | SPEED_CAP | WORKSPACE bits, 0 = none)."""
-    qd, flags, _ = limits.limit(q, qd, jac_lin, pos, dt)
+def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, pos: Tensor, dt: float,
+           separation=None) -> tuple[Tensor, Tensor]:  # fmt: skip
+    """The shared safety filter on commands qd [..., n] at q, jac_lin [..., 3, n], pos [..., 3] (broadcastable),
+    and the link spheres of the E states (`separation`, ArmWorld.separation) -> (limited qd, which parts acted
+    [...]: JOINT_LIMIT | SPEED_CAP | WORKSPACE | SEPARATION bits, 0 = none)."""
+    qd, flags, _ = limits.limit(q, qd, jac_lin, pos, dt, separation)
     return qd, flags.to(torch.uint8)
+
+
+def _separations(world, centres: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor]:
+    """Per episode: (min distance of a link sphere to furniture [E], to the person [E], between non-adjacent
+    links [E], and per sphere to the person [E, S]); inf where there is nothing to measure."""
+    w = world.world
+    floor = torch.as_tensor(
+        [w.settings.reduced_zone(1.0) + 0.05 if p else _EXACT_FURNITURE for p in w.is_person], dtype=centres.dtype)
+    geo = measure(w, centres, None, floor)
+    inf = torch.tensor(math.inf, dtype=centres.dtype)
+    is_person = torch.as_tensor(w.is_person)
+    furniture = torch.where(is_person, inf, geo.body_d).amin(dim=(-2, -1)) if (~is_person).any() else inf.expand(
+        centres.shape[0])
+    per_sphere = torch.where(is_person, geo.body_d, inf).amin(dim=-1)  # [E, S]
+    self_min = geo.self_d.amin(dim=-1) if geo.self_d.shape[-1] else inf.expand(centres.shape[0])
+    return furniture, per_sphere.amin(dim=-1), self_min, per_sphere
 
 
 def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> None:
@@ -105,7 +132,7 @@ def _reachable(dx: Tensor, pos: Tensor, approach: Tensor, tol: float) -> Tensor:
 
 def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, plan: EpisodePlan,
               generator: torch.Generator, progress: Progress | None, stick_gain_every: int,
-              dtype: torch.dtype) -> dict:  # fmt: skip
+              dtype: torch.dtype, world=None) -> dict:  # fmt: skip
     E, T, dt = len(plan), suite.steps, suite.step_dt
     G = len(plan.layout.names)
     rows = torch.arange(E)
@@ -148,6 +175,12 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     rec_ori = torch.empty(E, T + 1, dtype=dtype)
     rec_auth = torch.full((E, T), math.nan, dtype=dtype)
     rec_stick = torch.full((E, T, grid.shape[1]), math.nan, dtype=dtype)
+    rec_sep = torch.full((3, E, T + 1), math.inf, dtype=dtype)  # furniture, person, self (m)
+    rec_excess = torch.zeros(E, T, dtype=torch.bool)  # a sphere approached the person faster than allowed
+    sep_state, last_person = None, None
+    if world is not None:
+        s = world.world.settings
+        keep_out, person_tau = s.keep_out, max(s.person_tau, limits.lookahead_s or dt)
 
     _reset_operator(operator, E, generator, dt)
     belief = belief_model.initial(E, G, q[:, 0])
@@ -186,6 +219,15 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         to_wp = waypoint - pos
 
         rec_q[:, t], rec_pos[:, t], rec_belief[:, t] = q, pos, belief
+        if world is not None:
+            sep_state = world.separation(q)
+            furniture, person, self_min, per_sphere = _separations(world, sep_state[1])
+            rec_sep[0, :, t], rec_sep[1, :, t], rec_sep[2, :, t] = furniture, person, self_min
+            if last_person is not None:
+                # measured approach over the step just taken against what the rule allowed at its start
+                allowed = (last_person - keep_out).clamp_min(0.0) / person_tau
+                rec_excess[:, t - 1] = ((last_person - per_sphere) / dt > allowed + EXCESS_TOL).any(dim=-1)
+            last_person = per_sphere
         rec_error[:, t] = to_wp.norm(dim=-1)
         rec_ori[:, t] = ang
         if t == T:
@@ -208,7 +250,8 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
                 f"[{E}, {interface.n_modes}, {K}, {n}]",
             )
         jac_lin = jac[:, :3, :]
-        safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], pos[:, None, None], dt)
+        safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], pos[:, None, None], dt,
+                             sep_state)
         twist = torch.einsum("eij,emkj->emki", jac, safe) * dt  # [E, M, K, 6] one-step tool motion
         value = _values(twist, to_wp, rot_err, mode, switch_cost, margin)
         rec_reach[:, t] = _reachable(twist[..., :3], pos, approach, tol_pos)
@@ -229,7 +272,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
             sent_shaped, _, sent_released = limits.condition_stick(sent.to(dtype))
             again = interface.act(sent_shaped[:, None, :], state).to(dtype)  # [E, M, 1, n]
             again = torch.where(sent_released[:, None, None, None], 0.0, again)
-            qd, hit = _limit(limits, q, again[rows, m_pick, 0], jac_lin, pos, dt)
+            qd, hit = _limit(limits, q, again[rows, m_pick, 0], jac_lin, pos, dt, sep_state)
 
         holding = hold > 0
         hold = (hold - 1).clamp_min(0)
@@ -253,12 +296,18 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         belief_at_switch=belief_at_switch, error=rec_error, limit_scaled=rec_limits > 0, limits=rec_limits,
         reachable=rec_reach.all(dim=-1), reach_goal=rec_reach, orientation_error=rec_ori,
         stick_gain=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, stick=rec_stick, mode=rec_mode, phase1_step=phase1_step,
-        initial_done_step=initial_done_step,
+        initial_done_step=initial_done_step, separation=rec_sep, person_excess=rec_excess,
     )  # fmt: skip
 
 
-def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: dict) -> RolloutRecord:
+def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: dict, world=None) -> RolloutRecord:
+    sep = out.pop("separation")
     extras = {
+        # [E, T+1] m: the closest link sphere to furniture, to the person, and between non-adjacent links
+        # (inf without bodies; beyond 10 cm from furniture a lower bound)
+        "sep_furniture": sep[0], "sep_person": sep[1], "sep_self": sep[2],
+        "person_excess": out.pop("person_excess"),  # [E, T] a sphere approached the person faster than allowed
+        "world": None if world is None else world_summary(world),
         "q": out.pop("q"),  # [E, T+1, n] joint positions
         "qd": out.pop("qd"),  # [E, T, n] applied joint velocities (after limits; zero when holding)
         "stick": out.pop("stick"),  # [E, T, 2] stick the operator sent (before the filter); nan when not driving
@@ -282,35 +331,57 @@ def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: di
     )  # fmt: skip
 
 
+def _world(robot, suite: Suite, limits, world):
+    """The ArmWorld of the suite's scene (None without bodies); `world=False` leaves the bodies out."""
+    if world is False:
+        return None
+    if world is None:
+        return arm_world(robot, suite.scene, limits.tcp_speed_max)
+    return world
+
+
+def world_summary(world) -> dict:
+    """What metrics and reports need to know of the world: names, zones, clearance (plain values)."""
+    s = world.world.settings
+    return {"furniture": [b.name for b in world.world.furniture], "person": [b.name for b in world.world.person],
+            "clearance": s.clearance, "keep_out": s.keep_out, "reduced_zone": s.reduced_zone(0.25),
+            "excess_tol": EXCESS_TOL}  # fmt: skip
+
+
 def rollout(robot, interface, operator, suite: Suite, belief_model, limits, generator: torch.Generator,
             progress: Progress | None = None, *, stick_gain_every: int = 10,
-            dtype: torch.dtype = torch.float64) -> RolloutRecord:  # fmt: skip
+            dtype: torch.dtype = torch.float64, world=None) -> RolloutRecord:  # fmt: skip
     """Run every episode of `suite` with `interface` driven by `operator`, all episodes as one batch.
+    The suite's scene bodies are in the loop (the filter's separation step and the separation records)
+    unless `world=False`; an ArmWorld may be given to reuse one.
 
     `generator` is the only source of randomness: the episode plan is drawn from it first, then the
     operator's choices and perturbations. Give every interface a fresh `suite.generator()` so all of them
     meet the same episodes. `progress(step, total)` is called after every control step.
     """
     plan = suite.episodes_plan(generator, robot)
+    world = _world(robot, suite, limits, world)
     with torch.no_grad():
         out = _simulate(robot, interface, operator, suite, belief_model, limits, plan, generator, progress,
-                        stick_gain_every, dtype)  # fmt: skip
-    return _record(robot, interface, operator, suite, plan, out)
+                        stick_gain_every, dtype, world)  # fmt: skip
+    return _record(robot, interface, operator, suite, plan, out, world)
 
 
 def rollout_per_episode(robot, interface, operator, suite: Suite, belief_model, limits,
                         generator: torch.Generator, progress: Progress | None = None, *,
-                        stick_gain_every: int = 10, dtype: torch.dtype = torch.float64) -> RolloutRecord:  # fmt: skip
+                        stick_gain_every: int = 10, dtype: torch.dtype = torch.float64,
+                        world=None) -> RolloutRecord:  # fmt: skip
     """The same rollouts one episode at a time (a plain Python loop): the reference `coreach bench vet`
     measures the batched loop against. Same plan as `rollout` for the same generator; with a
     deterministic operator (e.g. greedy) the outcomes are identical."""
     plan = suite.episodes_plan(generator, robot)
+    world = _world(robot, suite, limits, world)
     parts = []
     E, T = len(plan), suite.steps
     with torch.no_grad():
         for e in range(E):
             step = None if progress is None else (lambda t, _T, e=e: progress(e * T + t, E * T))
             parts.append(_simulate(robot, interface, operator, suite, belief_model, limits, plan.select([e]),
-                                   generator, step, stick_gain_every, dtype))  # fmt: skip
-    out = {k: torch.cat([p[k] for p in parts]) for k in parts[0]}
-    return _record(robot, interface, operator, suite, plan, out)
+                                   generator, step, stick_gain_every, dtype, world))  # fmt: skip
+    out = {k: torch.cat([p[k] for p in parts], dim=1 if k == "separation" else 0) for k in parts[0]}
+    return _record(robot, interface, operator, suite, plan, out, world)

@@ -16,6 +16,7 @@ from torch import Tensor
 
 from coreach.errors import ConfigError
 from coreach.vetting.records import RolloutRecord
+from coreach.vetting.separation_metrics import flat_separation, separation_summary
 
 MIN_FIT_SAMPLES = 8  # transitions below which a decay-rate fit is reported as nan rather than guessed
 
@@ -274,6 +275,7 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
         "mode_switches": {"mean": float(record.mode_switches.to(torch.float64).mean())},
         "ultimate_bound": bound_by_confidence(record, tol.bins),
         "diagnosis": _diagnosis(record, level),
+        "separation": separation_summary(record),
     }
 
 
@@ -307,6 +309,7 @@ def flat_metrics(summary: dict) -> dict[str, float]:
     for row in summary["ultimate_bound"]:
         for k in ("k", "w", "bound", "n"):
             put(f"ultimate_bound/{row['bin']}/{k}", row[k])
+    out.update(flat_separation(summary.get("separation")))
     if summary.get("diagnosis"):
         from coreach.vetting.diagnosis import flat_diagnosis
 
