@@ -100,7 +100,7 @@ def _mesh_capsule(path: Path, scale: np.ndarray, where: str) -> tuple[np.ndarray
     except Exception as exc:  # trimesh raises many kinds for unreadable files
         raise ConfigError(where, f"collision mesh {path} is unreadable ({type(exc).__name__}: {exc})") from None
     if verts.ndim != 2 or len(verts) < 1 or not np.isfinite(verts).all():
-        raise ConfigError(where, f"collision mesh {path} has no usable vertices")
+        raise ConfigError(where, f"collision mesh {path} has no usable vertices (unreadable or empty)")
     centre = verts.mean(axis=0)
     _, _, vt = np.linalg.svd(verts - centre, full_matrices=False)
     axis = vt[0]
@@ -169,7 +169,7 @@ def _collision_capsules(link: ET.Element, urdf_dir: Path | None, where: str) -> 
     return out
 
 
-def _override(path: str | Path, known: list[str]) -> dict[str, list[tuple]]:
+def _override(path: str | Path, known: list[str], moving: list[str]) -> dict[str, list[tuple]]:
     import yaml
 
     where = str(path)
@@ -185,7 +185,10 @@ def _override(path: str | Path, known: list[str]) -> dict[str, list[tuple]]:
     out = {}
     for name, bodies in data["links"].items():
         if name not in known:
-            raise ConfigError(f"{where}: links.{name}", f"unknown link; expected one of {known}")
+            raise ConfigError(f"{where}: links.{name}", f"unknown link; expected one of {moving}")
+        if name not in moving:
+            raise ConfigError(f"{where}: links.{name}", f"this link never moves, so it is not modelled; expected one "
+                                                        f"of {moving}")  # fmt: skip
         if not isinstance(bodies, list) or not bodies:
             raise ConfigError(f"{where}: links.{name}", "expected a non-empty list of spheres and capsules")
         caps = []
@@ -222,7 +225,7 @@ def link_model(urdf_text: str, tool_link: str, *, urdf_dir: str | Path | None = 
     base = None if urdf_dir is None else Path(urdf_dir)
     caps = {name: _collision_capsules(elements[name], base, where) for name in moving}
     if override is not None and str(override):
-        caps.update(_override(override, path_links))
+        caps.update(_override(override, path_links, moving))
     links, centres, radii = [], [], []
     for name in moving:
         for a, b, r in caps.get(name, []):
