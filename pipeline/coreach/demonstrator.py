@@ -201,7 +201,7 @@ def rollout(
     if uses_starts:
         q = _start_poses(robot, E, gen, start_jitter, spread_share, start_spread)
         if world is not None:  # a start among the bodies (or too near the person) is replaced by home
-            clear = torch.as_tensor(world.clear(world.geometry(q.numpy()), dt))
+            clear = torch.as_tensor(world.clear(world.geometry(q.numpy(), grad=False)))
             q = torch.where(clear[:, None], q, robot.q_home.to(f64))
     else:
         q = robot.q_home.to(f64).expand(E, n).clone()

@@ -5,6 +5,10 @@ kinematics from several starts (damped least squares, Nakamura & Hanafusa 1986, 
 their limits); a pose counts as reachable when a solution is within `pos_tol` and `ang_tol`. Of the solutions
 the one with the largest margin to the joint limits is reported, with its manipulability (the smallest
 singular value of the 6 x n Jacobian: near zero means a singular pose where some tool motion is impossible).
+In a scene with bodies a solution must also keep every link clear (coreach.world: the clearance from furniture
+and between links, the keep-out distance from the person), and the approach must come from open space: the
+tool's path over the last `approach_m` before the approach point, along the approach axis, keeps the gripper's
+largest sphere and the clearance away from every piece of furniture.
 When a goal is out of reach, base placements on a grid around the current one are tried (moving the base by d
 is moving every goal by -d) and the one that reaches every goal with the largest margin is suggested.
 """
@@ -34,6 +38,7 @@ class ReachOptions:
     seed: int = integer(0, 0)
     shift_range: float = number(0.3, 0.0, 2.0, "m (base shifts tried per axis: -range..range)")
     shift_step: float = number(0.1, 0.0, 1.0, "m", open_range=True)
+    approach_m: float = number(0.10, 0.0, 1.0, "m (the approach corridor checked for open space)")
 
 
 @dataclass
@@ -44,10 +49,13 @@ class GoalReach:
     approach_error_m: float  # best position error of the approach pose (m)
     limit_margin_rad: float  # smallest distance to a joint limit at the chosen solution (rad; nan if unreachable)
     manipulability: float  # smallest singular value of the Jacobian there (nan if unreachable)
+    collision_free: bool = True  # some solution of both poses keeps every link clear of the scene's bodies
+    open_approach: bool = True  # the approach corridor is clear of furniture
+    blocked_by: str = ""  # the body in the way, when one is
 
     @property
     def reachable(self) -> bool:
-        return self.approach_reachable and self.fine_reachable
+        return self.approach_reachable and self.fine_reachable and self.collision_free and self.open_approach
 
 
 def _targets(scene, shift: Tensor) -> tuple[Tensor, Tensor]:
@@ -85,14 +93,19 @@ def _solve(robot, pos: Tensor, rot: Tensor, opt: ReachOptions) -> tuple[Tensor, 
     return q.reshape(B, K, -1), pos_err.reshape(B, K), ang_err.reshape(B, K)
 
 
-def _solved(robot, scene, shift: Tensor, opt: ReachOptions):
+def _solved(robot, scene, shift: Tensor, opt: ReachOptions, world=None):
     """Per shift and goal: reachable flags [S, G, 2] and, for the approach pose, the best solution's
-    position error, limit margin and manipulability [S, G]."""
+    position error, limit margin and manipulability [S, G]; with a world (ArmWorld) a solution also keeps
+    the links clear, and the flags without that condition come fourth (collisions alone: [S, G, 2])."""
     pts, rot = _targets(scene, shift)
     S, G = pts.shape[:2]
     rot_b = rot[None, :, None].expand(S, G, 2, 3, 3).reshape(-1, 3, 3)
     q, pos_err, ang_err = _solve(robot, pts.reshape(-1, 3), rot_b, opt)
     ok = (pos_err < opt.pos_tol) & (ang_err < math.radians(opt.ang_tol_deg))  # [B, K]
+    pose_ok = ok.any(dim=-1).reshape(S, G, 2)
+    if world is not None:
+        clear = torch.as_tensor(world.clear(world.geometry(q.numpy(), grad=False)))  # [B, K]
+        ok = ok & clear
     lo, hi = robot.q_lower.to(torch.float64), robot.q_upper.to(torch.float64)
     margin = torch.minimum(q - lo, hi - q).amin(dim=-1)  # [B, K]; inf for a continuous joint
     score = torch.where(ok, margin, torch.full_like(margin, -math.inf))
@@ -105,18 +118,47 @@ def _solved(robot, scene, shift: Tensor, opt: ReachOptions):
     nan = torch.full(shape, math.nan, dtype=torch.float64)
     margin_b = torch.where(reach, margin[rows, best].reshape(shape), nan)
     sv_b = torch.where(reach, sv.reshape(shape), nan)
-    return reach, pos_err.amin(dim=-1).reshape(shape), margin_b, sv_b
+    return reach, pos_err.amin(dim=-1).reshape(shape), margin_b, sv_b, pose_ok
+
+
+def _corridor(world, scene, opt: ReachOptions) -> list[str]:
+    """Per goal, the furniture body in the approach corridor ("" when it is open)."""
+    import numpy as np
+
+    from coreach.control.bodies import pack, point_distances
+
+    if world is None or not scene.obstacles:
+        return [""] * len(scene.goals)
+    tool_link = world.links[-1]  # spheres are listed root to tool: the last link's are the gripper's
+    r_tool = float(max(r for r, l in zip(world.world.radii, world.links) if l == tool_link))
+    packed = pack(scene.obstacles)
+    out = []
+    for goal in scene.goals:
+        axis = rpy_to_matrix(torch.deg2rad(torch.tensor(goal.approach_rpy_deg, dtype=torch.float64)))[:, 2].numpy()
+        back = np.linspace(0.0, opt.approach_m, 6)[:, None]
+        pts = np.asarray(goal.position) - back * axis  # [6, 3] the last approach_m before the approach point
+        d, _ = point_distances(pts, packed, grad=False)  # [6, O]
+        bad = d < r_tool + scene.separation.clearance
+        out.append(scene.obstacles[int(np.argwhere(bad)[0, 1])].name if bad.any() else "")
+    return out
 
 
 def check_reach(robot, scene, opt: ReachOptions = ReachOptions()) -> list[GoalReach]:
     """One GoalReach per goal of `scene` for `robot` where it stands (the scene's frame is the robot's world)."""
+    from coreach.world import arm_world
+
+    world = arm_world(robot, scene)
     with torch.no_grad():
-        reach, err, margin, sv = _solved(robot, scene, torch.zeros(1, 3, dtype=torch.float64), opt)
+        reach, err, margin, sv, pose_ok = _solved(robot, scene, torch.zeros(1, 3, dtype=torch.float64), opt, world)
+    corridor = _corridor(world, scene, opt)
     out = []
     for g, goal in enumerate(scene.goals):
-        fine_ok = bool(reach[0, g, 1])
-        out.append(GoalReach(goal.name, bool(reach[0, g, 0]), fine_ok, float(err[0, g, 0]),
-                             float(margin[0, g, 0]), float(sv[0, g, 0])))  # fmt: skip
+        posed = bool(pose_ok[0, g, 0]) and bool(pose_ok[0, g, 1])
+        free = bool(reach[0, g].all()) or not posed
+        out.append(GoalReach(goal.name, bool(pose_ok[0, g, 0]), bool(pose_ok[0, g, 1]), float(err[0, g, 0]),
+                             float(margin[0, g, 0]), float(sv[0, g, 0]), collision_free=free,
+                             open_approach=not corridor[g],
+                             blocked_by=corridor[g] or ("" if free else "a scene body at every solution")))  # fmt: skip
     return out
 
 
@@ -128,7 +170,7 @@ def suggest_base_shift(robot, scene, opt: ReachOptions = ReachOptions()) -> tupl
     shifts = torch.tensor(list(itertools.product(axis, axis, axis)), dtype=torch.float64)  # [S, 3]
     cheap = ReachOptions(**{**opt.__dict__, "starts": max(4, opt.starts // 3)})
     with torch.no_grad():
-        reach, _, margin, _ = _solved(robot, scene, shifts, cheap)
+        reach, _, margin, _, _ = _solved(robot, scene, shifts, cheap)
     all_ok = reach.all(dim=-1).all(dim=-1)  # [S]
     if not bool(all_ok.any()):
         return None

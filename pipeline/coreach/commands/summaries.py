@@ -266,11 +266,14 @@ def print_import(console, s: dict) -> None:
 def print_reach(console, s: dict) -> None:
     """One row per goal: reachable, margin to the joint limits, manipulability; then the verdict."""
     table = Table(title=f"reach of {s['robot']} in scene {s['scene']}")
-    for col in ("goal", "approach pose", "fine motion end", "joint-limit margin (rad)", "manipulability (min sv)"):
+    for col in ("goal", "approach pose", "fine motion end", "clear of the bodies", "joint-limit margin (rad)",
+                "manipulability (min sv)"):
         table.add_column(col)
     for g in s["goals"]:
+        clear = "yes" if g.get("collision_free", True) and g.get("open_approach", True) else (
+            f"NO: {g['blocked_by']}" if g.get("open_approach", True) else f"NO: approach blocked by {g['blocked_by']}")
         table.add_row(g["goal"], "yes" if g["approach_reachable"] else f"NO ({g['approach_error_m'] * 100:.1f} cm off)",
-                      "yes" if g["fine_reachable"] else "NO", f"{g['limit_margin_rad']:.2f}",
+                      "yes" if g["fine_reachable"] else "NO", clear, f"{g['limit_margin_rad']:.2f}",
                       f"{g['manipulability']:.3f}")  # fmt: skip
     console.print(table)
     if s["marginal"]:

@@ -31,10 +31,13 @@ class ArmWorld:
               person: list[Primitive], settings: SeparationSettings) -> ArmWorld:  # fmt: skip
         return cls(chain, links, centres, World(list(furniture), list(person), radii, settings, self_pairs))
 
-    def clear(self, geo: Geometry, lookahead: float) -> np.ndarray:
-        """[...] bool: every pair at or beyond its protective distance (numpy Geometry)."""
-        d_p, _ = self.world.rows(lookahead, np, np.zeros(0))
-        return (np.asarray(geo.d) >= d_p).all(axis=-1)
+    def clear(self, geo: Geometry) -> np.ndarray:
+        """[...] bool: every sphere at or beyond its protective distance (the clearance from furniture and
+        between links, the keep-out distance from the person) in a numpy Geometry."""
+        s = self.world.settings
+        limit = np.where(self.world.is_person, s.keep_out, s.clearance)
+        ok = (np.asarray(geo.body_d) >= limit).all(axis=(-2, -1))
+        return ok & (np.asarray(geo.self_d) >= s.clearance).all(axis=-1)
 
     def spheres(self, q, frames=None, jacobian: bool = True):
         """Sphere centres [..., S, 3] and their linear Jacobians [..., S, 3, n] (None without `jacobian`) at
