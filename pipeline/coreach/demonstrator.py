@@ -27,6 +27,7 @@ from coreach.control.safety_filter import SafetyLimits
 from coreach.control.servo import dls_step, servo_twist
 from coreach.protocols import Robot
 from coreach.scenario import Layout, Scenario, load_scenario
+from coreach.detour import detour_points, null_space_push
 from coreach.world import arm_world, check_episodes_clear
 
 __all__ = ["dls_step", "scale_to_speed_limits", "clamp_to_joint_limits", "Rollout", "rollout", "generate", "completed_mask",
@@ -110,7 +111,7 @@ def expert_twist(pos: Tensor, rot: Tensor, target: Tensor, target_rot: Tensor, k
 
 def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, damping: float,
                   noise: Tensor | None = None, limits: SafetyLimits | None = None,
-                  separation=None) -> Tensor:  # fmt: skip
+                  separation=None, push: Tensor | None = None) -> Tensor:  # fmt: skip
     """Joint velocity [B, n] for a twist: damped least squares, plus `noise` [B, n] (rad/s) when given, then
     the shared safety filter (joint look-ahead over dt, joint and tool speed caps; `limits` defaults to the
     robot's with the default tool speed cap), the filter vetting and the runtime apply. Shared by `rollout`
@@ -118,6 +119,8 @@ def expert_action(robot: Robot, q: Tensor, J: Tensor, twist: Tensor, dt: float, 
     f64 = torch.float64
     J = J.to(f64)
     qd = dls_step(J, twist.to(f64), damping)
+    if push is not None:
+        qd = qd + push
     if noise is not None:
         qd = qd + noise
     limits = SafetyLimits.for_robot(robot) if limits is None else limits
@@ -205,6 +208,10 @@ def rollout(
             q = torch.where(clear[:, None], q, robot.q_home.to(f64))
     else:
         q = robot.q_home.to(f64).expand(E, n).clone()
+    # around furniture: a detour point for the tool where the straight way to the approach point is blocked
+    detour = detour_points(world, robot.fk(q)[0].to(f64), p_app)  # [E, 2, 3], nan = none
+    n_detour = (~torch.isnan(detour[..., 0])).sum(dim=-1)  # [E] detour points to pass
+    detour_next = torch.zeros(E, dtype=torch.long)  # [E] the next one
     rec_q = torch.zeros(E, T_max, n, dtype=f64)
     rec_qd = torch.zeros(E, T_max, n, dtype=f64)
     rec_pos = torch.zeros(E, T_max, 3, dtype=f64)
@@ -239,14 +246,23 @@ def rollout(
 
             target = torch.where(phase.unsqueeze(-1), p_end[idx], p_app[idx])
             target = torch.where(heading_via[:, None], p_via[idx], target)
+            # a detour point is passed once the tool is within 3 cm of it (then the next, then the approach point)
+            nxt = detour[idx, detour_next[idx].clamp(max=1)]  # [B, 3]
+            on_detour = (detour_next[idx] < n_detour[idx]) & ~phase & ~heading_via
+            passed = on_detour & ((nxt - pos).norm(dim=-1) < 0.03)
+            detour_next[idx[passed]] += 1
+            nxt = detour[idx, detour_next[idx].clamp(max=1)]
+            on_detour = (detour_next[idx] < n_detour[idx]) & ~phase & ~heading_via
+            target = torch.where(on_detour[:, None], nxt, target)
             target_rot = torch.where(heading_via[:, None, None], R_via[idx], R_app[idx])
             twist = expert_twist(pos, rot, target, target_rot, k_p, k_r, v_max, w_max)
             J = robot.jacobian(qa).to(f64)  # [B, 6, n]
             sep = None if world is None else world.separation(qa)
-            qd = expert_action(robot, qa, J, twist, dt, damping, noise * qd_max * noise_draw[keep], None, sep)
+            push = None if world is None else null_space_push(world, qa, J, damping)
+            qd = expert_action(robot, qa, J, twist, dt, damping, noise * qd_max * noise_draw[keep], None, sep, push)
             # label_clean: the noise moves the arm off the expert's path, the recorded label is the expert's
             # own correction from there (noise injection, the published DART method)
-            label = expert_action(robot, qa, J, twist, dt, damping, None, None, sep) if label_clean else qd
+            label = expert_action(robot, qa, J, twist, dt, damping, None, None, sep, push) if label_clean else qd
 
             sel = ~heading_via | bool(record_via)  # heading elsewhere first is recorded only with record_via
             record = idx[sel]
