@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from coreach.control.arrays import NUMPY, namespace
-from coreach.control.separation import cutoff_for, measure, scale_for_separation
+from coreach.control.separation import cutoff_for, measure, scale_for_separation, sphere_speeds
 
 # Reduced speed for collaborative operation in ISO 10218-1 (from memory: 250 mm/s).
 DEFAULT_TCP_SPEED_MAX = 0.25
@@ -144,8 +144,9 @@ class SafetyLimits:
         lead = centres.shape[:-2]
         shape = qd.shape
         flat = xp.reshape(qd, (*lead, -1, shape[-1]))  # [..., B, n]: every command at one state
-        geo = measure(world, centres, jac, cutoff_for(world, jac, flat, horizon))
-        scale = scale_for_separation(world, geo, flat, horizon)  # [..., B]
+        vmax = sphere_speeds(jac, flat)  # [..., S]
+        geo = measure(world, centres, jac, cutoff_for(world, vmax, horizon))
+        scale = scale_for_separation(world, geo, flat, horizon, vmax)  # [..., B]
         out = xp.reshape(flat * scale[..., None], shape)
         return out, xp.reshape(scale < 1.0, shape[:-1])
 

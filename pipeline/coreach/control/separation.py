@@ -39,7 +39,7 @@ import numpy as np
 from coreach.control.arrays import namespace
 from coreach.control.bodies import PackedBodies, pack, point_distances, sphere_pair_distances, Primitive
 
-__all__ = ["SeparationSettings", "World", "Geometry", "measure", "cutoff_for", "pair_rates", "scale_for_separation", "sphere_speed"]
+__all__ = ["SeparationSettings", "World", "Geometry", "measure", "cutoff_for", "sphere_speeds", "scale_for_separation"]
 
 
 @dataclass(frozen=True)
@@ -190,43 +190,51 @@ def measure(world: World, centres, jac=None, cutoff=None) -> Geometry:
     return Geometry(body_d, self_d, xp.concat(rows_d, axis=-1), xp.concat(rows_g, axis=-2))
 
 
-def cutoff_for(world: World, jac, qd, lookahead: float, floor=None):
-    """Per (sphere, body) [..., S, O]: the distance beyond which the pair cannot bind any command qd
-    [..., B, n]: d_p + tau * (the sphere's fastest speed over the commands); a pair farther away closes at
-    most at that speed, which its allowance already covers. `floor` [O] raises it (exact distances wanted
-    up to there, e.g. for the reduced-speed zone's measurements)."""
+def sphere_speeds(jac, qd):
+    """Fastest speed of each sphere centre over the commands: jac [..., S, 3, n], qd [..., B, n] -> [..., S]."""
     xp = namespace(jac, qd)
-    v = jac[..., None, :, :, :] @ qd[..., :, None, :, None]  # [..., B, S, 3, 1]
-    vmax = xp.max(xp.sqrt(xp.sum(v[..., 0] ** 2, axis=-1)), axis=-2)  # [..., S]
-    d_p, tau = world.rows(lookahead, xp, qd)
+    S, n = jac.shape[-3], jac.shape[-1]
+    v = xp.reshape(jac, (*jac.shape[:-3], S * 3, n)) @ xp.matrix_transpose(qd)  # [..., S*3, B]: one product
+    v = xp.reshape(v, (*jac.shape[:-3], S, 3, qd.shape[-2]))
+    return xp.max(xp.sqrt(xp.sum(v * v, axis=-2)), axis=-1)
+
+
+def cutoff_for(world: World, vmax, lookahead: float, floor=None):
+    """Per (sphere, body) [..., S, O]: the distance beyond which the pair cannot bind a command whose spheres
+    move at most at vmax [..., S] (m/s, `sphere_speeds`): d_p + tau * vmax; a pair farther away closes at most
+    at that speed, which its allowance already covers. `floor` [O] raises it (exact distances wanted up to
+    there, e.g. for the reduced-speed zone's measurements)."""
+    xp = namespace(vmax)
+    d_p, tau = world.rows(lookahead, xp, vmax)
     O = len(world.bodies)
     cut = d_p[:O] + tau[:O] * vmax[..., None]
     if floor is not None:
-        cut = xp.maximum(cut, floor if type(qd) is np.ndarray else xp.asarray(floor, dtype=qd.dtype))
+        cut = xp.maximum(cut, floor if type(vmax) is np.ndarray else xp.asarray(floor, dtype=vmax.dtype))
     return cut
 
 
-def pair_rates(geo: Geometry, qd):
-    """Closing rates a = -g . qd [..., B, R] (m/s) for commands qd [..., B, n]."""
-    xp = namespace(qd)
-    return -(qd @ xp.matrix_transpose(geo.g))
-
-
-def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float):
+def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float, vmax=None):
     """The factor [..., B] in [0, 1] that makes every pair meet a <= max(d - d_p, 0) / tau, for commands
-    qd [..., B, n]. A pair that is not closing (a <= 0) never limits the command."""
+    qd [..., B, n]. A pair that is not closing (a <= 0) never limits the command. With vmax [..., S] (the
+    spheres' fastest speeds over the commands), rows that cannot bind any command (allowance >= the most the
+    pair can close: vmax of its sphere, or the sum of both spheres' for a self pair) are left out of the
+    product first; the factor is the same."""
     xp = namespace(qd)
     d_p, tau = world.rows(lookahead, xp, qd)
     allowed = xp.maximum(geo.d - d_p, 0.0) / tau  # [..., R]
-    a = pair_rates(geo, qd)  # [..., B, R]
+    g = geo.g
+    if vmax is not None:
+        S, O = geo.body_d.shape[-2], geo.body_d.shape[-1]
+        first, second = world._first, world._second
+        if type(qd) is not np.ndarray:
+            first, second = xp.asarray(first), xp.asarray(second)
+        per_body = xp.reshape(xp.broadcast_to(vmax[..., None], (*vmax.shape, O)), (*vmax.shape[:-1], S * O))
+        reach = xp.concat([per_body, vmax[..., first] + vmax[..., second]], axis=-1)  # [..., R] fastest closing
+        live = allowed < reach
+        cols = xp.nonzero(xp.any(xp.reshape(live, (-1, live.shape[-1])), axis=0))[0]
+        allowed, g = allowed[..., cols], g[..., cols, :]
+    a = -(qd @ xp.matrix_transpose(g))  # [..., B, R] closing rates
     allowed = allowed[..., None, :]
     over = a > allowed
     pair = xp.where(over, allowed / xp.where(over, a, 1.0), 1.0)
-    return xp.min(pair, axis=-1)
-
-
-def sphere_speed(jac, qd):
-    """Speed of every sphere centre [..., S] (m/s) for commands qd [..., n] (jac [..., S, 3, n])."""
-    xp = namespace(jac, qd)
-    v = xp.sum(jac * qd[..., None, None, :], axis=-1)
-    return xp.sqrt(xp.sum(v * v, axis=-1))
+    return xp.min(pair, axis=-1) if pair.shape[-1] else xp.ones(pair.shape[:-1], dtype=qd.dtype)
