@@ -11,6 +11,7 @@ import hashlib
 import json
 import math
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -37,6 +38,8 @@ SCREENSHOT = ROOT / "reports" / "testdrive.png"
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 GOALS = ["cup", "switch", "drawer", "bottle", "door", "book"]
 ARM_RGB = (0x4A, 0x5A, 0x70)  # the page's link colour
+FURNITURE_RGB = (0x8C, 0x84, 0x78)  # the page's furniture and person outline colours
+PERSON_RGB = (0x7A, 0x3F, 0xB0)
 
 
 def _need_browser():
@@ -55,8 +58,14 @@ def bundle(tmp_path_factory) -> Path:
 
     Six goals 0.15 m from the home tool position, one along each base axis: whichever way the untrained
     decoder moves the tool, some stick heads within 55 degrees of a goal (max cosine >= 1/sqrt(3)), and
-    the action map shows which.
+    the action map shows which. The shipped bedside-shelf scene's bodies go into safety.world through the
+    release's own helper, so the page draws the furniture and person a released bundle carries; the home
+    pose is clear of them (person 0.29 m, beyond the 0.23 m reduced-speed zone).
     """
+    from coreach.release.metadata import _world_section
+    from coreach.scenario import load_scenario
+    from coreach_plugins.robot.urdf_arm import UrdfArm
+
     torch.manual_seed(0)
     spec = ContextSpec(dof=7, n_goals=len(GOALS))
     policy = DecoderPolicy.build({"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
@@ -75,6 +84,7 @@ def bundle(tmp_path_factory) -> Path:
         "q_home": list(REACH7_HOME),
         "safety": {"workspace_min": [0.0, -0.6, 0.0], "workspace_max": [0.9, 0.6, 0.9]},
         "parity_n": 200,
+        "world": _world_section(UrdfArm(), load_scenario("bedside_shelf")),
     }
     return write_bundle(tmp_path_factory.mktemp("td") / "bundle", policy, shipped_urdf(), meta, {}, {"passed": True})
 
@@ -237,6 +247,10 @@ def test_screenshot_shows_the_arm(server, browser):
     SCREENSHOT.parent.mkdir(parents=True, exist_ok=True)
     page.screenshot(path=str(SCREENSHOT))
     box = page.locator("#view").bounding_box()
+    # where the page's own projection puts the person's sphere and capsule ends: [x, y, radius] in canvas pixels
+    circles = page.evaluate("""() => { const cam = camera();
+      return window.testdrive.bodies().person.flatMap(g =>
+        g.round.centres.map(c => screenBall(cam, c, g.round.r))); }""")
     page.close()
     from PIL import Image
 
@@ -247,6 +261,147 @@ def test_screenshot_shows_the_arm(server, browser):
     assert background.mean() < 0.98, "the 3D view is blank"
     arm = np.all(np.abs(view - np.array(ARM_RGB)) <= 6, axis=-1)
     assert arm.sum() > 500, f"only {arm.sum()} arm-coloured pixels"
+    furniture = np.all(np.abs(view - np.array(FURNITURE_RGB)) <= 10, axis=-1)
+    assert furniture.sum() > 300, f"only {furniture.sum()} furniture-coloured pixels"
+    # a person body's end wholly inside the view: its outline (at least the far half of the circle, for a
+    # capsule) is drawn in the person's colour
+    person = np.all(np.abs(view - np.array(PERSON_RGB)) <= 10, axis=-1)
+    h, w = person.shape
+    yy, xx = np.mgrid[0:h, 0:w]
+    inside = [(x, y, r) for x, y, r in circles if r < x < w - r and r < y < h - r]
+    assert inside, f"no person body wholly in the view: {circles}"
+    x, y, r = inside[0]
+    ring = np.abs(np.hypot(xx - x, yy - y) - r) <= 3
+    assert person[ring].sum() > r, f"person body outline missing at ({x:.0f}, {y:.0f}) r {r:.0f}"
+
+
+def test_page_draws_every_scene_body_where_the_session_has_it(server, browser, bundle):
+    """One outline per body of the manifest's safety.world and two zone outlines per person body; the page's
+    own roll-pitch-yaw math puts box corners and capsule/cylinder ends where the runtime's distance code has
+    them (the shipped scene has rotated capsules), and the zones grow the person's radii by the keep-out and
+    reduced-speed distances."""
+    from coreach.control.bodies import pack
+    from coreach.scene_bodies import world_from_json
+
+    url, _, _ = server
+    manifest = json.loads((bundle / "manifest.json").read_text())
+    obstacles, person, settings, _ = world_from_json(manifest["safety"]["world"], "safety.world")
+    assert obstacles and person
+    page = _open(browser, url)
+    page.wait_for_function("document.querySelector('#view').dataset.bodies !== undefined")
+    assert int(page.get_attribute("#view", "data-bodies")) == len(obstacles) + len(person)
+    assert int(page.get_attribute("#view", "data-zones")) == 2 * len(person)
+    world = _get(url, "api/scene")["world"]
+    assert world["keep_out"] == pytest.approx(settings.keep_out)
+    assert world["reduced_zone"] == pytest.approx(settings.reduced_zone(manifest["safety"]["tcp_speed_max"]))
+    drawn = page.evaluate("window.testdrive.bodies()")
+    page.close()
+    bodies, packed = obstacles + person, pack(obstacles + person)
+    for k, (g, b) in enumerate(zip(drawn["furniture"] + drawn["person"], bodies, strict=True)):
+        R, c = packed.rot[k], packed.centre[k]
+        assert g["name"] == b.name
+        if b.shape == "box":
+            signs = np.array([[1 if i & 1 else -1, 1 if i & 2 else -1, 1 if i & 4 else -1] for i in range(8)])
+            np.testing.assert_allclose(g["corners"], c + (signs * np.array(b.size) / 2) @ R.T, atol=1e-9)
+        elif b.shape == "sphere":
+            np.testing.assert_allclose(g["round"]["centres"], [c], atol=1e-12)
+        else:
+            half = R[:, 2] * b.size[1] / 2
+            np.testing.assert_allclose(g["ends"], [c - half, c + half], atol=1e-9)
+    for key, grow in (("keepOut", world["keep_out"]), ("zone", world["reduced_zone"])):
+        for g, b in zip(drawn[key], person, strict=True):
+            assert g["round"]["r"] == pytest.approx(b.size[0] + grow)
+
+
+def _number(text: str) -> float:
+    return float(re.search(r"(-?[0-9]+\.[0-9]+) m", text).group(1))
+
+
+def test_separation_readout_shows_the_servers_numbers_and_warns_in_the_zones(server, browser, bundle):
+    url, _, _ = server
+    page = _open(browser, url)  # arm at home, no key held: the state stands still
+    page.wait_for_selector("#sep-person")
+    state = _get(url, "api/state")
+    sep = state["separation"]
+    # the server's numbers are the Session's own geometry at the state's q
+    from coreach.runtime.session import Session
+
+    arm = Session.open(bundle).arm
+    body_d = np.asarray(arm.geometry(np.array(state["q"]), grad=False).body_d)
+    n_f = len(arm.world.furniture)
+    assert sep["furniture"]["distance"] == pytest.approx(body_d[:, :n_f].min())
+    assert sep["person"]["distance"] == pytest.approx(body_d[:, n_f:].min())
+    for key in ("furniture", "person"):
+        text = page.inner_text(f"#sep-{key}")
+        assert _number(text) == pytest.approx(sep[key]["distance"], abs=5e-4 + 1e-9), text  # shown in mm
+        assert float(page.get_attribute(f"#sep-{key}", "data-distance")) == pytest.approx(sep[key]["distance"])
+        assert sep[key]["link"] in text and sep[key]["body"] in text
+    assert sep["person_zone"] == "clear" and page.get_attribute("#sep-person", "class") == ""
+    assert page.get_attribute("#sep-held", "data-held") == str(sep["held"]).lower()
+
+    def zone(route, name, distance):  # the server's answer with the person moved into a zone
+        response = route.fetch()
+        body = response.json()
+        body["separation"].update(person_zone=name, person={**body["separation"]["person"], "distance": distance})
+        route.fulfill(response=response, json=body)
+
+    page.route("**/api/input", lambda route: zone(route, "reduced", 0.2))
+    page.wait_for_selector("#sep-person.warn")
+    assert "reduced-speed zone" in page.inner_text("#sep-person") and _number(page.inner_text("#sep-person")) == 0.2
+    page.unroute_all(behavior="wait")  # a rewritten answer still in flight lands before the next rule
+    page.route("**/api/input", lambda route: zone(route, "keep_out", 0.1))
+    page.wait_for_selector("#sep-person.danger")
+    assert "KEEP-OUT" in page.inner_text("#sep-person")
+    page.unroute_all(behavior="ignoreErrors")  # a poll in flight at close must not fail a later test
+    page.close()
+
+
+def test_a_bundle_without_bodies_says_so(server, browser):
+    """The page as it is for a bundle whose manifest has no safety.world: the server sends null for both."""
+    url, _, _ = server
+
+    def without(route, key):
+        response = route.fetch()
+        route.fulfill(response=response, json={**response.json(), key: None})
+
+    page = browser.new_page(viewport={"width": 1280, "height": 800})
+    page.route("**/api/scene", lambda route: without(route, "world"))
+    page.route("**/api/input", lambda route: without(route, "separation"))
+    page.goto(url)
+    page.wait_for_function("window.testdrive && window.testdrive.state() !== null")
+    page.wait_for_function("document.querySelector('#view').dataset.bodies === '0'")
+    assert page.inner_text("#separation") == "no scene bodies in this bundle"
+    assert page.get_attribute("#view", "data-zones") == "0"
+    page.unroute_all(behavior="ignoreErrors")  # a poll in flight at close must not fail a later test
+    page.close()
+
+
+def test_drive_separation_follows_the_sessions_world(bundle, tmp_path):
+    """In process: the person's head moved in front of the tool (Session.set_obstacles) passes through the
+    reduced-speed zone into the keep-out zone; the zone label always matches the reported distance, and the
+    scene the page fetches carries the moved pose. Without bodies both views are null."""
+    from coreach.runtime.session import Session
+    from coreach.testdrive.sim import Drive
+
+    drive = Drive(Session.open(bundle), record_dir=tmp_path, clock=lambda: 0.0)
+    s, cap = drive.session.arm.world.settings, drive.manifest.tcp_speed_max
+    keep_out, zone = s.keep_out, s.reduced_zone(cap)
+    tool = drive.session.chain.fk(drive.q)[0]
+    seen = set()
+    for gap in np.linspace(0.45, 0.0, 19):
+        head = tool + np.array([0.11 + gap, 0.0, 0.0])  # head radius 0.11 m: its surface `gap` beyond the tool
+        drive.session.set_obstacles({"head": (head, np.zeros(3))})
+        sep = drive.state()["separation"]
+        d = sep["person"]["distance"]
+        want = "keep_out" if d < keep_out else "reduced" if d < zone else "clear"
+        assert sep["person_zone"] == want, (gap, d)
+        seen.add(want)
+    assert seen == {"clear", "reduced", "keep_out"}
+    assert sep["person"]["body"] == "head"
+    moved = next(b for b in drive.scene()["world"]["person"] if b["name"] == "head")
+    np.testing.assert_allclose(moved["xyz"], head)
+    drive.session.arm = None
+    assert drive.state()["separation"] is None and drive.scene()["world"] is None
 
 
 def test_a_recording_made_on_the_page_loads_as_episodes(server, browser, bundle):
@@ -322,7 +477,11 @@ def test_gamepad_stub_drives_the_arm_and_its_buttons_record(server, browser):
     page.evaluate("window.__pad.buttons[0] = {pressed: false, value: 0}")
     page.evaluate("window.__pad.axes = [0.1, 0.1, 0.1, 0.1]")  # inside the deadband: the page sends zeros
     page.wait_for_function("window.testdrive.state().stick_received.every(v => v === 0)")
-    assert not any(_get(url, "api/state")["qd"])
+    # the zeros may have arrived after the latest control step: the next one (20 ms on) stops the arm
+    deadline = time.monotonic() + 0.5
+    while any((st := _get(url, "api/state"))["qd"]) and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert not any(st["qd"])
     _post(url, "api/command", {"action": "record", "on": False})
     page.close()
 

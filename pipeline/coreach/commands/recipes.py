@@ -350,6 +350,8 @@ def _cell(summary: dict, vet_run: str | None) -> dict:
            "per_goal": per_goal(summary), "vetting_run": vet_run}  # fmt: skip
     if summary.get("diagnosis") is not None:
         out["diagnosis"] = without_episodes(summary["diagnosis"])  # cause shares, per goal and cell, advice
+    if summary.get("separation"):
+        out["separation"] = summary["separation"]["all"]  # contacts, keep-out, closest approaches, held share
     return out
 
 
@@ -474,6 +476,33 @@ LEGEND = ("Simulated operators in simulation. Per seed and baseline: point value
           "horizon (the latest switch of the suite).")  # fmt: skip
 
 
+SEPARATION_LEGEND = ("Separation, per suite: steps with a link touching furniture or another link / steps with a "
+                     "link inside the person's keep-out zone / closest link to furniture (m) / closest link to the "
+                     "person (m) / share of steps the filter's separation step scaled the command.")
+
+
+def separation_cell(cell: dict | None) -> str:
+    sep = (cell or {}).get("separation")
+    if not sep:
+        return "–"
+    return (f"{sep['contact_steps']} / {sep['keep_out_steps']} / {_num3(sep['min_furniture_m'])} / "
+            f"{_num3(sep['min_person_m'])} / {100 * sep['held_share']:.1f}%")
+
+
+def _num3(v) -> str:
+    return f"{v:.3f}" if _finite(v) else "–"
+
+
+def separation_rows(result: dict) -> list[tuple[str, str, list[str]]]:
+    """(recipe, seed column, one cell per suite) for every seed and baseline row that has separation figures."""
+    out = []
+    for row in result["rows"]:
+        cells = [separation_cell(row["suites"].get(s)) for s in result["suites"]]
+        if any(c != "–" for c in cells):
+            out.append((row["recipe"], "baseline" if row["kind"] == "baseline" else str(row["seed"]), cells))
+    return out
+
+
 def markdown(result: dict) -> str:
     """README-ready: the command that reproduces the table, the date, the table and how to read it."""
     esc = lambda s: str(s).replace("|", "\\|")  # noqa: E731
@@ -485,6 +514,12 @@ def markdown(result: dict) -> str:
     for recipe, seed, cells, _ in table_rows(result):
         lines.append("| " + " | ".join(esc(x) for x in (recipe, seed, *cells)) + " |")
     lines += ["", LEGEND]
+    sep = separation_rows(result)
+    if sep:
+        lines += ["", "| recipe | seed | " + " | ".join(f"{esc(s)} separation" for s in result["suites"]) + " |",
+                  "|---|---|" + "---:|" * len(result["suites"])]
+        lines += ["| " + " | ".join(esc(x) for x in (recipe, seed, *cells)) + " |" for recipe, seed, cells in sep]
+        lines += ["", SEPARATION_LEGEND]
     if result.get("parent_run"):
         lines += ["", f"Run ids of every training and vetting: results.json, MLflow run {result['parent_run']}."]
     return "\n".join(lines) + "\n"

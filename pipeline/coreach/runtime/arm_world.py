@@ -57,8 +57,8 @@ class ArmWorld:
         """Distances (and gradients, with `grad`) at q: numpy for a numpy q, torch (float64 kinematics) for a
         torch q."""
         if type(q) is np.ndarray or isinstance(q, (list, tuple)):
-            centres, jac = self.spheres(q, frames)
-            return measure(self.world, centres, jac if grad else None)
+            centres, jac = self.spheres(q, frames, jacobian=grad)
+            return measure(self.world, centres, jac)
         xp = namespace(q)
         centres, jac = self.spheres(np.asarray(q.detach().cpu().numpy(), dtype=np.float64))
         return measure(self.world, xp.asarray(centres, dtype=q.dtype), xp.asarray(jac, dtype=q.dtype))

@@ -207,11 +207,32 @@ class Drive:
             "workspace_max": m.workspace_max.tolist(), "stick_dim": m.latent_dim,
             "stick_box": [m.stick_low, m.stick_high], "deadband": m.deadband, "rate_hz": 1.0 / self.dt,
             "watchdog_timeout_s": m.watchdog_timeout_s, "position_tol": self.position_tol,
-            "orientation_tol_deg": math.degrees(self.orientation_tol),
+            "orientation_tol_deg": math.degrees(self.orientation_tol), "world": self._bodies(),
         }  # fmt: skip
 
+    def _bodies(self) -> dict | None:
+        """The scene's bodies for the page to draw (None without bodies): per body its shape, size as the
+        manifest writes it (box full lengths; cylinder/capsule radius and length along the body's z; sphere
+        radius), centre xyz (m) and URDF roll-pitch-yaw `rpy` in rad, world frame, taken from the Session's
+        own World so the drawing is what the filter keeps clear of. keep_out and reduced_zone are distances
+        from the person's surfaces, the quantity `body_d` measures; the zone edge uses the bundle's tool speed
+        cap, the speed the separation step compares the allowed approach speed against."""
+        arm = self.session.arm
+        if arm is None:
+            return None
+        w = arm.world
+
+        def body(b) -> dict:
+            return {"name": b.name, "shape": b.shape, "size": list(b.size), "xyz": list(b.xyz), "rpy": list(b.rpy)}
+
+        s = w.settings
+        return {"furniture": [body(b) for b in w.furniture], "person": [body(b) for b in w.person],
+                "clearance": s.clearance, "keep_out": s.keep_out,
+                "reduced_zone": s.reduced_zone(self.manifest.tcp_speed_max),
+                "tcp_speed_max": self.manifest.tcp_speed_max}  # fmt: skip
+
     def state(self) -> dict:
-        """What the page draws: arm, path, belief, filters, faults, progress, and the action map."""
+        """What the page draws: arm, path, belief, filters, faults, progress, the action map and separation."""
         with self._lock:
             now, q, info = self.now(), self.q.copy(), self.session.last
             belief, fault, stick, age = self.session.belief, self.session.fault, list(self.stick), now - self.stick_time
@@ -226,6 +247,7 @@ class Drive:
             }  # fmt: skip
         filters = {k: bool(getattr(info, k, False)) for k in FLAGS} if info is not None else {}
         filters["workspace_limited"] = info is not None and float(getattr(info, "workspace_scale", 1.0)) < 1.0
+        filters["separation_held"] = info is not None and bool(getattr(info, "separation_held", False))
         out["filters"] = filters
         out["stick_used"] = np.asarray(info.stick).tolist() if info is not None else [0.0] * len(stick)
         out["stopped_by_watchdog"] = bool(filters.get("stale"))
@@ -233,6 +255,33 @@ class Drive:
         pos, rot = self.session.chain.fk(q)
         out["links"] = [[p.tolist(), r.tolist()] for p, r in frames] + [[pos.tolist(), rot.tolist()]]
         out["action_map"] = self._action_map(q, pos, rot, belief)
+        out["separation"] = self._separation(q, filters["separation_held"])
+        return out
+
+    def _separation(self, q: np.ndarray, held: bool) -> dict | None:
+        """Closest approach at q of the arm's sphere model to the furniture and to the person (None without
+        bodies): the smallest sphere-surface-to-body distance (m) and which link and body it is between,
+        measured by the Session's own ArmWorld so the page shows what the separation step sees. `person_zone`
+        says where that person distance lies: "keep_out", "reduced" (inside the reduced-speed zone) or "clear".
+        """
+        arm = self.session.arm
+        if arm is None:
+            return None
+        w = arm.world
+        body_d = np.asarray(arm.geometry(q, grad=False).body_d)  # [S, O]: furniture columns, then the person's
+        n_f = len(w.furniture)
+        out: dict = {"held": bool(held)}
+        for key, first, last in (("furniture", 0, n_f), ("person", n_f, body_d.shape[1])):
+            d = body_d[:, first:last]
+            if not d.size:
+                out[key] = None
+                continue
+            i, o = np.unravel_index(int(np.argmin(d)), d.shape)
+            out[key] = {"distance": float(d[i, o]), "link": arm.links[i], "body": w.body_names[first + o]}
+        s = w.settings
+        near = out["person"]["distance"] if out["person"] is not None else math.inf
+        zone = s.reduced_zone(self.manifest.tcp_speed_max)
+        out["person_zone"] = "keep_out" if near < s.keep_out else "reduced" if near < zone else "clear"
         return out
 
     def _action_map(self, q, pos, rot, belief) -> dict:

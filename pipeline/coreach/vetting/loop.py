@@ -81,6 +81,7 @@ def _separations(world, centres: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor
     links [E], and per sphere to the person [E, S]); inf where there is nothing to measure."""
     w = world.world
     floor = torch.as_tensor(
+        # exact up to past the reduced-speed zone of any tool speed cap up to 1 m/s
         [w.settings.reduced_zone(1.0) + 0.05 if p else _EXACT_FURNITURE for p in w.is_person], dtype=centres.dtype)
     geo = measure(w, centres, None, floor)
     inf = torch.tensor(math.inf, dtype=centres.dtype)
@@ -300,14 +301,15 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     )  # fmt: skip
 
 
-def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: dict, world=None) -> RolloutRecord:
+def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: dict, world=None,
+            speed_cap: float = 0.25) -> RolloutRecord:  # fmt: skip
     sep = out.pop("separation")
     extras = {
         # [E, T+1] m: the closest link sphere to furniture, to the person, and between non-adjacent links
         # (inf without bodies; beyond 10 cm from furniture a lower bound)
         "sep_furniture": sep[0], "sep_person": sep[1], "sep_self": sep[2],
         "person_excess": out.pop("person_excess"),  # [E, T] a sphere approached the person faster than allowed
-        "world": None if world is None else world_summary(world),
+        "world": None if world is None else world_summary(world, speed_cap),
         "q": out.pop("q"),  # [E, T+1, n] joint positions
         "qd": out.pop("qd"),  # [E, T, n] applied joint velocities (after limits; zero when holding)
         "stick": out.pop("stick"),  # [E, T, 2] stick the operator sent (before the filter); nan when not driving
@@ -340,11 +342,12 @@ def _world(robot, suite: Suite, limits, world):
     return world
 
 
-def world_summary(world) -> dict:
-    """What metrics and reports need to know of the world: names, zones, clearance (plain values)."""
+def world_summary(world, speed_cap: float) -> dict:
+    """What metrics and reports need to know of the world: names, zones (the reduced-speed zone for the tool
+    speed cap `speed_cap`), clearance (plain values)."""
     s = world.world.settings
     return {"furniture": [b.name for b in world.world.furniture], "person": [b.name for b in world.world.person],
-            "clearance": s.clearance, "keep_out": s.keep_out, "reduced_zone": s.reduced_zone(0.25),
+            "clearance": s.clearance, "keep_out": s.keep_out, "reduced_zone": s.reduced_zone(speed_cap),
             "excess_tol": EXCESS_TOL}  # fmt: skip
 
 
@@ -364,7 +367,7 @@ def rollout(robot, interface, operator, suite: Suite, belief_model, limits, gene
     with torch.no_grad():
         out = _simulate(robot, interface, operator, suite, belief_model, limits, plan, generator, progress,
                         stick_gain_every, dtype, world)  # fmt: skip
-    return _record(robot, interface, operator, suite, plan, out, world)
+    return _record(robot, interface, operator, suite, plan, out, world, limits.tcp_speed_max)
 
 
 def rollout_per_episode(robot, interface, operator, suite: Suite, belief_model, limits,
@@ -384,4 +387,4 @@ def rollout_per_episode(robot, interface, operator, suite: Suite, belief_model, 
             parts.append(_simulate(robot, interface, operator, suite, belief_model, limits, plan.select([e]),
                                    generator, step, stick_gain_every, dtype, world))  # fmt: skip
     out = {k: torch.cat([p[k] for p in parts], dim=1 if k == "separation" else 0) for k in parts[0]}
-    return _record(robot, interface, operator, suite, plan, out, world)
+    return _record(robot, interface, operator, suite, plan, out, world, limits.tcp_speed_max)
