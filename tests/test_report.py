@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import html
 import io
 import math
 import re
@@ -13,6 +14,7 @@ import torch
 from rich.console import Console
 
 from coreach.context import ContextSpec, build_context
+from coreach.control.safety_filter import SEPARATION
 from coreach.errors import ConfigError
 from coreach_plugins.interface.decoder import DecoderInterface
 from coreach_plugins.interface.direct import DirectControl
@@ -21,8 +23,11 @@ from coreach.policy import DecoderPolicy
 from coreach.scenario import load_scenario
 from coreach.vetting.metrics import summarise
 from coreach.vetting.records import LoopState, RolloutRecord
+from coreach.vetting.separation_metrics import FIGURES
 from coreach.vetting.report import (
+    TERMINAL_SEPARATION,
     plot_action_maps,
+    separation_tables,
     standard_plots,
     state_from_record,
     states_at_confidence,
@@ -146,3 +151,61 @@ def test_action_map_from_a_visited_state_of_a_record(state, tmp_path):
     # The rebuilt context is the one the loop would have built (same function, same inputs).
     torch.testing.assert_close(st.context, state.context[1:2])
     read_png(plot_action_maps(DirectControl(), st, tmp_path / "map.png", goal=0))
+
+
+# ---- separation from the scene's bodies ----
+
+WORLD = {"furniture": ["shelf", "bed"], "person": ["head"], "clearance": 0.02, "keep_out": 0.18, "reduced_zone": 0.23,
+         "excess_tol": 0.01}
+
+
+def record_with_bodies(name: str, seed: int) -> RolloutRecord:
+    """The random record above with constructed separation extras: episode 2 touches furniture for one step
+    (4 mm deep), episode 4 (final goal b) spends the whole horizon in the reduced-speed zone and 3 steps in the
+    keep-out zone, the separation filter scales episode 1's first 10 commands."""
+    rec = record(name, seed)
+    E, T = rec.limit_scaled.shape
+    sep_f = torch.full((E, T + 1), 0.3, dtype=torch.float64)
+    sep_f[2, 5] = -0.004
+    sep_p = torch.full((E, T + 1), 0.5, dtype=torch.float64)
+    sep_p[4] = 0.2
+    sep_p[4, 7:10] = 0.15
+    limits = torch.zeros(E, T, dtype=torch.uint8)
+    limits[1, :10] = SEPARATION
+    rec.extras = {"sep_furniture": sep_f, "sep_person": sep_p, "sep_self": torch.full((E, T + 1), 0.06),
+                  "person_excess": torch.zeros(E, T, dtype=torch.bool), "limits": limits, "world": WORLD}  # fmt: skip
+    return rec
+
+
+def test_separation_tables_and_report_section(tmp_path):
+    s = {"cvae": summarise(record_with_bodies("cvae", 0)), "direct": summarise(record("direct", 1))}
+    tables = separation_tables(s)
+    assert [t.title for t in tables] == ["separation from the scene's bodies (link surfaces; m)",
+                                         "separation per final goal"]
+    assert [t.row_count for t in tables] == [1, 3]  # only the record with bodies; its 3 final goals
+    console = Console(record=True, width=400)
+    for t in tables:
+        console.print(t)
+    text = console.export_text()
+    for key in TERMINAL_SEPARATION:
+        assert FIGURES[key] in text
+    # rows by their first two cells: interface/closest furniture in the first table, interface/goal in the second
+    rows = {ln.split("│")[1].strip() + "/" + ln.split("│")[2].strip(): [c.strip() for c in ln.split("│")[1:-1]]
+            for ln in text.splitlines() if ln.startswith("│")}  # fmt: skip
+    held = f"{10 / (30 * 40):.3f}"
+    # closest furniture, closest person, contact steps, keep-out steps, zone time, excess steps, held share
+    assert rows["cvae/-0.004"] == ["cvae", "-0.004", "0.150", "1", "3", f"{41 * 0.1 / 30:.1f}", "0", held]
+    # final goal b: episodes 1, 4, 7, ... (goal e % 3), so both episode 1's held steps and episode 4's zone time
+    assert rows["cvae/b"] == ["cvae", "b", "0.300", "0.150", "0", "3", f"{41 * 0.1 / 10:.1f}", "0",
+                              f"{10 / (10 * 40):.3f}"]
+    assert rows["cvae/a"][2:] == ["0.300", "0.500", "0", "0", "0.0", "0", "0.000"]
+    assert rows["cvae/c"][2:5] == ["-0.004", "0.500", "1"]  # episode 2's goal: 2 % 3
+
+    page = write_report(s, [], tmp_path, "unit", {}).read_text(encoding="utf-8")
+    assert "Separation from the scene" in page and "keep-out distance of 18 cm" in page
+    assert "at least 2 cm from furniture" in page and "within 23 cm of the person" in page
+    for label in FIGURES.values():
+        assert html.escape(label) in page
+    assert "<td>-0.004</td>" in page and "<td>shelf" not in page  # figures in cells, names only in the words
+    no_bodies = write_report({"direct": s["direct"]}, [], tmp_path / "plain", "unit", {}).read_text(encoding="utf-8")
+    assert "Separation" not in no_bodies and separation_tables({"direct": s["direct"]}) == []

@@ -113,11 +113,15 @@ def mlflow_hint() -> str:
 
 
 def print_vetting(console, result: dict) -> None:
-    from coreach.vetting.report import terminal_table
+    from coreach.vetting.report import separation_tables, terminal_table
 
     console.print(terminal_table(result["summaries"]))
+    for table in separation_tables(result["summaries"]):
+        console.print(table)
     print_diagnosis(console, result["summaries"])
     console.print(f"report: {result['report']}")
+    if result.get("trajectories"):
+        console.print(f"joint trajectories: {result['trajectories']}", markup=False)
     if result.get("vet_runs"):
         console.print("vetting runs in MLflow: " + ", ".join(f"{k}={v}" for k, v in result["vet_runs"].items()))
 

@@ -139,19 +139,23 @@ def separation_gates(suite: str, sep: dict | None, th: Thresholds) -> list[GateR
     def worst(key: str, low: bool = False) -> str:
         if not per_goal:
             return ""
-        pick = (min if low else max)(per_goal, key=lambda g: per_goal[g][key])
-        return f"worst goal {pick}: {per_goal[pick][key]:.4g}"
+        pick = (min if low else max)(per_goal, key=lambda g: metres(per_goal[g][key]))
+        return f"worst goal {pick}: {metres(per_goal[pick][key]):.4g}"
 
-    closest = min(a["min_furniture_m"], a["min_self_m"])
+    def metres(v):
+        return math.inf if v is None else v
+
+    closest = min(metres(a["min_furniture_m"]), metres(a["min_self_m"]))
     return [
         _check(f"contacts[{suite}]", "steps with a link touching furniture or another link", a["contact_steps"],
                th.max_contacts, "<=", f"{a['contact_episodes']} of {a['episodes']} episodes; {worst('contact_steps')}"),
         _check(f"keep_out[{suite}]", "steps with a link inside the person's keep-out zone "
                f"({sep['world']['keep_out']:.3f} m)", a["keep_out_steps"], th.max_keep_out, "<=",
-               f"closest link to the person {a['min_person_m']:.3f} m; {worst('keep_out_steps')}"),
+               f"closest link to the person {metres(a['min_person_m']):.3f} m; {worst('keep_out_steps')}"),
         _check(f"separation[{suite}]", "closest link to furniture or to another link (m)",
                closest if math.isfinite(closest) else 1.0, th.min_separation_m, ">=",
-               f"furniture {a['min_furniture_m']:.4f} m, links {a['min_self_m']:.4f} m; {worst('min_furniture_m', True)}"),
+               f"furniture {metres(a['min_furniture_m']):.4f} m, links {metres(a['min_self_m']):.4f} m; "
+               f"{worst('min_furniture_m', True)}"),
     ]  # fmt: skip
 
 

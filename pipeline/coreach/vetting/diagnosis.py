@@ -6,13 +6,23 @@ order, the first rule that holds winning:
                  steps (a speed cap only shortens a command, so it alone is no cause: it shows as slow);
 2. progressing   the distance to the operator's current waypoint fell by at least `progress_m`, or the
                  approach pose was first reached inside the window: the horizon ran out, not the way;
-3. no_way        on more than `no_way_share` of the window's steps no candidate stick brought the tool
+3. pressed       the separation step of the safety filter scaled the applied command on at least
+                 `separation_held_share` of the window's steps, and on at least that share of the window's
+                 states the closest link to furniture or between two links was within the scene's clearance
+                 plus `pressed_margin_m`: the arm ends pushed against a body;
+4. separation_held  the separation step scaled the command on at least `separation_held_share` of the
+                 window's steps, the arm not pressed against furniture (held short of the person's zone, say);
+5. no_way        on more than `no_way_share` of the window's steps no candidate stick brought the tool
                  closer to the final goal's approach point: the decoder offers no way there from here;
-4. stuck         the tool moved slower than `stuck_speed` on average;
-5. oscillating   the tool's path was `oscillation_ratio` times longer than its net displacement;
-6. otherwise the furthest stage reached on the final goal: fine_motion (approach pose reached, fine motion
+6. stuck         the tool moved slower than `stuck_speed` on average;
+7. oscillating   the tool's path was `oscillation_ratio` times longer than its net displacement;
+8. otherwise the furthest stage reached on the final goal: fine_motion (approach pose reached, fine motion
    not completed), orientation (approach position reached, never with the orientation), approach
    (never within the position tolerance of the approach point: the arm moves, but not there).
+Rules 3 and 4 come before no_way and stuck because a held arm looks like both (the loop's candidates go
+through the same filter, so none makes progress, and the tool barely moves): the hold is the better lead.
+They read the loop's separation extras (`limits` with the SEPARATION bit, `sep_furniture`, `sep_self`,
+`world`); a record without them (no bodies in the scene, older records) never meets them.
 The stage is kept beside the cause for every failed episode, so "stuck at the approach pose" and "stuck on
 the way" stay apart.
 
@@ -29,7 +39,7 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
-from coreach.vetting.loop import JOINT_LIMIT, SPEED_CAP
+from coreach.vetting.loop import JOINT_LIMIT, SEPARATION, SPEED_CAP
 from coreach.vetting.metrics import rate, visited_steps
 from coreach.vetting.records import RolloutRecord
 
@@ -41,6 +51,8 @@ __all__ = ["NEEDED", "CAUSES", "STAGES", "DiagnosisRules", "classify", "diagnose
 CAUSES = {
     "limited": "held back by a safety limit (joint position)",
     "progressing": "still progressing at the horizon",
+    "pressed": "pressed against an obstacle",
+    "separation_held": "held by the separation filter",
     "no_way": "no stick input leads toward the goal",
     "stuck": "stuck (no motion)",
     "oscillating": "circling or oscillating",
@@ -60,6 +72,13 @@ _FIXES = {
     "limited": ("data", "the arm ends pressed against a joint limit: the decoder drove it out of the region the "
                 "demonstrations cover and offers no way back (start spread, `coreach aggregate`); check the "
                 "goals' joint margins with the demonstrator"),
+    "pressed": ("data / scene", "the arm ends pushed against furniture (or one link against another) and the "
+                "separation filter holds it there: the decoded motion leads into the body rather than around it; "
+                "demonstrations that pass the body near where these episodes end, or a goal whose approach "
+                "runs too close to it (`coreach check-reach`)"),
+    "separation_held": ("scene / data", "the separation filter holds the arm short of its way, not against "
+                        "furniture: usually near the person's reduced-speed zone; the way to the goal passes "
+                        "close to the person (check the layout), or demonstrations that keep further from them"),
     "no_way": ("data / loss", "where these episodes end, every stick input leads away from the goal: the arm "
                "left the states the demonstrations cover (start spread, `coreach aggregate`), or the entropy "
                "term's weight is too low to keep the goal reachable"),
@@ -89,6 +108,13 @@ class DiagnosisRules:
     progress_m: float = 0.01  # m the distance to the waypoint must fall within the window
     oscillation_ratio: float = 3.0  # path length / net displacement in the window
     low_reach: float = 0.8  # a goal reachable from fewer visited states than this is flagged
+    # share of window steps on which the separation step scaled the command: "most steps" (chosen here, the
+    # same majority as the joint-limit rule)
+    separation_held_share: float = 0.5
+    # m above the scene's clearance within which a link counts as pressed against a body: the filter holds a
+    # pushing link at the clearance (within 0.3 mm for the shoulder driven into the shelf, in the tests); 5 mm
+    # leaves room for an arm that slides along the surface while pushing (chosen here)
+    pressed_margin_m: float = 0.005
 
     @classmethod
     def coerce(cls, value) -> DiagnosisRules:
@@ -116,7 +142,8 @@ def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict
     """Cause and stage of every episode ('' for successes), plus the window measures they were read from.
 
     Needs the loop's extras goal_targets [E, G, 2, 3], phase1_step [E] and position_tol (m); reads limits
-    [E, T] (which safety limit acted) and reach_goal [E, T, G] when present.
+    [E, T] (which safety limit acted), reach_goal [E, T, G], and sep_furniture, sep_self [E, T+1] with world
+    (the scene's clearance) when present.
     """
     rules = rules or DiagnosisRules()
     ex = record.extras
@@ -141,6 +168,7 @@ def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict
     joint = (bits & JOINT_LIMIT) > 0 if bits is not None else record.limit_scaled  # older records: any limit
     limited = (joint & in_win).sum(-1).to(torch.float64) / span
     capped = ((bits & SPEED_CAP) > 0 if bits is not None else torch.zeros_like(joint)) & in_win
+    held, near, closest = _separation_window(ex, in_win, span, rules)
     reach = ex.get("reach_goal")
     if reach is not None:
         toward = reach.gather(2, record.goal_final[:, None, None].expand(E, T, 1))[..., 0]  # [E, T]
@@ -171,6 +199,10 @@ def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict
             c = "limited"
         elif drop[e] >= rules.progress_m or reached_in_window[e]:
             c = "progressing"
+        elif held[e] >= rules.separation_held_share and near[e] >= rules.separation_held_share:
+            c = "pressed"
+        elif held[e] >= rules.separation_held_share:
+            c = "separation_held"
         elif no_way[e] > rules.no_way_share:
             c = "no_way"
         elif speed[e] < rules.stuck_speed:
@@ -183,7 +215,28 @@ def classify(record: RolloutRecord, rules: DiagnosisRules | None = None) -> dict
     return {"cause": cause, "stage": stage, "speed": speed, "limited_share": limited, "drop": drop,
             "no_way_share": no_way, "capped_share": capped.sum(-1).to(torch.float64) / span,
             "path_ratio": length / net.clamp_min(1e-9), "nearest": nearest,
-            "end_distance": dist[:, T]}  # fmt: skip
+            "end_distance": dist[:, T], "separation_held_share": held, "pressed_share": near,
+            "closest_body": closest}  # fmt: skip
+
+
+def _separation_window(ex: dict, in_win: Tensor, span: Tensor,
+                       rules: DiagnosisRules) -> tuple[Tensor, Tensor, Tensor]:  # fmt: skip
+    """Per episode over the window: (share of steps the separation step scaled the applied command, share of
+    states with a link within clearance + pressed_margin_m of furniture or of another link, closest such
+    distance in m). Zeros and inf for records without the separation extras, so their causes do not change."""
+    E, T = in_win.shape
+    zero = torch.zeros(E, dtype=torch.float64)
+    bits = ex.get("limits")
+    world = ex.get("world")
+    if bits is None or not world or ex.get("sep_furniture") is None or ex.get("sep_self") is None:
+        return zero, zero, torch.full((E,), math.inf, dtype=torch.float64)
+    held = (((bits.to(torch.int64) & SEPARATION) > 0) & in_win).sum(-1).to(torch.float64) / span
+    # states t+1 of the window's transitions: where each step of the window left the arm
+    body = torch.minimum(torch.as_tensor(ex["sep_furniture"]), torch.as_tensor(ex["sep_self"]))
+    body = body.to(torch.float64)[:, 1:]
+    near = ((body <= float(world["clearance"]) + rules.pressed_margin_m) & in_win).sum(-1).to(torch.float64) / span
+    closest = torch.where(in_win, body, math.inf).amin(-1)
+    return held, near, closest
 
 
 def _cell_name(fraction: float) -> str:
@@ -225,6 +278,10 @@ def diagnose(record: RolloutRecord, level: float = 0.95, rules=None) -> dict:
         "window_speed_m_s": float(out["speed"][e]), "limited_share": float(out["limited_share"][e]),
         "no_way_share": float(out["no_way_share"][e]), "capped_share": float(out["capped_share"][e]),
         "path_ratio": float(out["path_ratio"][e]),
+        "separation_held_share": float(out["separation_held_share"][e]),
+        "pressed_share": float(out["pressed_share"][e]),
+        # None where nothing was measured (no bodies): JSON has no infinity
+        "closest_body_m": float(out["closest_body"][e]) if math.isfinite(float(out["closest_body"][e])) else None,
     } for e in failed]  # fmt: skip
     result = {
         "rules": asdict(rules),

@@ -16,8 +16,11 @@ from coreach.vetting.report import (PLANES, _save, arrow_scale, draw_stick_panel
 
 __all__ = ["diagnosis_plots", "plot_failure_paths", "plot_failure_action_maps", "plot_reach_by_goal", "failure_end_episodes"]
 
-_COLOURS = dict(zip(CAUSES, ("tab:red", "tab:green", "tab:pink", "tab:gray", "tab:purple", "tab:orange", "tab:brown",
-                             "tab:blue")))  # fmt: skip
+# by name, so a cause added to CAUSES keeps the others' colours (and a missing one fails here, not in a plot)
+_COLOURS = {"limited": "tab:red", "progressing": "tab:green", "pressed": "black", "separation_held": "tab:olive",
+            "no_way": "tab:pink", "stuck": "tab:gray", "oscillating": "tab:purple", "fine_motion": "tab:orange",
+            "orientation": "tab:brown", "approach": "tab:blue"}  # fmt: skip
+assert set(_COLOURS) == set(CAUSES), "give every cause a colour"
 
 
 def plot_failure_paths(record, diag: dict, path: Path, label: str) -> Path:

@@ -18,6 +18,7 @@ from torch import Tensor
 from coreach.context import build_context
 from coreach.errors import ConfigError
 from coreach.vetting.records import LoopState
+from coreach.vetting.separation_metrics import FIGURES
 
 CAUTION = (
     "coreach is research software, not a medical device. Nothing in this report shows that an interface is "
@@ -281,6 +282,98 @@ def _rows(s: dict) -> list[tuple[str, str]]:
     ]  # fmt: skip
 
 
+# ---- separation from the scene's bodies (summary["separation"], coreach.vetting.separation_metrics) ----
+
+# the figures a terminal shows (the report shows every figure of FIGURES)
+TERMINAL_SEPARATION = ("min_furniture_m", "min_person_m", "contact_steps", "keep_out_steps", "zone_time_s",
+                       "excess_steps", "held_share")  # fmt: skip
+
+
+def fmt_separation(key: str, value) -> str:
+    """A separation figure as a table shows it: distances in m to the millimetre ("none" where there was nothing
+    to measure, e.g. no person in the scene), counts as integers, the zone time to 0.1 s, the share to 0.001."""
+    if key.endswith("_m") and (value is None or math.isinf(value)):
+        return "none"
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "–"
+    if key.endswith("_m"):
+        return f"{value:.3f}"
+    if key == "zone_time_s":
+        return f"{value:.1f}"
+    if key == "held_share":
+        return f"{value:.3f}"
+    return str(int(value))
+
+
+def separation_rows(summaries: dict[str, dict], keys, per_goal: bool = False) -> list[list[str]]:
+    """Rows [interface, (goal,) figures...] of the summaries that carry separation figures."""
+    rows = []
+    for label, s in summaries.items():
+        sep = s.get("separation")
+        if not sep:
+            continue
+        scopes = list(sep["per_goal"].items()) if per_goal else [(None, sep["all"])]
+        for goal, figs in scopes:
+            rows.append([label] + ([goal] if per_goal else []) + [fmt_separation(k, figs.get(k)) for k in keys])
+    return rows
+
+
+def world_words(world: dict) -> str:
+    """The world's distances in a sentence (plain text)."""
+    def cm(v: float) -> str:
+        return f"{v * 100:.0f} cm"
+
+    furniture, person = world.get("furniture") or [], world.get("person") or []
+    parts = [f"The scene has {len(furniture)} furniture bodies ({', '.join(furniture) or 'none'}) and "
+             f"{len(person)} person bodies ({', '.join(person) or 'none'}). The separation filter keeps every link "
+             f"at least {cm(world['clearance'])} from furniture and from the arm's other links (the clearance; a "
+             "contact step is one with a link surface inside a body or another link)."]  # fmt: skip
+    if person:
+        parts.append(f"Around the person, no link may come closer than the keep-out distance of "
+                     f"{cm(world['keep_out'])} (a step with a link closer is a keep-out step); within "
+                     f"{cm(world['reduced_zone'])} of the person (the reduced-speed zone) a link may approach only "
+                     f"as fast as its remaining distance allows, and an approach more than "
+                     f"{world['excess_tol']:g} m/s faster than allowed counts as an excess step.")  # fmt: skip
+    return " ".join(parts)
+
+
+def separation_html(summaries: dict[str, dict]) -> str:
+    """HTML section: the world's distances in words, the separation figures per interface and per interface
+    and final goal ("" when no summary has a scene with bodies)."""
+    worlds = [s["separation"]["world"] for s in summaries.values() if s.get("separation")]
+    if not worlds:
+        return ""
+    keys = list(FIGURES)
+    labels = [FIGURES[k] for k in keys]
+    overall = _table(["interface"] + labels, separation_rows(summaries, keys))
+    goals = _table(["interface", "final goal"] + labels, separation_rows(summaries, keys, per_goal=True))
+    note = ("Distances are between link surfaces (the arm's links as spheres) and the bodies, the minimum over "
+            "every step of every episode; negative is overlap. Far from a body the vetting loop records a cheaper "
+            "lower bound, so a large distance reads as &ldquo;at least&rdquo;.")  # fmt: skip
+    return (f"<h2>Separation from the scene's bodies</h2><p>{html.escape(world_words(worlds[0]))}</p>"
+            f"<p>{note}</p><h3>Per interface</h3>{overall}<h3>Per interface and final goal</h3>{goals}")  # fmt: skip
+
+
+def separation_tables(summaries: dict[str, dict]) -> list:
+    """Rich tables of the separation figures per interface, and per interface and final goal (none when no
+    summary has a scene with bodies)."""
+    from rich.table import Table
+
+    if not any(s.get("separation") for s in summaries.values()):
+        return []
+    labels = [FIGURES[k] for k in TERMINAL_SEPARATION]
+    out = []
+    for title, per_goal in (("separation from the scene's bodies (link surfaces; m)", False),
+                            ("separation per final goal", True)):  # fmt: skip
+        table = Table(title=title)
+        for col in ["interface"] + (["final goal"] if per_goal else []) + labels:
+            table.add_column(col, justify="left" if col in ("interface", "final goal") else "right")
+        for row in separation_rows(summaries, TERMINAL_SEPARATION, per_goal):
+            table.add_row(*row)
+        out.append(table)
+    return out
+
+
 def _table(header: list[str], rows: list[list[str]]) -> str:
     head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
     body = "".join("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in r) + "</tr>" for r in rows)
@@ -303,8 +396,8 @@ STYLE = (
 
 def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, title: str, meta: dict,
                  sections: str = "") -> Path:  # fmt: skip
-    """One self-contained HTML file (images inlined, no links) at out_dir/report.html; `sections` is more
-    HTML placed before the plots (the failure diagnosis)."""
+    """One self-contained HTML file (images inlined, no links) at out_dir/report.html; the separation figures
+    when the summaries carry them; `sections` is more HTML placed before the plots (the failure diagnosis)."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     labels = list(summaries)
@@ -338,6 +431,7 @@ def write_report(summaries: dict[str, dict], plots: list[Path], out_dir: Path, t
 <h2>Ultimate bound of the distance to the waypoint by belief confidence</h2>
 <p>Fit of e' = -k e + d with |d| &le; w (w: 95th percentile of the fitted disturbance) on the steps whose
 belief confidence falls in each bin; w/k is where the error settles.</p>{bounds}
+{separation_html(summaries)}
 {sections}
 <h2>Plots</h2>
 {"".join(_image(p) for p in plots)}

@@ -26,8 +26,8 @@ FIGURES = {
 
 
 def _figures(sep_f, sep_p, sep_s, excess, limits, world: dict, dt: float) -> dict:
-    def low(x):
-        return float(x.min()) if x.numel() and bool(torch.isfinite(x).any()) else math.inf
+    def low(x):  # None when there is nothing to measure (JSON has no infinity)
+        return float(x.min()) if x.numel() and bool(torch.isfinite(x).any()) else None
 
     contact = (sep_f < 0) | (sep_s < 0)  # [E, T+1]
     return {
@@ -67,6 +67,6 @@ def flat_separation(summary: dict | None) -> dict[str, float]:
     out = {}
     for scope, figs in [("", summary["all"])] + [(f"{g}/", f) for g, f in summary["per_goal"].items()]:
         for k, v in figs.items():
-            if isinstance(v, (int, float)) and math.isfinite(float(v)):
+            if isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v)):
                 out[f"separation/{scope}{k}"] = float(v)
     return out

@@ -19,7 +19,10 @@ from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, pl
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import flat_metrics, summarise
 from coreach.vetting.report import standard_plots, write_report
+from coreach.vetting.scene_plot import scene_plots
 from coreach.vetting.suite import load_suite
+from coreach.vetting.trajectories import write_trajectories
+from coreach.world import arm_world
 
 log = logging.getLogger("coreach.vet")
 BASELINES_DIR = "interface"
@@ -131,6 +134,13 @@ def vet(cfg: DictConfig) -> dict:
     plots += [p for p in [plot_reach_by_goal(summaries, out / "reach_by_goal.png")] if p]
     for label, (record, interface, _) in records.items():
         plots += diagnosis_plots(label, record, interface, robot, goal_rot, summaries[label], out)
+    # the scene's bodies as the loop saw them (the same call as the loop's; None without bodies)
+    world = arm_world(robot, suite.scene, limits.tcp_speed_max)
+    plots += scene_plots({k: v[0] for k, v in records.items()}, suite.scene, None if world is None else world.chain,
+                         out)  # fmt: skip
+    trajectories = None
+    if cfg.get("trajectories"):
+        trajectories = write_trajectories({k: v[0] for k, v in records.items()}, out / "trajectories.parquet")
     if drives is not None:
         summaries[_unique(drives["interface"], summaries)] = drives
     meta = {
@@ -156,6 +166,7 @@ def vet(cfg: DictConfig) -> dict:
     return {
         "suite": suite.name,
         "report": str(report.resolve()),
+        "trajectories": None if trajectories is None else str(trajectories.resolve()),
         "summaries": summaries,
         "vet_runs": vet_runs,
         "sources": {k: v[2] for k, v in records.items()},
