@@ -35,7 +35,7 @@ def test_builtin_plugins_pass_their_contract(kind, cfg):
 
 
 def test_every_kind_with_optional_members_declares_them():
-    assert optional_members("robot") == ["fk_and_jacobian", "urdf_text"]
+    assert optional_members("robot") == ["fk_and_jacobian", "link_model", "urdf_text"]
     assert "switch_cost_steps" in optional_members("interface")
     assert {"mode_switch_margin", "reset"} <= set(optional_members("operator"))
     assert {"to_manifest", "from_manifest"} <= set(optional_members("belief"))

@@ -24,7 +24,8 @@ from rosbags.typesys import Stores, get_typestore  # noqa: E402
 COREACH = str(Path(sys.executable).parent / "coreach")
 STORE = get_typestore(Stores.LATEST)
 JOINTS = [f"joint_{i}" for i in range(1, 8)]  # the shipped reach7 arm
-HOME = np.array([0.0, -0.15, 0.0, 2.25, 0.0, 0.45, 0.0])
+# near the arm's home, with the elbow at 2.0 rad so the +-0.3 rad swing stays inside its 2.40 rad limit
+HOME = np.array([0.0, -0.15, 0.0, 2.0, 0.0, 0.45, 0.0])
 AMP, OMEGA = 0.3, 1.5  # rad, rad/s: peak speed 0.45 rad/s, under every joint's 1.2-1.5 rad/s limit
 T0_NS = 1_700_000_000 * 10**9  # a wall-clock origin: float seconds since 1970 would lose the milliseconds
 
@@ -282,10 +283,10 @@ def test_speeds_beyond_the_urdf_limits_are_refused_in_one_line(tmp_path):
 def test_positions_outside_the_urdf_limits_are_refused_in_one_line(tmp_path):
     t = uneven_times(1.0)
     q = motion(t)
-    q[:, 3] += 0.6  # joint_4 starts at 2.89 rad; its URDF limit is 2.618 rad
+    q[:, 3] += 0.6  # joint_4 starts at 2.64 rad; its URDF limit is 2.40 rad
     bag = write_bag(tmp_path / "run", "sqlite3", t, q=q)
-    with pytest.raises(DataError, match=r"topic /joint_states: joint joint_4 at 2.89\d* rad \(0.000 s\) is outside "
-                                        r"its URDF limits \[-2.618, 2.618\] by more than 0.05 rad"):  # fmt: skip
+    with pytest.raises(DataError, match=r"topic /joint_states: joint joint_4 at 2.64\d* rad \(0.000 s\) is outside "
+                                        r"its URDF limits \[-2.4, 2.4\] by more than 0.05 rad"):  # fmt: skip
         run_import([bag], tmp_path / "out.parquet")
 
 

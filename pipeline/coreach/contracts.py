@@ -169,6 +169,20 @@ def robot_urdf_text(robot) -> None:
     _fail("urdf_text", text is None or (isinstance(text, str) and "<robot" in text), "expected URDF text or None")
 
 
+def robot_link_model(robot) -> None:
+    """If present, link_model returns spheres on named links with positive radii and self pairs of sphere
+    indices, all finite."""
+    if not hasattr(robot, "link_model"):
+        return
+    m = robot.link_model(0.02)
+    S = len(m.links)
+    ok = (np.asarray(m.centres).shape == (S, 3) and np.asarray(m.radii).shape == (S,) and bool(np.isfinite(m.centres).all())
+          and bool((np.asarray(m.radii) > 0).all()))
+    pairs = np.asarray(m.self_pairs).reshape(-1, 2)
+    _fail("link_model", ok and bool(((pairs >= 0) & (pairs < S)).all()),
+          "expected centres [S, 3], radii [S] > 0 and self pairs of sphere indices")
+
+
 # ------------------------------------------------------------------------------------------------ belief
 
 
@@ -355,7 +369,7 @@ def operator_choose(operator) -> None:
 # -------------------------------------------------------------------------------------------------- table
 
 CHECKS: dict[str, list[Callable[[Any], None]]] = {
-    "robot": [robot_limits, robot_fk, robot_jacobian, robot_fk_and_jacobian, robot_urdf_text],
+    "robot": [robot_limits, robot_fk, robot_jacobian, robot_fk_and_jacobian, robot_urdf_text, robot_link_model],
     "belief": [belief_distribution, belief_numpy_torch, belief_manifest],
     "model": [model_shapes, model_gradients],
     "loss": [loss_scalar, loss_differentiable, loss_weight],
