@@ -50,6 +50,9 @@ commands:
   bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
                 (coreach bench runtime bundle=<folder>|<name>@<alias>; goals: p99 <= 100 us, <= 2x the bare call)
   bench vet     closed-loop throughput: batched loop against a per-episode loop and a bare decoder pass
+  bench fuzz    the runtime session driven with wild sticks from states near every scene body, each step
+                checked with coal on the URDF's collision geometry (goal: 0 penetrations, 0 keep-out entries)
+                (coreach bench fuzz [bundle=<folder>|<name>@<alias>] [steps=1000000] [seed=0]; needs pinocchio)
 
 options:
   -m, --multirun  sweep over comma-separated values (coreach train -m model=linear,vae,cvae)
@@ -72,6 +75,19 @@ def command_help(command: str) -> str:
         text += ("\n\n  takes Hydra overrides (key=value) and -m for sweeps; `coreach "
                  f"{command} --cfg job` prints the composed config, `--hydra-help` Hydra's own help")
     return f"usage: coreach {command} ...\n\n{text}\n"
+
+
+def _bench_lines() -> list[str]:
+    """USAGE's `bench ...` entries with their continuation lines."""
+    out, inside = [], False
+    for line in USAGE.splitlines():
+        if line.startswith("  bench "):
+            inside = True
+        elif not line.startswith("     "):
+            inside = False
+        if inside:
+            out.append(line)
+    return out
 
 
 def _fail(message: str, code: int = 2) -> int:
@@ -126,6 +142,9 @@ def main(argv: list[str] | None = None) -> int:
     command, overrides = rest[0], rest[1:]
     if command == "bench":
         what = overrides[0] if overrides else "?"
+        if what in ("-h", "--help", "help"):  # the bench lines of the overview: which benchmarks there are
+            print("usage: coreach bench WHAT ...\n\n" + "\n".join(_bench_lines()) + "\n")
+            return 0
         command, overrides = f"bench {what}", overrides[1:]
     if debug:
         os.environ["HYDRA_FULL_ERROR"] = "1"

@@ -16,6 +16,7 @@ HYDRA_COMMANDS = {
     "replay": ("replay", "coreach.release.replay:replay"),
     "bench runtime": ("bench_runtime", "coreach.bench.runtime_command:run"),
     "bench vet": ("bench_vet", "coreach.bench.vet_bench:run"),
+    "bench fuzz": ("bench_fuzz", "coreach.bench.fuzz_bench:run"),
     "recipes": ("recipes", "coreach.commands.recipes:recipes"),
     "check-reach": ("check_reach", "coreach.commands.check_reach:run"),
     "import-recordings": ("import_recordings", "coreach.recordings.import_command:import_recordings"),

@@ -5,7 +5,12 @@ machine hits both), with time.perf_counter_ns. The session drives a simulated ar
 slowly turning stick outside the deadband, so every timed step runs the whole pipeline: kinematics, belief
 update (whenever the tool has moved far enough), context, decoder and safety filter. The bare side runs
 the same InferenceSession options on the decoder input the session built in its latest step.
-A per-stage breakdown (median of repeated calls on one state) shows where the time goes.
+A per-stage breakdown (median of repeated calls on one state) shows where the time goes. With scene bodies
+(manifest safety.world) it has a "separation" stage: the link spheres' kinematics (ArmWorld.separation) and
+SafetyLimits.keep_apart, timed at a state near furniture with a command closing on it, so the step does
+its whole work there (pairs measured exactly, the command scaled); "filter" is the rest of
+SafetyLimits.limit (look-ahead, caps, workspace box). The session's own timing is the whole step, wherever
+the arm happens to be.
 """
 
 from __future__ import annotations
@@ -18,6 +23,7 @@ import numpy as np
 import onnxruntime as ort
 
 from coreach.context import build_context
+from coreach.control.safety_filter import SafetyLimits
 from coreach.runtime.session import Session
 
 GOAL_P99_US = 100.0
@@ -40,6 +46,31 @@ def _median_us(fn, reps: int = 500) -> float:
     return float(np.median(out)) / 1e3
 
 
+def near_furniture(session: Session, seed: int = 0, samples: int = 2000) -> tuple[np.ndarray, np.ndarray, float]:
+    """(q [n], qd [n], gap m): of `samples` uniform joint states (a fixed seed, so every run times the same
+    state), the one whose spheres come nearest to furniture while the sphere model is clear of everything, and
+    a command that closes on that nearest pair at the speed caps; gap = its distance beyond the clearance."""
+    arm, m = session.arm, session.manifest
+    rng = np.random.default_rng(seed)
+    lo, hi = np.clip(m.q_lower, -np.pi, np.pi), np.clip(m.q_upper, -np.pi, np.pi)
+    qs = rng.uniform(lo, hi, size=(samples, len(lo)))
+    geo = arm.geometry(qs, grad=False)
+    furniture = ~arm.world.is_person
+    gap = np.asarray(geo.body_d)[..., furniture].min(axis=(-2, -1)) - arm.world.settings.clearance  # [B]
+    gap = np.where(arm.clear(geo), gap, np.inf)
+    q = qs[int(np.argmin(gap))]
+    geo = arm.geometry(q)
+    body_rows = geo.body_d.size  # S * O rows, sphere-major, then the self pairs
+    d, g = np.asarray(geo.d)[:body_rows], np.asarray(geo.g)[:body_rows]
+    # a sphere no joint can move (on the first joint's axis) has a zero gradient: no command closes on it
+    movable = np.tile(furniture, body_rows // len(furniture)) & (np.abs(g).max(axis=-1) > 1e-9)
+    qd = np.ones(m.action_dim)
+    if movable.any():
+        qd = -g[int(np.argmin(np.where(movable, d, np.inf)))]  # the joint direction closing that gap fastest
+    qd, _ = session.limits.cap(qd / np.max(np.abs(qd) / m.qd_max), session.chain.fk_jacobian(q)[2][:3])
+    return q, qd, float(gap.min())
+
+
 def _stages(session: Session, q: np.ndarray, stick: np.ndarray) -> dict[str, float]:
     """Median latency (us) of each stage of a step, called on its own with the same inputs."""
     m = session.manifest
@@ -51,7 +82,7 @@ def _stages(session: Session, q: np.ndarray, stick: np.ndarray) -> dict[str, flo
     feeds = {"stick": stick[None].astype(np.float32), "context": context.astype(np.float32)}
     qd = np.ones(m.action_dim)
     jac_lin = jac[:3]
-    return {
+    stages = {
         "kinematics": _median_us(lambda: session.chain.fk_jacobian(q)),
         "belief_update": _median_us(
             lambda: session.belief_model.update(belief, pos[None], moved[None], layout.targets)),
@@ -61,6 +92,12 @@ def _stages(session: Session, q: np.ndarray, stick: np.ndarray) -> dict[str, flo
         "stick": _median_us(lambda: session.limits.condition_stick(stick)),
         "filter": _median_us(lambda: session.limits.limit(q, qd, jac_lin, pos)),
     }
+    if session.arm is not None:
+        q_near, qd_near, _ = near_furniture(session)
+        horizon = m.lookahead_s
+        arm = session.arm
+        stages["separation"] = _median_us(lambda: SafetyLimits.keep_apart(qd_near, *arm.separation(q_near), horizon))
+    return {k: round(v, 2) for k, v in stages.items()}
 
 
 def run_runtime_bench(bundle_folder: str | Path, steps: int = 5000, dt: float = 0.01, warmup: int = 200) -> dict:
