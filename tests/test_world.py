@@ -21,6 +21,7 @@ import coreach.demonstrator as demonstrator
 from coreach.errors import ConfigError, DataError
 from coreach.reach_check import check_reach
 from coreach.release.gate import Thresholds, separation_gates
+from coreach.control.separation import row_thresholds
 from coreach.safety import SEPARATION, SafetyLimits
 from coreach.scenario import Scenario, load_scenario
 from coreach.vetting.loop import rollout
@@ -259,5 +260,5 @@ def test_filter_flags_the_separation_step_and_only_scales():
     # after the step the look-ahead of the closing pair is exactly at the clearance (the rule's equality)
     geo = board.geometry(q)
     rate = -(np.asarray(geo.g) @ qd)
-    d_p, tau = board.world.rows(0.1, np, q)
+    d_p, tau = row_thresholds(board.world, geo, 0.1, np, q)
     assert np.min(np.asarray(geo.d) - d_p - rate * tau) == pytest.approx(0.0, abs=1e-12)

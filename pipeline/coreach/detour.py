@@ -18,7 +18,7 @@ import torch
 from torch import Tensor
 
 from coreach.control.bodies import pack, point_distances
-from coreach.control.separation import measure
+from coreach.control.separation import measure, row_thresholds
 
 __all__ = ["detour_points", "null_space_push", "DETOUR_MARGIN"]
 
@@ -87,9 +87,9 @@ def null_space_push(world, q: Tensor, J: Tensor, damping: float, reach: float = 
     the tool's motion is not changed."""
     w, centres, jac = world.separation(q)
     lookahead = 1.0  # only the protective distances matter here, not the rule's look-ahead
-    d_p, _ = w.rows(lookahead, torch, centres)
-    O = len(w.bodies)
-    geo = measure(w, centres, jac, d_p[:O] + reach)
+    d_body, _, _, _ = w.thresholds(lookahead, torch, centres)
+    geo = measure(w, centres, jac, d_body + reach)
+    d_p, _ = row_thresholds(w, geo, lookahead, torch, centres)
     weight = ((d_p + reach - geo.d) / reach).clamp(0.0, 1.0)  # [B, R]
     push = gain * (weight[..., None] * geo.g).sum(dim=-2)  # [B, n]: grows every nearby distance
     J = J.to(torch.float64)

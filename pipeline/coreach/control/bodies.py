@@ -77,28 +77,33 @@ class PackedBodies:
     radius: np.ndarray
     folded: np.ndarray
 
+    def __post_init__(self):
+        # every body frame at once: p_local = p^T R - t^T R, as one product p^T [R_1 ... R_O] ([3, 3 O])
+        O = self.rot.shape[0] if self.rot.ndim == 3 else 0
+        self.rot_cat = np.transpose(self.rot, (1, 0, 2)).reshape(3, 3 * O) if O else None
+        self.centre_local = (self.centre[..., None, :] @ self.rot)[..., 0, :] if O else None
+
     def __len__(self) -> int:
         return len(self.names)
-
-    @property
-    def reach(self) -> np.ndarray:
-        """[O] radius of a sphere about each centre that holds the whole body (a cylinder's folded axis is
-        its radius, not BIG)."""
-        half = np.where(self.folded[:, None] & (np.arange(3) == 1), 0.0, self.half)
-        return np.sqrt((half**2).sum(axis=-1)) + self.radius
 
     def take(self, index) -> PackedBodies:
         """Bodies index [K] as K groups of one ([K, 1, 1, ...] arrays): with points [K, 1, 3], point_distances
         then measures point k against body index[k] only."""
         pick = {k: getattr(self, k)[index][:, None, None] for k in ("rot", "centre", "half", "radius", "folded")}
-        return PackedBodies([], **pick)
+        out = PackedBodies([], **pick)
+        out.rot_cat = None  # [K, 1, 1, 3, 3] rotations: the per-point path
+        return out
 
     def as_namespace(self, xp, like) -> PackedBodies:
         """The same bodies as arrays of `like`'s namespace and dtype (torch in vetting)."""
         if xp is np or type(like) is np.ndarray or type(self.rot) is type(like):
             return self
         conv = {k: xp.asarray(getattr(self, k), dtype=like.dtype) for k in ("rot", "centre", "half", "radius")}
-        return PackedBodies(self.names, folded=xp.asarray(self.folded), **conv)
+        out = PackedBodies(self.names, folded=xp.asarray(self.folded), **conv)
+        if self.rot_cat is not None:
+            out.rot_cat = xp.asarray(self.rot_cat, dtype=like.dtype)
+            out.centre_local = xp.asarray(self.centre_local, dtype=like.dtype)
+        return out
 
 
 def _rpy_matrix(rpy) -> np.ndarray:
@@ -132,8 +137,12 @@ def point_distances(points, bodies: PackedBodies, grad: bool = True):
     xp = namespace(points)
     b = bodies.as_namespace(xp, points)
     # body frame: p_local = R^T (p - t), as the row vector (p - t)^T R; [..., S, O, 3]
-    rel = points[..., :, None, :] - b.centre
-    local = (rel[..., None, :] @ b.rot)[..., 0, :]
+    if b.rot_cat is not None and b.rot.ndim == 3:  # one product for every body
+        S = points.shape[-2]
+        local = xp.reshape(points @ b.rot_cat, (*points.shape[:-2], S, -1, 3)) - b.centre_local
+    else:  # bodies taken per point (PackedBodies.take)
+        rel = points[..., :, None, :] - b.centre
+        local = (rel[..., None, :] @ b.rot)[..., 0, :]
     # cylinders: fold (x, y) onto the radial axis
     rho = xp.sqrt(local[..., 0] ** 2 + local[..., 1] ** 2)
     folded = b.folded

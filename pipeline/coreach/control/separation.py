@@ -39,7 +39,8 @@ import numpy as np
 from coreach.control.arrays import namespace
 from coreach.control.bodies import PackedBodies, pack, point_distances, sphere_pair_distances, Primitive
 
-__all__ = ["SeparationSettings", "World", "Geometry", "measure", "cutoff_for", "sphere_speeds", "scale_for_separation"]
+__all__ = ["SeparationSettings", "World", "Geometry", "measure", "row_thresholds", "cutoff_for", "sphere_speeds",
+           "scale_for_separation"]
 
 
 @dataclass(frozen=True)
@@ -91,24 +92,20 @@ class World:
     def _repack(self) -> None:
         self.bodies: PackedBodies = pack(list(self.furniture) + list(self.person))
         self.is_person = np.arange(len(self.bodies)) >= len(self.furniture)  # [O]
-        self._rows: dict = {}  # per (look-ahead, namespace, dtype): the rule's d_p and tau per pair row
+        self._thresholds: dict = {}  # per (look-ahead, kind, dtype): the rule's d_p and tau per body
 
-    def rows(self, lookahead: float, xp, like):
-        """(d_p [R], tau [R]) of the rule per pair row (R = S*O body rows, sphere-major, then the self pairs),
-        as arrays of `like`'s kind; made once per look-ahead."""
+    def thresholds(self, lookahead: float, xp, like):
+        """The rule's numbers as arrays of `like`'s kind, made once per look-ahead: (d_p [O], tau [O]) per
+        body, then (d_p, tau) of every self pair (scalars)."""
         key = (float(lookahead), type(like), getattr(like, "dtype", None))
-        if key not in self._rows:
+        if key not in self._thresholds:
             s = self.settings
-            S = len(self.radii)
             d_body = np.where(self.is_person, s.keep_out, s.clearance)
             tau_body = np.where(self.is_person, max(lookahead, s.person_tau), lookahead)
-            P = len(self.self_pairs)
-            d_p = np.concatenate([np.tile(d_body, S), np.full(P, s.clearance)])
-            tau = np.concatenate([np.tile(tau_body, S), np.full(P, float(lookahead))])
             if type(like) is not np.ndarray:
-                d_p, tau = xp.asarray(d_p, dtype=like.dtype), xp.asarray(tau, dtype=like.dtype)
-            self._rows[key] = (d_p, tau)
-        return self._rows[key]
+                d_body, tau_body = xp.asarray(d_body, dtype=like.dtype), xp.asarray(tau_body, dtype=like.dtype)
+            self._thresholds[key] = (d_body, tau_body, s.clearance, float(lookahead))
+        return self._thresholds[key]
 
     @property
     def body_names(self) -> list[str]:
@@ -130,56 +127,48 @@ class World:
 
 @dataclass
 class Geometry:
-    """Distances of one arm state (or a batch) to everything in the world, and their joint gradients.
+    """Distances of one arm state (or a batch) to everything in the world, and the rule's rows.
 
-    body_d [..., S, O] sphere-surface-to-body distances; self_d [..., P]; and the rule's rows: d [..., R],
-    g [..., R, n] (R = S*O + P pair rows, flattened)."""
+    body_d [..., S, O] sphere-surface-to-body distances (exact); self_d [..., P]. The rows the rule reads
+    (with a Jacobian): the (sphere, body) pairs near enough to matter, sphere[C] and body[C] (the same for
+    every state of a batch), then every self pair: d [..., C + P], g [..., C + P, n] (the distance's
+    gradient with respect to the joint positions)."""
 
     body_d: object
     self_d: object
-    d: object
-    g: object
+    d: object = None
+    g: object = None
+    sphere: object = None  # [C] index of each body row's sphere
+    body: object = None  # [C] index of each body row's body
 
 
 def measure(world: World, centres, jac=None, cutoff=None) -> Geometry:
-    """Geometry at sphere centres [..., S, 3] with linear Jacobians jac [..., S, 3, n] (without jac: only the
-    distances; d and g are None).
+    """Geometry at sphere centres [..., S, 3]; with linear Jacobians jac [..., S, 3, n], the rule's rows too.
 
-    cutoff (broadcastable to [..., S, O]): pairs whose distance provably exceeds it (the centre distance less
-    the body's bounding radius and the sphere's radius, a lower bound) are not measured exactly; their entry
-    is that lower bound, with a zero gradient. The filter passes a cutoff beyond which a pair cannot bind
-    (`cutoff_for`), so the result of the rule is the same as with every pair measured."""
+    Every distance is exact (one pass without gradients). Only the pairs closer than `cutoff` (broadcastable
+    to [..., S, O]; e.g. `cutoff_for`: beyond it a pair cannot bind the commands at hand) in at least one
+    state become body rows and get a gradient; without a cutoff every pair does."""
     xp = namespace(centres)
     radii = world.radii
     r = radii if type(centres) is np.ndarray else xp.asarray(radii, dtype=centres.dtype)
     bodies = world.bodies.as_namespace(xp, centres)
-    if cutoff is None:
-        d_c, normal = point_distances(centres, bodies, grad=jac is not None)  # [..., S, O], [..., S, O, 3]
-        body_d = d_c - r[:, None]
-        g_body = None if jac is None else normal @ jac  # n^T J_s: [..., S, O, 3] @ [..., S, 3, n] -> [..., S, O, n]
-    else:
-        reach = world.bodies.reach if type(centres) is np.ndarray else xp.asarray(world.bodies.reach, dtype=centres.dtype)
-        rel = centres[..., :, None, :] - bodies.centre
-        body_d = xp.sqrt(xp.sum(rel * rel, axis=-1)) - reach - r[:, None]  # lower bounds [..., S, O]
-        near = xp.nonzero(body_d < cutoff)
-        body_d = xp.asarray(body_d, copy=True)
-        d_k, n_k = point_distances(centres[near[:-1]][:, None, :], bodies.take(near[-1]), grad=jac is not None)
-        body_d[near] = d_k[:, 0, 0] - r[near[-2]]
-        g_body = None
-        if jac is not None:
-            g_body = xp.zeros((*body_d.shape, jac.shape[-1]), dtype=centres.dtype)
-            g_body[near] = (n_k[:, 0, 0, None, :] @ jac[near[:-1]])[:, 0, :]
-    S, O = body_d.shape[-2], body_d.shape[-1]
-    lead = body_d.shape[:-2]
+    d_c, _ = point_distances(centres, bodies, grad=False)  # [..., S, O]
+    body_d = d_c - r[:, None]
     if len(world.self_pairs):
         self_d, u = sphere_pair_distances(centres, radii, world._first, world._second)
     else:
-        self_d, u = xp.zeros((*lead, 0), dtype=centres.dtype), None
+        self_d, u = xp.zeros((*body_d.shape[:-2], 0), dtype=centres.dtype), None
     if jac is None:
-        return Geometry(body_d, self_d, None, None)
+        return Geometry(body_d, self_d)
+    near = body_d < cutoff if cutoff is not None else xp.ones(body_d.shape, dtype=xp.bool)
+    if near.ndim > 2:
+        near = xp.any(xp.reshape(near, (-1, *near.shape[-2:])), axis=0)  # [S, O]: near in any state
+    sphere, body = xp.nonzero(near)
     n = jac.shape[-1]
-    rows_d = [xp.reshape(body_d, (*lead, S * O))]
-    rows_g = [xp.reshape(g_body, (*lead, S * O, n))]
+    # the near pairs' gradients: point k against body k only ([..., C, 1, 3] against [C, 1, 1, ...] arrays)
+    _, normal = point_distances(centres[..., sphere, :][..., None, :], bodies.take(body), grad=True)
+    rows_d = [body_d[..., sphere, body]]
+    rows_g = [(normal[..., 0, 0, None, :] @ jac[..., sphere, :, :])[..., 0, :]]  # n^T J_s: [..., C, n]
     if u is not None:
         first, second = world._first, world._second
         if type(jac) is not np.ndarray:
@@ -187,7 +176,16 @@ def measure(world: World, centres, jac=None, cutoff=None) -> Geometry:
         j_rel = jac[..., first, :, :] - jac[..., second, :, :]  # [..., P, 3, n]
         rows_d.append(self_d)
         rows_g.append((u[..., None, :] @ j_rel)[..., 0, :])
-    return Geometry(body_d, self_d, xp.concat(rows_d, axis=-1), xp.concat(rows_g, axis=-2))
+    return Geometry(body_d, self_d, xp.concat(rows_d, axis=-1), xp.concat(rows_g, axis=-2), sphere, body)
+
+
+def row_thresholds(world: World, geo: Geometry, lookahead: float, xp, like):
+    """(d_p [C + P], tau [C + P]) of the rule for a Geometry's rows."""
+    d_body, tau_body, d_self, tau_self = world.thresholds(lookahead, xp, like)
+    P = len(world.self_pairs)
+    d_p = xp.concat([d_body[geo.body], xp.full((P,), d_self, dtype=like.dtype)])
+    tau = xp.concat([tau_body[geo.body], xp.full((P,), tau_self, dtype=like.dtype)])
+    return d_p, tau
 
 
 def sphere_speeds(jac, qd):
@@ -205,9 +203,8 @@ def cutoff_for(world: World, vmax, lookahead: float, floor=None):
     at that speed, which its allowance already covers. `floor` [O] raises it (exact distances wanted up to
     there, e.g. for the reduced-speed zone's measurements)."""
     xp = namespace(vmax)
-    d_p, tau = world.rows(lookahead, xp, vmax)
-    O = len(world.bodies)
-    cut = d_p[:O] + tau[:O] * vmax[..., None]
+    d_body, tau_body, _, _ = world.thresholds(lookahead, xp, vmax)
+    cut = d_body + tau_body * vmax[..., None]
     if floor is not None:
         cut = xp.maximum(cut, floor if type(vmax) is np.ndarray else xp.asarray(floor, dtype=vmax.dtype))
     return cut
@@ -220,16 +217,14 @@ def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float, vmax
     pair can close: vmax of its sphere, or the sum of both spheres' for a self pair) are left out of the
     product first; the factor is the same."""
     xp = namespace(qd)
-    d_p, tau = world.rows(lookahead, xp, qd)
+    d_p, tau = row_thresholds(world, geo, lookahead, xp, qd)
     allowed = xp.maximum(geo.d - d_p, 0.0) / tau  # [..., R]
     g = geo.g
     if vmax is not None:
-        S, O = geo.body_d.shape[-2], geo.body_d.shape[-1]
         first, second = world._first, world._second
         if type(qd) is not np.ndarray:
             first, second = xp.asarray(first), xp.asarray(second)
-        per_body = xp.reshape(xp.broadcast_to(vmax[..., None], (*vmax.shape, O)), (*vmax.shape[:-1], S * O))
-        reach = xp.concat([per_body, vmax[..., first] + vmax[..., second]], axis=-1)  # [..., R] fastest closing
+        reach = xp.concat([vmax[..., geo.sphere], vmax[..., first] + vmax[..., second]], axis=-1)  # fastest closing
         live = allowed < reach
         cols = xp.nonzero(xp.any(xp.reshape(live, (-1, live.shape[-1])), axis=0))[0]
         allowed, g = allowed[..., cols], g[..., cols, :]

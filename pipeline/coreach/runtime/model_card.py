@@ -13,8 +13,10 @@ CAUTIONS = (
     "Follow your local regulations and the judgement of qualified professionals (clinicians, occupational "
     "therapists, safety engineers).",
     "The runtime safety filter (stick box and deadband, non-finite-value fault latch, input watchdog, joint "
-    "speed and tool speed caps, joint position look-ahead, workspace box) is always on and cannot be switched "
-    "off; it reduces risk but does not replace the measures above.",
+    "speed and tool speed caps, joint position look-ahead, workspace box, separation from the scene's modelled "
+    "bodies) is always on and cannot be switched off; it reduces risk but does not replace the measures above.",
+    "The scene's bodies, the person among them, are models: nothing in coreach senses a person. Keep-out and "
+    "reduced-speed zones protect only as far as the modelled (or tracked) positions are right.",
 )
 
 DEFAULT_LIMITS = (
