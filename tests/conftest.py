@@ -62,3 +62,17 @@ if os.environ.get("PYTEST_XDIST_WORKER"):
     import torch
 
     torch.set_num_threads(1)
+
+
+def third_party_robots() -> Path:
+    """example-robot-data's robots/ folder (a test extra, read where it is installed, never copied); skips
+    the test when the package is missing, and fails it under CI, where it must be installed."""
+    import importlib.metadata
+
+    try:
+        dist = importlib.metadata.distribution("example-robot-data")
+    except importlib.metadata.PackageNotFoundError:
+        if os.environ.get("CI"):
+            pytest.fail("example-robot-data is not installed (pip install -e '.[test]')")
+        pytest.skip("example-robot-data is not installed")
+    return Path(dist.locate_file("cmeel.prefix/share/example-robot-data/robots"))

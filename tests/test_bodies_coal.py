@@ -10,14 +10,13 @@
 
 from __future__ import annotations
 
-import importlib.metadata
-import os
 from pathlib import Path
 
 import coal
 import numpy as np
 import pinocchio as pin
 import pytest
+from conftest import third_party_robots
 import torch
 
 from coreach.control.bodies import SHAPES, Primitive, pack, point_distances
@@ -29,14 +28,7 @@ N_POSES = 200
 
 
 def _robots() -> Path:
-    """example-robot-data's robots/ folder (as in tests/test_third_party_arms.py): a test extra, never copied."""
-    try:
-        dist = importlib.metadata.distribution("example-robot-data")
-    except importlib.metadata.PackageNotFoundError:
-        if os.environ.get("CI"):
-            pytest.fail("example-robot-data is not installed (pip install -e '.[test]')")
-        pytest.skip("example-robot-data is not installed: no third-party arm with collision meshes to check")
-    return Path(dist.locate_file("cmeel.prefix/share/example-robot-data/robots"))
+    return third_party_robots()
 
 
 # the third-party arm with collision meshes: the panda, whose links on the path to the tool are STL meshes

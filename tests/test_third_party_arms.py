@@ -5,9 +5,7 @@ goal, a short training and a closed-loop vetting run."""
 
 from __future__ import annotations
 
-import importlib.metadata
 import json
-import os
 import subprocess
 import sys
 from pathlib import Path
@@ -16,7 +14,7 @@ import numpy as np
 import pinocchio as pin
 import pytest
 import torch
-from conftest import FAST, cli_env
+from conftest import FAST, cli_env, third_party_robots
 
 from coreach.errors import ConfigError
 
@@ -32,13 +30,7 @@ ARMS = {
 
 
 def _robots() -> Path:
-    try:
-        dist = importlib.metadata.distribution("example-robot-data")
-    except importlib.metadata.PackageNotFoundError:
-        if os.environ.get("CI"):
-            pytest.fail("example-robot-data is not installed (pip install -e '.[test]')")
-        pytest.skip("example-robot-data is not installed")
-    return Path(dist.locate_file("cmeel.prefix/share/example-robot-data/robots"))
+    return third_party_robots()
 
 
 def _arm(key: str, **placement):

@@ -16,7 +16,7 @@ from coreach.control.bodies import Primitive
 from coreach.control.separation import SeparationSettings
 from coreach.errors import ConfigError
 from coreach.geometry import matrix_to_quat, rpy_to_matrix
-from coreach.scene_bodies import check_goals_clear, parse_obstacles, parse_person
+from coreach.scene_bodies import check_goals_clear, finite_list, parse_obstacles, parse_person
 
 __all__ = ["Goal", "Scenario", "Layout", "EpisodeLayout", "load_scenario", "builtin_scenarios"]
 
@@ -70,15 +70,8 @@ class Layout:
 
 
 def _vector(value: Any, where: str, what: str) -> list[float]:
-    if isinstance(value, (str, bytes)) or not hasattr(value, "__len__") or len(value) != 3:
-        raise ConfigError(where, f"expected a list of 3 numbers ({what}), got {value!r}")
-    try:
-        out = [float(v) for v in value]
-    except (TypeError, ValueError):
-        raise ConfigError(where, f"expected a list of 3 numbers ({what}), got {value!r}") from None
-    if any(isinstance(v, bool) for v in value) or not all(math.isfinite(v) for v in out):
-        raise ConfigError(where, f"expected 3 finite numbers ({what}), got {value!r}")
-    return out
+    """Three finite numbers (the scene file's one check, coreach.scene_bodies); ConfigError naming `where`."""
+    return list(finite_list(value, 3, where, what))
 
 
 def _number(value: Any, where: str, lo: float, hi: float, what: str) -> float:

@@ -11,7 +11,7 @@ from coreach.control.bodies import SHAPES, Primitive, pack, point_distances
 from coreach.control.separation import SeparationSettings
 from coreach.errors import ConfigError
 
-__all__ = ["parse_obstacles", "parse_person", "check_goals_clear", "world_json", "world_from_json", "SIZE_FORMS"]
+__all__ = ["finite_list", "parse_obstacles", "parse_person", "check_goals_clear", "world_json", "world_from_json", "SIZE_FORMS"]
 
 # what `size` holds per shape (m)
 SIZE_FORMS = {"box": ("x", "y", "z"), "cylinder": ("radius", "length"), "capsule": ("radius", "length"),
@@ -22,7 +22,8 @@ _PERSON_KEYS = {"bodies", "speed", "reaction_time", "stopping_time", "intrusion"
                 "robot_uncertainty"}  # fmt: skip
 
 
-def _finite_list(value: Any, n: int, at: str, what: str) -> tuple[float, ...]:
+def finite_list(value: Any, n: int, at: str, what: str) -> tuple[float, ...]:
+    """n finite numbers (not booleans); ConfigError naming `at` and saying what was expected."""
     if isinstance(value, (str, bytes)) or not hasattr(value, "__len__") or len(value) != n:
         raise ConfigError(at, f"expected {n} numbers ({what}), got {value!r}")
     try:
@@ -47,13 +48,13 @@ def _body(raw: Any, at: str, shapes: tuple[str, ...]) -> Primitive:
     if shape not in shapes:
         raise ConfigError(f"{at}.shape", f"unknown shape {shape!r}; expected one of {list(shapes)}")
     form = SIZE_FORMS[shape]
-    size = _finite_list(raw.get("size"), len(form), f"{at}.size", f"{shape} {', '.join(form)} in m")
+    size = finite_list(raw.get("size"), len(form), f"{at}.size", f"{shape} {', '.join(form)} in m")
     if not all(v > 0 for v in size):
         raise ConfigError(f"{at}.size", f"expected positive sizes ({shape} {', '.join(form)} in m), got {list(size)}")
     if "xyz" not in raw:
         raise ConfigError(f"{at}.xyz", "missing; expected the body's centre [x, y, z] in m")
-    xyz = _finite_list(raw["xyz"], 3, f"{at}.xyz", "centre, m")
-    rpy = _finite_list(raw.get("rpy_deg", [0.0, 0.0, 0.0]), 3, f"{at}.rpy_deg", "roll pitch yaw, deg")
+    xyz = finite_list(raw["xyz"], 3, f"{at}.xyz", "centre, m")
+    rpy = finite_list(raw.get("rpy_deg", [0.0, 0.0, 0.0]), 3, f"{at}.rpy_deg", "roll pitch yaw, deg")
     return Primitive(name, shape, size, xyz, tuple(math.radians(v) for v in rpy))
 
 
