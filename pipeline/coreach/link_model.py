@@ -9,8 +9,8 @@ Sources, in order of precedence:
 Every element becomes a capsule that contains it, and every capsule a row of spheres that contains it:
 - cylinder (radius R, length L): the capsule of radius R on its axis segment (the caps only add volume);
 - box: a capsule along its longest axis, radius = the half-diagonal of the other two;
-- mesh: a capsule along the vertices' principal axis, from their least to their greatest projection, radius =
-  the largest distance of a vertex from that axis (it holds every vertex, so their convex hull);
+- mesh: its principal axis cut into pieces, a capsule per piece with the largest distance from the axis of any
+  vertex of a face reaching into that piece (`_mesh_capsules` says why that holds every face);
 - capsule (segment a-b, radius R) -> spheres at n + 1 evenly spaced points of the segment, spacing s <= R,
   radius sqrt(R^2 + (s/2)^2): a point of the capsule lies within R of some segment point, and that point
   within s/2 of a sphere centre along the segment, so within the enlarged radius of that centre.
@@ -91,23 +91,44 @@ def _positive(el: ET.Element, attr: str, where: str) -> float:
     return v
 
 
-def _mesh_capsule(path: Path, scale: np.ndarray, where: str) -> tuple[np.ndarray, np.ndarray, float]:
+# capsules per collision mesh, along its principal axis: four did not tighten the third-party arm tested (its
+# links are L-shaped, so each piece is as wide as the whole), and they multiply the spheres the filter checks
+MESH_SEGMENTS = 1
+
+
+def _mesh_capsules(path: Path, scale: np.ndarray, where: str) -> list[tuple[np.ndarray, np.ndarray, float]]:
+    """Capsules (a, b, radius) whose union holds the mesh: its principal axis cut into MESH_SEGMENTS equal
+    pieces; piece k's capsule spans the piece, with the largest distance from the axis of any vertex of a
+    face whose projection meets the piece. Along a triangle the distance from a line is convex, so it peaks at
+    a vertex: every point of every face lies in the capsule of the piece it projects into."""
     try:
         import trimesh
 
         mesh = trimesh.load(str(path), force="mesh")
         verts = np.asarray(mesh.vertices, dtype=np.float64) * scale
+        faces = np.asarray(mesh.faces, dtype=np.int64).reshape(-1, 3)
     except Exception as exc:  # trimesh raises many kinds for unreadable files
         raise ConfigError(where, f"collision mesh {path} is unreadable ({type(exc).__name__}: {exc})") from None
     if verts.ndim != 2 or len(verts) < 1 or not np.isfinite(verts).all():
         raise ConfigError(where, f"collision mesh {path} has no usable vertices (unreadable or empty)")
+    if len(faces) == 0:  # a point cloud: every vertex is its own face
+        faces = np.arange(len(verts))[:, None].repeat(3, axis=1)
     centre = verts.mean(axis=0)
     _, _, vt = np.linalg.svd(verts - centre, full_matrices=False)
     axis = vt[0]
     proj = (verts - centre) @ axis
     radial = np.linalg.norm((verts - centre) - proj[:, None] * axis, axis=1)
-    radius = max(float(radial.max()), 1e-3)
-    return centre + proj.min() * axis, centre + proj.max() * axis, radius
+    lo, hi = float(proj.min()), float(proj.max())
+    edges = np.linspace(lo, hi, MESH_SEGMENTS + 1)
+    f_lo, f_hi, f_r = proj[faces].min(axis=1), proj[faces].max(axis=1), radial[faces].max(axis=1)
+    out = []
+    for k in range(MESH_SEGMENTS):
+        meets = (f_hi >= edges[k]) & (f_lo <= edges[k + 1])
+        if not meets.any():
+            continue
+        radius = max(float(f_r[meets].max()), 1e-3)
+        out.append((centre + edges[k] * axis, centre + edges[k + 1] * axis, radius))
+    return out
 
 
 def _resolve_mesh(filename: str, urdf_dir: Path | None, where: str) -> Path:
@@ -162,7 +183,9 @@ def _collision_capsules(link: ET.Element, urdf_dir: Path | None, where: str) -> 
             if not filename:
                 raise ConfigError(at, "mesh without a filename")
             scale = np.array(urdf_floats(shape.get("scale"), (1.0, 1.0, 1.0), at, "mesh scale"))
-            a, b, r = _mesh_capsule(_resolve_mesh(filename, urdf_dir, at), scale, at)
+            for a, b, r in _mesh_capsules(_resolve_mesh(filename, urdf_dir, at), scale, at):
+                out.append((pose[:3, :3] @ a + pose[:3, 3], pose[:3, :3] @ b + pose[:3, 3], float(r)))
+            continue
         else:
             raise ConfigError(at, f"unknown geometry <{kind}>; expected box, cylinder, sphere, capsule or mesh")
         out.append((pose[:3, :3] @ a + pose[:3, 3], pose[:3, :3] @ b + pose[:3, 3], float(r)))
