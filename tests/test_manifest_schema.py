@@ -29,7 +29,7 @@ WORLD = {"clearance": 0.02,
 def sample_manifest() -> Manifest:
     """A small hand-built manifest (3 joints, 2 goals, 2-d stick, 10 context columns), one joint unlimited."""
     return Manifest(
-        folder=FOLDER, schema_version="1", created="2026-01-02T03:04:05+00:00",
+        folder=FOLDER, schema_version="2", created="2026-01-02T03:04:05+00:00",
         latent_dim=2, context_dim=10, action_dim=3, n_goals=2, context_blocks=("state", "goal"),
         onnx=onnx_interface(2, 10, 3), joint_names=("a", "b", "c"), goal_names=("cup", "door"),
         goal_pos=np.array([[0.5, 0.1, 0.3], [0.4, -0.2, 0.5]]),

@@ -27,6 +27,7 @@ pairs: a pair touching at rest is treated as adjacent).
 
 from __future__ import annotations
 
+import logging
 import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass
@@ -39,6 +40,8 @@ from coreach.geometry import rpy_to_matrix
 from coreach.urdf import document, parse_path, urdf_floats
 
 __all__ = ["LinkModel", "link_model", "capsule_spheres"]
+
+log = logging.getLogger("coreach.link_model")
 
 
 @dataclass
@@ -249,6 +252,11 @@ def link_model(urdf_text: str, tool_link: str, *, urdf_dir: str | Path | None = 
     caps = {name: _collision_capsules(elements[name], base, where) for name in moving}
     if override is not None and str(override):
         caps.update(_override(override, path_links, moving))
+    side = sorted(n for n, el in elements.items() if n not in path_links and el.findall("collision"))
+    if side:  # off the path the chain has no frame for them: said once, not dropped silently
+        log.warning("%s: links %s have collision geometry but are not on the root-to-tool path, so the separation "
+                    "step does not model them; add them to their parent link in robot.collision_override", where,
+                    side)  # fmt: skip
     links, centres, radii = [], [], []
     for name in moving:
         for a, b, r in caps.get(name, []):

@@ -19,6 +19,7 @@ from mlflow.entities import Metric, Param
 from omegaconf import DictConfig, OmegaConf
 
 from coreach import tracking
+from coreach.world import arm_world
 from coreach.aggregation.visits import visit_episodes, visits_from_record
 from coreach.command_line import command_line_options
 from coreach.episodes import EpisodeSet, save_parquet
@@ -86,6 +87,7 @@ def collect(robot, interface, suites, seed: int, belief, limits, labeller, round
     for i, suite in enumerate(suites):
         record, plan = _roll(robot, interface, suite, seed + SEED_STRIDE * i, belief, limits)
         visits = visits_from_record(record, plan, robot, suite.position_tol, suite.orientation_tol)
+        visits.world = arm_world(robot, suite.scene, limits.tcp_speed_max)
         labels = labeller.label(robot, visits)
         if tuple(labels.shape) != (len(visits), robot.dof) or not bool(torch.isfinite(labels).all()):
             raise ConfigError(f"labeller {labeller.name}", f"expected finite labels of shape [{len(visits)}, {robot.dof}], "

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import torch
@@ -30,6 +31,8 @@ class Visits:
     episode: Tensor  # [N] long: index of the rollout episode
     step: Tensor  # [N] long: step within that episode
     dt: float
+    world: Any = None  # the suite scene's ArmWorld (coreach.world.arm_world), None without bodies: labels
+    # then go through the same separation step and null-space push as the demonstrator's
 
     def __len__(self) -> int:
         return int(self.q.shape[0])

@@ -95,15 +95,20 @@ class PackedBodies:
         return out
 
     def as_namespace(self, xp, like) -> PackedBodies:
-        """The same bodies as arrays of `like`'s namespace and dtype (torch in vetting)."""
+        """The same bodies as arrays of `like`'s namespace, dtype and device (torch in vetting), made once."""
         if xp is np or type(like) is np.ndarray or type(self.rot) is type(like):
             return self
-        conv = {k: xp.asarray(getattr(self, k), dtype=like.dtype) for k in ("rot", "centre", "half", "radius")}
-        out = PackedBodies(self.names, folded=xp.asarray(self.folded), **conv)
-        if self.rot_cat is not None:
-            out.rot_cat = xp.asarray(self.rot_cat, dtype=like.dtype)
-            out.centre_local = xp.asarray(self.centre_local, dtype=like.dtype)
-        return out
+        key = (str(like.dtype), str(getattr(like, "device", "")))
+        cache = self.__dict__.setdefault("_converted", {})
+        if key not in cache:
+            out = object.__new__(PackedBodies)
+            out.names = self.names
+            for k in ("rot", "centre", "half", "radius", "rot_cat", "centre_local"):
+                v = getattr(self, k)
+                setattr(out, k, None if v is None else xp.asarray(v, dtype=like.dtype, device=like.device))
+            out.folded = xp.asarray(self.folded, device=like.device)
+            cache[key] = out
+        return cache[key]
 
 
 def _rpy_matrix(rpy) -> np.ndarray:

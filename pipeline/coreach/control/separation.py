@@ -32,6 +32,7 @@ robot, torch in vetting; `qd` may carry extra leading candidate axes ([..., B, n
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -87,6 +88,7 @@ class World:
         self.radii = np.asarray(self.radii, dtype=np.float64)
         self.self_pairs = np.asarray(self.self_pairs, dtype=np.int64).reshape(-1, 2)
         self._first, self._second = self.self_pairs[:, 0].copy(), self.self_pairs[:, 1].copy()
+        self._lock = threading.Lock()
         self._repack()
 
     def _repack(self) -> None:
@@ -112,17 +114,21 @@ class World:
         return self.bodies.names
 
     def set_poses(self, poses: dict[str, tuple]) -> None:
-        """Move named bodies: {name: (xyz, rpy)} in the world frame (rpy in rad)."""
+        """Move named bodies: {name: (xyz, rpy)} in the world frame (rpy in rad). The new bodies are built
+        aside and swapped in with one assignment (a control step reads either the old or the new set), and
+        writers take a lock (two perception threads cannot lose each other's update)."""
         from dataclasses import replace
 
-        index = {b.name: i for i, b in enumerate(self.furniture + self.person)}
-        moved = list(self.furniture) + list(self.person)
-        for name, (xyz, rpy) in poses.items():
-            i = index[name]
-            moved[i] = replace(moved[i], xyz=tuple(float(v) for v in xyz), rpy=tuple(float(v) for v in rpy))
-        n_f = len(self.furniture)
-        self.furniture, self.person = moved[:n_f], moved[n_f:]
-        self._repack()
+        with self._lock:
+            moved = list(self.furniture) + list(self.person)
+            index = {b.name: i for i, b in enumerate(moved)}
+            for name, (xyz, rpy) in poses.items():
+                i = index[name]
+                moved[i] = replace(moved[i], xyz=tuple(float(v) for v in xyz), rpy=tuple(float(v) for v in rpy))
+            n_f = len(self.furniture)
+            bodies = pack(moved)
+            self.furniture, self.person = moved[:n_f], moved[n_f:]
+            self.bodies = bodies  # the filter reads this one attribute
 
 
 @dataclass
@@ -197,16 +203,13 @@ def sphere_speeds(jac, qd):
     return xp.max(xp.sqrt(xp.sum(v * v, axis=-2)), axis=-1)
 
 
-def cutoff_for(world: World, vmax, lookahead: float, floor=None):
+def cutoff_for(world: World, vmax, lookahead: float):
     """Per (sphere, body) [..., S, O]: the distance beyond which the pair cannot bind a command whose spheres
     move at most at vmax [..., S] (m/s, `sphere_speeds`): d_p + tau * vmax; a pair farther away closes at most
-    at that speed, which its allowance already covers. `floor` [O] raises it (exact distances wanted up to
-    there, e.g. for the reduced-speed zone's measurements)."""
+    at that speed, which its allowance already covers."""
     xp = namespace(vmax)
     d_body, tau_body, _, _ = world.thresholds(lookahead, xp, vmax)
     cut = d_body + tau_body * vmax[..., None]
-    if floor is not None:
-        cut = xp.maximum(cut, floor if type(vmax) is np.ndarray else xp.asarray(floor, dtype=vmax.dtype))
     return cut
 
 
@@ -225,9 +228,13 @@ def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float, vmax
         if type(qd) is not np.ndarray:
             first, second = xp.asarray(first), xp.asarray(second)
         reach = xp.concat([vmax[..., geo.sphere], vmax[..., first] + vmax[..., second]], axis=-1)  # fastest closing
-        live = allowed < reach
-        cols = xp.nonzero(xp.any(xp.reshape(live, (-1, live.shape[-1])), axis=0))[0]
-        allowed, g = allowed[..., cols], g[..., cols, :]
+        live = allowed < reach  # [..., R]
+        if live.shape[-1]:
+            lead = 1
+            for n_ in live.shape[:-1]:
+                lead *= n_
+            cols = xp.nonzero(xp.any(xp.reshape(live, (lead, live.shape[-1])), axis=0))[0]
+            allowed, g = allowed[..., cols], g[..., cols, :]
     a = -(qd @ xp.matrix_transpose(g))  # [..., B, R] closing rates
     allowed = allowed[..., None, :]
     over = a > allowed

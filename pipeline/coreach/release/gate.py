@@ -36,6 +36,7 @@ class Thresholds:
     max_contacts: int = 0
     max_keep_out: int = 0
     min_separation_m: float = 0.01
+    max_excess: int = 0
 
     @classmethod
     def from_config(cls, node, parity_ceiling: float) -> Thresholds:
@@ -75,6 +76,7 @@ class Thresholds:
             max_contacts=count("max_contacts"),
             max_keep_out=count("max_keep_out"),
             min_separation_m=number("min_separation_m", 0.0, 1.0),
+            max_excess=count("max_excess"),
         )
 
 
@@ -152,6 +154,10 @@ def separation_gates(suite: str, sep: dict | None, th: Thresholds) -> list[GateR
         _check(f"keep_out[{suite}]", "steps with a link inside the person's keep-out zone "
                f"({sep['world']['keep_out']:.3f} m)", a["keep_out_steps"], th.max_keep_out, "<=",
                f"closest link to the person {metres(a['min_person_m']):.3f} m; {worst('keep_out_steps')}"),
+        _check(f"person_speed[{suite}]", "steps where a link approached the person faster than the ISO/TS 15066 "
+               f"bound allows (measured over the step, tolerance {sep['world'].get('excess_tol', 0):g} m/s)",
+               a["excess_steps"], th.max_excess, "<=", f"time in the reduced-speed zone {a['zone_time_s']:.1f} s "
+               "per episode"),
         _check(f"separation[{suite}]", "closest link to furniture or to another link (m)",
                closest if math.isfinite(closest) else 1.0, th.min_separation_m, ">=",
                f"furniture {metres(a['min_furniture_m']):.4f} m, links {metres(a['min_self_m']):.4f} m; "

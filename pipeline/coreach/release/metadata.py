@@ -62,6 +62,18 @@ def _world_section(robot, scene) -> dict:
     return world_json(scene.obstacles, scene.person, scene.separation, links)
 
 
+def world_of_suites(robot, suites) -> dict:
+    """The world every gate suite vetted in; ConfigError when the suites' scenes hold different bodies (the
+    bundle ships one world, and it must be the one the gate measured)."""
+    first = _world_section(robot, suites[0].scene)
+    for s in suites[1:]:
+        if _world_section(robot, s.scene) != first:
+            raise ConfigError("option gate_suites", f"suite {s.name}'s scene has other bodies than suite "
+                                                    f"{suites[0].name}'s; a bundle ships the one world its gate "
+                                                    "vetted")  # fmt: skip
+    return first
+
+
 def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
     """The `meta` write_bundle needs (see coreach.release.bundle_writer.build_manifest)."""
     scene = suites[0].scene
@@ -93,7 +105,7 @@ def release_meta(cfg, robot, suites, run, label: str, summaries: dict) -> dict:
             "lookahead_s": float(rt.lookahead_s),
         },
         "stick": {"deadband": float(rt.deadband)},
-        "world": _world_section(robot, scene),
+        "world": world_of_suites(robot, suites),
         "tolerances": {"arrival": suites[0].tolerances},
         "metrics": _model_card_metrics(summaries),
         "parity_n": int(cfg.parity_n),

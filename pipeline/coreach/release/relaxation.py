@@ -14,7 +14,7 @@ from omegaconf import OmegaConf
 
 # the direction in which each gate threshold gets looser
 LOOSER_IF_LOWER = ("success_lo", "recovery_lo", "stick_gain_median", "min_separation_m")
-LOOSER_IF_HIGHER = ("max_violations", "parity_max_abs", "latency_p99_us", "max_contacts", "max_keep_out")
+LOOSER_IF_HIGHER = ("max_violations", "parity_max_abs", "latency_p99_us", "max_contacts", "max_keep_out", "max_excess")
 
 
 def shipped_release_config():

@@ -18,6 +18,8 @@ from pathlib import Path
 
 from omegaconf import DictConfig, OmegaConf
 
+from coreach.runtime.kinematics import Chain
+from coreach.runtime.session import arm_world_from_manifest
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_option
 from coreach.runtime.belief_manifest import belief_from_manifest
@@ -135,7 +137,10 @@ def replay(cfg: DictConfig) -> dict:
                                           f"was released for {list(m.goal_names)} (same order)")  # fmt: skip
 
     log.info("driving %s on %s (%d episodes x %d steps)", folder, suite.name, suite.n_episodes, suite.steps)
-    record = rollout(robot, interface, suite.build_operator(), suite, belief, limits, suite.generator())
+    # the bundle's own world (bodies, separation settings, sphere model), as the Session rebuilds it
+    chain = Chain.from_string(m.path("robot.urdf").read_text(encoding="utf-8"), m.tool_link)
+    world = arm_world_from_manifest(m, chain) or False
+    record = rollout(robot, interface, suite.build_operator(), suite, belief, limits, suite.generator(), world=world)
     summary = summarise(record, suite.tolerances)
     violations = count_violations(record, robot, limits, (m.workspace_min.tolist(), m.workspace_max.tolist()))
     vetted, source = vetted_metrics(uri, m.training_run_id, suite.name)

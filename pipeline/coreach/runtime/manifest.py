@@ -18,7 +18,9 @@ import numpy as np
 
 from coreach.errors import ConfigError, CoreachError
 
-SCHEMA_VERSION = "1"
+# 2: the manifest carries the scene's bodies (safety.world); a runtime that reads schema 1 would run such a
+# bundle without its separation step, so it must refuse it, and this one refuses schema 1 bundles (no world)
+SCHEMA_VERSION = "2"
 MANIFEST = "manifest.json"
 CORE_FILES = ("decoder.onnx", "decoder.safetensors", "decoder.json", "robot.urdf", "MODEL_CARD.md")
 # Common practice for joystick deadbands is 5-10 % of full deflection.

@@ -281,6 +281,10 @@ def arm_world_from_manifest(m: Manifest, chain: Chain) -> ArmWorld | None:
     if not m.world:
         return None
     obstacles, person, settings, links = world_from_json(m.world, "safety.world")
+    unknown = sorted(set(links["links"]) - set(chain.link_frames))
+    if unknown:
+        raise BundleError(str(m.path("manifest.json")), f"safety.world.links names links {unknown} that robot.urdf's "
+                                                       "root-to-tool path does not have")  # fmt: skip
     return ArmWorld.build(chain, links["links"], links["centres"], links["radii"], links["self_pairs"], obstacles,
                           person, settings)
 

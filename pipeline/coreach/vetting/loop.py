@@ -52,8 +52,7 @@ Progress = Callable[[int, int], None]
 # link really travels in 0.1 s departs from it by well under 1 mm at these speeds (common practice: a
 # tolerance an order above the rounding of the measurement)
 EXCESS_TOL = 0.01
-# m: separations below these are measured exactly; above them a cheaper lower bound is recorded
-_EXACT_FURNITURE = 0.10
+
 
 
 def _kinematics(robot, q: Tensor, jacobian: bool):
@@ -80,10 +79,7 @@ def _separations(world, centres: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor
     """Per episode: (min distance of a link sphere to furniture [E], to the person [E], between non-adjacent
     links [E], and per sphere to the person [E, S]); inf where there is nothing to measure."""
     w = world.world
-    floor = torch.as_tensor(
-        # exact up to past the reduced-speed zone of any tool speed cap up to 1 m/s
-        [w.settings.reduced_zone(1.0) + 0.05 if p else _EXACT_FURNITURE for p in w.is_person], dtype=centres.dtype)
-    geo = measure(w, centres, None, floor)
+    geo = measure(w, centres)  # exact distances for every pair
     inf = torch.tensor(math.inf, dtype=centres.dtype)
     is_person = torch.as_tensor(w.is_person)
     furniture = torch.where(is_person, inf, geo.body_d).amin(dim=(-2, -1)) if (~is_person).any() else inf.expand(
@@ -306,7 +302,7 @@ def _record(robot, interface, operator, suite: Suite, plan: EpisodePlan, out: di
     sep = out.pop("separation")
     extras = {
         # [E, T+1] m: the closest link sphere to furniture, to the person, and between non-adjacent links
-        # (inf without bodies; beyond 10 cm from furniture a lower bound)
+        # (inf without bodies)
         "sep_furniture": sep[0], "sep_person": sep[1], "sep_self": sep[2],
         "person_excess": out.pop("person_excess"),  # [E, T] a sphere approached the person faster than allowed
         "world": None if world is None else world_summary(world, speed_cap),

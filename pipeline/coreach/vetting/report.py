@@ -348,8 +348,8 @@ def separation_html(summaries: dict[str, dict]) -> str:
     overall = _table(["interface"] + labels, separation_rows(summaries, keys))
     goals = _table(["interface", "final goal"] + labels, separation_rows(summaries, keys, per_goal=True))
     note = ("Distances are between link surfaces (the arm's links as spheres) and the bodies, the minimum over "
-            "every step of every episode; negative is overlap. Far from a body the vetting loop records a cheaper "
-            "lower bound, so a large distance reads as &ldquo;at least&rdquo;.")  # fmt: skip
+            "every step of every episode; negative is overlap. The spheres contain the real links, so the real "
+            "distances are at least these.")  # fmt: skip
     return (f"<h2>Separation from the scene's bodies</h2><p>{html.escape(world_words(worlds[0]))}</p>"
             f"<p>{note}</p><h3>Per interface</h3>{overall}<h3>Per interface and final goal</h3>{goals}")  # fmt: skip
 
