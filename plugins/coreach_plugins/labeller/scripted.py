@@ -8,6 +8,7 @@ import torch
 from torch import Tensor
 
 from coreach.demonstrator import expert_action, expert_twist
+from coreach.detour import null_space_push
 from coreach.errors import ConfigError
 from coreach.option_specs import integer, number
 
@@ -42,7 +43,10 @@ class ScriptedLabeller:
             twist = expert_twist(visits.ee_pos[sl], visits.ee_rot[sl], target, visits.goal_rot[sl][rows, goal],
                                  self.k_p, self.k_r, self.v_max, self.w_max)  # fmt: skip
             J = robot.jacobian(q).to(torch.float64)
-            out.append(expert_action(robot, q, J, twist, visits.dt, self.damping))
+            world = visits.world  # the scene's bodies: the demonstrator's separation step and null-space push
+            sep = None if world is None else world.separation(q)
+            push = None if world is None else null_space_push(world, q, J, self.damping)
+            out.append(expert_action(robot, q, J, twist, visits.dt, self.damping, None, None, sep, push))
         return torch.cat(out) if out else torch.zeros(0, robot.dof, dtype=torch.float64)
 
 
