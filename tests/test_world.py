@@ -262,3 +262,29 @@ def test_filter_flags_the_separation_step_and_only_scales():
     rate = -(np.asarray(geo.g) @ qd)
     d_p, tau = row_thresholds(board.world, geo, 0.1, np, q)
     assert np.min(np.asarray(geo.d) - d_p - rate * tau) == pytest.approx(0.0, abs=1e-12)
+
+
+def test_no_rows_to_check_leaves_the_command_alone():
+    """An arm far from every body with no self pairs (e.g. three moving links): nothing to check, no crash."""
+    from coreach.control.separation import World
+
+    lone = World([], [], ROBOT.link_model(0.02).radii, SCENE.separation)  # no bodies, no self pairs
+    q = ROBOT.q_home.double().numpy()
+    centres, jac = WORLD.spheres(q)
+    qd = np.full(7, 0.3)
+    for like in (np.asarray, lambda a: torch.as_tensor(a)):
+        out, held = SafetyLimits.keep_apart(like(qd), lone, like(centres), like(jac), 0.1)
+        assert np.allclose(np.asarray(out), qd) and not bool(held)
+
+
+def test_a_bundle_ships_the_world_every_gate_suite_vetted_in(tmp_path):
+    from coreach.release.metadata import world_of_suites
+
+    d = yaml.safe_load(yaml.safe_dump(SHELF))
+    d["obstacles"] = d["obstacles"][:-1]  # the same shelf without the mount
+    (tmp_path / "other.yaml").write_text(yaml.safe_dump(d))
+    same = [suite_from_dict(dict(scenario="bedside_shelf", episodes=1, seed=12345), f"s{i}.yaml") for i in range(2)]
+    assert world_of_suites(ROBOT, same)["obstacles"][-1]["name"] == "arm_mount"
+    other = suite_from_dict(dict(scenario=str(tmp_path / "other.yaml"), episodes=1, seed=12345), "o.yaml")
+    with pytest.raises(ConfigError, match="other bodies"):
+        world_of_suites(ROBOT, [same[0], other])
