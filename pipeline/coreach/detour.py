@@ -87,8 +87,8 @@ def null_space_push(world, q: Tensor, J: Tensor, damping: float, reach: float = 
     the tool's motion is not changed."""
     w, centres, jac = world.separation(q)
     lookahead = 1.0  # only the protective distances matter here, not the rule's look-ahead
-    d_body, _, _, _ = w.thresholds(lookahead, torch, centres)
-    geo = measure(w, centres, jac, d_body + reach)
+    d_body, _, d_self, _ = w.thresholds(lookahead, torch, centres)
+    geo = measure(w, centres, jac, d_body + reach, d_self + reach)
     d_p, _ = row_thresholds(w, geo, lookahead, torch, centres)
     weight = ((d_p + reach - geo.d) / reach).clamp(0.0, 1.0)  # [B, R]
     push = gain * (weight[..., None] * geo.g).sum(dim=-2)  # [B, n]: grows every nearby distance

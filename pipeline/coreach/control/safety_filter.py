@@ -145,8 +145,8 @@ class SafetyLimits:
         shape = qd.shape
         flat = xp.reshape(qd, (*lead, -1, shape[-1]))  # [..., B, n]: every command at one state
         vmax = sphere_speeds(jac, flat)  # [..., S]
-        geo = measure(world, centres, jac, cutoff_for(world, vmax, horizon))
-        scale = scale_for_separation(world, geo, flat, horizon, vmax)  # [..., B]
+        geo = measure(world, centres, jac, *cutoff_for(world, vmax, horizon))
+        scale = scale_for_separation(world, geo, flat, horizon)  # [..., B]
         out = xp.reshape(flat * scale[..., None], shape)
         return out, xp.reshape(scale < 1.0, shape[:-1])
 

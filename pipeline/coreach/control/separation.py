@@ -135,25 +135,35 @@ class World:
 class Geometry:
     """Distances of one arm state (or a batch) to everything in the world, and the rule's rows.
 
-    body_d [..., S, O] sphere-surface-to-body distances (exact); self_d [..., P]. The rows the rule reads
-    (with a Jacobian): the (sphere, body) pairs near enough to matter, sphere[C] and body[C] (the same for
-    every state of a batch), then every self pair: d [..., C + P], g [..., C + P, n] (the distance's
+    body_d [..., S, O] sphere-surface-to-body distances and self_d [..., P] (exact, every pair). The rows the
+    rule reads (with a Jacobian): the (sphere, body) pairs sphere[C], body[C] and the self pairs pair[K] near
+    enough to matter in at least one state of the batch: d [..., C + K], g [..., C + K, n] (the distance's
     gradient with respect to the joint positions)."""
 
     body_d: object
     self_d: object
     d: object = None
     g: object = None
-    sphere: object = None  # [C] index of each body row's sphere
-    body: object = None  # [C] index of each body row's body
+    sphere: object = None  # [C] each body row's sphere
+    body: object = None  # [C] each body row's body
+    pair: object = None  # [K] each self row's pair (index into world.self_pairs)
 
 
-def measure(world: World, centres, jac=None, cutoff=None) -> Geometry:
+def _any_state(mask, xp):
+    """[..., X] -> [X]: true in at least one state of the batch."""
+    lead = 1
+    for n in mask.shape[:-1]:
+        lead *= n
+    return xp.any(xp.reshape(mask, (lead, mask.shape[-1])), axis=0) if mask.ndim > 1 else mask
+
+
+def measure(world: World, centres, jac=None, cutoff=None, self_cutoff=None) -> Geometry:
     """Geometry at sphere centres [..., S, 3]; with linear Jacobians jac [..., S, 3, n], the rule's rows too.
 
-    Every distance is exact (one pass without gradients). Only the pairs closer than `cutoff` (broadcastable
-    to [..., S, O]; e.g. `cutoff_for`: beyond it a pair cannot bind the commands at hand) in at least one
-    state become body rows and get a gradient; without a cutoff every pair does."""
+    Every distance is exact (one pass without gradients). Only the (sphere, body) pairs closer than `cutoff`
+    (broadcastable to [..., S, O]) and the self pairs closer than `self_cutoff` ([..., P]) in at least one state
+    become rows and get a gradient (`cutoff_for`: beyond them a pair cannot bind the commands at hand);
+    without cutoffs every pair does."""
     xp = namespace(centres)
     radii = world.radii
     r = radii if type(centres) is np.ndarray else xp.asarray(radii, dtype=centres.dtype)
@@ -166,31 +176,40 @@ def measure(world: World, centres, jac=None, cutoff=None) -> Geometry:
         self_d, u = xp.zeros((*body_d.shape[:-2], 0), dtype=centres.dtype), None
     if jac is None:
         return Geometry(body_d, self_d)
+    S, O, n = body_d.shape[-2], body_d.shape[-1], jac.shape[-1]
     near = body_d < cutoff if cutoff is not None else xp.ones(body_d.shape, dtype=xp.bool)
-    if near.ndim > 2:
-        near = xp.any(xp.reshape(near, (-1, *near.shape[-2:])), axis=0)  # [S, O]: near in any state
-    sphere, body = xp.nonzero(near)
-    n = jac.shape[-1]
-    # the near pairs' gradients: point k against body k only ([..., C, 1, 3] against [C, 1, 1, ...] arrays)
-    _, normal = point_distances(centres[..., sphere, :][..., None, :], bodies.take(body), grad=True)
-    rows_d = [body_d[..., sphere, body]]
-    rows_g = [(normal[..., 0, 0, None, :] @ jac[..., sphere, :, :])[..., 0, :]]  # n^T J_s: [..., C, n]
-    if u is not None:
+    sphere, body = xp.nonzero(xp.reshape(_any_state(xp.reshape(near, (*near.shape[:-2], S * O)), xp), (S, O)))
+    rows_d, rows_g = [], []
+    if sphere.shape[0]:
+        # the near pairs' gradients: point k against body k only ([..., C, 1, 3] against [C, 1, 1, ...] arrays)
+        _, normal = point_distances(centres[..., sphere, :][..., None, :], bodies.take(body), grad=True)
+        rows_d.append(body_d[..., sphere, body])
+        rows_g.append((normal[..., 0, 0, None, :] @ jac[..., sphere, :, :])[..., 0, :])  # n^T J_s: [..., C, n]
+    pair = xp.nonzero(xp.ones(self_d.shape[-1:], dtype=xp.bool))[0]
+    if u is not None and self_cutoff is not None:
+        pair = xp.nonzero(_any_state(self_d < self_cutoff, xp))[0]
+    if u is not None and pair.shape[0]:
         first, second = world._first, world._second
         if type(jac) is not np.ndarray:
             first, second = xp.asarray(first), xp.asarray(second)
-        j_rel = jac[..., first, :, :] - jac[..., second, :, :]  # [..., P, 3, n]
-        rows_d.append(self_d)
-        rows_g.append((u[..., None, :] @ j_rel)[..., 0, :])
-    return Geometry(body_d, self_d, xp.concat(rows_d, axis=-1), xp.concat(rows_g, axis=-2), sphere, body)
+        first, second = first[pair], second[pair]
+        j_rel = jac[..., first, :, :] - jac[..., second, :, :]  # [..., K, 3, n]
+        rows_d.append(self_d[..., pair])
+        rows_g.append((u[..., pair, None, :] @ j_rel)[..., 0, :])
+    if rows_d:
+        d, g = xp.concat(rows_d, axis=-1), xp.concat(rows_g, axis=-2)
+    else:
+        d = xp.zeros((*body_d.shape[:-2], 0), dtype=centres.dtype)
+        g = xp.zeros((*body_d.shape[:-2], 0, n), dtype=centres.dtype)
+    return Geometry(body_d, self_d, d, g, sphere, body, pair)
 
 
 def row_thresholds(world: World, geo: Geometry, lookahead: float, xp, like):
-    """(d_p [C + P], tau [C + P]) of the rule for a Geometry's rows."""
+    """(d_p [C + K], tau [C + K]) of the rule for a Geometry's rows."""
     d_body, tau_body, d_self, tau_self = world.thresholds(lookahead, xp, like)
-    P = len(world.self_pairs)
-    d_p = xp.concat([d_body[geo.body], xp.full((P,), d_self, dtype=like.dtype)])
-    tau = xp.concat([tau_body[geo.body], xp.full((P,), tau_self, dtype=like.dtype)])
+    K = geo.pair.shape[0]
+    d_p = xp.concat([d_body[geo.body], xp.full((K,), d_self, dtype=like.dtype)])
+    tau = xp.concat([tau_body[geo.body], xp.full((K,), tau_self, dtype=like.dtype)])
     return d_p, tau
 
 
@@ -204,38 +223,26 @@ def sphere_speeds(jac, qd):
 
 
 def cutoff_for(world: World, vmax, lookahead: float):
-    """Per (sphere, body) [..., S, O]: the distance beyond which the pair cannot bind a command whose spheres
-    move at most at vmax [..., S] (m/s, `sphere_speeds`): d_p + tau * vmax; a pair farther away closes at most
-    at that speed, which its allowance already covers."""
+    """(per (sphere, body) [..., S, O], per self pair [..., P]): the distance beyond which the pair cannot bind
+    a command whose spheres move at most at vmax [..., S] (m/s, `sphere_speeds`): d_p + tau * the fastest the
+    pair can close (vmax of its sphere; the sum of both spheres' for a self pair); a pair farther away closes
+    at most at that speed, which its allowance already covers."""
     xp = namespace(vmax)
-    d_body, tau_body, _, _ = world.thresholds(lookahead, xp, vmax)
-    cut = d_body + tau_body * vmax[..., None]
-    return cut
+    d_body, tau_body, d_self, tau_self = world.thresholds(lookahead, xp, vmax)
+    first, second = world._first, world._second
+    if type(vmax) is not np.ndarray:
+        first, second = xp.asarray(first), xp.asarray(second)
+    return d_body + tau_body * vmax[..., None], d_self + tau_self * (vmax[..., first] + vmax[..., second])
 
 
-def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float, vmax=None):
-    """The factor [..., B] in [0, 1] that makes every pair meet a <= max(d - d_p, 0) / tau, for commands
-    qd [..., B, n]. A pair that is not closing (a <= 0) never limits the command. With vmax [..., S] (the
-    spheres' fastest speeds over the commands), rows that cannot bind any command (allowance >= the most the
-    pair can close: vmax of its sphere, or the sum of both spheres' for a self pair) are left out of the
-    product first; the factor is the same."""
+def scale_for_separation(world: World, geo: Geometry, qd, lookahead: float):
+    """The factor [..., B] in [0, 1] that makes every row meet a <= max(d - d_p, 0) / tau, for commands
+    qd [..., B, n]. A pair that is not closing (a <= 0) never limits the command; a pair left out of the rows
+    by `cutoff_for` cannot bind these commands, so the factor is the same as with every pair."""
     xp = namespace(qd)
     d_p, tau = row_thresholds(world, geo, lookahead, xp, qd)
     allowed = xp.maximum(geo.d - d_p, 0.0) / tau  # [..., R]
-    g = geo.g
-    if vmax is not None:
-        first, second = world._first, world._second
-        if type(qd) is not np.ndarray:
-            first, second = xp.asarray(first), xp.asarray(second)
-        reach = xp.concat([vmax[..., geo.sphere], vmax[..., first] + vmax[..., second]], axis=-1)  # fastest closing
-        live = allowed < reach  # [..., R]
-        if live.shape[-1]:
-            lead = 1
-            for n_ in live.shape[:-1]:
-                lead *= n_
-            cols = xp.nonzero(xp.any(xp.reshape(live, (lead, live.shape[-1])), axis=0))[0]
-            allowed, g = allowed[..., cols], g[..., cols, :]
-    a = -(qd @ xp.matrix_transpose(g))  # [..., B, R] closing rates
+    a = -(qd @ xp.matrix_transpose(geo.g))  # [..., B, R] closing rates
     allowed = allowed[..., None, :]
     over = a > allowed
     pair = xp.where(over, allowed / xp.where(over, a, 1.0), 1.0)

@@ -44,11 +44,11 @@ class ArmWorld:
         q [..., n] (numpy)."""
         return self.chain.points(np.asarray(q, dtype=np.float64), self.attached, frames, jacobian)
 
-    def separation(self, q):
+    def separation(self, q, frames=None):
         """(World, centres [..., S, 3], Jacobians [..., S, 3, n]) at q [..., n], in q's namespace: what the
-        safety filter's `separation` argument takes."""
+        safety filter's `separation` argument takes (numpy `frames` of the chain at q may be passed)."""
         if type(q) is np.ndarray:
-            return (self.world, *self.spheres(q))
+            return (self.world, *self.spheres(q, frames))
         xp = namespace(q)
         centres, jac = self.spheres(q.detach().cpu().numpy())
         return self.world, xp.asarray(centres, dtype=q.dtype), xp.asarray(jac, dtype=q.dtype)

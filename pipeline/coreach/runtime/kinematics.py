@@ -129,10 +129,13 @@ class Chain:
         _, tool = self._frames(q)
         return tool[..., :3, 3], tool[..., :3, :3]
 
-    def fk_jacobian(self, q) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def fk_jacobian(self, q, frames_out: list | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Tool position [..., 3], rotation [..., 3, 3] and geometric Jacobian [..., 6, n] (rows 0-2 linear,
-        3-5 angular velocity, both in the base frame, linear at the tool point)."""
+        3-5 angular velocity, both in the base frame, linear at the tool point). `frames_out`, a list, receives
+        the joint frames, so `points` at the same q need not compute them again."""
         frames, tool = self._frames(q)
+        if frames_out is not None:
+            frames_out.append(frames)
         # Rotating about (or sliding along) local z leaves z and the origin unchanged, so the frame after
         # the motion gives the joint's world axis (column 2) and origin (column 3).
         z = frames[..., :3, 2]  # [..., n, 3]

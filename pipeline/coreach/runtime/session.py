@@ -206,7 +206,8 @@ class Session:
             info.fault = self._fault
             return zero
 
-        pos, rot, jac = self.chain.fk_jacobian(q)
+        frames = [] if self.arm is not None else None
+        pos, rot, jac = self.chain.fk_jacobian(q, frames)
         info.ee_pos = pos
         info.belief_updated = self._track_belief(pos)
 
@@ -233,7 +234,7 @@ class Session:
         if not np.isfinite(qd).all():
             return self._latch(info, "decoder output is not finite")
 
-        separation = None if self.arm is None else self.arm.separation(q)
+        separation = None if self.arm is None else self.arm.separation(q, frames[0])
         qd, flags, scale = limits.limit(q, qd, jac[:3], pos, None, separation)
         info.position_limited = bool(flags & JOINT_LIMIT)
         info.speed_capped = bool(flags & SPEED_CAP)
