@@ -217,7 +217,13 @@ def test_two_recipes_two_seeds_end_to_end(workdir):
     again = compose_config("recipes", words[2:])
     assert list(again.select) == ["lin", "cvae"] and list(again.seeds) == [3, 5]
     assert OmegaConf.to_container(again.recipes.lin) == out["recipes"]["lin"]
-    assert sum(ln.startswith(("| lin |", "| cvae |")) for ln in md) == 6  # 2 x (2 seeds + spread)
+    main, _, after = "\n".join(md).partition("Simulated operators in simulation.")
+    assert sum(ln.startswith(("| lin |", "| cvae |")) for ln in main.splitlines()) == 6  # 2 x (2 seeds + spread)
+    # the separation table: one row per seed (no spread rows) and baseline, one cell per suite, with the
+    # contact and keep-out counts first (the tiny suite's scene has the shelf's bodies)
+    sep = [ln for ln in after.splitlines() if ln.startswith(("| lin |", "| cvae |"))]
+    assert len(sep) == 4 and all(len(ln.split("|")) == 5 for ln in sep)
+    assert all(ln.split("|")[3].strip().split(" / ")[:2] == ["0", "0"] for ln in sep)
     assert json.loads((folder / "results.json").read_text())["rows"] == out["rows"]
     rows = list(csv.DictReader((folder / "results.csv").open()))
     # a no-switch suite gets a success column per goal its episodes ended at (2 episodes: 2 goals), from the

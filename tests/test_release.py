@@ -203,7 +203,8 @@ def test_release_best_releases_a_demo_decoder_and_drives_it(trained, monkeypatch
     assert str(model.aliases["fielded"]) == str(out["release"]["version"])
     t = out["tryout"]
     assert t["steps"] == 300 and t["fault"] is None and t["tool_moved_m"] > 0.01
-    assert sum(t["belief"].values()) == pytest.approx(1.0, abs=1e-6)
+    # each belief value is rounded to 3 decimals in the summary: the sum is 1 within G * 0.0005
+    assert sum(t["belief"].values()) == pytest.approx(1.0, abs=len(t["belief"]) * 5e-4 + 1e-9)
 
 
 def test_bench_vet_reports_all_three_rates(tmp_path):
