@@ -16,7 +16,7 @@ from coreach.control.bodies import Primitive
 from coreach.control.separation import SeparationSettings
 from coreach.errors import ConfigError
 from coreach.geometry import matrix_to_quat, rpy_to_matrix
-from coreach.scene_bodies import check_goals_clear, finite_list, parse_obstacles, parse_person
+from coreach.scene_bodies import check_goals_clear, finite_list, named_entry, parse_obstacles, parse_person
 
 __all__ = ["Goal", "Scenario", "Layout", "EpisodeLayout", "load_scenario", "builtin_scenarios"]
 
@@ -131,14 +131,7 @@ class Scenario:
         goal_keys = {"name", "position", "approach_rpy_deg", "fine_motion"}
         for i, g in enumerate(raw_goals):
             at = f"{where}, option goals[{i}]"
-            if not isinstance(g, dict):
-                raise ConfigError(at, f"expected a mapping with keys {sorted(goal_keys)}")
-            extra = sorted(set(g) - goal_keys)
-            if extra:
-                raise ConfigError(f"{at}.{extra[0]}", f"unknown option; expected one of {sorted(goal_keys)}")
-            gname = g.get("name")
-            if not isinstance(gname, str) or not gname:
-                raise ConfigError(f"{at}.name", f"expected a non-empty string, got {gname!r}")
+            gname = named_entry(g, at, goal_keys)
             if gname in seen:
                 raise ConfigError(f"{at}.name", f"duplicate goal name {gname!r}; goal names must be unique")
             seen.add(gname)

@@ -11,7 +11,7 @@ from coreach.control.bodies import SHAPES, Primitive, pack, point_distances
 from coreach.control.separation import SeparationSettings
 from coreach.errors import ConfigError
 
-__all__ = ["finite_list", "parse_obstacles", "parse_person", "check_goals_clear", "world_json", "world_from_json", "SIZE_FORMS"]
+__all__ = ["finite_list", "named_entry", "parse_obstacles", "parse_person", "check_goals_clear", "world_json", "world_from_json", "SIZE_FORMS"]
 
 # what `size` holds per shape (m)
 SIZE_FORMS = {"box": ("x", "y", "z"), "cylinder": ("radius", "length"), "capsule": ("radius", "length"),
@@ -35,15 +35,22 @@ def finite_list(value: Any, n: int, at: str, what: str) -> tuple[float, ...]:
     return out
 
 
-def _body(raw: Any, at: str, shapes: tuple[str, ...]) -> Primitive:
+def named_entry(raw: Any, at: str, keys: set[str]) -> str:
+    """The name of a scene-file entry (a goal, a body) after checking it is a mapping of known keys with a
+    non-empty `name`; ConfigError naming the entry's field otherwise."""
     if not isinstance(raw, dict):
-        raise ConfigError(at, f"expected a mapping with keys {sorted(_BODY_KEYS)}")
-    extra = sorted(set(raw) - _BODY_KEYS)
+        raise ConfigError(at, f"expected a mapping with keys {sorted(keys)}")
+    extra = sorted(set(raw) - keys)
     if extra:
-        raise ConfigError(f"{at}.{extra[0]}", f"unknown option; expected one of {sorted(_BODY_KEYS)}")
+        raise ConfigError(f"{at}.{extra[0]}", f"unknown option; expected one of {sorted(keys)}")
     name = raw.get("name")
     if not isinstance(name, str) or not name:
         raise ConfigError(f"{at}.name", f"expected a non-empty string, got {name!r}")
+    return name
+
+
+def _body(raw: Any, at: str, shapes: tuple[str, ...]) -> Primitive:
+    name = named_entry(raw, at, _BODY_KEYS)
     shape = raw.get("shape")
     if shape not in shapes:
         raise ConfigError(f"{at}.shape", f"unknown shape {shape!r}; expected one of {list(shapes)}")
