@@ -114,8 +114,9 @@ class SafetyLimits:
     def limit(self, q, qd, jac_lin, pos=None, dt: float | None = None, separation=None):
         """Filter joint velocities qd [..., n] at joint positions q [..., n], tool Jacobian jac_lin [..., 3, n] and
         tool position pos [..., 3] (needed only with a workspace box). Look-ahead: `lookahead_s`, else dt.
-        `separation`: (World, sphere centres [..., S, 3], their Jacobians [..., S, 3, n]) of the state(s), with
-        a leading shape that is a prefix of qd's (e.g. [E] for candidate commands [E, M, K, n]).
+        `separation`: (World, sphere centres [..., S, 3], their Jacobians [..., S, 3, n][, their distances
+        measured before]) of the state(s), with a leading shape that is a prefix of qd's (e.g. [E] for candidate
+        commands [E, M, K, n]).
 
         Returns (qd, flags [...] int: JOINT_LIMIT | SPEED_CAP | WORKSPACE | SEPARATION bits, workspace scale
         [...] or 1.0 without a box).
@@ -130,22 +131,23 @@ class SafetyLimits:
             scale, boxed = 1.0, False
         flags = outside * JOINT_LIMIT | fast * SPEED_CAP | boxed * WORKSPACE
         if separation is not None:
-            qd, held = self.keep_apart(qd, *separation, horizon)
+            qd, held = self.keep_apart(qd, *separation[:3], horizon, *separation[3:])
             flags = flags | held * SEPARATION
         return qd, flags, scale
 
     @staticmethod
-    def keep_apart(qd, world, centres, jac, horizon: float):
+    def keep_apart(qd, world, centres, jac, horizon: float, known=None):
         """4d. Scale qd [..., n] by the separation rule's factor (coreach.control.separation) at link spheres
         centres [..., S, 3] with Jacobians jac [..., S, 3, n], whose leading shape is a prefix of qd's (one
         state, many commands). Only pairs near enough to bind one of the commands are measured exactly.
-        Returns (qd, intervened [...])."""
+        `known`: the state's distances measured before (coreach.control.separation.measure). Returns
+        (qd, intervened [...])."""
         xp = namespace(qd)
         lead = centres.shape[:-2]
         shape = qd.shape
         flat = xp.reshape(qd, (*lead, -1, shape[-1]))  # [..., B, n]: every command at one state
         vmax = sphere_speeds(jac, flat)  # [..., S]
-        geo = measure(world, centres, jac, *cutoff_for(world, vmax, horizon))
+        geo = measure(world, centres, jac, *cutoff_for(world, vmax, horizon), known=known)
         scale = scale_for_separation(world, geo, flat, horizon)  # [..., B]
         out = xp.reshape(flat * scale[..., None], shape)
         return out, xp.reshape(scale < 1.0, shape[:-1])

@@ -147,6 +147,7 @@ class Geometry:
     sphere: object = None  # [C] each body row's sphere
     body: object = None  # [C] each body row's body
     pair: object = None  # [K] each self row's pair (index into world.self_pairs)
+    self_u: object = None  # [..., P, 3] unit vectors between the self pairs' centres (for their gradients)
 
 
 def _any_state(mask, xp):
@@ -157,25 +158,29 @@ def _any_state(mask, xp):
     return xp.any(xp.reshape(mask, (lead, mask.shape[-1])), axis=0) if mask.ndim > 1 else mask
 
 
-def measure(world: World, centres, jac=None, cutoff=None, self_cutoff=None) -> Geometry:
+def measure(world: World, centres, jac=None, cutoff=None, self_cutoff=None, known: Geometry | None = None) -> Geometry:
     """Geometry at sphere centres [..., S, 3]; with linear Jacobians jac [..., S, 3, n], the rule's rows too.
 
     Every distance is exact (one pass without gradients). Only the (sphere, body) pairs closer than `cutoff`
     (broadcastable to [..., S, O]) and the self pairs closer than `self_cutoff` ([..., P]) in at least one state
     become rows and get a gradient (`cutoff_for`: beyond them a pair cannot bind the commands at hand);
-    without cutoffs every pair does."""
+    without cutoffs every pair does. `known`: the distances of the same centres, measured before (the vetting
+    loop measures each state once for its records and hands them on)."""
     xp = namespace(centres)
     radii = world.radii
-    r = radii if type(centres) is np.ndarray else xp.asarray(radii, dtype=centres.dtype)
     bodies = world.bodies.as_namespace(xp, centres)
-    d_c, _ = point_distances(centres, bodies, grad=False)  # [..., S, O]
-    body_d = d_c - r[:, None]
-    if len(world.self_pairs):
-        self_d, u = sphere_pair_distances(centres, radii, world._first, world._second)
+    if known is not None:
+        body_d, self_d, u = known.body_d, known.self_d, known.self_u
     else:
-        self_d, u = xp.zeros((*body_d.shape[:-2], 0), dtype=centres.dtype), None
+        r = radii if type(centres) is np.ndarray else xp.asarray(radii, dtype=centres.dtype)
+        d_c, _ = point_distances(centres, bodies, grad=False)  # [..., S, O]
+        body_d = d_c - r[:, None]
+        if len(world.self_pairs):
+            self_d, u = sphere_pair_distances(centres, radii, world._first, world._second)
+        else:
+            self_d, u = xp.zeros((*body_d.shape[:-2], 0), dtype=centres.dtype), None
     if jac is None:
-        return Geometry(body_d, self_d)
+        return Geometry(body_d, self_d, self_u=u)
     S, O, n = body_d.shape[-2], body_d.shape[-1], jac.shape[-1]
     near = body_d < cutoff if cutoff is not None else xp.ones(body_d.shape, dtype=xp.bool)
     sphere, body = xp.nonzero(xp.reshape(_any_state(xp.reshape(near, (*near.shape[:-2], S * O)), xp), (S, O)))
@@ -201,7 +206,7 @@ def measure(world: World, centres, jac=None, cutoff=None, self_cutoff=None) -> G
     else:
         d = xp.zeros((*body_d.shape[:-2], 0), dtype=centres.dtype)
         g = xp.zeros((*body_d.shape[:-2], 0, n), dtype=centres.dtype)
-    return Geometry(body_d, self_d, d, g, sphere, body, pair)
+    return Geometry(body_d, self_d, d, g, sphere, body, pair, u)
 
 
 def row_thresholds(world: World, geo: Geometry, lookahead: float, xp, like):

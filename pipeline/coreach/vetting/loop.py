@@ -75,9 +75,10 @@ def _limit(limits, q: Tensor, qd: Tensor, jac_lin: Tensor, pos: Tensor, dt: floa
     return qd, flags.to(torch.uint8)
 
 
-def _separations(world, centres: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor]:
+def _separations(world, centres: Tensor):
     """Per episode: (min distance of a link sphere to furniture [E], to the person [E], between non-adjacent
-    links [E], and per sphere to the person [E, S]); inf where there is nothing to measure."""
+    links [E], per sphere to the person [E, S]; inf where there is nothing to measure), and the distances
+    themselves (the filter's separation step reuses them for this state)."""
     w = world.world
     geo = measure(w, centres)  # exact distances for every pair
     inf = torch.tensor(math.inf, dtype=centres.dtype)
@@ -86,7 +87,7 @@ def _separations(world, centres: Tensor) -> tuple[Tensor, Tensor, Tensor, Tensor
         centres.shape[0])
     per_sphere = torch.where(is_person, geo.body_d, inf).amin(dim=-1)  # [E, S]
     self_min = geo.self_d.amin(dim=-1) if geo.self_d.shape[-1] else inf.expand(centres.shape[0])
-    return furniture, per_sphere.amin(dim=-1), self_min, per_sphere
+    return furniture, per_sphere.amin(dim=-1), self_min, per_sphere, geo
 
 
 def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> None:
@@ -218,7 +219,8 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         rec_q[:, t], rec_pos[:, t], rec_belief[:, t] = q, pos, belief
         if world is not None:
             sep_state = world.separation(q)
-            furniture, person, self_min, per_sphere = _separations(world, sep_state[1])
+            furniture, person, self_min, per_sphere, geo = _separations(world, sep_state[1])
+            sep_state = (*sep_state, geo)  # one distance pass per state: the filter reuses it
             rec_sep[0, :, t], rec_sep[1, :, t], rec_sep[2, :, t] = furniture, person, self_min
             if last_person is not None:
                 # measured approach over the step just taken against what the rule allowed at its start
