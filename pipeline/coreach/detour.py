@@ -50,8 +50,7 @@ def detour_points(world, start: Tensor, goal: Tensor) -> Tensor:
     if world is None or not world.world.furniture:
         return out
     packed = pack(world.world.furniture)
-    tool_link = world.links[-1]
-    inflate = float(max(r for r, l in zip(world.world.radii, world.links) if l == tool_link))
+    inflate = world.gripper_radius
     inflate += world.world.settings.clearance + DETOUR_MARGIN
     a, b = start.numpy().astype(np.float64), goal.numpy().astype(np.float64)
     need = _blocked(a, b, packed, inflate)

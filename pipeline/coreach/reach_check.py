@@ -129,8 +129,7 @@ def _corridor(world, scene, opt: ReachOptions) -> list[str]:
 
     if world is None or not scene.obstacles:
         return [""] * len(scene.goals)
-    tool_link = world.links[-1]  # spheres are listed root to tool: the last link's are the gripper's
-    r_tool = float(max(r for r, l in zip(world.world.radii, world.links) if l == tool_link))
+    r_tool = world.gripper_radius
     packed = pack(scene.obstacles)
     out = []
     for goal in scene.goals:

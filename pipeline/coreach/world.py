@@ -52,7 +52,7 @@ def check_episodes_clear(robot, scenario: Scenario, paths: list, goals: list[str
         return
     lengths = [len(p) for p in paths]
     centres, _ = world.spheres(np.concatenate(paths), jacobian=False)
-    keep_out = np.where(world.world.is_person, world.world.settings.keep_out, 0.0)
+    keep_out = world.world.protective(furniture=0.0)
     touching, body = contact_report(world.world, measure(world.world, centres, None, keep_out))
     bad: dict[str, list] = {}
     start = 0

@@ -96,13 +96,19 @@ class World:
         self.is_person = np.arange(len(self.bodies)) >= len(self.furniture)  # [O]
         self._thresholds: dict = {}  # per (look-ahead, kind, dtype): the rule's d_p and tau per body
 
+    def protective(self, furniture: float | None = None) -> np.ndarray:
+        """[O] the distance each body must be kept at: the person's keep-out distance, and for furniture the
+        clearance (or `furniture`, e.g. 0.0 to count contacts rather than clearance)."""
+        s = self.settings
+        return np.where(self.is_person, s.keep_out, s.clearance if furniture is None else furniture)
+
     def thresholds(self, lookahead: float, xp, like):
         """The rule's numbers as arrays of `like`'s kind, made once per look-ahead: (d_p [O], tau [O]) per
         body, then (d_p, tau) of every self pair (scalars)."""
         key = (float(lookahead), type(like), getattr(like, "dtype", None))
         if key not in self._thresholds:
             s = self.settings
-            d_body = np.where(self.is_person, s.keep_out, s.clearance)
+            d_body = self.protective()
             tau_body = np.where(self.is_person, max(lookahead, s.person_tau), lookahead)
             if type(like) is not np.ndarray:
                 d_body, tau_body = xp.asarray(d_body, dtype=like.dtype), xp.asarray(tau_body, dtype=like.dtype)

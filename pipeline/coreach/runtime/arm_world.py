@@ -35,7 +35,7 @@ class ArmWorld:
         """[...] bool: every sphere at or beyond its protective distance (the clearance from furniture and
         between links, the keep-out distance from the person) in a numpy Geometry."""
         s = self.world.settings
-        limit = np.where(self.world.is_person, s.keep_out, s.clearance)
+        limit = self.world.protective()
         ok = (np.asarray(geo.body_d) >= limit).all(axis=(-2, -1))
         return ok & (np.asarray(geo.self_d) >= s.clearance).all(axis=-1)
 
@@ -43,6 +43,12 @@ class ArmWorld:
         """Sphere centres [..., S, 3] and their linear Jacobians [..., S, 3, n] (None without `jacobian`) at
         q [..., n] (numpy)."""
         return self.chain.points(np.asarray(q, dtype=np.float64), self.attached, frames, jacobian)
+
+    @property
+    def gripper_radius(self) -> float:
+        """The largest sphere radius on the tool-side link (spheres are listed root to tool: the last link's
+        are the gripper's)."""
+        return float(max(r for r, link in zip(self.world.radii, self.links) if link == self.links[-1]))
 
     def separation(self, q, frames=None):
         """(World, centres [..., S, 3], Jacobians [..., S, 3, n]) at q [..., n], in q's namespace: what the
@@ -69,7 +75,7 @@ def contact_report(world: World, geo: Geometry) -> tuple[np.ndarray, np.ndarray]
     non-adjacent spheres overlapping, or a sphere inside the person's keep-out zone; the body involved [...],
     an index into world.body_names, or -1 for a self contact)."""
     body_d = np.asarray(geo.body_d)  # [..., S, O]
-    limit = np.where(world.is_person, world.settings.keep_out, 0.0)  # [O]
+    limit = world.protective(furniture=0.0)  # [O]
     worst_body = (body_d - limit).min(axis=-2)  # [..., O]
     worst = worst_body.min(axis=-1)
     body = worst_body.argmin(axis=-1)
