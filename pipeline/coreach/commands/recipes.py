@@ -504,7 +504,7 @@ def separation_rows(result: dict) -> list[tuple[str, str, list[str]]]:
 
 
 def markdown(result: dict) -> str:
-    """README-ready: the command that reproduces the table, the date, the table and how to read it."""
+    """For the results page (docs/results.md): the command that reproduces the table, the date, the table, how to read it."""
     esc = lambda s: str(s).replace("|", "\\|")  # noqa: E731
     head = ["recipe", "seed", *(c["header"] for c in result["columns"])]
     lines = ["```sh", result["command"], "```", ""]

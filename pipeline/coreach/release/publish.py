@@ -1,6 +1,6 @@
 """Publishing a passed release so that a crash at any moment leaves nothing half-done.
 
-The steps, in order (STEPS; the design is in coreach.release.settle and DEVELOPERS.md):
+The steps, in order (STEPS; the design is in coreach.release.settle and docs/release-design.md):
   intent    the release run, tagged coreach.publish=pending with this process as owner
   register  the model version (registered model first if new), source = the bundle's place in the store
   bundle    the bundle folder <out_dir>/<name>/v<version>/, staged beside it and renamed
