@@ -230,7 +230,8 @@ def sphere_speeds(jac, qd):
     S, n = jac.shape[-3], jac.shape[-1]
     v = xp.reshape(jac, (*jac.shape[:-3], S * 3, n)) @ xp.matrix_transpose(qd)  # [..., S*3, B]: one product
     v = xp.reshape(v, (*jac.shape[:-3], S, 3, qd.shape[-2]))
-    return xp.max(xp.sqrt(xp.sum(v * v, axis=-2)), axis=-1)
+    speed = xp.sqrt(v[..., 0, :] ** 2 + v[..., 1, :] ** 2 + v[..., 2, :] ** 2)  # [..., S, B] (bodies.sum3's reason)
+    return speed[..., 0] if speed.shape[-1] == 1 else xp.max(speed, axis=-1)
 
 
 def cutoff_for(world: World, vmax, lookahead: float):
