@@ -11,8 +11,7 @@ import pytest
 @pytest.fixture(autouse=True)
 def _store_only_where_asked(request):
     """COREACH_TRACKING_URI names the store every command uses first; .ci/run exports it (the lab server) for
-    tests/lab. Elsewhere a test names its own store, so the variable is cleared there. Stages that run in
-    the test process point both variables at their store (coreach.tracking.use_store), so both are put
+    tests/lab. Elsewhere a test names its own store, so the variable is cleared there. Both variables are put
     back after every test: one test's store must not become the next one's."""
     saved = {v: os.environ.get(v) for v in ("COREACH_TRACKING_URI", "MLFLOW_TRACKING_URI")}
     if "lab" not in Path(str(request.node.fspath)).parts:

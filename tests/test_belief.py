@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import torch
 
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief, distance_to_path
+from coreach.control.belief_model import BoltzmannGoalBelief, distance_to_path
 
 
 def _two_goals():

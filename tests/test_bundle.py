@@ -17,7 +17,7 @@ import torch
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError, CoreachError
 from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import CORE_FILES, MANIFEST, BundleError, verify_bundle
 from coreach.release.export import export_onnx, onnx_parity, sample_inputs
@@ -314,7 +314,7 @@ def test_wrong_goal_count_is_a_config_error(tmp_path, policy):
 # ------------------------------------------------------------------------------------ belief section
 def test_belief_section_is_written_by_the_model_and_rebuilds_it(bundle):
     from coreach.runtime.belief_manifest import belief_from_manifest
-    from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+    from coreach.control.belief_model import BoltzmannGoalBelief
 
     assert _manifest(bundle)["belief"] == {"model": "boltzmann", "beta": 40.0, "floor": 0.0, "min_motion": 1e-3}
     assert belief_from_manifest(verify_bundle(bundle).belief) == BoltzmannGoalBelief()

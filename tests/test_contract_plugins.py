@@ -13,7 +13,7 @@ from omegaconf import OmegaConf
 
 from coreach.contracts import ContractError, check_plugin, plugin_checks
 from coreach.protocols import optional_members
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.robot.planar3 import Planar3
 
 CONF = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf"

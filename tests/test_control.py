@@ -10,11 +10,11 @@ import torch
 from coreach.context import ContextSpec, build_context
 from coreach.control.belief_tracker import track
 from coreach.control.safety_filter import JOINT_LIMIT, SPEED_CAP, WORKSPACE, SafetyLimits
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.session import Session
 from coreach.vetting.loop import _kinematics, _limit
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
 
 BOX = SafetyLimits(qd_max=(1.0, 1.0), tcp_speed_max=10.0, q_lower=(-1.0, -1.0), q_upper=(1.0, 1.0),
@@ -170,7 +170,7 @@ def test_batched_loop_and_runtime_session_give_the_same_commands(bundle_and_poli
     interface) with the bundle's own filter for 3 episodes of a suite; then the runtime Session is fed, step by
     step, the same joint positions and the sticks the operator sent. Every command the loop applied must be
     the one the Session returns (same float32 ONNX graph, same filter code), and the beliefs must agree."""
-    from coreach.plugin_registry import build_option
+    from coreach.decoder.onnx_interface import OnnxBundleInterface
     from coreach.runtime.session import limits_from_manifest
     from coreach.vetting.loop import rollout
     from coreach.vetting.suite import suite_from_dict
@@ -179,7 +179,7 @@ def test_batched_loop_and_runtime_session_give_the_same_commands(bundle_and_poli
     session = Session.open(folder)
     m = session.manifest
     robot = UrdfArm(home=m.q_home.tolist())
-    interface = build_option("interface", "onnx_bundle", bundle=str(folder))
+    interface = OnnxBundleInterface(str(folder))
     # a tremor operator: its perturbed sticks take the loop's second path through the filter
     suite = suite_from_dict({"scenario": "bedside_shelf", "episodes": 3, "horizon_s": 4.0, "start_jitter": 0.05,
                              "operator": {"_target_": "coreach_plugins.operator.boltzmann.BoltzmannOperator",

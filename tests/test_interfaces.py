@@ -15,10 +15,11 @@ from coreach.context import ContextSpec, build_context
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin
 from coreach_plugins.interface.blend import PolicyBlending
-from coreach_plugins.interface.decoder import DecoderInterface
+from coreach.decoder.reference import label, load
+from coreach.decoder.torch_interface import DecoderInterface
 from coreach_plugins.interface.direct import DirectControl
 from coreach_plugins.robot.urdf_arm import UrdfArm
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.protocols import Interface
 from coreach.scenario import load_scenario
 from coreach.vetting.records import LoopState
@@ -160,7 +161,7 @@ def test_blend_heads_for_the_fine_motion_near_the_approach_point(robot):
 
 def test_decoder_act_is_the_policy_on_every_episode_and_candidate(robot):
     policy = small_policy()
-    iface = DecoderInterface.from_policy(policy, "cvae")
+    iface = DecoderInterface(policy, "cvae")
     st = loop_state(robot)
     stick = torch.tensor([[0.0, 0.0], [1.0, -0.5], [-0.3, 0.9]], dtype=torch.float64)
     qd = iface.act(stick, st)
@@ -174,7 +175,7 @@ def test_decoder_act_is_the_policy_on_every_episode_and_candidate(robot):
 def test_decoder_authority_matches_finite_difference_svd(robot):
     policy = small_policy(seed=1)
     policy.stick_scale.fill_(1.7)  # a non-trivial stick scale must enter the Jacobian too
-    iface = DecoderInterface.from_policy(policy, "cvae")
+    iface = DecoderInterface(policy, "cvae")
     st = loop_state(robot)
     got = iface.stick_gain(st).numpy()
     h = 1e-6
@@ -189,29 +190,28 @@ def test_decoder_authority_matches_finite_difference_svd(robot):
             assert got[e] == pytest.approx(np.linalg.svd(J, compute_uv=False)[-1], rel=1e-6)
 
 
-def test_decoder_from_a_folder_and_through_its_yaml(robot, tmp_path):
+def test_decoder_from_a_folder(robot, tmp_path):
     policy = small_policy(seed=2, dtype=torch.float32)
     policy.save(tmp_path / "dec")
     st = loop_state(robot)
     stick = torch.tensor([[0.4, -0.2]], dtype=torch.float64)
-    reference = DecoderInterface.from_policy(policy, "ref").act(stick, st)
-    cfg = OmegaConf.load(CONF / "decoder.yaml")
-    cfg.run = str(tmp_path / "dec")
-    iface = build_plugin(cfg, "interface")
-    assert isinstance(iface, Interface) and iface.name == "dec"
+    reference = DecoderInterface(policy, "ref").act(stick, st)
+    loaded, source = load(str(tmp_path / "dec"), store="sqlite:///unused.db")
+    iface = DecoderInterface(loaded, label(str(tmp_path / "dec")), source)
+    assert isinstance(iface, Interface) and iface.name == "dec" and iface.source_ == str(tmp_path / "dec")
     torch.testing.assert_close(iface.act(stick, st), reference)
     (tmp_path / "empty").mkdir()
     with pytest.raises(ConfigError, match="decoder.json"):
-        DecoderInterface(run=str(tmp_path / "empty"))
-    with pytest.raises(ConfigError, match="interface.run"):
-        DecoderInterface()
+        load(str(tmp_path / "empty"), "sqlite:///unused.db")
+    with pytest.raises(ConfigError, match="expected an MLflow run id"):
+        load("???", "sqlite:///unused.db")
     with pytest.raises(ConfigError, match="no such folder"):
-        DecoderInterface(run=str(tmp_path / "not_there"))
+        load(str(tmp_path / "not_there"), "sqlite:///unused.db")
 
 
 def test_decoder_refuses_a_context_of_another_layout(robot):
     policy = DecoderPolicy.build(CVAE, ContextSpec(dof=7, n_goals=3), 7)
-    iface = DecoderInterface.from_policy(policy, "three_goals")
+    iface = DecoderInterface(policy, "three_goals")
     with pytest.raises(ConfigError, match="3 goals"):
         iface.reset(E, loop_state(robot))
 
@@ -238,29 +238,30 @@ def mlflow_store(tmp_path_factory):
 
 
 def test_decoder_from_mlflow_run_and_registry(robot, mlflow_store, monkeypatch):
-    monkeypatch.setenv("MLFLOW_TRACKING_URI", mlflow_store["uri"])
+    # the store is an argument: a variable naming another store must not matter
+    monkeypatch.setenv("MLFLOW_TRACKING_URI", "sqlite:///elsewhere.db")
     st = loop_state(robot)
     stick = torch.tensor([[0.1, 0.7], [-1.0, 0.0]], dtype=torch.float64)
-    reference = DecoderInterface.from_policy(mlflow_store["policy"], "ref").act(stick, st)
+    reference = DecoderInterface(mlflow_store["policy"], "ref").act(stick, st)
     version = f"models:/shelf-decoder/{mlflow_store['version']}"
     for ref in (mlflow_store["run"], version, "models:/shelf-decoder@candidate"):
-        iface = DecoderInterface(run=ref)
+        policy, source = load(ref, mlflow_store["uri"])
+        iface = DecoderInterface(policy, label(ref), source)
         assert iface.source_ == mlflow_store["run"]
         torch.testing.assert_close(iface.act(stick, st), reference)
 
 
-def test_decoder_missing_run_or_artifact_names_the_run(mlflow_store, monkeypatch):
-    monkeypatch.setenv("MLFLOW_TRACKING_URI", mlflow_store["uri"])
+def test_decoder_missing_run_or_artifact_names_the_run(mlflow_store):
     missing = "0123456789abcdef0123456789abcdef"
     with pytest.raises(ConfigError, match=missing):
-        DecoderInterface(run=missing)
+        load(missing, mlflow_store["uri"])
     with pytest.raises(ConfigError, match=mlflow_store["bare"]):
-        DecoderInterface(run=mlflow_store["bare"])
+        load(mlflow_store["bare"], mlflow_store["uri"])
     with pytest.raises(ConfigError, match="no-such-model"):
-        DecoderInterface(run="models:/no-such-model/1")
+        load("models:/no-such-model/1", mlflow_store["uri"])
 
 
-@pytest.mark.parametrize("name", ["direct", "blend", "decoder"])
+@pytest.mark.parametrize("name", ["direct", "blend"])
 def test_yaml_matches_its_dataclass(name):
     import dataclasses
     import importlib
@@ -271,9 +272,8 @@ def test_yaml_matches_its_dataclass(name):
     assert set(OmegaConf.to_container(cfg)) == {f.name for f in dataclasses.fields(config_cls)}
     merged = OmegaConf.merge(OmegaConf.structured(config_cls), cfg)
     assert OmegaConf.to_container(merged) == OmegaConf.to_container(cfg)
-    if name != "decoder":  # the decoder needs a run to load
-        iface = build_plugin(cfg, "interface")
-        assert isinstance(iface, Interface) and iface.n_modes == 3 and iface.name == name
+    iface = build_plugin(cfg, "interface")
+    assert isinstance(iface, Interface) and iface.n_modes == 3 and iface.name == name
 
 
 def test_per_episode_sticks_match_shared_candidates(robot):
@@ -281,7 +281,7 @@ def test_per_episode_sticks_match_shared_candidates(robot):
     # out of a shared candidate set.
     st = loop_state(robot)
     shared = torch.tensor([[0.5, -0.5], [0.2, 0.9], [-1.0, 0.3], [0.0, 0.0]], dtype=torch.float64)  # [K=E, 2]
-    for iface in (DirectControl(), PolicyBlending(), DecoderInterface.from_policy(small_policy(), "cvae")):
+    for iface in (DirectControl(), PolicyBlending(), DecoderInterface(small_policy(), "cvae")):
         iface.reset(E, st)
         all_k = iface.act(shared, st)  # [E, M, K, n]
         own = iface.act(shared[:, None, :], st)  # [E, M, 1, n]: episode e gets stick e

@@ -14,7 +14,7 @@ from torch.distributions import Normal, kl_divergence
 
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.protocols import Posterior
 from coreach.safety import SafetyLimits
 from coreach.training.terms import TermBatch

@@ -16,12 +16,12 @@ from omegaconf import OmegaConf
 
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError, CoreachError
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
-from coreach_plugins.interface.decoder import DecoderInterface
-from coreach_plugins.interface.onnx_bundle import OnnxBundleInterface
+from coreach.control.belief_model import BoltzmannGoalBelief
+from coreach.decoder.torch_interface import DecoderInterface
+from coreach.decoder.onnx_interface import OnnxBundleInterface
 from coreach_plugins.robot.planar3 import Planar3
 from coreach_plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.release import gate as G
 from coreach.release import bundle_store, registry
 from coreach.release.replay import bundle_limits, compare, replay
@@ -171,7 +171,7 @@ def test_onnx_bundle_interface_drives_the_loop_like_the_torch_decoder(bundle):
     limits = SafetyLimits.for_robot(robot)
     suite = load_suite("goal-switch", episodes=1, horizon_s=3.0)  # 4 episodes x 30 steps
     onnx = OnnxBundleInterface(str(bundle))
-    torch_dec = DecoderInterface.from_policy(_policy(), "torch")
+    torch_dec = DecoderInterface(_policy(), "torch")
     a = rollout(robot, torch_dec, suite.build_operator(), suite, belief, limits, suite.generator())
     b = rollout(robot, onnx, suite.build_operator(), suite, belief, limits, suite.generator())
     torch.testing.assert_close(b.extras["q"], a.extras["q"], rtol=0, atol=1e-5)

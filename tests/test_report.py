@@ -16,10 +16,10 @@ from rich.console import Console
 from coreach.context import ContextSpec, build_context
 from coreach.control.safety_filter import SEPARATION
 from coreach.errors import ConfigError
-from coreach_plugins.interface.decoder import DecoderInterface
+from coreach.decoder.torch_interface import DecoderInterface
 from coreach_plugins.interface.direct import DirectControl
 from coreach_plugins.robot.urdf_arm import UrdfArm
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.scenario import load_scenario
 from coreach.vetting.metrics import summarise
 from coreach.vetting.records import LoopState, RolloutRecord
@@ -104,7 +104,7 @@ def test_action_maps_for_decoder_and_direct(state, tmp_path):
         {"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2, "hidden": [32, 32]},
         ContextSpec(dof=7, n_goals=4), 7,
     )  # fmt: skip
-    for iface in (DecoderInterface.from_policy(policy, "cvae"), DirectControl()):
+    for iface in (DecoderInterface(policy, "cvae"), DirectControl()):
         path = plot_action_maps(iface, state, tmp_path / f"map_{iface.name}.png", goal=1, goal_names=list("abcd"))
         read_png(path)
 

@@ -27,7 +27,7 @@ def _dist() -> dict:
 def _imported_sources() -> tuple[set[str], set[str]]:
     """(repository files, top-level third-party packages) a fresh interpreter loads for the robot side,
     the allowed belief models included."""
-    belief = [ref.partition(":")[0] for ref in BELIEF_MODELS.values()]
+    belief = [cls.__module__ for cls in BELIEF_MODELS.values()]
     code = (f"import importlib, json, sys\n"
             f"for m in {ROBOT_ENTRY + belief!r}: importlib.import_module(m)\n"
             "print(json.dumps([[k, getattr(v, '__file__', None)] for k, v in list(sys.modules.items())]))")

@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 from coreach.context import ContextSpec
 from coreach.errors import DataError
 from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import BundleError
 from coreach.runtime.session import Session
@@ -91,7 +91,7 @@ q = np.array(s.manifest.q_home)
 for i in range(100):
     qd = s.step([0.6 * np.cos(i / 10), 0.6 * np.sin(i / 10)], q, i * 0.01)
     q = q + qd * 0.01
-print(json.dumps({{"heavy": [m for m in ("torch", "lightning", "mlflow", "coreach.policy", "coreach.release.export")
+print(json.dumps({{"heavy": [m for m in ("torch", "lightning", "mlflow", "coreach.decoder.policy", "coreach.release.export")
                              if m in sys.modules], "moved": float(np.abs(q - s.manifest.q_home).max())}}))
 """
     out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=120)

@@ -26,7 +26,7 @@ import torch
 
 from coreach.context import ContextSpec
 from coreach.episodes import load_parquet
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.kinematics import Chain
 from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf

@@ -7,7 +7,7 @@ import json
 import torch
 from mlflow.tracking import MlflowClient
 
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.tracking import resolve_uri
 from coreach.training.data import replay, split_by_episode
 from coreach.training.run import prepare, train

@@ -11,7 +11,7 @@ import pytest
 import torch
 from scipy.stats import binomtest
 
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.robot.urdf_arm import UrdfArm
 from coreach.safety import SafetyLimits
 from coreach.vetting.diagnosis import CAUSES, DiagnosisRules, diagnose, flat_diagnosis

@@ -12,7 +12,7 @@ import pytest
 import torch
 
 from coreach.geometry import rotation_error
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.operator.boltzmann import BoltzmannOperator
 from coreach_plugins.robot.urdf_arm import UrdfArm
 from coreach.protocols import Interface, Operator

@@ -16,7 +16,7 @@ from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.suite import suite_from_dict
 from coreach.vetting.trajectories import write_trajectories
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.interface.direct import DirectControl
 from coreach_plugins.robot.urdf_arm import UrdfArm
 

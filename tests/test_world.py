@@ -28,7 +28,7 @@ from coreach.vetting.loop import rollout
 from coreach.vetting.separation_metrics import separation_summary
 from coreach.vetting.suite import suite_from_dict
 from coreach.world import arm_world, check_episodes_clear
-from coreach_plugins.belief.boltzmann import BoltzmannGoalBelief
+from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.interface.direct import DirectControl
 from coreach_plugins.robot.urdf_arm import UrdfArm
 

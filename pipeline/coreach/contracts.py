@@ -284,7 +284,7 @@ def loss_batch(seed: int = 0):
     past any warm-up so no term is switched off."""
     from coreach.context import ContextSpec
     from coreach.plugin_registry import build_plugin, builtin_option
-    from coreach.policy import DecoderPolicy
+    from coreach.decoder.policy import DecoderPolicy
     from coreach.safety import SafetyLimits
     from coreach.training.terms import TermBatch
 

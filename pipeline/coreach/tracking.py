@@ -34,13 +34,6 @@ def resolve_uri(uri: str | None) -> str:
     return chosen
 
 
-def use_store(uri: str) -> None:
-    """Make `uri` the store of everything this process resolves without an explicit URI (decoder plugins
-    that load a run by id), whichever variable the user had set."""
-    for var in URI_VARIABLES:
-        os.environ[var] = uri
-
-
 def artifact_root(uri: str, configured: str | None) -> str | None:
     """Local artifacts beside an embedded store (./mlartifacts); a server decides for itself."""
     if configured:

@@ -24,7 +24,9 @@ from coreach.aggregation.visits import visit_episodes, visits_from_record
 from coreach.command_line import command_line_options
 from coreach.episodes import EpisodeSet, save_parquet
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_option, build_plugin, builtin_option
+from coreach.decoder import reference as decoder_reference
+from coreach.decoder.torch_interface import DecoderInterface
+from coreach.plugin_registry import build_plugin, builtin_option
 from coreach.safety import limits_from_config
 from coreach.training.run import train
 from coreach.vetting.loop import rollout
@@ -109,9 +111,10 @@ def figure(robot, interface, suites, seed: int, belief, limits) -> dict:
     return {"success": wins / n, "per_operator": per, "episodes": n}
 
 
-def _decoder(run: str):
+def _decoder(run: str, store: str):
     try:
-        return build_option("interface", "decoder", run=run)
+        policy, source = decoder_reference.load(run, store, f"{WHERE}.start_run")
+        return DecoderInterface(policy, decoder_reference.label(run), source)
     except ConfigError as exc:
         raise ConfigError(f"{WHERE}.start_run", f"{run!r} is not a trained decoder ({exc.problem})") from None
 
@@ -168,7 +171,7 @@ def aggregate(cfg: DictConfig) -> dict:
     opts = cfg.aggregate
     seeds = _seeds(opts)
     if opts.get("start_run"):
-        _decoder(str(opts.start_run))  # refuse a run that is not a decoder first
+        _decoder(str(opts.start_run), tracking.resolve_uri(cfg.tracking.get("uri")))  # refuse a run that is not a decoder first
         cfg = _inherit_recipe(cfg, str(opts.start_run))
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
@@ -177,7 +180,8 @@ def aggregate(cfg: DictConfig) -> dict:
     suites = rollout_suites(cfg, robot)
     start = opts.get("start_run")
     # refuse a run that is not a decoder before anything is written; round 1 rolls this one out
-    interface = _decoder(str(start)) if start else None
+    store = tracking.resolve_uri(cfg.tracking.get("uri"))
+    interface = _decoder(str(start), store) if start else None
     base = build_plugin(cfg.dataset, "dataset").load(robot)
     label = str(cfg.get("label") or "decoder")
 
@@ -206,7 +210,7 @@ def aggregate(cfg: DictConfig) -> dict:
                            "val_loss": first["val_loss"]})  # fmt: skip
         data = list(base.episodes)
         for r, seed in enumerate(seeds, start=1):
-            interface = interface if r == 1 and interface is not None else _decoder(current)
+            interface = interface if r == 1 and interface is not None else _decoder(current, store)
             fig = figure(robot, interface, suites, int(opts.figure_seed), belief, limits)
             rounds[-1]["figure"] = fig
             _log_round(client, parent, r - 1, fig)
@@ -223,7 +227,7 @@ def aggregate(cfg: DictConfig) -> dict:
             current = summary["run_id"]
             rounds.append({"round": r, "run_id": current, "dataset": merged.fingerprint(), "episodes": len(merged),
                            "added": counts, "rollout_seed": seed, "path": str(path), "val_loss": summary["val_loss"]})  # fmt: skip
-        fig = figure(robot, _decoder(current), suites, int(opts.figure_seed), belief, limits)
+        fig = figure(robot, _decoder(current, store), suites, int(opts.figure_seed), belief, limits)
         rounds[-1]["figure"] = fig
         _log_round(client, parent, len(seeds), fig)
         tracking.log_json(client, parent, rounds, "rounds.json")

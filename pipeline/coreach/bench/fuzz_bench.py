@@ -59,7 +59,7 @@ def random_bundle(folder: str | Path, robot, scene, world: bool = True, seed: in
 
     from coreach.context import ContextSpec
     from coreach.plugin_registry import builtin_option
-    from coreach.policy import DecoderPolicy
+    from coreach.decoder.policy import DecoderPolicy
     from coreach.release.bundle_writer import write_bundle
     from coreach.release.metadata import _nominal_layout, _world_section
 

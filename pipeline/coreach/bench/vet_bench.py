@@ -20,7 +20,10 @@ from omegaconf import DictConfig, OmegaConf
 
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_option, build_plugin, builtin_option, option_class
+from coreach.decoder import reference as decoder_reference
+from coreach.decoder.torch_interface import DecoderInterface
+from coreach.plugin_registry import build_plugin, builtin_option
+from coreach.tracking import resolve_uri
 from coreach.safety import limits_from_config
 from coreach.vetting.loop import rollout, rollout_per_episode
 from coreach.vetting.suite import load_suite
@@ -30,10 +33,10 @@ log = logging.getLogger("coreach.bench")
 
 def _policy(cfg, robot, n_goals: int):
     """The decoder to drive: a trained one, or an untrained 2 x 256 cVAE (throughput does not need skill)."""
-    from coreach.policy import DecoderPolicy
+    from coreach.decoder.policy import DecoderPolicy
 
     if cfg.get("run"):
-        return build_option("interface", "decoder", run=str(cfg.run)).policy_, str(cfg.run)
+        return decoder_reference.load(str(cfg.run), resolve_uri(cfg.get("tracking", {}).get("uri")), "option run")[0], str(cfg.run)
     torch.manual_seed(0)
     model = builtin_option("model", "cvae")
     model.update({"latent_dim": 2, "hidden": [256, 256], "activation": "silu"})  # pinned: the yaml may change
@@ -68,7 +71,7 @@ def run(cfg: DictConfig) -> dict:
     limits = limits_from_config(robot, cfg.safety)
     # no suite.validate: throughput does not need reachable goals, and short quick runs would fail it
     policy, source = _policy(cfg, robot, len(suite.goal_names))
-    interface = option_class("interface", "decoder").from_policy(policy, name=source)
+    interface = DecoderInterface(policy, name=source)
     E, T, K = suite.n_episodes, suite.steps, suite.candidates_per_axis**2
     e_small = small.n_episodes
 

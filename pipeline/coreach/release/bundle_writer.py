@@ -186,7 +186,7 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
 def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta: dict,
                  extra_files: dict[str, str | Path] | None = None, gate: dict | None = None,
                  staging_prefix: str | None = None, before_rename: Callable[[], None] | None = None) -> Path:
-    """Write a complete bundle for `policy` (a coreach.policy.DecoderPolicy) to the new folder `out_dir`.
+    """Write a complete bundle for `policy` (a coreach.decoder.policy.DecoderPolicy) to the new folder `out_dir`.
 
     Everything is written into a temporary sibling folder, verified, and renamed into place only when
     complete; an existing `out_dir` is never overwritten. The ONNX export must match torch within

@@ -8,7 +8,8 @@ from pathlib import Path
 from omegaconf import ListConfig
 
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin, option_class
+from coreach.decoder.torch_interface import DecoderInterface
+from coreach.plugin_registry import build_plugin
 from coreach.release import gate as G
 from coreach.release.bundle_writer import write_bundle
 from coreach.release.relaxation import relaxed_settings
@@ -81,7 +82,7 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
     check_same_robot(run.data.tags if run is not None else {}, robot, f"option run ({run.info.run_id if run else '?'})")
     urdf = _urdf(robot, staging)
 
-    interface = option_class("interface", "decoder").from_policy(policy, name=label)
+    interface = DecoderInterface(policy, name=label)
     summaries, results, plots = {}, [], []
     report_dir = staging / "report"
     report_dir.mkdir()

@@ -16,7 +16,7 @@ import torch
 from torch import Tensor, nn
 
 from coreach.errors import CoreachError
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 
 INPUTS = ("stick", "context")
 OUTPUT = "qd"

@@ -21,6 +21,7 @@ from omegaconf import DictConfig, OmegaConf
 from coreach.runtime.kinematics import Chain
 from coreach.runtime.session import arm_world_from_manifest
 from coreach.errors import ConfigError
+from coreach.decoder.onnx_interface import OnnxBundleInterface
 from coreach.plugin_registry import build_option
 from coreach.runtime.belief_manifest import belief_from_manifest
 from coreach.release.gate import count_violations
@@ -122,9 +123,8 @@ def replay(cfg: DictConfig) -> dict:
                                            "released model as NAME@ALIAS or NAME/VERSION")  # fmt: skip
     uri = resolve_uri(cfg.tracking.get("uri"))
     folder = bundle_folder(str(cfg.bundle), uri=uri)
-    interface = build_option("interface", "onnx_bundle", bundle=str(folder),
-                             name=f"bundle {folder.resolve().parent.name}/{folder.name}",
-                             threads=int(cfg.get("threads", 1)))  # fmt: skip
+    interface = OnnxBundleInterface(str(folder), name=f"bundle {folder.resolve().parent.name}/{folder.name}",
+                                    threads=int(cfg.get("threads", 1)))  # fmt: skip
     m = interface.manifest_
     robot = bundle_robot(m)
     belief = belief_from_manifest(m.belief)

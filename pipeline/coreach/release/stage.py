@@ -20,7 +20,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from coreach import tracking
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_option
+from coreach.decoder import reference as decoder_reference
 from coreach.release import gate as G
 from coreach.release import registry
 from coreach.runtime.model_card import CAUTIONS
@@ -32,7 +32,7 @@ from coreach.release.settle import scratch_prefix, settle
 REFUSED_EXIT = 3  # distinct from 2 (bad input): the input was fine, the decoder did not pass
 
 
-def _training_run(client, ref: str):
+def _training_run(client, ref: str, uri: str):
     """Policy, training run id and run of `ref` (a run id or models:/...); folders cannot be released."""
     if not ref:
         raise ConfigError("option run", "missing; expected the MLflow run id of a training run (coreach release "
@@ -41,8 +41,7 @@ def _training_run(client, ref: str):
         raise ConfigError("option run", f"{ref} is a folder; release needs the MLflow training run (its "
                                         "dataset fingerprint, commit and decoder artifact are part of it)")  # fmt: skip
     try:
-        decoder = build_option("interface", "decoder", run=str(ref))
-        policy, run_id = decoder.policy_, decoder.source_
+        policy, run_id = decoder_reference.load(str(ref), uri)
     except ConfigError as exc:  # name the option of this command, not the interface's
         raise ConfigError("option run", exc.problem) from None
     run = client.get_run(run_id)
@@ -65,10 +64,9 @@ def release(cfg: DictConfig) -> dict:
     """Gate `cfg.run`; refuse (exit_code 3, nothing written) or publish it as a gate-passed registry version."""
     t0 = time.perf_counter()
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
-    tracking.use_store(uri)  # load_policy reads runs from the same store
     registry.check_name(str(cfg.name))
     client = registry.client_for(uri)
-    policy, run_id, run = _training_run(client, "" if OmegaConf.is_missing(cfg, "run") else str(cfg.run))
+    policy, run_id, run = _training_run(client, "" if OmegaConf.is_missing(cfg, "run") else str(cfg.run), uri)
     label = run.data.tags.get("coreach.label") or f"decoder-{run_id[:8]}"
     settle(client, lambda line: print(f"coreach release: {line}", file=sys.stderr))
 

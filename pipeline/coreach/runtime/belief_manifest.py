@@ -2,26 +2,24 @@
 
 from __future__ import annotations
 
-import importlib
 from typing import Any
 
+from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach.errors import ConfigError
 
-# A bundle names its belief model; only these classes may be built from one. A name maps to "module:Class",
-# imported on demand so the host holds no static import of a plugin module. A bundle never carries a
+# A bundle names its belief model; only these classes may be built from one. A bundle never carries a
 # `_target_` or a pickle: adding a model to what a robot may run is a reviewed change to this table.
-BELIEF_MODELS: dict[str, str] = {
-    "boltzmann": "coreach_plugins.belief.boltzmann:BoltzmannGoalBelief",
+BELIEF_MODELS: dict[str, type] = {
+    BoltzmannGoalBelief.MANIFEST_MODEL: BoltzmannGoalBelief,
 }
 
 
 def belief_class(model: str):
     """The class allowed for belief model name `model`; ConfigError (one line) for an unknown name."""
-    ref = BELIEF_MODELS.get(model)
-    if ref is None:
+    cls = BELIEF_MODELS.get(model)
+    if cls is None:
         raise ConfigError("manifest belief.model", f"unknown belief model {model!r}; allowed: {sorted(BELIEF_MODELS)}")
-    module, _, name = ref.partition(":")
-    return getattr(importlib.import_module(module), name)
+    return cls
 
 
 def belief_from_manifest(section: dict[str, Any]):

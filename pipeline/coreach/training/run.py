@@ -19,7 +19,7 @@ from coreach import tracking
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError
 from coreach.plugin_registry import build_plugin, build_terms
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.robot_identity import robot_tags
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import MlflowEpochLogger, progress_callbacks

@@ -5,7 +5,7 @@ from __future__ import annotations
 import lightning as L
 import torch
 
-from coreach.policy import DecoderPolicy
+from coreach.decoder.policy import DecoderPolicy
 from coreach.safety import SafetyLimits
 from coreach.training.terms import TermBatch
 

@@ -10,7 +10,7 @@ from torch import Tensor
 from coreach.protocols import Posterior
 
 if TYPE_CHECKING:
-    from coreach.policy import DecoderPolicy
+    from coreach.decoder.policy import DecoderPolicy
     from coreach.safety import SafetyLimits
 
 

@@ -11,7 +11,9 @@ from omegaconf import DictConfig, ListConfig, OmegaConf
 
 from coreach import tracking
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_option, build_plugin
+from coreach.decoder import reference as decoder_reference
+from coreach.decoder.torch_interface import DecoderInterface
+from coreach.plugin_registry import build_plugin
 from coreach.robot_identity import check_same_robot
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import interactive
@@ -43,12 +45,12 @@ def _baseline_config(name: str):
     from importlib import resources
 
     path = resources.files("coreach_conf") / BASELINES_DIR / f"{name}.yaml"
-    if name in ("decoder", "onnx_bundle") or not path.is_file():  # these need a run or a bundle
+    if not path.is_file():
         return None
     return OmegaConf.create(path.read_text())
 
 
-def build_candidate(name: str, client):
+def build_candidate(name: str, client, store: str):
     """(interface, training run id or None) for a baseline name, a run id, a registry reference or a folder."""
     cfg = _baseline_config(name)
     if cfg is not None:
@@ -59,9 +61,9 @@ def build_candidate(name: str, client):
             label = client.get_run(name).data.tags.get("coreach.label", "")
         except Exception:  # unknown run: DecoderInterface names it in its own error
             label = ""
-    interface = build_option("interface", "decoder", run=name, name=label)
-    source = interface.source_ if len(str(interface.source_)) == 32 and "/" not in str(interface.source_) else None
-    return interface, source
+    policy, source = decoder_reference.load(name, store, "candidate")
+    interface = DecoderInterface(policy, label or decoder_reference.label(name), source)
+    return interface, (source if len(source) == 32 and "/" not in source else None)
 
 
 class _Progress:
@@ -93,7 +95,6 @@ def vet(cfg: DictConfig) -> dict:
     """Vet `cfg.candidates` on `cfg.suite`; returns the summaries, the report path and the MLflow run ids."""
     t0 = time.perf_counter()
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
-    tracking.use_store(uri)  # decoder interfaces read runs from the same store
     overrides = {"episodes": cfg.episodes} if cfg.get("episodes") is not None else {}
     if cfg.get("operator_preset"):
         overrides["operator"] = cfg.operator_preset
@@ -104,7 +105,7 @@ def vet(cfg: DictConfig) -> dict:
     client, exp_id = tracking.client(cfg.tracking) if cfg.log else (None, None)
 
     names = candidate_list(cfg.candidates)
-    built = [(n, *build_candidate(n, client)) for n in names]
+    built = [(n, *build_candidate(n, client, uri)) for n in names]
     for name, interface, source in built:  # every problem before any rollout starts
         spec = getattr(getattr(interface, "policy_", None), "spec", None)
         suite.validate(robot, spec_n_goals=None if spec is None else spec.n_goals)

@@ -17,8 +17,9 @@ from torch import Tensor
 from coreach.control.servo import servo
 from coreach.demonstrator import rollout
 from coreach.errors import ConfigError
-from coreach_plugins.belief.boltzmann import distance_to_path
-from coreach_plugins.interface.direct import DirectControl, check_positive
+from coreach.control.belief_model import distance_to_path
+from coreach.interfaces import check_positive
+from coreach_plugins.interface.direct import DirectControl
 
 # The autopilot servoes like the demonstrations it was trained next to: read the demonstrator's defaults
 # rather than copying the numbers, so the two cannot drift apart.

@@ -9,41 +9,15 @@ import torch
 from torch import Tensor
 
 from coreach.control.servo import dls_step
-from coreach.errors import ConfigError
+from coreach.interfaces import STICK_DIM, check_positive, episode_sticks
 
 # Axis pairs per mode, as rows of the base-frame twist [vx, vy, vz, wx, wy, wz]: (x, y), (z, yaw),
 # (roll, pitch). Stick axis 0 drives the first axis of the pair, stick axis 1 the second. Splitting the six
 # tool axes into three pairs of two is common practice on joystick-driven assistive arms.
 MODE_AXES = (("x", "y"), ("z", "yaw"), ("roll", "pitch"))
 MODE_ROWS = ((0, 1), (2, 5), (3, 4))
-STICK_DIM = 2
 # Until `reset` reports the loop's step, switch costs are counted in steps of the shipped scenario (0.1 s).
 DEFAULT_DT = 0.1
-
-
-def check_positive(where: str, value: float, minimum: float = 0.0, strict: bool = True) -> float:
-    """A finite float above (or, with strict=False, at least) `minimum`, or a ConfigError naming the option."""
-    try:
-        out = float(value)
-    except (TypeError, ValueError):
-        raise ConfigError(where, f"expected a number, got {value!r}") from None
-    ok = out > minimum if strict else out >= minimum
-    if isinstance(value, bool) or not math.isfinite(out) or not ok:
-        relation = ">" if strict else ">="
-        raise ConfigError(where, f"expected a finite number {relation} {minimum}, got {value!r}")
-    return out
-
-
-def episode_sticks(stick: Tensor, n_episodes: int, where: str) -> Tensor:
-    """Candidate sticks as [E, K, 2]: the same K candidates for every episode ([K, 2], what the operator
-    evaluates) or one set per episode ([E, K, 2], e.g. the perturbed stick actually sent)."""
-    if stick.ndim == 2 and stick.shape[-1] == STICK_DIM:
-        return stick[None].expand(n_episodes, -1, -1)
-    if stick.ndim == 3 and stick.shape[0] == n_episodes and stick.shape[-1] == STICK_DIM:
-        return stick
-    raise ConfigError(
-        where, f"expected sticks of shape [K, {STICK_DIM}] or [{n_episodes}, K, {STICK_DIM}], got {tuple(stick.shape)}"
-    )
 
 
 def switch_steps(seconds: float, dt: float) -> int:

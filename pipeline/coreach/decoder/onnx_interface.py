@@ -1,4 +1,4 @@
-"""`onnx_bundle` interface: a released bundle's decoder.onnx, run by onnxruntime inside the vetting loop.
+"""A release bundle's decoder.onnx as a vetting interface, run by onnxruntime inside the vetting loop.
 
 This is how `coreach replay` proves a bundle is the vetted decoder: the loop (plant, operator, limits) is the
 torch vetting loop, but every command comes from the exported graph, loaded from a verified bundle.
@@ -14,7 +14,7 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
-from coreach_plugins.interface.direct import STICK_DIM, episode_sticks
+from coreach.interfaces import STICK_DIM, episode_sticks
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
 
 # Stick step of the central differences behind `stick_gain`: the graph runs in float32, so the rounding error
