@@ -33,7 +33,7 @@ from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import summarise
 from coreach.vetting.suite import load_suite
 
-log = logging.getLogger("coreach.drive")
+log = logging.getLogger("coreach.replay")
 MISMATCH_EXIT = 3
 NOTE = ("plant, operator and episode plan: the torch vetting loop; decoder: the bundle's decoder.onnx on "
         "onnxruntime; robot, limits and belief parameters: the bundle's manifest")  # fmt: skip
