@@ -229,10 +229,11 @@ def plot_bounds(summaries: dict[str, dict], path: Path) -> Path:
             ax.plot([x[r["bin"]] for r in rows], [r["bound"] for r in rows], "o-", color=f"C{i}", label=label)
     ax.set_xticks(range(len(bins)), bins)
     ax.set_xlabel("belief confidence (largest goal probability)")
-    ax.set_ylabel("ultimate error bound w/k (m)")
+    ax.set_ylabel("distance bound w/k (m)")
     if ax.get_legend_handles_labels()[0]:
         ax.legend(fontsize=8)
-    ax.set_title("Tracking-error bound against confidence (missing: too few steps, or no decay)", fontsize=10)
+    ax.set_title("Ultimate bound of the tool's distance to its waypoint, by belief confidence\n"
+                 "(missing: too few steps, or no decay)", fontsize=10)
     return _save(fig, path)
 
 
