@@ -66,7 +66,7 @@ def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
     paths = [_drive(bundle, g, drives, 1.0 / demos.dt, 60) for g in range(len(demos.goal_names))]
     assert all(Path(p).is_file() for p in paths)
 
-    vetted = run(["--json", "vet", f"candidates=[{run_id}]", "suite=nominal", "episodes=1", f"drives=[{drives}]",
+    vetted = run(["--json", "vet", f"candidates=[{run_id}]", "suite=nominal", "suite.episodes=1", f"drives=[{drives}]",
                   "report_dir=rep"], workdir)  # fmt: skip
     person = vetted["summaries"]["person (recorded drives)"]
     assert person["n_episodes"] == len(paths) and person["success"]["n"] == len(paths)
@@ -93,12 +93,12 @@ def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
                  *[o for o in SMALL if not o.startswith("dataset.")], "+experiment=cvae_entropy"], workdir)  # fmt: skip
     tuned_id = tuned["runs"][0]["run_id"]
     assert tuned_id != run_id
-    revetted = run(["--json", "vet", f"candidates=[{tuned_id}]", "suite=nominal", "episodes=1",
+    revetted = run(["--json", "vet", f"candidates=[{tuned_id}]", "suite=nominal", "suite.episodes=1",
                     f"drives=[{drives}]", "report_dir=rep2"], workdir)  # fmt: skip
     assert revetted["summaries"]["cvae+entropy"]["success"]["n"] == 1
 
 
-@pytest.mark.parametrize("command", [["vet", "candidates=[direct]", "suite=nominal", "episodes=1"],
+@pytest.mark.parametrize("command", [["vet", "candidates=[direct]", "suite=nominal", "suite.episodes=1"],
                                      ["relabel-drives", "out=x.parquet"]])
 def test_a_missing_drives_path_is_refused_in_one_line(workdir, tmp_path, command):
     res = subprocess.run([COREACH, *command, f"drives=[{tmp_path / 'nowhere'}]"], cwd=workdir, capture_output=True,

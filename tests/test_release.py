@@ -22,7 +22,7 @@ NAME = "test-decoder"
 SUITE = "held-out-short"
 QUICK = [f"gate_suites=[{SUITE}.yaml]", "episodes=1", "latency.steps=300", "latency.warmup=20",
          f"name={NAME}"]
-HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "suites" / "held-out.yaml"
+HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "suite" / "held-out.yaml"
 # Thresholds a barely trained decoder can meet, so the publishing path runs; parity stays at 1e-5.
 PERMISSIVE = ["gates.success_lo=0", "gates.recovery_lo=0", "gates.max_violations=1000000",
               "gates.stick_gain_median=0", "gates.latency_p99_us=1000000"]  # fmt: skip
@@ -124,10 +124,10 @@ def test_passing_release_bundle_registry_and_cautions(released):
 
 def test_drive_matches_vet_on_the_same_suite_and_seeds(released):
     cwd, run_id, _ = released
-    vet = run(["--json", "vet", f"candidates=[{run_id}]", f"suite={SUITE}.yaml", "episodes=1", "report_dir=rep"], cwd)
+    vet = run(["--json", "vet", f"candidates=[{run_id}]", f"suite={SUITE}.yaml", "suite.episodes=1", "report_dir=rep"], cwd)
     assert vet.returncode == 0, vet.stderr
     vetted = next(iter(json.loads(vet.stdout)["summaries"].values()))
-    res = run(["--json", "replay", f"bundle=releases/{NAME}/v1", f"suite={SUITE}.yaml", "episodes=1"], cwd)
+    res = run(["--json", "replay", f"bundle=releases/{NAME}/v1", f"suite={SUITE}.yaml", "suite.episodes=1"], cwd)
     assert res.returncode == 0, res.stderr
     out = json.loads(res.stdout)
     c = out["comparison"]

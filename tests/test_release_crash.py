@@ -31,7 +31,7 @@ from coreach.runtime.registry_tags import (MODEL_DESCRIPTION, TAG_GATE_PASSED, T
 
 COREACH = str(Path(sys.executable).parent / "coreach")
 SUITE = "held-out-short"
-HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "suites" / "held-out.yaml"
+HELD_OUT = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "suite" / "held-out.yaml"
 # the cheapest release that still runs every gate; thresholds a barely trained decoder meets
 QUICK = [f"gate_suites=[{SUITE}.yaml]", "episodes=1", "latency.steps=100", "latency.warmup=10", "parity_n=1000",
          "gates.success_lo=0", "gates.recovery_lo=0", "gates.max_violations=1000000", "gates.stick_gain_median=0",

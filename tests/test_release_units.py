@@ -192,9 +192,10 @@ def test_onnx_bundle_interface_refuses_an_altered_bundle(bundle, tmp_path):
 
 
 def test_replay_without_a_vetting_record_reports_and_passes(bundle, tmp_path):
-    cfg = OmegaConf.create({"bundle": str(bundle), "suite": "nominal", "episodes": 1, "threads": 1,
-                            "tracking": {"uri": f"sqlite:///{tmp_path / 'absent.db'}"},
-                            "tolerance": {"rate_episodes": 2, "median_rel": 0.01}, "fail_on_mismatch": True})
+    from coreach.config_check import compose_config
+
+    cfg = compose_config("replay", [f"bundle={bundle}", "suite=nominal", "suite.episodes=1",
+                                    f"tracking.uri=sqlite:///{tmp_path / 'absent.db'}"])  # fmt: skip
     out = replay(cfg)
     assert out["comparison"] is None and "no tracking store" in out["comparison_source"]
     assert not (tmp_path / "absent.db").exists()  # looking for a record must not create a store

@@ -46,7 +46,7 @@ def _bare_scene(folder: Path) -> Path:
     import yaml
 
     d = yaml.safe_load(SHELF_YAML.read_text())
-    for key in ("obstacles", "person", "clearance"):
+    for key in ("obstacles", "person", "clearance", "defaults"):
         d.pop(key, None)
     d["name"] = "bedside_shelf"  # the same goals under the same name, so messages read as before
     path = folder / "bare_shelf.yaml"
@@ -55,11 +55,12 @@ def _bare_scene(folder: Path) -> Path:
 
 
 def _bare_suite(folder: Path, scene: Path) -> Path:
-    """The nominal suite on the bare scene."""
-    text = (SHELF_YAML.parents[1] / "suites" / "nominal.yaml").read_text()
-    assert "scenario: bedside_shelf" in text
+    """The nominal suite on the bare scene, as a lab's own flat suite file."""
+    import yaml
+
+    data = yaml.safe_load((SHELF_YAML.parents[1] / "suite" / "nominal.yaml").read_text())["suite"]
     path = folder / "nominal_bare.yaml"
-    path.write_text(text.replace("scenario: bedside_shelf", f"scenario: {scene}"))
+    path.write_text(yaml.safe_dump({**data, "scenario": str(scene), "operator": "expert"}))
     return path
 
 
@@ -151,12 +152,12 @@ def test_a_third_party_arm_from_scene_check_to_vetting(workdir):
     assert trained.returncode == 0, trained.stderr
     run_id = json.loads(trained.stdout)["runs"][0]["run_id"]
     # forgetting the robot options must not vet this decoder on the shipped 7-joint arm
-    wrong = subprocess.run([COREACH, "vet", f"candidates=[{run_id}]", "suite=nominal", "episodes=1"], cwd=workdir,
+    wrong = subprocess.run([COREACH, "vet", f"candidates=[{run_id}]", "suite=nominal", "suite.episodes=1"], cwd=workdir,
                            capture_output=True, text=True, env=cli_env(), timeout=900)  # fmt: skip
     assert wrong.returncode == 2 and len(wrong.stderr.strip().splitlines()) == 1, wrong.stderr
     assert "trained on an arm with joints [panda_joint1," in wrong.stderr and "give the same robot options" in wrong.stderr
     vetted = subprocess.run([COREACH, "--json", "vet", *robot, f"candidates=[{run_id}]",
-                             f"suite={_bare_suite(workdir, scene)}", "episodes=4", "report_dir=rep"], cwd=workdir, capture_output=True, text=True,
+                             f"suite={_bare_suite(workdir, scene)}", "suite.episodes=4", "report_dir=rep"], cwd=workdir, capture_output=True, text=True,
                             env=cli_env(), timeout=900)  # fmt: skip
     assert vetted.returncode == 0, vetted.stderr
     summary = json.loads(vetted.stdout)["summaries"]["cvae+entropy"]

@@ -25,7 +25,7 @@ def test_vet_decoder_and_baselines(workdir):
     assert trained.returncode == 0, trained.stderr
     run_id = json.loads(trained.stdout)["runs"][0]["run_id"]
 
-    res = run(["--json", "vet", f"candidates=[{run_id},direct]", "suite=goal-switch", "episodes=3",
+    res = run(["--json", "vet", f"candidates=[{run_id},direct]", "suite=goal-switch", "suite.episodes=3",
                "report_dir=rep"], workdir)  # fmt: skip
     assert res.returncode == 0, res.stderr
     out = json.loads(res.stdout)
@@ -57,12 +57,12 @@ def test_vet_decoder_and_baselines(workdir):
     [
         (["candidates=[direct]", "suite=no-such-suite"], "no-such-suite"),
         (["candidates=[0123456789abcdef0123456789abcdef]"], "0123456789abcdef0123456789abcdef"),
-        (["candidates=[direct]", "operator_preset=sleepy"], "sleepy"),
+        (["candidates=[direct]", "operator=sleepy"], "sleepy"),
     ],
     ids=["unknown suite", "unknown run", "unknown operator"],
 )
 def test_vet_bad_input_is_one_line(workdir, args, needle):
-    res = run(["vet", *args, "episodes=1"], workdir)
+    res = run(["vet", *args, "suite.episodes=1"], workdir)
     assert res.returncode == 2
     lines = [ln for ln in res.stderr.splitlines() if ln.strip() and "INFO" not in ln]
     assert len(lines) == 1 and lines[0].startswith("coreach: error:") and needle in lines[0], res.stderr

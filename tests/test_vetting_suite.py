@@ -23,7 +23,7 @@ ROBOT = UrdfArm()
 def test_shipped_suites_load_and_validate_on_reach7(name):
     suite = load_suite(name)
     suite.validate(ROBOT, spec_n_goals=4)
-    assert suite.seed >= MIN_SEED and suite.path == f"suites/{name}.yaml"
+    assert suite.seed >= MIN_SEED and suite.path == f"suite/{name}.yaml"
     assert suite.candidates_per_axis**2 == suite.stick_grid().shape[0] == 25
 
 
@@ -138,7 +138,50 @@ def test_a_decoder_for_another_number_of_goals_is_refused(tmp_path):
 
 
 def test_unknown_override_and_unknown_name():
-    with pytest.raises(ConfigError, match="suites/nominal.yaml, override episode:"):
+    with pytest.raises(ConfigError, match="suite/nominal.yaml: Could not override 'suite.episode'"):
         load_suite("nominal", episode=3)
     with pytest.raises(ConfigError, match="unknown suite 'nominl'"):
         load_suite("nominl")
+
+
+def test_suite_scene_and_operator_are_config_groups_with_typed_overrides():
+    """`suite.episodes`, `scenario.goals.<i>.position` and `operator=` compose like any Hydra override, and the
+    suite's own choice of operator gives way to the command line's."""
+    from coreach.config_check import compose_config
+    from coreach.vetting.suite import suite_from_config
+
+    cfg = compose_config("vet", ["suite=held-out", "suite.episodes=5", "scenario.goals.1.position=[0.6,-0.2,0.1]"])
+    suite = suite_from_config(cfg)
+    assert suite.name == "held-out" and suite.episodes == 5 and suite.operator["name"] == "noisy"
+    assert suite.scene.goals[1].position == [0.6, -0.2, 0.1]
+    assert suite_from_config(compose_config("vet", ["suite=held-out", "operator=tremor"])).operator["name"] == "tremor"
+
+
+@pytest.mark.parametrize("override, where", [("suite.episodes=-1", "suite.episodes"),
+                                             ("suite.episodes=abc", "suite.episodes"),
+                                             ("suite.switch_to=sideways", "suite.switch_to"),
+                                             ("scenario.jitter=-0.1", "scenario.jitter"),
+                                             ("scenario.goals.1.position=[0.6,-0.2]", "goals[1].position")])
+def test_bad_group_values_fail_at_compose_time(override, where):
+    from coreach.config_check import compose_config
+
+    with pytest.raises(ConfigError) as err:
+        compose_config("vet", [override])
+    assert where in str(err.value) and "\n" not in str(err.value)
+
+
+def test_a_labs_own_suite_file_composes_through_the_same_schema(tmp_path):
+    from coreach.config_check import compose_config
+    from coreach.group_compose import lab_file_overrides
+    from coreach.vetting.suite import suite_from_config
+
+    mine = tmp_path / "mine.yaml"
+    mine.write_text("name: mine\noperator: tremor\nepisodes: 3\nseed: 12000\nhorizon_s: 25.0\n")
+    overrides, search = lab_file_overrides([f"suite={mine}", "suite.episodes=4"], tmp_path / "lab-conf")
+    assert overrides == ["suite=mine", "suite.episodes=4"] and search == [f"file://{tmp_path / 'lab-conf'}"]
+    suite = suite_from_config(compose_config("vet", [f"hydra.searchpath=[{search[0]}]", *overrides]))
+    assert (suite.name, suite.episodes, suite.seed, suite.operator["name"]) == ("mine", 4, 12000, "tremor")
+    (tmp_path / "typo.yaml").write_text("name: typo\nepisodez: 3\n")
+    overrides, search = lab_file_overrides([f"suite={tmp_path / 'typo.yaml'}"], tmp_path / "lab-conf")
+    with pytest.raises(ConfigError, match="episodez"):
+        compose_config("vet", [f"hydra.searchpath=[{search[0]}]", *overrides])

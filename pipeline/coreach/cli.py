@@ -210,10 +210,12 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
     import hydra
 
     from coreach.config_check import preflight
-    from coreach.plugin_registry import search_path_overrides
+    from coreach.group_compose import lab_file_overrides
+    from coreach.group_compose import search_path_overrides
 
     config_name, target = HYDRA_COMMANDS[command]
-    extra = search_path_overrides()
+    overrides, lab_conf = lab_file_overrides(overrides)  # suite=./mine.yaml: a lab's own file as an option
+    extra = search_path_overrides(lab_conf)
     if not _hydra_info_only(overrides):
         preflight(config_name, extra + overrides, multirun)
     stamp = f"{time.strftime('%Y-%m-%d_%H-%M-%S')}-{os.getpid()}"

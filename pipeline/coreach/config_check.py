@@ -10,32 +10,24 @@ from hydra.core.override_parser.overrides_parser import OverridesParser
 from hydra.errors import HydraException
 from omegaconf.errors import OmegaConfBaseException
 
+from coreach.config_schemas import register
 from coreach.errors import ConfigError
-from coreach.schemas import check_command_options, check_plugins
-
-
-def _one_line(exc: Exception) -> str:
-    text = str(exc).strip()
-    text = re.sub(r"\s*Set the environment variable HYDRA_FULL_ERROR=1.*", "", text, flags=re.S)
-    text = re.sub(r"\s*Config search path:.*", "", text, flags=re.S)
-    lines = [ln.strip() for ln in text.splitlines() if ln.strip()]
-    if not lines:
-        return type(exc).__name__
-    for i, line in enumerate(lines):
-        if line.endswith(":") and i + 1 < len(lines):  # Hydra lists alternatives one per line
-            return " ".join(lines[: i + 1]) + " " + ", ".join(lines[i + 1 :])
-    return " ".join(lines[:2])
+from coreach.group_compose import lab_file_overrides, one_line, search_path_overrides
+from coreach.schemas import check_command_options, check_groups, check_plugins
 
 
 def compose_config(config_name: str, overrides: list[str]):
     """Compose `config_name` with overrides (outside any Hydra run); ConfigError on failure."""
+    overrides, lab_conf = lab_file_overrides(overrides)  # suite=./mine.yaml: a lab's own file as an option
+    overrides = [*search_path_overrides(lab_conf), *overrides] if lab_conf else overrides
     GlobalHydra.instance().clear()
+    register()
     try:
         with initialize_config_module("coreach_conf", version_base="1.3"):
             cfg = compose(config_name=config_name, overrides=overrides)
     except (HydraException, OmegaConfBaseException, ValueError) as exc:
         bad = _culprit(exc, overrides)
-        problem = _one_line(exc)
+        problem = one_line(exc)
         if bad and re.search(r"=\[[^\]\"']*=", bad):  # key=[a.b=1]: Hydra reads a list item, not an override
             problem += ' (overrides inside a list need quotes: key=["a.b=1","c=2"])'
         raise ConfigError(f"option {bad}" if bad else f"config {config_name}", problem) from None
@@ -43,6 +35,7 @@ def compose_config(config_name: str, overrides: list[str]):
         GlobalHydra.instance().clear()
     check_plugins(cfg)
     check_command_options(cfg)
+    check_groups(cfg)
     return cfg
 
 
@@ -72,7 +65,7 @@ def preflight(config_name: str, overrides: list[str], multirun: bool) -> None:
     try:
         parsed = parser.parse_overrides(overrides)
     except HydraException as exc:
-        raise ConfigError("overrides", _one_line(exc)) from None
+        raise ConfigError("overrides", one_line(exc)) from None
     base = []
     sweeps = []
     for raw, ov in zip(overrides, parsed):

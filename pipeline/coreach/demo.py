@@ -33,7 +33,7 @@ def run_demo(cfg: DictConfig) -> dict:
 
         candidates = [r["run_id"] for r in runs] + list(cfg.demo.vet.baselines)
         vet_cfg = compose_stage("vet", [f"candidates=[{','.join(candidates)}]", f"suite={cfg.demo.vet.suite}",
-                                   f"episodes={cfg.demo.vet.episodes}"], "option demo.vet")  # fmt: skip
+                                   f"suite.episodes={cfg.demo.vet.episodes}"], "option demo.vet")  # fmt: skip
         result["vetting"] = vet(vet_cfg)
         steps.append(f"vetting report (open in a browser): {result['vetting']['report']}")
         steps.append(

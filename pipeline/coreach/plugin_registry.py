@@ -8,15 +8,15 @@ added to Hydra's search path, so its options are selected exactly like built-in 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from importlib import metadata, resources
+from importlib import resources
 
 import hydra
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
+from coreach.group_compose import external_config_packages
 from coreach.protocols import KINDS
 
-ENTRY_POINT_GROUP = "coreach.plugins"
 BUILTIN_CONF = "coreach_conf"
 
 
@@ -26,23 +26,6 @@ class PluginInfo:
     name: str
     target: str
     origin: str  # "built-in" or "<distribution> (entry point <name>)"
-
-
-def external_config_packages() -> list[tuple[str, str]]:
-    """(config package, origin) for every installed package that declares coreach plugins."""
-    found = []
-    for ep in metadata.entry_points(group=ENTRY_POINT_GROUP):
-        dist = ep.dist.name if ep.dist else "unknown distribution"
-        found.append((ep.value, f"{dist} (entry point {ep.name})"))
-    return found
-
-
-def search_path_overrides() -> list[str]:
-    """Hydra overrides that add outside plugin packages to the config search path."""
-    pkgs = [pkg for pkg, _ in external_config_packages()]
-    if not pkgs:
-        return []
-    return ["hydra.searchpath=[" + ",".join(f"pkg://{p}" for p in pkgs) + "]"]
 
 
 def _options(package: str, origin: str) -> list[PluginInfo]:

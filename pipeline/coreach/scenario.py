@@ -4,21 +4,23 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from importlib.resources import files
 from pathlib import Path
 from typing import Any, NamedTuple
 
 import numpy as np
 import torch
+from omegaconf import DictConfig, OmegaConf
 from torch import Tensor
 
 from coreach.control.bodies import Primitive
 from coreach.control.separation import SeparationSettings
+from coreach.config_schemas import ScenarioConfig
 from coreach.errors import ConfigError
+from coreach.group_compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
 from coreach.geometry import matrix_to_quat, rpy_to_matrix
 from coreach.scene_bodies import check_goals_clear, finite_list, named_entry, parse_obstacles, parse_person
 
-__all__ = ["Goal", "Scenario", "Layout", "EpisodeLayout", "load_scenario", "builtin_scenarios"]
+__all__ = ["Goal", "Scenario", "Layout", "EpisodeLayout", "load_scenario", "builtin_scenarios", "scenario_from_config"]
 
 
 @dataclass
@@ -182,31 +184,25 @@ class Scenario:
 
 
 def builtin_scenarios() -> list[str]:
-    """Names of the scenarios shipped in coreach_conf/scenario."""
-    folder = files("coreach_conf") / "scenario"
-    return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
+    """Names of the scenarios shipped in the `scenario` config group."""
+    return options("scenario")
+
+
+def scenario_from_config(node: Any, where: str = "scenario") -> Scenario:
+    """A Scenario from a composed `scenario` node (or plain data already on its schema)."""
+    data = OmegaConf.to_container(node, resolve=True) if isinstance(node, DictConfig) else node
+    return Scenario.from_dict(data, where)
 
 
 def load_scenario(name_or_path: str | Path) -> Scenario:
-    """Read a scenario: a shipped name (e.g. "bedside_shelf") or a path to a YAML file."""
-    import yaml
-
-    text_path = str(name_or_path)
-    looks_like_path = isinstance(name_or_path, Path) or text_path.endswith((".yaml", ".yml")) or "/" in text_path
-    if looks_like_path:
-        path = Path(text_path)
-        if not path.is_file():
-            raise ConfigError(f"scenario {text_path}", "file not found; expected a YAML scenario file")
-        where, text = str(path), path.read_text(encoding="utf-8")
-    else:
-        res = files("coreach_conf") / "scenario" / f"{text_path}.yaml"
-        if not res.is_file():
-            raise ConfigError(
-                "option scenario", f"unknown scenario {text_path!r}; expected one of {builtin_scenarios()} or a .yaml path"
-            )
-        where, text = f"scenario/{text_path}.yaml", res.read_text(encoding="utf-8")
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as e:
-        raise ConfigError(where, f"not valid YAML ({str(e).splitlines()[0]})") from None
-    return Scenario.from_dict(data, where)
+    """A scenario by name (an option of the `scenario` config group, composed through Hydra) or a lab's own
+    YAML file, merged onto the same schema (coreach.config_schemas.ScenarioConfig)."""
+    if is_file_reference(name_or_path):
+        where = str(name_or_path)
+        return Scenario.from_dict(on_schema(ScenarioConfig, read_yaml_file(name_or_path, "scenario"), where), where)
+    name = str(name_or_path)
+    if name not in builtin_scenarios():
+        raise ConfigError("option scenario", f"unknown scenario {name!r}; expected one of {builtin_scenarios()} or a "
+                                             ".yaml path")  # fmt: skip
+    cfg = compose_here(SUITE_CONFIG, [f"scenario={name}"], f"scenario/{name}.yaml")
+    return scenario_from_config(cfg.scenario, f"scenario/{name}.yaml")

@@ -105,3 +105,20 @@ def check_command_options(cfg: DictConfig) -> None:
             _unknown(dict(node), names, path)
         values = {k: node.get(k) for k in names if k in node}
         check_ranges(spec, values, path)
+
+
+def check_groups(cfg: DictConfig) -> None:
+    """Ranges of the user-written groups present in a composed config (their types and keys were checked
+    by their ConfigStore schemas while composing): `suite.episodes=-1` fails here, in one line."""
+    from coreach.config_schemas import SCHEMAS, ToleranceConfig
+
+    for group, (_, schema) in SCHEMAS.items():
+        node = cfg.get(group)
+        if isinstance(node, DictConfig):
+            check_ranges(schema, dict(node), group)
+            if group == "suite" and isinstance(node.get("tolerances"), DictConfig):
+                check_ranges(ToleranceConfig, dict(node.tolerances), "suite.tolerances")
+    if isinstance(cfg.get("scenario"), DictConfig):  # the scene's own rules (sizes, goals clear of bodies)
+        from coreach.scenario import scenario_from_config
+
+        scenario_from_config(cfg.scenario, f"scenario {cfg.scenario.get('name', '')}".strip())

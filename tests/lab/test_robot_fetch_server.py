@@ -59,7 +59,7 @@ def released(tmp_path_factory):
     """Two released versions of one model on the server, version 1 fielded."""
     uri = tracking_server()
     cwd = tmp_path_factory.mktemp("robot-release")
-    held_out = (ROOT / "conf" / "coreach_conf" / "suites" / "held-out.yaml").read_text()
+    held_out = (ROOT / "conf" / "coreach_conf" / "suite" / "held-out.yaml").read_text()
     (cwd / f"{SUITE}.yaml").write_text(held_out.replace("name: held-out", f"name: {SUITE}")
                                        .replace("horizon_s: 30.0", "horizon_s: 10.0"))
     experiment, name = unique_experiment("lab-robot"), unique_experiment("robot-decoder")

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 
-from omegaconf import DictConfig, ListConfig, OmegaConf
+from omegaconf import DictConfig, ListConfig
 
 from coreach import tracking
 from coreach.commands.compare import _atomic_write
@@ -151,18 +151,13 @@ def stage_command(command: str, where: str):
 
 def compose_stage(config_name: str, overrides: list[str], where: str) -> DictConfig:
     """Compose a sub-stage's config inside the running Hydra app; failures name the recipe or option."""
-    from hydra import compose
-    from hydra.errors import HydraException
-    from omegaconf.errors import OmegaConfBaseException
+    from coreach.group_compose import compose_here
+    from coreach.schemas import check_groups, check_plugins
 
-    from coreach.config_check import _one_line
-    from coreach.schemas import check_plugins
-
+    cfg = compose_here(config_name, overrides, where)
     try:
-        cfg = compose(config_name=config_name, overrides=overrides)
         check_plugins(cfg)
-    except (HydraException, OmegaConfBaseException, ValueError) as exc:
-        raise ConfigError(where, _one_line(exc)) from None
+        check_groups(cfg)
     except CoreachError as exc:
         raise ConfigError(f"{where}, {exc.where}", exc.problem) from None
     return cfg
@@ -205,18 +200,20 @@ def recipes(cfg: DictConfig) -> dict:
     """Train every selected recipe once per seed, vet all decoders and the baselines on each suite, and write
     results.md, results.csv and results.json into `out` (also logged on one MLflow run)."""
     from coreach.plugin_registry import build_plugin
-    from coreach.vetting.suite import load_suite
+    from coreach.group_compose import suite_overrides
+    from coreach.vetting.suite import suite_from_config
 
     t0 = time.perf_counter()
     plan = plan_from(cfg)
     given = user_overrides()
     forward = _tracking_overrides(given)
-    vet_cfgs = [compose_stage("vet", [*forward, *plan.vet_overrides], "option vet_overrides") for _ in plan.suites]
+    vet_cfgs = [compose_stage("vet", [*forward, *suite_overrides(ref, plan.episodes), *plan.vet_overrides],
+                              "option vet_suites / vet_overrides") for ref in plan.suites]  # fmt: skip
     robot = build_plugin(vet_cfgs[0].robot, "robot")
     suites = []  # every suite is read and checked before the first training: a typo costs seconds, not hours
-    for ref in plan.suites:
+    for vcfg in vet_cfgs:
         try:
-            suite = load_suite(ref, **({"episodes": plan.episodes} if plan.episodes else {}))
+            suite = suite_from_config(vcfg)
             suite.validate(robot)
         except ConfigError as exc:
             raise ConfigError("option vet_suites" if exc.where == "option suite" else exc.where, exc.problem) from None
@@ -254,8 +251,7 @@ def recipes(cfg: DictConfig) -> dict:
         vetted = {}
         for j, (ref, name, vcfg) in enumerate(zip(plan.suites, suites, vet_cfgs), 1):
             _say(f"[{j}/{len(plan.suites)}] vetting {len(candidates)} candidates on {name}")
-            vcfg.candidates, vcfg.suite = candidates, ref
-            vcfg.episodes = plan.episodes
+            vcfg.candidates = candidates
             vcfg.report_dir = str(plan.out / f"vet-{_slug(name)}")
             vetted[name] = vet(vcfg)
             for rid in vetted[name].get("vet_runs", {}).values():

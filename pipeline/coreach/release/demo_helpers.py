@@ -6,6 +6,7 @@ import logging
 
 from omegaconf import DictConfig
 
+from coreach.group_compose import suite_overrides
 from coreach.release import registry
 
 log = logging.getLogger("coreach.release")
@@ -90,7 +91,7 @@ def release_best(demo_result: dict, cfg: DictConfig) -> dict:
         out["tryout"] = runtime_tryout(best["bundle"], float(node.get("tryout_s", 3.0)))
         episodes = next((o.split("=", 1)[1] for o in overrides if o.startswith("episodes=")), "null")
         suite = best["suite_refs"][0]
-        dcfg = compose(config_name="replay", overrides=[f"bundle={best['bundle']}", f"suite={suite}",
-                                                       f"episodes={episodes}"])  # fmt: skip
+        sized = None if episodes == "null" else int(episodes)  # as the gate ran it
+        dcfg = compose(config_name="replay", overrides=[f"bundle={best['bundle']}", *suite_overrides(suite, sized)])
         out["replay"] = replay(dcfg)
     return out

@@ -31,7 +31,7 @@ from coreach.runtime.session import limits_from_manifest
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import summarise
-from coreach.vetting.suite import load_suite
+from coreach.vetting.suite import suite_from_config
 
 log = logging.getLogger("coreach.replay")
 MISMATCH_EXIT = 3
@@ -129,8 +129,7 @@ def replay(cfg: DictConfig) -> dict:
     robot = bundle_robot(m)
     belief = belief_from_manifest(m.belief)
     limits = bundle_limits(m)
-    overrides = {"episodes": int(cfg.episodes)} if cfg.get("episodes") is not None else {}
-    suite = load_suite(str(cfg.suite), **overrides)
+    suite = suite_from_config(cfg)
     suite.validate(robot, spec_n_goals=m.n_goals)
     if list(suite.goal_names) != list(m.goal_names):
         raise ConfigError("option suite", f"suite {suite.name} has goals {suite.goal_names}; the bundle's decoder "

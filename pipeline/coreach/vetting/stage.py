@@ -22,7 +22,7 @@ from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import flat_metrics, summarise
 from coreach.vetting.report import standard_plots, write_report
 from coreach.vetting.scene_plot import scene_plots
-from coreach.vetting.suite import load_suite
+from coreach.vetting.suite import suite_from_config
 from coreach.vetting.trajectories import write_trajectories
 from coreach.world import arm_world
 
@@ -95,10 +95,7 @@ def vet(cfg: DictConfig) -> dict:
     """Vet `cfg.candidates` on `cfg.suite`; returns the summaries, the report path and the MLflow run ids."""
     t0 = time.perf_counter()
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
-    overrides = {"episodes": cfg.episodes} if cfg.get("episodes") is not None else {}
-    if cfg.get("operator_preset"):
-        overrides["operator"] = cfg.operator_preset
-    suite = load_suite(str(cfg.suite), **overrides)
+    suite = suite_from_config(cfg)
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
     limits = limits_from_config(robot, cfg.safety)

@@ -1,29 +1,29 @@
-"""Vetting suites read from YAML: the episodes a closed-loop test runs (scene, layouts, starts, operator, switches)."""
+"""Vetting suites: the episodes a closed-loop test runs (scene, layouts, starts, operator, switches), built from
+the `suite`, `scenario` and `operator` config groups."""
 
 from __future__ import annotations
 
 import dataclasses
 import math
 from dataclasses import dataclass, field
-from importlib.resources import files
 from pathlib import Path
 from typing import Any
 
 import torch
 from torch import Tensor
 
+from omegaconf import DictConfig, OmegaConf
+
+from coreach.config_schemas import (DEFAULT_ORIENTATION_TOL_DEG, DEFAULT_POSITION_TOL, MIN_SEED, SuiteConfig,
+                                    ToleranceConfig)  # fmt: skip
 from coreach.errors import ConfigError
-from coreach.option_specs import check_options, choice, integer, is_number, number, text, vector
-from coreach.scenario import Layout, Scenario, load_scenario
+from coreach.group_compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
+from coreach.option_specs import check_ranges, is_number
+from coreach.scenario import Layout, Scenario, load_scenario, scenario_from_config
 
-__all__ = ["Suite", "EpisodePlan", "load_suite", "builtin_suites", "load_operator_config", "MIN_SEED"]
+__all__ = ["Suite", "EpisodePlan", "load_suite", "builtin_suites", "build_suite", "suite_from_config", "suite_from_dict",
+           "MIN_SEED"]
 
-# Training (demonstration and trainer seeds) uses small integers from 0; vetting draws from 10_000 up so no
-# vetting episode can coincide with a training one.
-MIN_SEED = 10_000
-# Common practice for "arrived" in reaching studies with assistive arms (not a standard): 2 cm, 15 deg.
-DEFAULT_POSITION_TOL = 0.02
-DEFAULT_ORIENTATION_TOL_DEG = 15.0
 
 
 
@@ -79,7 +79,7 @@ class Suite:
     def scene(self) -> Scenario:
         """The loaded scenario (loaded once)."""
         if self.scenario_obj is None:
-            self.scenario_obj = _load_scenario(self.scenario, self.path)
+            self.scenario_obj = load_scenario(self.scenario)
         return self.scenario_obj
 
     @property
@@ -114,8 +114,9 @@ class Suite:
         return {"position_m": self.position_tol, "orientation_deg": self.orientation_tol_deg}
 
     def to_dict(self) -> dict:
-        """The suite as plain data with the YAML's keys (for run records and reports)."""
-        keys = [k for k in _KEYS if k != "tolerances"]
+        """The suite as plain data, in the flat form suite_from_dict reads (for run records and reports)."""
+        keys = ["name", "scenario", "operator"] + [f.name for f in dataclasses.fields(SuiteConfig)
+                                                   if f.name not in ("name", "tolerances")]  # fmt: skip
         out = {k: getattr(self, k) for k in keys}
         out["layout_offset"] = list(self.layout_offset)
         out["tolerances"] = self.tolerances
@@ -266,146 +267,111 @@ class _StartAt:
         return self._q0
 
 
-# ----- reading YAML -----
+# ----- building from configs -----
 def builtin_suites() -> list[str]:
-    """Names of the suites shipped in coreach_conf/suites."""
-    folder = files("coreach_conf") / "suites"
-    return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
+    """Names of the suites shipped in the `suite` config group."""
+    return options("suite")
 
 
-def _builtin_operators() -> list[str]:
-    folder = files("coreach_conf") / "operator"
-    return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
+def _operator(value: Any, where: str) -> dict:
+    """An operator option's config: a shipped name (the `operator` config group) or a mapping with _target_."""
+    if isinstance(value, str):
+        if value not in options("operator"):
+            raise ConfigError(where, f"unknown operator {value!r}; expected one of {options('operator')} or a "
+                                     "mapping with _target_")  # fmt: skip
+        return OmegaConf.to_container(compose_here(SUITE_CONFIG, [f"operator={value}"], where).operator)
+    if isinstance(value, dict) and isinstance(value.get("_target_"), str):
+        return dict(value)
+    raise ConfigError(where, f"expected a shipped operator name ({options('operator')}) or a mapping with "
+                             f"_target_, got {value!r}")  # fmt: skip
 
 
-def load_operator_config(name: str, where: str = "option operator") -> dict:
-    """The config dict of a shipped operator option (conf/operator/<name>.yaml)."""
-    import yaml
-
-    res = files("coreach_conf") / "operator" / f"{name}.yaml"
-    if not res.is_file():
-        raise ConfigError(
-            where, f"unknown operator {name!r}; expected one of {_builtin_operators()} or a mapping with _target_"
-        )
-    return dict(yaml.safe_load(res.read_text(encoding="utf-8")))
-
-
-def _load_scenario(name: str, where: str) -> Scenario:
-    try:
-        return load_scenario(name)
-    except ConfigError as exc:
-        raise ConfigError(f"{where}, option scenario ({exc.where})", exc.problem) from None
-
-
-@dataclass(kw_only=True)
-class SuiteOptions:
-    """A suite file's options: type, range and unit of each (checked by coreach.option_specs)."""
-
-    name: str | None = text(None, optional=True)
-    scenario: str = text(what="a scenario name or YAML path")
-    goals: list[str] | None = None  # null (all goals) or goal names of the scenario: checked against it
-    layout_offset: tuple = vector((0.0, 0.0, 0.0), 3, "m")
-    layout_jitter: float | None = number(None, 0.0, 1.0, "m", optional=True)
-    start: Any = "home"  # 'home' or joint positions (rad)
-    start_jitter: float = number(0.0, 0.0, math.pi, "rad")
-    operator: Any = "expert"  # a shipped operator name or a mapping with _target_
-    switch_fractions: list = field(default_factory=lambda: [None])  # null = no switch, else in (0, 1)
-    switch_to: str = choice("next", ("next", "random"))
-    episodes: int = integer(50, 1, " (episodes per switch cell)")
-    seed: int = integer(MIN_SEED, MIN_SEED, " so vetting episodes never coincide with training ones "
-                                            "(training seeds are small integers)")
-    horizon_s: float = number(20.0, 1e-3, 1e5, "s")
-    dt: float | None = number(None, 1e-4, 10.0, "s", optional=True)
-    tolerances: dict = field(default_factory=dict)
-    candidates_per_axis: int = integer(5, 2, " (stick grid points per axis)")
-
-
-@dataclass
-class ToleranceOptions:
-    position_m: float = number(DEFAULT_POSITION_TOL, 1e-6, 1.0, "m")
-    orientation_deg: float = number(DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg")
-
-
-_KEYS = tuple(f.name for f in dataclasses.fields(SuiteOptions))
-
-
-def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
-    """Check plain data (parsed YAML) and build a Suite; errors name `where` and the option."""
-    o = check_options(SuiteOptions, d, where)
-    tol = check_options(ToleranceOptions, o["tolerances"] or {}, where, prefix="tolerances.")
-    scene = _load_scenario(o["scenario"], where)
+def build_suite(node: Any, scene: Scenario, operator: dict, where: str) -> Suite:
+    """A Suite from its options (a composed `suite` node or plain data, checked against SuiteConfig: keys,
+    types, ranges), its scene and its operator's config; the checks that need the scene follow."""
+    o = on_schema(SuiteConfig, OmegaConf.to_container(node) if isinstance(node, DictConfig) else node, where)
+    check_ranges(SuiteConfig, o, where)
+    check_ranges(ToleranceConfig, o["tolerances"], f"{where}.tolerances")
+    tol = o["tolerances"]
     goals = o["goals"]
     if goals is not None:
-        if not isinstance(goals, list) or not goals:
-            raise ConfigError(f"{where}, option goals", f"expected null (all goals) or a list of goal names, got {goals!r}")
+        if not goals:
+            raise ConfigError(f"{where}.goals", f"expected null (all goals) or a list of goal names, got {goals!r}")
         for i, g in enumerate(goals):
             if g not in scene.goal_names:
-                raise ConfigError(f"{where}, option goals[{i}]",
+                raise ConfigError(f"{where}.goals[{i}]",
                                   f"unknown goal {g!r}; scenario {scene.name!r} has {scene.goal_names}")  # fmt: skip
         if len(set(goals)) != len(goals):
-            raise ConfigError(f"{where}, option goals", f"duplicate goal names in {goals}")
+            raise ConfigError(f"{where}.goals", f"duplicate goal names in {goals}")
     start = o["start"]
     if start != "home" and not (isinstance(start, list) and start and all(is_number(v) for v in start)):
-        raise ConfigError(f"{where}, option start", f"expected 'home' or a list of joint positions (rad), got {start!r}")
-    operator = o["operator"]
-    if isinstance(operator, str):
-        operator = load_operator_config(operator, f"{where}, option operator")
-    elif not isinstance(operator, dict) or not isinstance(operator.get("_target_"), str):
-        raise ConfigError(f"{where}, option operator", f"expected a shipped operator name ({_builtin_operators()}) "
-                                                       f"or a mapping with _target_, got {operator!r}")  # fmt: skip
+        raise ConfigError(f"{where}.start", f"expected 'home' or a list of joint positions (rad), got {start!r}")
     fractions = o["switch_fractions"]
-    if not isinstance(fractions, list) or not fractions:
-        raise ConfigError(f"{where}, option switch_fractions",
-                          f"expected a non-empty list (null = no switch), got {fractions!r}")  # fmt: skip
+    if not fractions:
+        raise ConfigError(f"{where}.switch_fractions", "expected a non-empty list (null = no switch), got []")
     for i, f in enumerate(fractions):
         if f is not None and not (is_number(f) and 0.0 < f < 1.0):
-            raise ConfigError(f"{where}, option switch_fractions[{i}]",
+            raise ConfigError(f"{where}.switch_fractions[{i}]",
                               f"expected null (no switch) or a fraction of the horizon strictly between 0 and 1, got {f!r}")  # fmt: skip
     if any(f is not None for f in fractions) and len(scene.goals if goals is None else goals) < 2:
-        raise ConfigError(f"{where}, option switch_fractions", "goal switches need at least 2 goals")
+        raise ConfigError(f"{where}.switch_fractions", "goal switches need at least 2 goals")
     suite = Suite(
-        name=o["name"] or default_name, scenario=o["scenario"], operator=dict(operator), goals=goals,
+        name=o["name"], scenario=scene.name, operator=dict(operator), goals=goals,
         layout_offset=tuple(float(v) for v in o["layout_offset"]), layout_jitter=o["layout_jitter"], start=start,
-        start_jitter=o["start_jitter"], switch_fractions=list(fractions), switch_to=o["switch_to"],
-        episodes=o["episodes"], seed=o["seed"], horizon_s=o["horizon_s"], dt=o["dt"], position_tol=tol["position_m"],
-        orientation_tol_deg=tol["orientation_deg"], candidates_per_axis=o["candidates_per_axis"], path=where,
-        scenario_obj=scene,
+        start_jitter=float(o["start_jitter"]), switch_fractions=list(fractions), switch_to=o["switch_to"],
+        episodes=o["episodes"], seed=o["seed"], horizon_s=float(o["horizon_s"]), dt=o["dt"],
+        position_tol=float(tol["position_m"]), orientation_tol_deg=float(tol["orientation_deg"]),
+        candidates_per_axis=o["candidates_per_axis"], path=where, scenario_obj=scene,
     )  # fmt: skip
     for i, f in enumerate(fractions):
         if f is not None and not 1 <= round(f * suite.steps) <= suite.steps - 1:
-            raise ConfigError(f"{where}, option switch_fractions[{i}]",
+            raise ConfigError(f"{where}.switch_fractions[{i}]",
                               f"switch at step {round(f * suite.steps)} of {suite.steps}; expected a step inside the horizon")  # fmt: skip
     return suite
 
 
-def load_suite(name_or_path: str | Path, **overrides) -> Suite:
-    """Read a suite: a shipped name (conf/suites/<name>.yaml, e.g. "goal-switch") or a path to a YAML file.
+def suite_from_config(cfg: DictConfig, where: str = "suite") -> Suite:
+    """The Suite of a composed config holding `suite`, `scenario` and `operator` (coreach vet, replay)."""
+    scene = scenario_from_config(cfg.scenario, f"scenario {cfg.scenario.get('name', '')}".strip())
+    return build_suite(cfg.suite, scene, OmegaConf.to_container(cfg.operator, resolve=True), where)
 
-    `overrides` replace top-level options before checking (e.g. episodes=20); they are checked like the file.
-    """
-    import yaml
 
-    text_path = str(name_or_path)
-    looks_like_path = isinstance(name_or_path, Path) or text_path.endswith((".yaml", ".yml")) or "/" in text_path
-    if looks_like_path:
-        path = Path(text_path)
-        if not path.is_file():
-            raise ConfigError(f"suite {text_path}", "file not found; expected a YAML suite file")
-        where, text, stem = str(path), path.read_text(encoding="utf-8"), path.stem
-    else:
-        res = files("coreach_conf") / "suites" / f"{text_path}.yaml"
-        if not res.is_file():
-            raise ConfigError(
-                "option suite", f"unknown suite {text_path!r}; expected one of {builtin_suites()} or a .yaml path"
-            )
-        where, text, stem = f"suites/{text_path}.yaml", res.read_text(encoding="utf-8"), text_path
+def suite_from_dict(d: Any, where: str, default_name: str = "suite") -> Suite:
+    """A Suite from one flat mapping: the suite's options plus `scenario` (a name or a scene file) and
+    `operator` (a name or a mapping with _target_), as a lab's own suite file or a test writes it."""
+    if not isinstance(d, dict):
+        raise ConfigError(where, f"expected a mapping of suite options, got {type(d).__name__}")
+    d = dict(d)
+    scene_ref = d.pop("scenario", "bedside_shelf")
     try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as e:
-        raise ConfigError(where, f"not valid YAML ({str(e).splitlines()[0]})") from None
-    if isinstance(data, dict):
-        for key in overrides:
-            if key not in _KEYS:
-                raise ConfigError(f"{where}, override {key}", f"unknown option; expected one of {list(_KEYS)}")
-        data = {**data, **overrides}
-    return suite_from_dict(data, where, default_name=stem)
+        scene = load_scenario(scene_ref)
+    except ConfigError as exc:
+        raise ConfigError(f"{where}, option scenario ({exc.where})", exc.problem) from None
+    operator = _operator(d.pop("operator", "expert"), f"{where}, option operator")
+    d.setdefault("name", default_name)
+    return build_suite(d, scene, operator, where)
+
+
+def load_suite(name_or_path: str | Path, **overrides) -> Suite:
+    """A suite by name (the `suite` config group, composed through Hydra with its scene and operator) or a lab's
+    own flat YAML file (suite_from_dict). `overrides` set suite options (e.g. episodes=20) or `operator`."""
+    if is_file_reference(name_or_path):
+        data = {**read_yaml_file(name_or_path, "suite"), **overrides}
+        return suite_from_dict(data, str(name_or_path), default_name=Path(str(name_or_path)).stem)
+    name = str(name_or_path)
+    if name not in builtin_suites():
+        raise ConfigError("option suite", f"unknown suite {name!r}; expected one of {builtin_suites()} or a .yaml path")
+    args = [f"suite={name}"]
+    for key, value in overrides.items():
+        args.append(f"operator={value}" if key == "operator" else f"suite.{key}={_override_value(value)}")
+    cfg = compose_here(SUITE_CONFIG, args, f"suite/{name}.yaml")
+    return suite_from_config(cfg, f"suite/{name}.yaml")
+
+
+def _override_value(value: Any) -> str:
+    """A Python value as a Hydra override value (null, numbers, lists, strings)."""
+    if value is None:
+        return "null"
+    if isinstance(value, (list, tuple)):
+        return "[" + ",".join(_override_value(v) for v in value) + "]"
+    return str(value)

@@ -1,0 +1,112 @@
+"""Typed schemas of what a lab writes as configuration (suites, scenes), registered in Hydra's ConfigStore.
+
+Each shipped file of the `suite` and `scenario` config groups starts from its schema (`defaults: [base_suite]`
+or `[base_scenario]`), so a misspelt key or a wrong type fails when the config is composed, and overrides
+such as `suite.episodes=20` or `scenario.goals.1.position=[0.6,0.1,0.3]` are checked the same way. A lab's
+own file, given as a path, is merged onto the same schema (coreach.group_compose). Ranges are declared with
+coreach.option_specs and checked right after composition (one line naming the option).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, List, Optional
+
+from coreach.control.separation import SeparationSettings
+from coreach.option_specs import choice, integer, number, vector
+
+_SEPARATION = SeparationSettings()  # the person's terms and the clearance default to the filter's own
+
+__all__ = ["SuiteConfig", "ToleranceConfig", "ScenarioConfig", "GoalConfig", "BodyConfig", "PersonConfig",
+           "register", "MIN_SEED", "DEFAULT_POSITION_TOL", "DEFAULT_ORIENTATION_TOL_DEG"]  # fmt: skip
+
+# Training (demonstration and trainer seeds) uses small integers from 0; vetting draws from 10_000 up so no
+# vetting episode can coincide with a training one.
+MIN_SEED = 10_000
+# Common practice for "arrived" in reaching studies with assistive arms (not a standard): 2 cm, 15 deg.
+DEFAULT_POSITION_TOL = 0.02
+DEFAULT_ORIENTATION_TOL_DEG = 15.0
+
+
+@dataclass
+class ToleranceConfig:
+    position_m: float = number(DEFAULT_POSITION_TOL, 1e-6, 1.0, "m")
+    orientation_deg: float = number(DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg")
+
+
+@dataclass
+class SuiteConfig:
+    """A vetting suite: which episodes a closed-loop test runs. Its scene and simulated operator are the
+    `scenario` and `operator` config groups (a suite file selects them with `override /operator: noisy`)."""
+
+    name: str = "suite"
+    goals: Optional[List[str]] = None  # null = every goal of the scenario; else goal names
+    layout_offset: List[float] = vector((0.0, 0.0, 0.0), 3, "m")  # added to every approach point
+    layout_jitter: Optional[float] = number(None, 0.0, 1.0, "m", optional=True)  # null = the scenario's
+    start: Any = "home"  # "home" or joint positions (rad)
+    start_jitter: float = number(0.0, 0.0, math.pi, "rad")
+    switch_fractions: List[Optional[float]] = field(default_factory=lambda: [None])  # null = no switch
+    switch_to: str = choice("next", ("next", "random"))
+    episodes: int = integer(50, 1, " (episodes per switch cell)")
+    seed: int = integer(MIN_SEED, MIN_SEED, " so vetting episodes never coincide with training ones "
+                                            "(training seeds are small integers)")  # fmt: skip
+    horizon_s: float = number(20.0, 1e-3, 1e5, "s")
+    dt: Optional[float] = number(None, 1e-4, 10.0, "s", optional=True)  # null = the scenario's
+    tolerances: ToleranceConfig = field(default_factory=ToleranceConfig)
+    candidates_per_axis: int = integer(5, 2, " (stick grid points per axis)")
+
+
+@dataclass
+class GoalConfig:
+    name: str = "???"
+    position: List[float] = field(default_factory=lambda: [0.0, 0.0, 0.0])  # approach point, m
+    approach_rpy_deg: List[float] = field(default_factory=lambda: [0.0, 90.0, 0.0])
+    fine_motion: List[float] = field(default_factory=lambda: [0.0, 0.0, 0.0])  # m, base frame
+
+
+@dataclass
+class BodyConfig:
+    name: str = "???"
+    shape: str = "???"  # box, cylinder, sphere, capsule (checked with the sizes by coreach.scene_bodies)
+    size: List[float] = field(default_factory=list)
+    xyz: List[float] = field(default_factory=lambda: [0.0, 0.0, 0.0])
+    rpy_deg: List[float] = field(default_factory=lambda: [0.0, 0.0, 0.0])
+
+
+@dataclass
+class PersonConfig:
+    """The person's bodies and the speed and separation terms (coreach.control.separation)."""
+
+    speed: float = _SEPARATION.person_speed
+    reaction_time: float = _SEPARATION.reaction_time
+    stopping_time: float = _SEPARATION.stopping_time
+    intrusion: float = _SEPARATION.intrusion
+    person_uncertainty: float = _SEPARATION.person_uncertainty
+    robot_uncertainty: float = _SEPARATION.robot_uncertainty
+    bodies: List[BodyConfig] = field(default_factory=list)
+
+
+@dataclass
+class ScenarioConfig:
+    """A scene: goals, furniture and the person (their meaning and checks: coreach.scenario)."""
+
+    name: str = "???"
+    dt: float = number(0.1, 1e-4, 10.0, "s")
+    jitter: float = number(0.02, 0.0, 1.0, "m")
+    goals: List[GoalConfig] = field(default_factory=list)
+    clearance: float = number(_SEPARATION.clearance, 0.0, 1.0, "m")
+    obstacles: List[BodyConfig] = field(default_factory=list)
+    person: Optional[PersonConfig] = None
+
+
+SCHEMAS = {"suite": ("base_suite", SuiteConfig), "scenario": ("base_scenario", ScenarioConfig)}
+
+
+def register() -> None:
+    """Store the schemas in Hydra's ConfigStore (idempotent): before any config is composed."""
+    from hydra.core.config_store import ConfigStore
+
+    cs = ConfigStore.instance()
+    for group, (name, node) in SCHEMAS.items():
+        cs.store(group=group, name=name, node=node)
