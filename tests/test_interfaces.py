@@ -64,7 +64,7 @@ def numpy_mode_map(J: np.ndarray, damping: float, rows: tuple[int, int], scales:
 
 
 @pytest.mark.parametrize("mode,rows,kind", [(0, (0, 1), "lin"), (1, (2, 5), "mix"), (2, (3, 4), "ang")])
-def test_direct_authority_matches_numpy_svd(robot, mode, rows, kind):
+def test_direct_stick_gain_matches_numpy_svd(robot, mode, rows, kind):
     iface = DirectControl(speed=0.2, angular_speed=0.7, damping=0.05)
     st = loop_state(robot)
     st.mode = torch.full((E,), mode, dtype=torch.long)
@@ -172,7 +172,7 @@ def test_decoder_act_is_the_policy_on_every_episode_and_candidate(robot):
                 torch.testing.assert_close(qd[e, 0, k], policy(stick[k], st.context[e]))
 
 
-def test_decoder_authority_matches_finite_difference_svd(robot):
+def test_decoder_stick_gain_matches_finite_difference_svd(robot):
     policy = small_policy(seed=1)
     policy.stick_scale.fill_(1.7)  # a non-trivial stick scale must enter the Jacobian too
     iface = DecoderInterface(policy, "cvae")

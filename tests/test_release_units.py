@@ -87,7 +87,7 @@ def test_thin_evidence_fails_even_at_a_perfect_rate():
     assert r.value == pytest.approx(3 / (3 + 1.96**2), abs=1e-3) and not r.passed
 
 
-def test_collapsed_authority_and_any_violation_fail():
+def test_collapsed_stick_gain_and_any_violation_fail():
     th = G.Thresholds.from_config(GATES, 1e-5)
     bad = {**NO_VIOLATIONS, "tool_speed": 1, "total": 1}
     results = {r.name: r for r in G.suite_gates("s", _summary(stick_gain=0.5, collapsed=True), bad, th)}

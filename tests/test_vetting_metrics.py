@@ -216,7 +216,7 @@ def test_summary_values():
     np.testing.assert_allclose(s["belief"]["trace_mean"], on_final.mean(0))
 
 
-def test_summary_flags_collapsed_authority():
+def test_summary_flags_collapsed_stick_gain():
     assert summarise(make_record(stick_gain=0.005))["stick_gain"]["collapsed"]
     assert not summarise(make_record(stick_gain=0.005), {"collapse_stick_gain": 0.001})["stick_gain"]["collapsed"]
 

@@ -120,12 +120,12 @@ def suite_gates(suite: str, summary: dict, violations: dict, th: Thresholds) -> 
     out.append(_check(f"violations[{suite}]", "steps beyond the limits (scalings are not violations)",
                       violations["total"], th.max_violations, "<=", violation_text(violations)))
     a = summary["stick_gain"]
-    auth = _check(f"stick_gain[{suite}]", "stick gain, median (rad/s per unit stick), not collapsed",
+    gain = _check(f"stick_gain[{suite}]", "stick gain, median (rad/s per unit stick), not collapsed",
                   a["median"], th.stick_gain_median, ">=",
                   f"5th pct {a['p05']:.4g}, n={a['n']}" + (", COLLAPSED" if a["collapsed"] else ""))  # fmt: skip
     if a["collapsed"]:  # below vetting's own collapse threshold: never released, whatever the gate says
-        auth = GateResult(**{**asdict(auth), "passed": False})
-    out.append(auth)
+        gain = GateResult(**{**asdict(gain), "passed": False})
+    out.append(gain)
     out += separation_gates(suite, summary.get("separation"), th)
     return out
 

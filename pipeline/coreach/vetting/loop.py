@@ -171,7 +171,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     rec_mode = torch.zeros(E, T, dtype=torch.long)
     rec_reach = torch.zeros(E, T, G, dtype=torch.bool)
     rec_ori = torch.empty(E, T + 1, dtype=dtype)
-    rec_auth = torch.full((E, T), math.nan, dtype=dtype)
+    rec_stick_gain = torch.full((E, T), math.nan, dtype=dtype)
     rec_stick = torch.full((E, T, grid.shape[1]), math.nan, dtype=dtype)
     rec_sep = torch.full((3, E, T + 1), math.inf, dtype=dtype)  # furniture, person, self (m)
     rec_excess = torch.zeros(E, T, dtype=torch.bool)  # a sphere approached the person faster than allowed
@@ -255,7 +255,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         value = _values(twist, to_wp, rot_err, mode, switch_cost, margin)
         rec_reach[:, t] = _reachable(twist[..., :3], pos, approach, tol_pos)
         if stick_gain_every and t % stick_gain_every == 0:
-            rec_auth[:, t] = interface.stick_gain(state).to(dtype)
+            rec_stick_gain[:, t] = interface.stick_gain(state).to(dtype)
 
         # --- the operator's choice, perturbed, limited, applied ---
         idx = operator.choose(value, t, generator).long()  # [E], -1 = no input
@@ -294,7 +294,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         success=success, success_step=success_step, ee_path=rec_pos, belief=rec_belief,
         belief_at_switch=belief_at_switch, error=rec_error, limit_scaled=rec_limits > 0, limits=rec_limits,
         reachable=rec_reach.all(dim=-1), reach_goal=rec_reach, orientation_error=rec_ori,
-        stick_gain=rec_auth, mode_switches=mode_switches, q=rec_q, qd=rec_qd, stick=rec_stick, mode=rec_mode, phase1_step=phase1_step,
+        stick_gain=rec_stick_gain, mode_switches=mode_switches, q=rec_q, qd=rec_qd, stick=rec_stick, mode=rec_mode, phase1_step=phase1_step,
         initial_done_step=initial_done_step, separation=rec_sep, person_excess=rec_excess,
     )  # fmt: skip
 

@@ -242,9 +242,9 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
     t_succ = record.success_step[succ].to(torch.float64) * record.dt
     q25, q50, q75 = _quantiles(t_succ, (0.25, 0.5, 0.75))
 
-    auth = record.stick_gain.to(torch.float64)[visited]
-    auth = auth[torch.isfinite(auth)]
-    a05, a50 = _quantiles(auth, (0.05, 0.5))
+    gain = record.stick_gain.to(torch.float64)[visited]
+    gain = gain[torch.isfinite(gain)]
+    a05, a50 = _quantiles(gain, (0.05, 0.5))
     reach = record.reachable[visited]
 
     return {
@@ -266,7 +266,7 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
         "stick_gain": {
             "median": a50,
             "p05": a05,
-            "n": int(auth.numel()),
+            "n": int(gain.numel()),
             "threshold": tol.collapse_stick_gain,
             "collapsed": bool(a50 < tol.collapse_stick_gain),  # a nan median (never computed) is not a verdict
         },

@@ -47,7 +47,7 @@ def drive_summary(paths, label: str = "person (recorded drives)", confidence: fl
     paths = [Path(p) for p in paths]
     if not paths:
         raise DataError("recorded drives", "no drive files given")
-    succ, times, eff, auth, dt = [], [], [], [], NAN
+    succ, times, eff, gain, dt = [], [], [], [], NAN
     limits = {"position_limited": [], "speed_capped": [], "workspace_limited": []}
     any_limit, goal_names, hashes = [], None, set()
     for path in paths:
@@ -84,12 +84,12 @@ def drive_summary(paths, label: str = "person (recorded drives)", confidence: fl
             for r in rows:
                 s = math.hypot(*cols["stick"][r])
                 if s > 1e-6:
-                    auth.append(float(np.linalg.norm(cols["qd_decoder"][r])) / s)
+                    gain.append(float(np.linalg.norm(cols["qd_decoder"][r])) / s)
     all_steps = limits["position_limited"]
     n_steps = len(all_steps)
     step_any = [a or b or c for a, b, c in zip(*limits.values())]
     q25, q50, q75 = _quantiles(times, (0.25, 0.5, 0.75))
-    a05, a50 = _quantiles(auth, (0.05, 0.5))
+    a05, a50 = _quantiles(gain, (0.05, 0.5))
     success = _rate(succ, confidence)
     tolerances = json.loads(meta.get(META_TOLERANCES.encode(), b"{}"))
     return {
@@ -109,7 +109,7 @@ def drive_summary(paths, label: str = "person (recorded drives)", confidence: fl
             "episodes_with_any": _rate(any_limit, confidence),
         },
         "limit_scalings": {k: float(np.mean(v)) if v else NAN for k, v in limits.items()},
-        "stick_gain": {"median": a50, "p05": a05, "n": len(auth), "threshold": NAN, "collapsed": False},
+        "stick_gain": {"median": a50, "p05": a05, "n": len(gain), "threshold": NAN, "collapsed": False},
         "reachability": {"share": NAN, "n": 0},
         "mode_switches": {"mean": 0.0},
         "ultimate_bound": [],

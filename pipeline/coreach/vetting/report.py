@@ -462,7 +462,7 @@ def terminal_table(summaries: dict[str, dict]):
         worst = min(switched.items(), key=lambda kv: kv[1]["value"] if not math.isnan(kv[1]["value"]) else 2.0) \
             if switched else None  # fmt: skip
         a = s["stick_gain"]
-        auth = f"{fmt_num(a['median'])}" + (" [red]collapsed[/red]" if a["collapsed"] else "")
+        gain = f"{fmt_num(a['median'])}" + (" [red]collapsed[/red]" if a["collapsed"] else "")
         table.add_row(
             label,
             str(s["suite"]),
@@ -470,7 +470,7 @@ def terminal_table(summaries: dict[str, dict]):
             f"{fmt_rate(worst[1])} at {worst[0]}" if worst else "–",
             f"{fmt_num(s['time_to_success']['median'])} [{fmt_num(s['time_to_success']['q25'])}, "
             f"{fmt_num(s['time_to_success']['q75'])}]",
-            auth,
+            gain,
             fmt_num(s["limit_scaled"]["step_share"]),
         )
     return table
