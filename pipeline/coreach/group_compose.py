@@ -149,12 +149,12 @@ def lab_file_overrides(overrides: list[str], root: Path | None = None) -> tuple[
                               read_yaml_file(scene, "scenario"))  # fmt: skip
                 scene = scene_stem
             operator = data.pop("operator", "expert")
-            if not isinstance(operator, str):
-                raise ConfigError(f"suite {value}, option operator",
-                                  "on the command line a suite names its operator (conf/operator/); got a mapping")  # fmt: skip
             data.setdefault("name", stem)
+            # an operator option by name, or the file's own operator mapping in place of the group's choice
+            chosen = operator if isinstance(operator, str) else None
             _write_option(root, "suite", stem, ["base_suite@suite", {"override /scenario": scene},
-                                                {"override /operator": operator}, "_self_"], "suite", data)  # fmt: skip
+                                                {"override /operator": chosen}, "_self_"], "suite", data,
+                          None if chosen else {"operator": operator})  # fmt: skip
         else:
             _write_option(root, "scenario", stem, ["base_scenario", "_self_"], None, data)
         out.append(f"{key}={stem}")
@@ -162,7 +162,8 @@ def lab_file_overrides(overrides: list[str], root: Path | None = None) -> tuple[
     return out, ([f"file://{root}"] if used else [])
 
 
-def _write_option(root: Path, group: str, name: str, defaults: list, under: str | None, data: dict) -> None:
+def _write_option(root: Path, group: str, name: str, defaults: list, under: str | None, data: dict,
+                  beside: dict | None = None) -> None:
     """Write conf option `group/name.yaml` (temp file, then rename: a killed command leaves no half file)."""
     import os
     import tempfile
@@ -172,7 +173,8 @@ def _write_option(root: Path, group: str, name: str, defaults: list, under: str 
     folder = root / group
     folder.mkdir(parents=True, exist_ok=True)
     header = ("# @package _global_\n" if under else "") + "# written by coreach from a lab's own file\n"
-    body = yaml.safe_dump({"defaults": defaults, **({under: data} if under else data)}, sort_keys=False)
+    body = yaml.safe_dump({"defaults": defaults, **({under: data} if under else data), **(beside or {})},
+                          sort_keys=False)  # fmt: skip
     fd, tmp = tempfile.mkstemp(dir=folder, suffix=".tmp")
     with os.fdopen(fd, "w") as fh:
         fh.write(header + body)
