@@ -1,6 +1,6 @@
 """The safety filter every command passes through, in training, vetting and on the robot (read top to bottom).
 
-Order of one control step (SafetyFilter):
+Order of one control step (methods of SafetyLimits below, which the caller runs in this order):
 1. `non_finite`: any non-finite stick, q or clock value -> the caller zeroes the command and latches a fault
    (the runtime Session holds the latch; it is cleared only by an operator).
 2. `stale`: watchdog; a stick sample older than `watchdog_timeout_s`, or from the future -> zero.
@@ -141,7 +141,7 @@ class SafetyLimits:
         centres [..., S, 3] with Jacobians jac [..., S, 3, n], whose leading shape is a prefix of qd's (one
         state, many commands). Only pairs near enough to bind one of the commands are measured exactly.
         `known`: the state's distances measured before (coreach.control.separation.measure). Returns
-        (qd, intervened [...])."""
+        (qd, limited [...])."""
         xp = namespace(qd)
         lead = centres.shape[:-2]
         shape = qd.shape
@@ -155,7 +155,7 @@ class SafetyLimits:
     def keep_inside(self, q, qd, dt: float):
         """4a. Clip qd [..., n] per joint so q + qd * dt stays within the position limits.
 
-        Returns (clipped qd, intervened [...]). With no position limits configured, qd passes through.
+        Returns (clipped qd, limited [...]). With no position limits configured, qd passes through.
         """
         xp = namespace(q, qd)
         if not self.q_lower:
@@ -170,16 +170,16 @@ class SafetyLimits:
         """4b. Scale qd [..., n] down uniformly so every joint and the tool (jac_lin [..., 3, n]) obey the caps.
 
         Uniform scaling keeps the direction of motion, so a capped command still heads the same way; a term
-        that rewards progress cannot gain by asking for more speed. Returns (capped qd, intervened [...]).
+        that rewards progress cannot gain by asking for more speed. Returns (capped qd, limited [...]).
         """
         xp = namespace(qd, jac_lin)
         joint_ratio = xp.max(xp.abs(qd) / self._get("qd_max", xp, qd), axis=-1)  # [...]
         v = (jac_lin @ qd[..., None])[..., 0]  # [..., 3] tool velocity
         tcp = xp.sqrt(xp.sum(v * v, axis=-1))  # [...]
         ratio = xp.maximum(joint_ratio, tcp / self.tcp_speed_max)
-        intervened = ratio > 1.0
-        scale = xp.where(intervened, 1.0 / xp.maximum(ratio, 1e-12), 1.0)
-        return qd * scale[..., None], intervened
+        limited = ratio > 1.0
+        scale = xp.where(limited, 1.0 / xp.maximum(ratio, 1e-12), 1.0)
+        return qd * scale[..., None], limited
 
     def inside_workspace(self, pos, jac_lin, qd, horizon: float):
         """4c. Scale qd so pos + J_lin qd * horizon stays in the box; axes already outside may only move back.

@@ -144,7 +144,7 @@ def run_runtime_bench(bundle_folder: str | Path, steps: int = 5000, dt: float = 
             t_bare.append(tb)
             runs += info.context is not None
             belief_updates += info.belief_updated
-            limit_scaled += info.intervened
+            limit_scaled += info.limited
     s50, s99 = _percentiles(t_session)
     b50, b99 = _percentiles(t_bare)
     return {

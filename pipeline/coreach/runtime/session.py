@@ -69,7 +69,7 @@ class StepInfo:
         return self.fault is not None or self.stale or self.deadband
 
     @property
-    def intervened(self) -> bool:
+    def limited(self) -> bool:
         """Any filter changed what the stick and decoder asked for."""
         return (self.zeroed or self.stick_clipped or self.position_limited or self.speed_capped
                 or self.workspace_limited or self.separation_held)
