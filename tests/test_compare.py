@@ -24,7 +24,7 @@ RUNS = {
     "a": ("s1", "LinearDecoder", ["reconstruction"], 0, 0.30, 0.30),
     "b": ("s1", "StateVAE", ["reconstruction", "kl"], 1, 0.10, 0.12),
     "c": ("s1", "ConditionalVAE", ["reconstruction", "kl"], 2, 0.20, 0.25),
-    "d": ("s2", "ConditionalVAE", ["reconstruction", "kl", "goal_information"], 0, 0.05, 0.40),
+    "d": ("s2", "ConditionalVAE", ["reconstruction", "kl", "goal_entropy"], 0, 0.05, 0.40),
 }
 
 

@@ -54,7 +54,7 @@ def _drive(bundle: Path, goal: int, out: Path, rate_hz: float, steps: int) -> st
 def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
     from coreach.episodes import load_parquet
 
-    trained = run(["--json", "train", *SMALL, "+experiment=cvae_entropy"], workdir)
+    trained = run(["--json", "train", *SMALL, "+experiment=cvae_goal_entropy"], workdir)
     run_id = trained["runs"][0]["run_id"]
     released = run(["--json", "release", f"run={run_id}", *QUICK_RELEASE], workdir)
     assert released["released"], released
@@ -70,7 +70,7 @@ def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
                   "report_dir=rep"], workdir)  # fmt: skip
     person = vetted["summaries"]["person (recorded drives)"]
     assert person["n_episodes"] == len(paths) and person["success"]["n"] == len(paths)
-    assert set(vetted["summaries"]) == {"cvae+entropy", "person (recorded drives)"}
+    assert set(vetted["summaries"]) == {"cvae+goal_entropy", "person (recorded drives)"}
     html = (workdir / "rep" / "report.html").read_text()
     assert "person (recorded drives)" in html and "recorded drives" in html
 
@@ -90,12 +90,12 @@ def test_drives_beside_simulated_operators_and_one_finetuning_round(workdir):
         np.testing.assert_array_equal(ep.q, recorded[ep.goal].q)
         assert not np.allclose(ep.qd, recorded[ep.goal].qd)
     tuned = run(["--json", "train", "dataset=parquet_file", f"dataset.path={workdir / 'finetune.parquet'}",
-                 *[o for o in SMALL if not o.startswith("dataset.")], "+experiment=cvae_entropy"], workdir)  # fmt: skip
+                 *[o for o in SMALL if not o.startswith("dataset.")], "+experiment=cvae_goal_entropy"], workdir)  # fmt: skip
     tuned_id = tuned["runs"][0]["run_id"]
     assert tuned_id != run_id
     revetted = run(["--json", "vet", f"candidates=[{tuned_id}]", "suite=nominal", "suite.episodes=1",
                     f"drives=[{drives}]", "report_dir=rep2"], workdir)  # fmt: skip
-    assert revetted["summaries"]["cvae+entropy"]["success"]["n"] == 1
+    assert revetted["summaries"]["cvae+goal_entropy"]["success"]["n"] == 1
 
 
 @pytest.mark.parametrize("command", [["vet", "candidates=[direct]", "suite=nominal", "suite.episodes=1"],

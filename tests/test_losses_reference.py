@@ -18,10 +18,10 @@ from coreach.decoder.policy import DecoderPolicy
 from coreach.protocols import Posterior
 from coreach.safety import SafetyLimits
 from coreach.training.terms import TermBatch
-from coreach_plugins.loss.goal_information import (
-    GoalReachability,
+from coreach_plugins.loss.goal_entropy import (
+    GoalEntropy,
     goal_progress,
-    stick_goal_information,
+    stick_goal_mutual_information,
     stratified_sticks,
 )
 from coreach_plugins.loss.kl import KLDivergence, gaussian_entropy, gaussian_kl
@@ -113,14 +113,14 @@ def test_information_zero_when_every_point_agrees():
     # Mutual information of independent variables is 0 (definition): p(g|k) the same for all k.
     g = torch.Generator().manual_seed(3)
     progress = 0.01 * torch.randn(5, 1, 6, generator=g, dtype=torch.float64).expand(5, 16, 6)
-    torch.testing.assert_close(stick_goal_information(progress, 200.0), torch.zeros(5, dtype=torch.float64))
+    torch.testing.assert_close(stick_goal_mutual_information(progress, 200.0), torch.zeros(5, dtype=torch.float64))
 
 
 @pytest.mark.parametrize("n_goals", [2, 3, 5])
 def test_information_log_g_when_each_point_picks_its_own_goal(n_goals):
     # K = G points, each (numerically) one-hot on a different goal: I = H(uniform) - 0 = log G.
     progress = torch.eye(n_goals, dtype=torch.float64)[None]  # [1, G, G]: point k gains 1 m toward goal k
-    info = stick_goal_information(progress, 200.0)
+    info = stick_goal_mutual_information(progress, 200.0)
     torch.testing.assert_close(info, torch.tensor([math.log(n_goals)], dtype=torch.float64))
 
 
@@ -131,7 +131,7 @@ def test_information_matches_scipy_entropy():
     sharpness = 150.0
     p = scipy.special.softmax(sharpness * progress, axis=-1)
     ref = scipy.stats.entropy(p.mean(1), axis=-1) - scipy.stats.entropy(p, axis=-1).mean(-1)
-    got = stick_goal_information(torch.from_numpy(progress), sharpness).numpy()
+    got = stick_goal_mutual_information(torch.from_numpy(progress), sharpness).numpy()
     np.testing.assert_allclose(got, ref, rtol=1e-9, atol=1e-12)
     assert np.all(got >= -1e-12) and np.all(got <= math.log(5) + 1e-12)
 
@@ -162,7 +162,7 @@ def test_stratified_sticks_cover_the_box(samples, dim, m):
 
 
 def test_reachability_reproducible_and_leaves_global_rng_alone():
-    term = GoalReachability()
+    term = GoalEntropy()
     batch = make_batch()
     torch.manual_seed(11)
     a = term(batch)
@@ -178,12 +178,12 @@ def test_reachability_reproducible_and_leaves_global_rng_alone():
     assert torch.equal(after_term, untouched)
 
 
-# --- the reachability term -----------------------------------------------------------------------
+# --- the goal entropy term -----------------------------------------------------------------------
 
 
 def test_reachability_gradient_reaches_decoder():
     batch = make_batch()
-    value = GoalReachability()(batch)
+    value = GoalEntropy()(batch)
     assert value.dim() == 0 and torch.isfinite(value)
     assert -math.log(N_GOALS) - 1e-6 <= value.item() <= 1e-6  # -I with 0 <= I <= log G
     value.backward()
@@ -195,7 +195,7 @@ def test_reachability_gradient_reaches_decoder():
 def test_reachability_cannot_gain_from_speed():
     # Uniform down-scaling (SafetyLimits.cap) keeps only the direction of a command past the caps, so
     # making the decoder 10x faster again must not change the term once outputs are capped.
-    term = GoalReachability()
+    term = GoalEntropy()
     fast, faster = make_batch(scale_output=1e3), make_batch(scale_output=1e4)
     torch.testing.assert_close(term(fast), term(faster))
     slow = make_batch(scale_output=1e-3)  # far below the caps: progress scales with speed
@@ -205,7 +205,7 @@ def test_reachability_cannot_gain_from_speed():
 # --- the context subset and the cost-saving paths ------------------------------------------------
 
 
-def _reachability_decoding_every_copy(term: GoalReachability, batch: TermBatch) -> Tensor:
+def _goal_entropy_decoding_every_copy(term: GoalEntropy, batch: TermBatch) -> Tensor:
     """The term as first written (before contexts existed, copies made explicit): what the current code
     must reproduce whenever it judges the whole batch."""
     raw = batch.raw_context
@@ -216,7 +216,7 @@ def _reachability_decoding_every_copy(term: GoalReachability, batch: TermBatch) 
     qd, _ = batch.limits.cap(qd, batch.jac_lin[:, None].expand(B, K, 3, n).contiguous())
     dx = torch.einsum("bij,bkj->bki", batch.jac_lin, qd) * term.horizon
     progress = goal_progress(batch.ee_pos, dx, batch.goal_targets[:, :, 0, :])
-    return -stick_goal_information(progress, term.sharpness).mean()
+    return -stick_goal_mutual_information(progress, term.sharpness).mean()
 
 
 @pytest.mark.parametrize("contexts", [None, 40, 500])
@@ -224,9 +224,9 @@ def test_reachability_on_every_context_matches_the_first_computation(contexts):
     # contexts >= batch or null: nothing is left out, so value and gradient must be the old ones (1e-6)
     batch = make_batch(batch=40)
     params = list(batch.policy.decoder.parameters())
-    new = GoalReachability(contexts=contexts)(batch)
+    new = GoalEntropy(contexts=contexts)(batch)
     new_grad = torch.autograd.grad(new, params, allow_unused=True)
-    old = _reachability_decoding_every_copy(GoalReachability(), batch)
+    old = _goal_entropy_decoding_every_copy(GoalEntropy(), batch)
     old_grad = torch.autograd.grad(old, params, allow_unused=True)
     torch.testing.assert_close(new, old, rtol=0, atol=1e-6)
     for a, b in zip(new_grad, old_grad):
@@ -236,7 +236,7 @@ def test_reachability_on_every_context_matches_the_first_computation(contexts):
 
 
 def test_context_subset_is_a_mean_over_distinct_rows():
-    term = GoalReachability(contexts=8)
+    term = GoalEntropy(contexts=8)
     batch = make_batch(batch=40)
     rows = term.rows(batch)
     assert rows is not None and rows.shape == (8,) and len(set(rows.tolist())) == 8
@@ -255,7 +255,7 @@ def test_context_subset_is_a_mean_over_distinct_rows():
 def test_context_subset_is_uniform_over_steps():
     # Reference: scipy.stats.chisquare against equal counts; over 400 steps each of 40 rows is drawn
     # 400 * 8 / 40 = 80 times on average when the draw is uniform.
-    term = GoalReachability(contexts=8)
+    term = GoalEntropy(contexts=8)
     batch = make_batch(batch=40)
     counts = np.zeros(40)
     for step in range(400):
@@ -266,7 +266,7 @@ def test_context_subset_is_uniform_over_steps():
 
 
 def test_context_subset_reproducible_and_leaves_global_rng_alone():
-    term = GoalReachability(contexts=8)
+    term = GoalEntropy(contexts=8)
     batch = make_batch(batch=40)
     torch.manual_seed(11)
     a, rows_a = term(batch), term.rows(batch)
@@ -283,26 +283,26 @@ def test_context_subset_reproducible_and_leaves_global_rng_alone():
 
 
 def test_validation_judges_every_context():
-    term = GoalReachability(contexts=8)
+    term = GoalEntropy(contexts=8)
     batch = make_batch(batch=40)
     batch.policy.eval()
     assert term.rows(batch) is None
-    torch.testing.assert_close(term(batch), _reachability_decoding_every_copy(term, batch), rtol=0, atol=1e-6)
+    torch.testing.assert_close(term(batch), _goal_entropy_decoding_every_copy(term, batch), rtol=0, atol=1e-6)
 
 
 @pytest.mark.parametrize("bad", [0, -3, 2.5, True, "64"])
 def test_bad_contexts_raise_config_error(bad):
     with pytest.raises(ConfigError) as err:
-        GoalReachability(contexts=bad)
-    assert err.value.where == "loss.goal_information.contexts"
+        GoalEntropy(contexts=bad)
+    assert err.value.where == "loss.goal_entropy.contexts"
 
 
 def test_bad_options_raise_config_error():
     with pytest.raises(ConfigError) as err:
-        GoalReachability(samples=0)
-    assert err.value.where == "loss.goal_information.samples"
+        GoalEntropy(samples=0)
+    assert err.value.where == "loss.goal_entropy.samples"
     with pytest.raises(ConfigError):
-        GoalReachability(sharpness=-1.0)
+        GoalEntropy(sharpness=-1.0)
     with pytest.raises(ConfigError) as err:
         KLDivergence(warmup_epochs=-2)
     assert err.value.where == "loss.kl.warmup_epochs"

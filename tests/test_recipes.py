@@ -152,7 +152,7 @@ def test_recipe_commands_go_through_the_cli_registry(monkeypatch):
     "args, needle",
     [
         (["seeds=[]"], "coreach: error: option seeds: expected a non-empty list of training seeds"),
-        (["select=[cvae,nope]"], "known recipes: cvae, cvae+entropy"),
+        (["select=[cvae,nope]"], "known recipes: cvae, cvae+goal_entropy"),
         (["recipes.cvae.command=fly"], "expected one of train, aggregate"),
         (['recipes.cvae.overrides=["model=nope"]'], "recipe cvae (seed 0)"),
         (["vet_suites=[no-such-suite]"], "option vet_suites"),

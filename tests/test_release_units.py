@@ -376,12 +376,12 @@ def test_demo_ranks_decoders_by_their_own_vetting_even_when_labels_differ():
         return {"success": {"lo": lo, "value": value}}
 
     demo = {
-        "runs": [{"run_id": "a" * 32, "label": "cvae"}, {"run_id": "b" * 32, "label": "cvae+entropy+agg"},
+        "runs": [{"run_id": "a" * 32, "label": "cvae"}, {"run_id": "b" * 32, "label": "cvae+goal_entropy+agg"},
                  {"run_id": "c" * 32, "label": "unvetted"}],
-        "vetting": {"summaries": {"cvae": summary(0.3, 0.4), "cvae+entropy+agg/agg3": summary(0.96, 1.0)},
-                    "sources": {"cvae": "a" * 32, "cvae+entropy+agg/agg3": "b" * 32}},
+        "vetting": {"summaries": {"cvae": summary(0.3, 0.4), "cvae+goal_entropy+agg/agg3": summary(0.96, 1.0)},
+                    "sources": {"cvae": "a" * 32, "cvae+goal_entropy+agg/agg3": "b" * 32}},
     }
-    assert [r["label"] for r in _ranked(demo)] == ["cvae+entropy+agg", "cvae", "unvetted"]
+    assert [r["label"] for r in _ranked(demo)] == ["cvae+goal_entropy+agg", "cvae", "unvetted"]
 
 
 def test_release_takes_the_urdf_from_the_robot_protocol(tmp_path):

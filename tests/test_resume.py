@@ -15,9 +15,9 @@ from conftest import cli_env
 from mlflow.tracking import MlflowClient
 
 COREACH = str(Path(sys.executable).parent / "coreach")
-# cVAE with the entropy term: the stochastic parts (latent noise, stick samples) must also resume exactly
+# cVAE with the goal entropy term: the stochastic parts (latent noise, stick samples) must also resume exactly
 ARGS = ["dataset.episodes=60", "trainer.max_epochs=6", "trainer.patience=100", "data.batch_size=64",
-        "+experiment=cvae_entropy", "model.hidden=[64,64]"]
+        "+experiment=cvae_goal_entropy", "model.hidden=[64,64]"]
 
 
 def _train(workdir, *extra):

@@ -147,7 +147,7 @@ def test_a_third_party_arm_from_scene_check_to_vetting(workdir):
 
     trained = subprocess.run([COREACH, "--json", "train", *robot, "dataset.episodes=40", "dataset.max_steps=300",
                               f"dataset.scenario={scene}",
-                              "dataset.min_arrival=0.85", "+experiment=cvae_entropy", *FAST], cwd=workdir, capture_output=True, text=True,
+                              "dataset.min_arrival=0.85", "+experiment=cvae_goal_entropy", *FAST], cwd=workdir, capture_output=True, text=True,
                              env=cli_env(), timeout=900)  # fmt: skip
     assert trained.returncode == 0, trained.stderr
     run_id = json.loads(trained.stdout)["runs"][0]["run_id"]
@@ -160,7 +160,7 @@ def test_a_third_party_arm_from_scene_check_to_vetting(workdir):
                              f"suite={_bare_suite(workdir, scene)}", "suite.episodes=4", "report_dir=rep"], cwd=workdir, capture_output=True, text=True,
                             env=cli_env(), timeout=900)  # fmt: skip
     assert vetted.returncode == 0, vetted.stderr
-    summary = json.loads(vetted.stdout)["summaries"]["cvae+entropy"]
+    summary = json.loads(vetted.stdout)["summaries"]["cvae+goal_entropy"]
     assert summary["success"]["n"] == 4  # whatever a 2-epoch decoder achieves: the loop ran on this arm
     assert 0.0 <= summary["success"]["lo"] <= summary["success"]["value"] <= summary["success"]["hi"] <= 1.0
     assert (workdir / "rep" / "report.html").is_file()

@@ -14,9 +14,9 @@ TINY = ["dataset.episodes=40", "data.batch_size=128", "bench.epochs=1", "bench.r
 
 def test_plain_side_leaves_out_only_the_regulariser(workdir):
     cfg = compose_config("bench_train", TINY)
-    plain = _without(cfg, "goal_information")
+    plain = _without(cfg, "goal_entropy")
     assert list(plain.loss) == ["reconstruction", "kl"]
-    assert plain.model == cfg.model and list(cfg.loss) == ["reconstruction", "kl", "goal_information"]
+    assert plain.model == cfg.model and list(cfg.loss) == ["reconstruction", "kl", "goal_entropy"]
 
 
 @pytest.mark.parametrize("override,where", [("bench.regulariser=nope", "bench.regulariser"),
@@ -40,7 +40,7 @@ def test_bench_reports_both_comparisons(workdir, restore_threads):
     # one thread: two threads on cores another job is using spend most of a step waiting for each other
     out = run(compose_config("bench_train", [*TINY, "bench.threads=1"]))
     assert out["torch_threads"] == 1
-    assert out["regulariser"] == "goal_information"
+    assert out["regulariser"] == "goal_entropy"
     for key in ("plain_bare_s", "regularised_bare_s", "plain_lightning_s", "regularised_lightning_s"):
         assert out[key] > 0
     bare = out["regularised_bare_s"] / out["plain_bare_s"]

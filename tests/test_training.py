@@ -61,7 +61,7 @@ def test_same_config_and_seed_give_identical_results(small_cfg):
 
 
 def test_run_records_config_losses_dataset_and_decoder(small_cfg, workdir):
-    summary = train(small_cfg("+experiment=cvae_entropy"))
+    summary = train(small_cfg("+experiment=cvae_goal_entropy"))
     client = MlflowClient(resolve_uri(None))
     run = client.get_run(summary["run_id"])
     params = run.data.params
@@ -69,7 +69,7 @@ def test_run_records_config_losses_dataset_and_decoder(small_cfg, workdir):
     assert len(params["dataset.fingerprint"]) == 64
     assert run.data.tags["coreach.dataset_sha256"] == params["dataset.fingerprint"]
     # every loss term logged separately, once per epoch, for both splits
-    for term in ("reconstruction", "kl", "goal_information", "loss"):
+    for term in ("reconstruction", "kl", "goal_entropy", "loss"):
         for stage in ("train", "val"):
             history = client.get_metric_history(run.info.run_id, f"{stage}/{term}")
             assert [m.step for m in history] == list(range(summary["epochs"]))

@@ -21,7 +21,7 @@ def run(args, cwd):
 
 @pytest.mark.slow
 def test_vet_decoder_and_baselines(workdir):
-    trained = run(["--json", "train", *SMALL, "+experiment=cvae_entropy"], workdir)
+    trained = run(["--json", "train", *SMALL, "+experiment=cvae_goal_entropy"], workdir)
     assert trained.returncode == 0, trained.stderr
     run_id = json.loads(trained.stdout)["runs"][0]["run_id"]
 
@@ -29,8 +29,8 @@ def test_vet_decoder_and_baselines(workdir):
                "report_dir=rep"], workdir)  # fmt: skip
     assert res.returncode == 0, res.stderr
     out = json.loads(res.stdout)
-    assert set(out["summaries"]) == {"cvae+entropy", "direct"}
-    s = out["summaries"]["cvae+entropy"]
+    assert set(out["summaries"]) == {"cvae+goal_entropy", "direct"}
+    s = out["summaries"]["cvae+goal_entropy"]
     assert s["success"]["n"] == 12  # 4 switch cells x 3 episodes
     assert 0.0 <= s["success"]["lo"] <= s["success"]["value"] <= s["success"]["hi"] <= 1.0
     assert set(s["recovery"]) == {"none", "0.2", "0.5", "0.8"}
@@ -41,7 +41,7 @@ def test_vet_decoder_and_baselines(workdir):
     assert "not a medical device" in html
 
     client = MlflowClient(f"sqlite:///{workdir / 'mlflow.db'}")
-    vet_run = client.get_run(out["vet_runs"]["cvae+entropy"])
+    vet_run = client.get_run(out["vet_runs"]["cvae+goal_entropy"])
     assert vet_run.data.tags["coreach.source_run"] == run_id
     assert vet_run.data.tags["coreach.stage"] == "vet"
     assert "success/value" in vet_run.data.metrics

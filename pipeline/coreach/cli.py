@@ -18,10 +18,10 @@ commands:
   demo      generate demonstrations, train the decoder families briefly, compare them
   train     train one decoder (e.g. coreach train model=vae trainer.max_epochs=5)
   aggregate train, then retrain on closed-loop states labelled by the demonstrator (DAgger rounds)
-            (coreach aggregate +experiment=cvae_entropy 'aggregate.rollout_seeds=[1,2,3]')
+            (coreach aggregate +experiment=cvae_goal_entropy 'aggregate.rollout_seeds=[1,2,3]')
   vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
   recipes   train each recipe over several seeds, vet them with the baselines, one table
-            (coreach recipes 'select=[cvae,cvae+entropy]' 'seeds=[0,1,2]' 'train_overrides=["trainer.max_epochs=5"]')
+            (coreach recipes 'select=[cvae,cvae+goal_entropy]' 'seeds=[0,1,2]' 'train_overrides=["trainer.max_epochs=5"]')
   check-reach  can the arm, where the robot config places it, reach every goal of a scene (before data is made)
             (coreach check-reach robot.urdf=arm.urdf robot.tool_link=tcp scene=my_scene.yaml)
   import-recordings  ROS 2 bags (sqlite3, MCAP) and CSV files -> one Parquet file of demonstrations
@@ -45,7 +45,7 @@ commands:
   try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
             (coreach try-bundle releases/<name>/v<version>|<name>@<alias> [--port 8765] [--record-dir drives])
   bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
-                cVAE with and without goal_information (goal: <= 2x the time); bench.threads=1 on shared cores
+                cVAE with and without goal_entropy (goal: <= 2x the time); bench.threads=1 on shared cores
   bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)
   bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
                 (coreach bench runtime bundle=<folder>|<name>@<alias>; goals: p99 <= 100 us, <= 2x the bare call)

@@ -1,7 +1,7 @@
 """`coreach bench train`: training cost measured side by side in one run.
 
 Two comparisons on the same samples, batch size, optimiser and epochs:
-- Lightning against a bare PyTorch loop, both training the configured system (entropy-regularised cVAE by
+- Lightning against a bare PyTorch loop, both training the configured system (cVAE with the goal entropy term by
   default): what the Lightning loop around the system costs.
 - the configured system against the same system without `bench.regulariser` (plain cVAE by default), both
   in the bare loop and both in Lightning: what the regulariser costs.

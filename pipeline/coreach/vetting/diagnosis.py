@@ -67,7 +67,7 @@ STAGES = {
 }
 
 # What each cause usually points to: data (what the demonstrations cover), model (capacity, epochs, stick
-# scaling), loss (KL and entropy-term weights), or the scene and limits. A reading aid, not a verdict.
+# scaling), loss (KL and goal entropy term weights), or the scene and limits. A reading aid, not a verdict.
 _FIXES = {
     "limited": ("data", "the arm ends pressed against a joint limit: the decoder drove it out of the region the "
                 "demonstrations cover and offers no way back (start spread, `coreach aggregate`); check the "
@@ -80,7 +80,7 @@ _FIXES = {
                         "furniture: usually near the person's reduced-speed zone; the way to the goal passes "
                         "close to the person (check the layout), or demonstrations that keep further from them"),
     "no_way": ("data / loss", "where these episodes end, every stick input leads away from the goal: the arm "
-               "left the states the demonstrations cover (start spread, `coreach aggregate`), or the entropy "
+               "left the states the demonstrations cover (start spread, `coreach aggregate`), or the goal entropy "
                "term's weight is too low to keep the goal reachable"),
     "stuck": ("model / loss", "the arm stops although a stick input toward the goal exists: the decoded "
               "motion is too small near here (stick_gain, KL weight) or the operator's best choice is to wait"),

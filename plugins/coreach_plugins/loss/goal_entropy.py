@@ -1,5 +1,7 @@
-"""`goal_information` loss term: make the stick box reach every goal by maximising the information a stick
-position carries about which goal the decoded motion heads for."""
+"""The goal entropy term (`loss=goal_entropy`): make the stick box reach every goal by maximising the
+information a stick position carries about which goal the decoded motion heads for: the entropy of the goals
+over the whole stick box (every goal reached from somewhere) minus their mean entropy at one stick point
+(each point heads for one goal)."""
 
 from __future__ import annotations
 
@@ -60,7 +62,7 @@ def goal_progress(ee_pos: Tensor, dx: Tensor, approach: Tensor) -> Tensor:
     return now[:, None, :] - after
 
 
-def stick_goal_information(progress: Tensor, sharpness: float) -> Tensor:
+def stick_goal_mutual_information(progress: Tensor, sharpness: float) -> Tensor:
     """Mutual information (nats) between a uniformly drawn stick point k and the goal g, with
     p(g|k) = softmax_g(sharpness * progress[b, k, g]): I = H(mean_k p(.|k)) - mean_k H(p(.|k)).
 
@@ -74,7 +76,7 @@ def stick_goal_information(progress: Tensor, sharpness: float) -> Tensor:
     return marginal_entropy - point_entropy
 
 
-class GoalReachability:
+class GoalEntropy:
     """Minus the stick-goal mutual information, averaged over the batch.
 
     For every context, `samples` stratified stick points are decoded through the policy, passed through
@@ -93,7 +95,7 @@ class GoalReachability:
     stream the rest of training draws from.
     """
 
-    name: str = "goal_information"
+    name: str = "goal_entropy"
 
     def __init__(
         self,
@@ -108,20 +110,20 @@ class GoalReachability:
             ok_type = isinstance(value, int) if integer else isinstance(value, (int, float))
             if isinstance(value, bool) or not ok_type or not math.isfinite(value) or value <= 0:
                 kind = "an integer" if integer else "a finite number"
-                raise ConfigError(f"loss.goal_information.{where}", f"expected {kind} > 0, got {value!r}")
+                raise ConfigError(f"loss.goal_entropy.{where}", f"expected {kind} > 0, got {value!r}")
             return value
 
         if not (isinstance(weight, (int, float)) and math.isfinite(weight) and weight >= 0):
-            raise ConfigError("loss.goal_information.weight", f"expected a finite number >= 0, got {weight!r}")
+            raise ConfigError("loss.goal_entropy.weight", f"expected a finite number >= 0, got {weight!r}")
         if not isinstance(seed_offset, int) or isinstance(seed_offset, bool):
-            raise ConfigError("loss.goal_information.seed_offset", f"expected an integer, got {seed_offset!r}")
+            raise ConfigError("loss.goal_entropy.seed_offset", f"expected an integer, got {seed_offset!r}")
         self.weight = float(weight)
         self.samples = positive("samples", samples, integer=True)
         self.sharpness = float(positive("sharpness", sharpness))  # 1/m
         self.horizon = float(positive("horizon", horizon))  # s
         self.seed_offset = seed_offset
         if contexts is not None and (not isinstance(contexts, int) or isinstance(contexts, bool) or contexts <= 0):
-            raise ConfigError("loss.goal_information.contexts", f"expected an integer > 0 or null, got {contexts!r}")
+            raise ConfigError("loss.goal_entropy.contexts", f"expected an integer > 0 or null, got {contexts!r}")
         self.contexts = contexts
 
     def _generator(self, device: torch.device, global_step: int, stream: int = 0) -> torch.Generator:
@@ -161,17 +163,17 @@ class GoalReachability:
         qd, _ = batch.limits.cap(qd, jac[:, None])  # [b, 1, 3, n] serves all K points
         dx = torch.einsum("bij,bkj->bki", jac, qd) * self.horizon  # [b, K, 3]
         progress = goal_progress(ee_pos, dx, approach)  # [b, K, G]
-        return stick_goal_information(progress, self.sharpness)
+        return stick_goal_mutual_information(progress, self.sharpness)
 
     def __call__(self, batch: TermBatch) -> Tensor:
         return -self.information(batch, self.rows(batch)).mean()
 
 
 @dataclass
-class GoalReachabilityConfig:
-    """User-settable options of the `goal_information` term."""
+class GoalEntropyConfig:
+    """User-settable options of the `goal_entropy` term."""
 
-    _target_: str = "coreach_plugins.loss.goal_information.GoalReachability"
+    _target_: str = "coreach_plugins.loss.goal_entropy.GoalEntropy"
     weight: float = number(0.1, 0.0)
     samples: int = integer(16, 2, " (sticks decoded per context)")
     sharpness: float = number(200.0, 0.0, open_range=True)
