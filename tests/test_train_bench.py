@@ -48,4 +48,4 @@ def test_bench_reports_both_comparisons(workdir, restore_threads):
     assert out["ratio_regularised_over_plain_lightning"] == pytest.approx(
         out["regularised_lightning_s"] / out["plain_lightning_s"]
     )
-    assert out["ratio_lightning_over_bare"] > 0 and out["goal_regularised_over_plain"] == 2.0
+    assert out["ratio_lightning_over_bare"] > 0 and out["target_regularised_over_plain"] == 2.0

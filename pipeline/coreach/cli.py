@@ -44,14 +44,14 @@ commands:
             (coreach fetch NAME@fielded --server URL --cache DIR; torch-free: coreach-robot fetch|status)
   try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
             (coreach try-bundle releases/<name>/v<version>|<name>@<alias> [--port 8765] [--record-dir drives])
-  bench train   training throughput: Lightning against a bare PyTorch loop (goal: ratio >= 0.9), and the
-                cVAE with and without goal_entropy (goal: <= 2x the time); bench.threads=1 on shared cores
-  bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (goal >= 0.8)
+  bench train   training throughput: Lightning against a bare PyTorch loop (target: ratio >= 0.9), and the
+                cVAE with and without goal_entropy (target: <= 2x the time); bench.threads=1 on shared cores
+  bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (target >= 0.8)
   bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
-                (coreach bench runtime bundle=<folder>|<name>@<alias>; goals: p99 <= 100 us, <= 2x the bare call)
+                (coreach bench runtime bundle=<folder>|<name>@<alias>; target: p99 <= 300 us)
   bench vet     closed-loop throughput: batched loop against a per-episode loop and a bare decoder pass
   bench fuzz    the runtime session driven with wild sticks from states near every scene body, each step
-                checked with coal on the URDF's collision geometry (goal: 0 penetrations, 0 keep-out entries)
+                checked with coal on the URDF's collision geometry (target: 0 penetrations, 0 keep-out entries)
                 (coreach bench fuzz [bundle=<folder>|<name>@<alias>] [steps=1000000] [seed=0]; needs pinocchio)
 
 options:

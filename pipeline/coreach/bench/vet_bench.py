@@ -6,7 +6,7 @@ The per-episode reference runs a few episodes only and is scaled to a per-step r
 the episode count). The bare pass calls the decoder once per step on all E x K (episode, candidate) inputs,
 as the loop does, so the ratio shows what kinematics, belief, limits and bookkeeping add around it.
 The batched loop also runs without the scene's bodies (no separation step, no separation records), so the
-world's cost is a ratio measured side by side (goal: at most 1.25).
+world's cost is a ratio measured side by side (target: at most 1.25).
 """
 
 from __future__ import annotations
@@ -94,7 +94,7 @@ def run(cfg: DictConfig) -> dict:
     t_each = time.perf_counter() - t0
 
     loop_rate, each_rate, bare_rate = E * T / t_loop, e_small * T / t_each, E * T / t_bare
-    goals = OmegaConf.to_container(cfg.goals)
+    targets = OmegaConf.to_container(cfg.targets)
     speedup, share = loop_rate / each_rate, loop_rate / bare_rate
     return {
         "decoder": source,
@@ -111,13 +111,13 @@ def run(cfg: DictConfig) -> dict:
         "bare_seconds": t_bare,
         "bare_episode_steps_per_s": bare_rate,
         "speedup_over_per_episode": speedup,
-        "goal_speedup_over_per_episode": goals["speedup_over_per_episode"],
-        "meets_speedup_goal": speedup >= goals["speedup_over_per_episode"],
+        "target_speedup_over_per_episode": targets["speedup_over_per_episode"],
+        "meets_speedup_target": speedup >= targets["speedup_over_per_episode"],
         "share_of_bare": share,
-        "goal_share_of_bare": goals["share_of_bare"],
-        "meets_share_goal": share >= goals["share_of_bare"],
+        "target_share_of_bare": targets["share_of_bare"],
+        "meets_share_target": share >= targets["share_of_bare"],
         "loop_seconds_without_bodies": t_bare_world,
         "world_cost": t_loop / t_bare_world,
-        "goal_world_cost": goals["world_cost"],
-        "meets_world_cost_goal": t_loop / t_bare_world <= goals["world_cost"],
+        "target_world_cost": targets["world_cost"],
+        "meets_world_cost_target": t_loop / t_bare_world <= targets["world_cost"],
     }
