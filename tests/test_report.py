@@ -24,7 +24,10 @@ from coreach.scenario import load_scenario
 from coreach.vetting.metrics import summarise
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.separation_metrics import FIGURES
+from coreach.vetting.diagnosis import CAUSES
+from coreach.vetting.diagnosis_report import cause_table
 from coreach.vetting.report import (
+    LABELS,
     TERMINAL_SEPARATION,
     plot_action_maps,
     separation_tables,
@@ -137,6 +140,19 @@ def test_terminal_table(summaries):
     out = console.export_text()
     assert "cvae" in out and "direct" in out and "n=30" in out
     assert not math.isnan(summaries["cvae"]["success"]["value"])
+    # the terminal names the figures as the HTML report does, never by the summary's keys
+    assert LABELS["limit_share"] in out and LABELS["stick_gain_median"] in out
+    assert "limit_scaled" not in out and "stick_gain" not in out
+
+
+def test_cause_table_uses_the_reports_words():
+    """The terminal's cause table names the causes with CAUSES' sentences, as the HTML section does."""
+    diag = {"failures": 2, "causes": {c: 0 for c in CAUSES}, "cause_share": {c: 0.0 for c in CAUSES}}
+    diag["causes"]["no_way"], diag["cause_share"]["no_way"] = 2, 1.0
+    console = Console(record=True, width=80)
+    console.print(cause_table({"cvae": {"n_episodes": 10, "diagnosis": diag}}))
+    out = console.export_text()
+    assert CAUSES["no_way"] in out and "no_way" not in out and "1.00" in out
 
 
 def test_action_map_from_a_visited_state_of_a_record(state, tmp_path):

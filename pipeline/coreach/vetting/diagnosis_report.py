@@ -167,18 +167,20 @@ def diagnosis_html(summaries: dict[str, dict]) -> str:
 
 
 def cause_table(summaries: dict[str, dict]):
-    """Rich table: per interface, failures and the share of each cause."""
+    """Rich table: failures and the share of each cause, one column per interface.
+
+    Causes are rows named with the HTML section's words (CAUSES), not the internal keys; as rows, the
+    sentences stay readable in a terminal as narrow as 80 columns."""
     from rich.table import Table
 
     diags = {k: s["diagnosis"] for k, s in summaries.items() if s.get("diagnosis")}
     table = Table(title="why episodes failed (share of failed episodes)")
-    table.add_column("interface")
-    table.add_column("failed")
-    for c in CAUSES:
-        table.add_column(c, justify="right")
-    for k, d in diags.items():
-        table.add_row(k, f"{d['failures']}/{summaries[k]['n_episodes']}",
-                      *[f"{d['cause_share'][c]:.2f}" if d["causes"][c] else "-" for c in CAUSES])  # fmt: skip
+    table.add_column("cause")
+    for k in diags:
+        table.add_column(k, justify="right")
+    table.add_row("failed", *[f"{d['failures']}/{summaries[k]['n_episodes']}" for k, d in diags.items()])
+    for c, words in CAUSES.items():
+        table.add_row(words, *[f"{d['cause_share'][c]:.2f}" if d["causes"][c] else "-" for d in diags.values()])
     return table
 
 

@@ -265,21 +265,38 @@ def fmt_rate(r: dict) -> str:
     return f"{r['value']:.2f} [{r['lo']:.2f}, {r['hi']:.2f}] (n={r['n']})"
 
 
+# Summary figure -> the words the HTML report and the terminal table both show for it (one wording, so a reader
+# of either meets the same names; a summary's own keys stay internal).
+LABELS = {
+    "suite": "suite",
+    "success": "success",
+    "worst_recovery": "worst recovery after a goal switch",
+    "time_to_success": "time to success, s: median [IQR]",
+    "path_efficiency": "path efficiency (mean, successes)",
+    "belief_at_switch": "belief on original goal at switch (mean)",
+    "limit_share": "limit scalings: share of steps",
+    "limit_episodes": "episodes with any limit scaling",
+    "stick_gain": "stick gain, rad/s per stick: median / 5th pct",
+    "stick_gain_median": "stick gain, rad/s per stick: median",
+    "reachability": "states where every goal was reachable",
+    "mode_switches": "mode switches per episode (mean)",
+}
+
+
 def _rows(s: dict) -> list[tuple[str, str]]:
     t, a, eff, b = s["time_to_success"], s["stick_gain"], s["path_efficiency"], s["belief"]
     flag = " — COLLAPSED" if a["collapsed"] else ""
     return [
-        ("suite", str(s["suite"])),
-        ("success", fmt_rate(s["success"])),
-        ("time to success, s: median [IQR]",
-         f"{fmt_num(t['median'])} [{fmt_num(t['q25'])}, {fmt_num(t['q75'])}] (n={t['n']})"),
-        ("path efficiency (mean, successes)", f"{fmt_num(eff['mean'])} (n={eff['n']})"),
-        ("belief on original goal at switch (mean)", f"{fmt_num(b['at_switch_original_mean'])} (n={b['at_switch_n']})"),
-        ("limit scalings: share of steps", fmt_num(s["limit_scaled"]["step_share"])),
-        ("episodes with any limit scaling", fmt_rate(s["limit_scaled"]["episodes_with_any"])),
-        ("stick gain, rad/s per stick: median / 5th pct", f"{fmt_num(a['median'])} / {fmt_num(a['p05'])}{flag}"),
-        ("states where every goal was reachable", fmt_num(s["reachability"]["share"])),
-        ("mode switches per episode (mean)", fmt_num(s["mode_switches"]["mean"])),
+        (LABELS["suite"], str(s["suite"])),
+        (LABELS["success"], fmt_rate(s["success"])),
+        (LABELS["time_to_success"], f"{fmt_num(t['median'])} [{fmt_num(t['q25'])}, {fmt_num(t['q75'])}] (n={t['n']})"),
+        (LABELS["path_efficiency"], f"{fmt_num(eff['mean'])} (n={eff['n']})"),
+        (LABELS["belief_at_switch"], f"{fmt_num(b['at_switch_original_mean'])} (n={b['at_switch_n']})"),
+        (LABELS["limit_share"], fmt_num(s["limit_scaled"]["step_share"])),
+        (LABELS["limit_episodes"], fmt_rate(s["limit_scaled"]["episodes_with_any"])),
+        (LABELS["stick_gain"], f"{fmt_num(a['median'])} / {fmt_num(a['p05'])}{flag}"),
+        (LABELS["reachability"], fmt_num(s["reachability"]["share"])),
+        (LABELS["mode_switches"], fmt_num(s["mode_switches"]["mean"])),
     ]  # fmt: skip
 
 
@@ -455,7 +472,8 @@ def terminal_table(summaries: dict[str, dict]):
     from rich.table import Table
 
     table = Table(title="Closed-loop vetting (simulated operators; 95% Wilson intervals)")
-    for col in ("interface", "suite", "success", "worst recovery", "time to success (s)", "stick_gain", "limit_scaled"):
+    for col in ("interface", *(LABELS[k] for k in ("suite", "success", "worst_recovery", "time_to_success",
+                                                   "stick_gain_median", "limit_share"))):
         table.add_column(col)
     for label, s in summaries.items():
         switched = {k: v for k, v in s["recovery"].items() if k != "none"}
