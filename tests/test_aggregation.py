@@ -106,9 +106,9 @@ def test_table_output_names_every_round_and_how_to_vet_the_result():
     from coreach.commands.summaries import print_aggregate
 
     summary = {"label": "cvae", "parent_run": "p" * 32, "run_id": "b" * 32, "rounds": [
-        {"round": 0, "run_id": "a" * 32, "episodes": 40, "figure": {"success": 0.25, "episodes": 16}},
+        {"round": 0, "run_id": "a" * 32, "episodes": 40, "score": {"success": 0.25, "episodes": 16}},
         {"round": 1, "run_id": "b" * 32, "episodes": 56, "added": {"episodes": 16, "states": 3200},
-         "figure": {"success": 0.5, "episodes": 16}},
+         "score": {"success": 0.5, "episodes": 16}},
     ]}  # fmt: skip
     console = Console(record=True, width=250)
     print_aggregate(console, summary)

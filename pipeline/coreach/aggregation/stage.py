@@ -50,9 +50,9 @@ def _seeds(opts) -> list[int]:
             raise ConfigError(f"{WHERE}.rollout_seeds[{i}]", f"expected an integer in [0, {SEED_STRIDE}), got {s!r}")
     if len(set(seeds)) != len(seeds):
         raise ConfigError(f"{WHERE}.rollout_seeds", f"expected distinct seeds, got {seeds}")
-    fig = opts.figure_seed
-    if isinstance(fig, bool) or not isinstance(fig, int) or not 0 <= fig < SEED_STRIDE or fig in seeds:
-        raise ConfigError(f"{WHERE}.figure_seed", f"expected an integer in [0, {SEED_STRIDE}) not among rollout_seeds, got {fig!r}")
+    score = opts.score_seed
+    if isinstance(score, bool) or not isinstance(score, int) or not 0 <= score < SEED_STRIDE or score in seeds:
+        raise ConfigError(f"{WHERE}.score_seed", f"expected an integer in [0, {SEED_STRIDE}) not among rollout_seeds, got {score!r}")
     return seeds
 
 
@@ -100,8 +100,8 @@ def collect(robot, interface, suites, seed: int, belief, limits, labeller, round
     return episodes, {"states": states, "episodes": len(episodes)}
 
 
-def figure(robot, interface, suites, seed: int, belief, limits) -> dict:
-    """Closed-loop success of `interface` on the fixed figure episodes, per operator and overall."""
+def score_round(robot, interface, suites, seed: int, belief, limits) -> dict:
+    """Closed-loop success of `interface` on the fixed scoring episodes, per operator and overall."""
     per, wins, n = {}, 0, 0
     for i, suite in enumerate(suites):
         record, _ = _roll(robot, interface, suite, seed + SEED_STRIDE * i, belief, limits)
@@ -190,7 +190,7 @@ def aggregate(cfg: DictConfig) -> dict:
         "coreach.stage": "aggregate", "coreach.label": label, "coreach.labeller": labeller.name,
         "coreach.dataset_sha256": base.fingerprint(),
     }).info.run_id  # fmt: skip
-    params = {"rollout_seeds": str(seeds), "figure_seed": str(opts.figure_seed), "operators": str(list(opts.operators)),
+    params = {"rollout_seeds": str(seeds), "score_seed": str(opts.score_seed), "operators": str(list(opts.operators)),
               "labeller": labeller.name, "seed": str(cfg.seed), "start_run": str(start or "")}  # fmt: skip
     client.log_batch(parent, params=[Param(k, v) for k, v in params.items()])
     client.log_text(parent, OmegaConf.to_yaml(cfg, resolve=True), "config.yaml")
@@ -211,10 +211,10 @@ def aggregate(cfg: DictConfig) -> dict:
         data = list(base.episodes)
         for r, seed in enumerate(seeds, start=1):
             interface = interface if r == 1 and interface is not None else _decoder(current, store)
-            fig = figure(robot, interface, suites, int(opts.figure_seed), belief, limits)
-            rounds[-1]["figure"] = fig
-            _log_round(client, parent, r - 1, fig)
-            log.info("aggregation round %d: decoder %s succeeds in %.2f of the figure episodes", r - 1, current[:8], fig["success"])
+            score = score_round(robot, interface, suites, int(opts.score_seed), belief, limits)
+            rounds[-1]["score"] = score
+            _log_round(client, parent, r - 1, score)
+            log.info("aggregation round %d: decoder %s succeeds in %.2f of the scoring episodes", r - 1, current[:8], score["success"])
             new, counts = collect(robot, interface, suites, seed, belief, limits, labeller, r)
             data += new
             merged = EpisodeSet(data, base.goal_names, base.joint_names, base.dt,
@@ -227,9 +227,9 @@ def aggregate(cfg: DictConfig) -> dict:
             current = summary["run_id"]
             rounds.append({"round": r, "run_id": current, "dataset": merged.fingerprint(), "episodes": len(merged),
                            "added": counts, "rollout_seed": seed, "path": str(path), "val_loss": summary["val_loss"]})  # fmt: skip
-        fig = figure(robot, _decoder(current, store), suites, int(opts.figure_seed), belief, limits)
-        rounds[-1]["figure"] = fig
-        _log_round(client, parent, len(seeds), fig)
+        score = score_round(robot, _decoder(current, store), suites, int(opts.score_seed), belief, limits)
+        rounds[-1]["score"] = score
+        _log_round(client, parent, len(seeds), score)
         tracking.log_json(client, parent, rounds, "rounds.json")
         client.set_tag(parent, "coreach.source_run", current)
     except BaseException:
@@ -249,8 +249,8 @@ def _tag_round(client, run_id: str, parent: str, round_no: int, previous: str | 
         client.set_tag(run_id, "coreach.aggregate.previous", previous)
 
 
-def _log_round(client, parent: str, round_no: int, fig: dict) -> None:
+def _log_round(client, parent: str, round_no: int, score: dict) -> None:
     now = int(time.time() * 1000)
-    metrics = [Metric("aggregate/success", fig["success"], now, round_no)]
-    metrics += [Metric(f"aggregate/success/{k}", v, now, round_no) for k, v in fig["per_operator"].items()]
+    metrics = [Metric("aggregate/success", score["success"], now, round_no)]
+    metrics += [Metric(f"aggregate/success/{k}", v, now, round_no) for k, v in score["per_operator"].items()]
     client.log_batch(parent, metrics=metrics)

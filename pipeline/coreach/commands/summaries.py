@@ -215,16 +215,16 @@ def print_recipes(console, s: dict) -> None:
 def print_aggregate(console, s: dict) -> None:
     """One row per aggregation round: its decoder, dataset size, what it added, and its closed-loop figure."""
     table = Table(title=f"data aggregation: {s['label']} (MLflow parent run {s['parent_run']})")
-    for col in ("round", "training run", "episodes", "added episodes", "added states", "success (figure episodes)"):
+    for col in ("round", "training run", "episodes", "added episodes", "added states", "success (scoring episodes)"):
         table.add_column(col)
     for r in s["rounds"]:
         added = r.get("added") or {}
-        fig = r.get("figure") or {}
-        success = f"{fig['success']:.2f} (n={fig['episodes']})" if fig else "-"
+        score = r.get("score") or {}
+        success = f"{score['success']:.2f} (n={score['episodes']})" if score else "-"
         table.add_row(str(r["round"]), r["run_id"], str(r["episodes"]), str(added.get("episodes", "-")),
                       str(added.get("states", "-")), success)  # fmt: skip
     console.print(table)
-    console.print("the figure episodes are training-side rollouts, not a vetting suite; vet the last round with: "
+    console.print("the scoring episodes are training-side rollouts, not a vetting suite; vet the last round with: "
                   f".venv/bin/coreach vet 'candidates=[{s['run_id']},direct,blend]' suite=goal-switch", markup=False)  # fmt: skip
 
 
