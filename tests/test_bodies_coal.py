@@ -4,7 +4,7 @@
   gradient) against the coal collision library's shape-shape distance;
 - coreach.runtime.kinematics (attached sphere centres and their Jacobians) against pinocchio;
 - coreach.link_model (the conservative sphere cover of each link) against coal's distance to the link's real
-  collision geometry: reach7's cylinders, and one third-party arm's collision meshes (example-robot-data);
+  collision geometry: seven_joint_arm's cylinders, and one third-party arm's collision meshes (example-robot-data);
 - bad collision inputs refused with a ConfigError in one line.
 """
 
@@ -194,7 +194,7 @@ def test_torch_and_numpy_give_the_same_distances():
 # ---------------------------------------------------------------------------------------------------------
 
 
-def _reach7():
+def _seven_joint_arm():
     from coreach_plugins.robot.urdf_arm import UrdfArm
 
     arm = UrdfArm()
@@ -226,13 +226,13 @@ def _random_q(chain: Chain, rng, n: int) -> np.ndarray:
     return rng.uniform(lo, hi, size=(n, chain.dof))
 
 
-@pytest.mark.parametrize("arm", ["reach7", "panda"])
+@pytest.mark.parametrize("arm", ["seven_joint_arm", "panda"])
 def test_attached_points_and_jacobians_match_pinocchio(arm):
     """Every sphere centre of the link model, on 20 random q: world position = pinocchio's placement of the
     sphere's link applied to the local centre; linear Jacobian = pinocchio's frame Jacobian (LOCAL_WORLD_ALIGNED,
-    linear rows) of an operational frame added at the centre; both within 1e-9. The panda adds what reach7
+    linear rows) of an operational frame added at the centre; both within 1e-9. The panda adds what seven_joint_arm
     lacks: joint origins with rotations, non-parallel axes and links behind fixed joints (the hand)."""
-    text, tool, lm, _ = _reach7() if arm == "reach7" else _panda()
+    text, tool, lm, _ = _seven_joint_arm() if arm == "seven_joint_arm" else _panda()
     chain = Chain.from_string(text, tool)
     attached = chain.attach(lm.links, lm.centres)
     model = pin.buildModelFromXML(text)
@@ -328,15 +328,15 @@ def _check_cover(rows, label):
           f"{np.median(-excess[clear]) * 1000:.1f} mm, max {(-excess[clear]).max() * 1000:.1f} mm")
 
 
-def test_link_spheres_cover_reach7s_collision_cylinders():
-    """reach7: coal's distance to each link's URDF collision cylinder (loaded by pinocchio.buildGeomFromUrdfString)
+def test_link_spheres_cover_seven_joint_arms_collision_cylinders():
+    """seven_joint_arm: coal's distance to each link's URDF collision cylinder (loaded by pinocchio.buildGeomFromUrdfString)
     is never less than the sphere cover's, on 200 random q with 5 obstacles each."""
-    text, tool, lm, _ = _reach7()
+    text, tool, lm, _ = _seven_joint_arm()
     model = pin.buildModelFromXML(text)
     geom = pin.buildGeomFromUrdfString(model, text, pin.GeometryType.COLLISION)
     assert {type(g.geometry).__name__ for g in geom.geometryObjects} == {"Cylinder"}
     rows = _cover_against_real_geometry(text, tool, lm, model, geom, 200, 5, np.random.default_rng(500))
-    _check_cover(rows, "reach7 cylinders")
+    _check_cover(rows, "seven_joint_arm cylinders")
 
 
 def test_link_spheres_cover_a_third_party_arms_collision_meshes():
@@ -408,7 +408,7 @@ def test_an_unreadable_collision_mesh_is_refused(tmp_path):
 
 
 def test_an_override_naming_an_unknown_link_is_refused(tmp_path):
-    text, tool, _, _ = _reach7()
+    text, tool, _, _ = _seven_joint_arm()
     override = tmp_path / "collision.yaml"
     override.write_text("links:\n  link_9:\n    - {sphere: [0, 0, 0.1], radius: 0.05}\n")
     with pytest.raises(ConfigError) as err:

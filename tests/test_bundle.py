@@ -16,7 +16,7 @@ import torch
 
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError, CoreachError
-from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
+from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import CORE_FILES, MANIFEST, BundleError, verify_bundle
@@ -45,7 +45,7 @@ def release_meta() -> dict:
         "training_run_id": "run-test-0001",
         "git_commit": "0000000000000000000000000000000000000000",
         "episodes": 40,
-        "q_home": list(REACH7_HOME),
+        "q_home": list(SEVEN_JOINT_ARM_HOME),
         "safety": {"workspace_min": [-0.3, -0.8, -0.1], "workspace_max": [1.0, 0.8, 1.2]},
         "metrics": {"success_rate": {"value": 0.9, "low": 0.8, "high": 0.96, "level": 0.95}},
     }

@@ -47,7 +47,7 @@ def test_plugins_lists_every_kind_with_origin(workdir):
     res = run(["--json", "plugins"], workdir)
     assert res.returncode == 0, res.stderr
     found = {(p["kind"], p["name"]): p for p in json.loads(res.stdout)}
-    for key in [("robot", "reach7"), ("dataset", "parquet_file"), ("belief", "boltzmann"), ("model", "cvae"),
+    for key in [("robot", "seven_joint_arm"), ("dataset", "parquet_file"), ("belief", "boltzmann"), ("model", "cvae"),
                 ("loss", "goal_entropy")]:
         assert found[key]["origin"] == "built-in"
 

@@ -15,7 +15,7 @@ from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.session import Session
 from coreach.vetting.loop import _kinematics, _limit
 from coreach.control.belief_model import BoltzmannGoalBelief
-from coreach_plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
+from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
 
 BOX = SafetyLimits(qd_max=(1.0, 1.0), tcp_speed_max=10.0, q_lower=(-1.0, -1.0), q_upper=(1.0, 1.0),
                    workspace_min=(-1.0, -1.0, -1.0), workspace_max=(1.0, 1.0, 1.0), lookahead_s=0.1, deadband=0.2)
@@ -95,7 +95,7 @@ def bundle_and_policy(tmp_path_factory):
             "goal_fine": [[0.03, 0.0, 0.0], [0.0, 0.0, 0.05], [-0.05, 0.0, 0.0], [0.0, 0.0, 0.04]],
         },
         "dataset_fingerprint": "sha256:feed", "training_run_id": "run-seam", "git_commit": "0" * 40,
-        "q_home": list(REACH7_HOME),
+        "q_home": list(SEVEN_JOINT_ARM_HOME),
         "safety": {"workspace_min": [0.10, -0.25, 0.02], "workspace_max": [0.60, 0.25, 0.52]},
         "parity_n": 2000,
     }

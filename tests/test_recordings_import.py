@@ -23,7 +23,7 @@ from rosbags.typesys import Stores, get_typestore  # noqa: E402
 
 COREACH = str(Path(sys.executable).parent / "coreach")
 STORE = get_typestore(Stores.LATEST)
-JOINTS = [f"joint_{i}" for i in range(1, 8)]  # the shipped reach7 arm
+JOINTS = [f"joint_{i}" for i in range(1, 8)]  # the shipped seven_joint_arm
 # near the arm's home, with the elbow at 2.0 rad so the +-0.3 rad swing stays inside its 2.40 rad limit
 HOME = np.array([0.0, -0.15, 0.0, 2.0, 0.0, 0.45, 0.0])
 AMP, OMEGA = 0.3, 1.5  # rad, rad/s: peak speed 0.45 rad/s, under every joint's 1.2-1.5 rad/s limit

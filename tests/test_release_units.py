@@ -20,7 +20,7 @@ from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach.decoder.torch_interface import DecoderInterface
 from coreach.decoder.onnx_interface import OnnxBundleInterface
 from coreach_plugins.robot.planar3 import Planar3
-from coreach_plugins.robot.urdf_arm import REACH7_HOME, UrdfArm, shipped_urdf
+from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release import gate as G
 from coreach.release import bundle_store, registry
@@ -144,7 +144,7 @@ def _meta(run_id: str) -> dict:
                            "goal_quat": [[0.7071068, 0.0, 0.7071068, 0.0]] * 4,
                            "goal_fine": [[0.03, 0, 0], [0, 0, 0.06], [0, 0.08, 0], [-0.07, 0, 0]]},
         "dataset_fingerprint": "sha256:test", "training_run_id": run_id, "git_commit": "0" * 40,
-        "q_home": list(REACH7_HOME), "parity_n": 1000,
+        "q_home": list(SEVEN_JOINT_ARM_HOME), "parity_n": 1000,
         "safety": {"workspace_min": [0.15, -0.45, -0.35], "workspace_max": [0.85, 0.45, 0.60]},
     }  # fmt: skip
 

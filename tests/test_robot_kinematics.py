@@ -89,7 +89,7 @@ def _fd_jacobian(robot, q: torch.Tensor, h: float = 1e-6) -> torch.Tensor:
 # ---------------------------------------------------------------- (a) shipped URDF vs pinocchio
 
 
-def test_reach7_matches_pinocchio():
+def test_seven_joint_arm_matches_pinocchio():
     # pinocchio as reference: an independent URDF reader and kinematics library
     arm = UrdfArm()
     q = _random_q(arm, 50, seed=0)
@@ -102,7 +102,7 @@ def test_reach7_matches_pinocchio():
     np.testing.assert_allclose(jac.numpy(), ref_jac, atol=1e-8, rtol=0)
 
 
-def test_reach7_float32_follows_q_and_agrees_with_float64():
+def test_seven_joint_arm_float32_follows_q_and_agrees_with_float64():
     arm = UrdfArm()
     q = _random_q(arm, 20, seed=1)
     pos64, rot64 = arm.fk(q)
@@ -115,7 +115,7 @@ def test_reach7_float32_follows_q_and_agrees_with_float64():
     torch.testing.assert_close(jac32.double(), arm.jacobian(q), atol=1e-5, rtol=0)
 
 
-def test_reach7_satisfies_protocol_and_home_is_regular():
+def test_seven_joint_arm_satisfies_protocol_and_home_is_regular():
     arm = UrdfArm()
     assert isinstance(arm, Robot)
     assert arm.dof == 7 and len(arm.joint_names) == 7
@@ -179,7 +179,7 @@ def test_planar3_float32_and_protocol():
 # ---------------------------------------------------------------- (c) UrdfArm Jacobian vs its own FK
 
 
-def test_reach7_jacobian_matches_finite_differences_of_fk():
+def test_seven_joint_arm_jacobian_matches_finite_differences_of_fk():
     arm = UrdfArm()
     q = _random_q(arm, 20, seed=4)
     # central differences with h = 1e-6 in float64: truncation ~h^2, round-off ~1e-16/h (common practice)
@@ -189,7 +189,7 @@ def test_reach7_jacobian_matches_finite_differences_of_fk():
 # ---------------------------------------------------------------- (d) limits as written in the URDF
 
 
-def test_reach7_limits_equal_the_urdf_text():
+def test_seven_joint_arm_limits_equal_the_urdf_text():
     root = ET.parse(shipped_urdf()).getroot()
     movable = [j for j in root.findall("joint") if j.get("type") != "fixed"]
     names = [j.get("name") for j in movable]

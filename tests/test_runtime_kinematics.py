@@ -12,7 +12,7 @@ from coreach.runtime.kinematics import Chain, quat_to_matrix
 
 pin = pytest.importorskip("pinocchio")
 
-# Our own test arm covering what reach7 does not: rpy on the origins, an unaligned revolute axis, the URDF
+# Our own test arm covering what seven_joint_arm does not: rpy on the origins, an unaligned revolute axis, the URDF
 # default axis (x, no <axis>), a prismatic and a continuous joint, a fixed joint between movable ones, a
 # fixed tool offset at the end, and a side branch that is not on the root-to-tool path.
 MIXED_URDF = """<?xml version="1.0"?>
@@ -96,7 +96,7 @@ def _random_q(chain: Chain, n: int, seed: int) -> np.ndarray:
     return rng.uniform(lo, hi, size=(n, chain.dof))
 
 
-def test_reach7_matches_pinocchio_on_random_configurations():
+def test_seven_joint_arm_matches_pinocchio_on_random_configurations():
     chain = Chain.from_urdf(shipped_urdf())
     q = _random_q(chain, 60, seed=0)
     pos, rot, jac = chain.fk_jacobian(q)
@@ -141,7 +141,7 @@ def test_single_and_batched_shapes_agree():
 
 def test_limits_are_the_urdf_values():
     chain = Chain.from_urdf(shipped_urdf())
-    # the values written in plugins/robot/assets/reach7.urdf
+    # the values written in plugins/robot/assets/seven_joint_arm.urdf
     np.testing.assert_array_equal(chain.q_upper, [2.9671, 2.0944, 2.9671, 2.4000, 2.9671, 2.0944, 3.0543])
     np.testing.assert_array_equal(chain.q_lower, -chain.q_upper)
     np.testing.assert_array_equal(chain.qd_max, [1.2, 1.2, 1.3, 1.3, 1.5, 1.5, 1.5])

@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 
 from coreach.context import ContextSpec
 from coreach.errors import DataError
-from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
+from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import BundleError
@@ -45,7 +45,7 @@ def bundle(tmp_path_factory) -> Path:
             "goal_fine": [[0.03, 0.0, 0.0], [0.0, 0.0, 0.05], [-0.05, 0.0, 0.0], [0.0, 0.0, 0.04]],
         },
         "dataset_fingerprint": "sha256:feed", "training_run_id": "run-session", "git_commit": "0" * 40,
-        "q_home": list(REACH7_HOME),
+        "q_home": list(SEVEN_JOINT_ARM_HOME),
         "safety": {"workspace_min": WS_MIN, "workspace_max": WS_MAX},
         "parity_n": 2000,
     }
@@ -197,7 +197,7 @@ def test_belief_follows_bayes_rule_from_the_anchor(session, reference):
     # Reference: Bayes' rule with a Boltzmann likelihood, P(g | motion) ~ P(g) exp(beta * progress_g),
     # progress_g = |p0 - g| - |p1 - g| for point goals (zero fine motion), computed here by hand.
     s = _fresh(session)
-    q0 = np.array(REACH7_HOME)
+    q0 = np.array(SEVEN_JOINT_ARM_HOME)
     q1 = q0 + np.array([0.0, 0.05, 0.0, -0.08, 0.0, 0.0, 0.0])
     p0, _ = _pin_pos_jac(reference, q0)
     p1, _ = _pin_pos_jac(reference, q1)

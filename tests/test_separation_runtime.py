@@ -72,7 +72,7 @@ def _no_violation(tally: fb.Tally) -> str:
 
 # ------------------------------------------------------------------------------------ the reference itself
 def test_reference_is_coal_on_the_urdf_cylinders(session, ref):
-    """The reference's wiring: pinocchio loads one collision cylinder per link of reach7 (base included), the
+    """The reference's wiring: pinocchio loads one collision cylinder per link of seven_joint_arm (base included), the
     closest pair of each group is the minimum over every (link, body) pair, and a pair's distance is what a
     plain coal.distance call gives for the link's placement (pinocchio's oMg) and the body's (rpyToMatrix of
     the scene's rpy), within 2e-6 m: coal's GJK and EPA stop at their tolerance (1e-6 by default) and

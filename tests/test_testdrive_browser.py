@@ -29,7 +29,7 @@ from coreach.episodes import load_parquet
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.kinematics import Chain
-from coreach_plugins.robot.urdf_arm import REACH7_HOME, shipped_urdf
+from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
 
 pytestmark = pytest.mark.slow
 
@@ -71,7 +71,7 @@ def bundle(tmp_path_factory) -> Path:
     policy = DecoderPolicy.build({"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
                                   "hidden": [32, 32]}, spec, 7)  # fmt: skip
     policy.set_normalisation(torch.randn(400, spec.width) * 0.5, torch.randn(400, 7) * 0.3)
-    home, _ = Chain.from_urdf(shipped_urdf()).fk(np.array(REACH7_HOME))
+    home, _ = Chain.from_urdf(shipped_urdf()).fk(np.array(SEVEN_JOINT_ARM_HOME))
     offsets = np.concatenate([np.eye(3), -np.eye(3)]) * 0.15
     meta = {
         "goal_names": GOALS,
@@ -81,7 +81,7 @@ def bundle(tmp_path_factory) -> Path:
             "goal_fine": (offsets / 5).tolist(),
         },
         "dataset_fingerprint": "sha256:feed", "training_run_id": "run-testdrive", "git_commit": "0" * 40,
-        "q_home": list(REACH7_HOME),
+        "q_home": list(SEVEN_JOINT_ARM_HOME),
         "safety": {"workspace_min": [0.0, -0.6, 0.0], "workspace_max": [0.9, 0.6, 0.9]},
         "parity_n": 200,
         "world": _world_section(UrdfArm(), load_scenario("bedside_shelf")),

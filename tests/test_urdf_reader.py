@@ -57,7 +57,7 @@ def test_specs_carry_what_the_bundle_check_needs():
     assert [s.name for s in movable] == Chain.from_string(text).joint_names
     assert specs[-1].child == "tool"
     assert all(s.lower < s.upper and s.velocity > 0 for s in movable)
-    assert robot_name(text) == "reach7"
+    assert robot_name(text) == "seven_joint_arm"
 
 
 

@@ -237,7 +237,7 @@ def test_records_without_the_separation_extras_diagnose_as_before():
     assert d["episodes"][0]["closest_body_m"] is None and d["episodes"][0]["separation_held_share"] == 0.0
 
 
-# ---- causes read from real rollouts (reach7 arm, bedside shelf) ----
+# ---- causes read from real rollouts (seven_joint_arm, bedside shelf) ----
 
 ROBOT = UrdfArm()
 BELIEF = BoltzmannGoalBelief(beta=40.0)

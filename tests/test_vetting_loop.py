@@ -1,4 +1,4 @@
-"""Closed-loop vetting on the reach7 arm with small damped-least-squares test interfaces: success and recovery,
+"""Closed-loop vetting on the seven_joint_arm with small damped-least-squares test interfaces: success and recovery,
 belief at the switch against a numpy Bayes' rule replay, safety limits in the recorded motion, the batched
 loop against the one-episode-at-a-time reference, and operator imperfections changing the outcome."""
 

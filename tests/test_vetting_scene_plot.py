@@ -1,4 +1,4 @@
-"""Scene plot of vetting paths: body outlines against the bodies' own sizes, the elbow against the reach7 URDF,
+"""Scene plot of vetting paths: body outlines against the bodies' own sizes, the elbow against the seven_joint_arm URDF,
 which episodes are drawn first, one patch per body and the person's zone outlines, on constructed records."""
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Vetting suites: the shipped ones load and validate on reach7, episode plans are balanced and seeded apart
+"""Vetting suites: the shipped ones load and validate on seven_joint_arm, episode plans are balanced and seeded apart
 from training, and every validation error names the suite file and the item at fault."""
 
 from __future__ import annotations
@@ -20,7 +20,7 @@ ROBOT = UrdfArm()
 
 
 @pytest.mark.parametrize("name", builtin_suites())
-def test_shipped_suites_load_and_validate_on_reach7(name):
+def test_shipped_suites_load_and_validate_on_seven_joint_arm(name):
     suite = load_suite(name)
     suite.validate(ROBOT, spec_n_goals=4)
     assert suite.seed >= MIN_SEED and suite.path == f"suite/{name}.yaml"

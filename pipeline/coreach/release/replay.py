@@ -47,7 +47,7 @@ def bundle_robot(m: Manifest):
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "robot.urdf"
         path.write_bytes(data)
-        return build_option("robot", "reach7", urdf=str(path), tool_link=m.tool_link, home=m.q_home.tolist(),
+        return build_option("robot", "seven_joint_arm", urdf=str(path), tool_link=m.tool_link, home=m.q_home.tolist(),
                             name=m.robot_name)
 
 

@@ -1,4 +1,4 @@
-"""Robot plugin for any serial arm described by a URDF file (the shipped reach7 arm by default)."""
+"""Robot plugin for any serial arm described by a URDF file (the shipped seven_joint_arm by default)."""
 
 from __future__ import annotations
 
@@ -20,25 +20,25 @@ from coreach.urdf import MOVABLE, JointSpec, parse_path, read_path
 from coreach.link_model import LinkModel, link_model
 from coreach.urdf_placement import place_arm
 
-SHIPPED_URDF = "reach7.urdf"
+SHIPPED_URDF = "seven_joint_arm.urdf"
 # Elbow bent 129 deg, tool 0.35 m in front of the base at z = 0.27 m, approach axis tilted 56 deg below
 # horizontal. Smallest singular value of the 6x7 Jacobian there is 0.12 (about the median over
 # random configurations), so the pose is well clear of a singularity.
-REACH7_HOME = (0.0, -0.15, 0.0, 2.25, 0.0, 0.45, 0.0)
+SEVEN_JOINT_ARM_HOME = (0.0, -0.15, 0.0, 2.25, 0.0, 0.45, 0.0)
 
 def shipped_urdf() -> str:
-    """Path of the reach7 URDF shipped inside coreach_plugins."""
+    """Path of the seven_joint_arm URDF shipped inside coreach_plugins."""
     return str(resources.files(__package__).joinpath("assets", SHIPPED_URDF))
 
 
 @dataclass
 class UrdfArmConfig:
-    """Options of the `urdf_arm` robot (conf/robot/reach7.yaml)."""
+    """Options of the `urdf_arm` robot (conf/robot/seven_joint_arm.yaml)."""
 
     urdf: str = ""
     tool_link: str = "tool"
     home: list[float] | None = None
-    name: str = "reach7"
+    name: str = "seven_joint_arm"
     base_xyz: list[float] | None = None
     base_rpy_deg: list[float] | None = None
     tool_xyz: list[float] | None = None
@@ -115,7 +115,7 @@ class UrdfArm:
     """A serial arm from a URDF: limits from the file, batched FK and Jacobian of the tool link."""
 
     def __init__(self, urdf: str = "", tool_link: str = "tool", home: list[float] | None = None,
-                 name: str = "reach7", base_xyz: Sequence[float] | None = None,
+                 name: str = "seven_joint_arm", base_xyz: Sequence[float] | None = None,
                  base_rpy_deg: Sequence[float] | None = None, tool_xyz: Sequence[float] | None = None,
                  tool_rpy_deg: Sequence[float] | None = None, collision_override: str = ""):  # fmt: skip
         if not isinstance(name, str) or not name:
@@ -160,8 +160,8 @@ class UrdfArm:
 
         if home is None:
             is_shipped = path.resolve() == Path(shipped).resolve()
-            if is_shipped and len(movable) == len(REACH7_HOME):
-                home = list(REACH7_HOME)
+            if is_shipped and len(movable) == len(SEVEN_JOINT_ARM_HOME):
+                home = list(SEVEN_JOINT_ARM_HOME)
             else:
                 # infinite (continuous-joint) bounds give nan midpoints; start those at 0
                 home = torch.nan_to_num((self._lower + self._upper) / 2, nan=0.0).tolist()
