@@ -174,7 +174,7 @@ def test_greedy_operator_succeeds_on_nominal_and_records_shapes():
 
 def test_success_needs_the_approach_orientation():
     # With an orientation tolerance the servo cannot meet (its rotation is capped near zero), nothing succeeds
-    # although the position is reached (measured in an earlier experiment on this machine: position-only success is too lenient).
+    # although the position is reached (the last assertion): a position-only test would have counted these.
     iface = GoalStickDLS(w_max=1e-6)
     rec = _run(_suite(episodes=4, tolerances={"orientation_deg": 2.0}), iface)
     assert not rec.success.any()

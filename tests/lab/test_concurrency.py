@@ -88,8 +88,8 @@ def _check_counts(client: MlflowClient, experiment: str, summaries: list[dict], 
 
 
 def test_fresh_sqlite_store_opened_by_four_processes_at_once(workdir):
-    # Without tracking's store lock this fails nearly every time here: the processes race in MLflow's
-    # schema migration ("duplicate column", "alembic_version ... 0 found"; measured on this machine).
+    # Without tracking's store lock the processes race in MLflow's schema migration (errors such as
+    # "duplicate column" or "alembic_version ... 0 found"): this test is what catches the lock missing.
     uri = f"sqlite:///{workdir / 'fresh.db'}"
     exp_ids = _run_all(open_store_in_child, [(uri, "fresh")] * 4, timeout=120)
     assert len(set(exp_ids)) == 1

@@ -147,8 +147,9 @@ def pack(bodies: list[Primitive]) -> PackedBodies:
 
 
 # Sums and maxima over a last axis of 3 written out: numpy's reductions over a short last axis cost 5-15 us
-# each on [31, 15, 3] arrays on this machine, three element-wise operations about 2 us (measured with timeit,
-# numpy 2, 2026-12-05); the robot's step makes several of them.
+# each on [31, 15, 3] arrays, three element-wise operations about 2 us; the robot's step makes several of them.
+# Rerun: python -m timeit -s 'import numpy as np; x = np.random.rand(31, 15, 3)' 'x.sum(-1)' (6.2 us; 'x.max(-1)'
+# 14.2 us; 'x[..., 0] + x[..., 1] + x[..., 2]' 1.6 us; numpy 2.4, 2-core development machine, 2026-12-06).
 def sum3(x):
     """x[..., 3] -> x_0 + x_1 + x_2 [...]."""
     return x[..., 0] + x[..., 1] + x[..., 2]

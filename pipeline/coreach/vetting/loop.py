@@ -19,7 +19,8 @@ tolerances), then the end of the goal's fine motion; completing it with the orie
 tolerance is an arrival. Arriving at the final goal is success; an episode that arrives holds still (zero
 velocity) for the rest of the horizon, including an arm that completed its initial goal and waits for a
 pending goal switch. At the switch step the operator's goal becomes the final goal, its phase restarts, and
-the belief on the original goal at that moment is recorded (measured in an earlier experiment on this machine).
+the belief on the original goal at that moment is recorded: it depends on how long the arm waited at its first
+goal, so it says what a "late switch" was in each run.
 """
 
 from __future__ import annotations

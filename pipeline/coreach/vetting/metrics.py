@@ -33,8 +33,9 @@ class Rate:
 
 @dataclass(frozen=True)
 class Tolerances:
-    """Thresholds of the summary. collapse_stick_gain: median stick gain (rad/s per unit stick)
-    below which the latent counts as collapsed (measured in an earlier experiment on this machine); confidence: level of every interval;
+    """Thresholds of the summary. collapse_stick_gain: median stick gain (rad/s per unit stick) below which the
+    latent counts as collapsed (at 0.02 a full deflection along the stick's weakest direction asks for joint
+    velocities of about 1 deg/s in norm: barely visible motion); confidence: level of every interval;
     bins: edges of the belief-confidence bins of the ultimate bound."""
 
     collapse_stick_gain: float = 0.02
