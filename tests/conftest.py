@@ -40,7 +40,7 @@ def workdir(tmp_path, monkeypatch):
 
 @pytest.fixture
 def small_cfg(workdir):
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
 
     def make(*overrides: str):
         return compose_config("train", [*SMALL, *overrides])

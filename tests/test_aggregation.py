@@ -88,7 +88,7 @@ def test_one_round_adds_labelled_closed_loop_states_and_records_the_lineage(work
     assert tags["coreach.dataset_sha256"] == second["dataset"] != first["dataset"]
 
     # the added episodes are the visited states, labelled with the demonstrator's velocity law
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     data = load_parquet(second["path"])
     new = [e for e in data if e.episode_id >= 1_000_000]

@@ -3,7 +3,7 @@
 - coreach.control.bodies (signed distance from a sphere to a box, cylinder, sphere or capsule, and its
   gradient) against the coal collision library's shape-shape distance;
 - coreach.runtime.kinematics (attached sphere centres and their Jacobians) against pinocchio;
-- coreach.link_model (the conservative sphere cover of each link) against coal's distance to the link's real
+- coreach.world.link_model (the conservative sphere cover of each link) against coal's distance to the link's real
   collision geometry: seven_joint_arm's cylinders, and one third-party arm's collision meshes (example-robot-data);
 - bad collision inputs refused with a ConfigError in one line.
 """
@@ -21,7 +21,7 @@ import torch
 
 from coreach.control.bodies import SHAPES, Primitive, pack, point_distances
 from coreach.errors import ConfigError
-from coreach.link_model import link_model
+from coreach.world.link_model import link_model
 from coreach.runtime.kinematics import Chain
 
 N_POSES = 200
@@ -195,7 +195,7 @@ def test_torch_and_numpy_give_the_same_distances():
 
 
 def _seven_joint_arm():
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     arm = UrdfArm()
     return arm.urdf_text(), arm.tool_link, arm.link_model(0.02), None

@@ -16,7 +16,7 @@ import torch
 
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError, CoreachError
-from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
+from coreach.world.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import CORE_FILES, MANIFEST, BundleError, verify_bundle

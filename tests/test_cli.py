@@ -54,7 +54,7 @@ def test_plugins_lists_every_kind_with_origin(workdir):
 
 def _bad_dataset(workdir: Path) -> Path:
     """A copy of a generated dataset with one NaN joint velocity in episode 3."""
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
     from coreach.training.run import build_plugin
 
     cfg = compose_config("train", SMALL)
@@ -116,7 +116,7 @@ def test_nan_in_dataset_names_file_episode_and_column(workdir):
 
 
 def test_a_bad_override_is_blamed_not_a_neighbour_whose_key_it_contains():
-    from coreach.config_check import _culprit
+    from coreach.config.check import _culprit
 
     given = ["train_overrides=[aggregate.rollout_seeds=[1,2]]", "out=/tmp/x"]
     message = "no viable alternative at input '[aggregate.rollout_seeds='"

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import pytest
 
-from coreach.config_check import compose_config
+from coreach.config.check import compose_config
 from coreach.errors import ConfigError
 from test_cli import run
 

@@ -13,9 +13,9 @@ import pytest
 from hydra import compose, initialize_config_dir
 from omegaconf import OmegaConf
 
-from coreach.contracts import plugin_checks
+from coreach.host.contracts import plugin_checks
 from coreach.errors import ConfigError
-from coreach.protocols import LossTerm
+from coreach.host.protocols import LossTerm
 
 LOSS_DIR = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "loss"
 
@@ -25,7 +25,7 @@ def _term(path: Path):
 
 
 def _contract(path: Path, name: str) -> None:
-    """One check of coreach.contracts (the same checks an outside package runs on its own terms)."""
+    """One check of coreach.host.contracts (the same checks an outside package runs on its own terms)."""
     checks = dict(plugin_checks("loss", OmegaConf.to_container(OmegaConf.load(path))))
     checks[name]()
 

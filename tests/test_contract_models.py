@@ -11,8 +11,8 @@ import pytest
 import torch
 from omegaconf import OmegaConf
 
-from coreach.contracts import plugin_checks
-from coreach.protocols import Decoder
+from coreach.host.contracts import plugin_checks
+from coreach.host.protocols import Decoder
 
 MODEL_DIR = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "model"
 WIDTHS = {"state": 16, "belief": 4, "goal": 12}  # 7-joint arm, 4 goals
@@ -41,7 +41,7 @@ def _forward(model, action, context):
 
 
 def _contract(path: Path, name: str) -> None:
-    """One check of coreach.contracts (the same checks an outside package runs on its own decoders)."""
+    """One check of coreach.host.contracts (the same checks an outside package runs on its own decoders)."""
     checks = dict(plugin_checks("model", OmegaConf.to_container(OmegaConf.load(path))))
     checks[name]()
 

@@ -1,4 +1,4 @@
-"""coreach.contracts on every built-in plugin config, on the example outside package, and on broken plugins
+"""coreach.host.contracts on every built-in plugin config, on the example outside package, and on broken plugins
 (each check must be able to fail)."""
 
 from __future__ import annotations
@@ -11,8 +11,8 @@ import pytest
 import torch
 from omegaconf import OmegaConf
 
-from coreach.contracts import ContractError, check_plugin, plugin_checks
-from coreach.protocols import optional_members
+from coreach.host.contracts import ContractError, check_plugin, plugin_checks
+from coreach.host.protocols import optional_members
 from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.robot.planar3 import Planar3
 

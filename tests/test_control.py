@@ -15,7 +15,7 @@ from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.session import Session
 from coreach.vetting.loop import _kinematics, _limit
 from coreach.control.belief_model import BoltzmannGoalBelief
-from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
+from coreach.world.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
 
 BOX = SafetyLimits(qd_max=(1.0, 1.0), tcp_speed_max=10.0, q_lower=(-1.0, -1.0), q_upper=(1.0, 1.0),
                    workspace_min=(-1.0, -1.0, -1.0), workspace_max=(1.0, 1.0, 1.0), lookahead_s=0.1, deadband=0.2)

@@ -18,9 +18,9 @@ from coreach.demonstrator import (
     scale_to_speed_limits,
 )
 from coreach.errors import ConfigError, DataError
-from coreach.geometry import angle_between, quat_to_matrix
-from coreach.protocols import Robot
-from coreach.scenario import Scenario, load_scenario
+from coreach.world.geometry import angle_between, quat_to_matrix
+from coreach.host.protocols import Robot
+from coreach.world.scenario import Scenario, load_scenario
 
 
 class PlanarArm:
@@ -235,7 +235,7 @@ def test_max_steps_cuts_unfinished_episodes():
 
 
 def test_generate_on_urdf_arm_if_available():
-    mod = pytest.importorskip("coreach_plugins.robot.urdf_arm")
+    mod = pytest.importorskip("coreach.world.urdf_arm")
     arm = mod.UrdfArm()
     demos = generate(arm, "bedside_shelf", 40, seed=0)
     assert len(demos) == 40 and demos.joint_names == list(arm.joint_names)

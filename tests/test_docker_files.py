@@ -161,7 +161,7 @@ def test_server_store_and_artifacts_point_at_the_stack(services):
 
 def test_trainer_sweep_is_a_valid_coreach_command(services, workdir):
     from coreach.cli import HYDRA_COMMANDS
-    from coreach.config_check import preflight
+    from coreach.config.check import preflight
 
     cmd = list(services["trainer"]["command"])
     assert cmd[0] in HYDRA_COMMANDS and "-m" in cmd

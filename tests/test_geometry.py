@@ -7,7 +7,7 @@ import pytest
 import torch
 from scipy.spatial.transform import Rotation
 
-from coreach.geometry import angle_between, matrix_to_quat, quat_to_matrix, rotation_error, rpy_to_matrix
+from coreach.world.geometry import angle_between, matrix_to_quat, quat_to_matrix, rotation_error, rpy_to_matrix
 
 
 def _wxyz(r: Rotation) -> np.ndarray:
@@ -132,10 +132,10 @@ def test_torch_gradients_flow_through_rotation_error():
 
 
 def test_geometry_does_not_import_torch():
-    # the runtime imports coreach.geometry and must stay torch-free
+    # the runtime imports coreach.world.geometry and must stay torch-free
     import subprocess
     import sys
 
-    code = "import sys, coreach.geometry, coreach.runtime.kinematics; print('torch' in sys.modules)"
+    code = "import sys, coreach.world.geometry, coreach.runtime.kinematics; print('torch' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"

@@ -35,9 +35,22 @@ def test_contract_is_kept(lint_report, name):
     assert "".join(name.split()) + "KEPT" in flat, lint_report[-4000:]
 
 
-def test_the_three_contracts_are_configured():
+def test_the_contracts_are_configured():
     kinds = {c["type"] for c in tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["importlinter"]["contracts"]}
-    assert len(CONTRACTS) == 3 and kinds == {"layers", "forbidden"}
+    assert len(CONTRACTS) == 6 and kinds == {"layers", "forbidden", "independence"}
+
+
+def test_the_plugin_api_contract_forbids_every_other_host_module():
+    """A host module added later must not slip past the plugin API contract: every top-level module and package
+    of coreach (and every module of coreach.host but api) is on its forbidden list."""
+    contracts = tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["importlinter"]["contracts"]
+    forbidden = set(next(c for c in contracts if c["id"] == "plugin-api")["forbidden_modules"])
+    package = ROOT / "pipeline" / "coreach"
+    top = {f"coreach.{p.stem}" for p in package.iterdir()
+           if (p.suffix == ".py" and p.stem != "__init__") or (p / "__init__.py").is_file()} - {"coreach.host"}
+    host = {f"coreach.host.{p.stem}" for p in (package / "host").glob("*.py")} - {"coreach.host.__init__",
+                                                                                   "coreach.host.api"}
+    assert top | host == forbidden
 
 
 def test_runtime_session_imports_without_torch_or_plugins():

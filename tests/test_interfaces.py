@@ -13,15 +13,15 @@ from omegaconf import OmegaConf
 from coreach import tracking
 from coreach.context import ContextSpec, build_context
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin
+from coreach.host.registry import build_plugin
 from coreach_plugins.interface.blend import PolicyBlending
 from coreach.decoder.reference import label, load
 from coreach.decoder.torch_interface import DecoderInterface
 from coreach_plugins.interface.direct import DirectControl
-from coreach_plugins.robot.urdf_arm import UrdfArm
+from coreach.world.urdf_arm import UrdfArm
 from coreach.decoder.policy import DecoderPolicy
-from coreach.protocols import Interface
-from coreach.scenario import load_scenario
+from coreach.host.protocols import Interface
+from coreach.world.scenario import load_scenario
 from coreach.vetting.records import LoopState
 
 CONF = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "interface"

@@ -57,6 +57,6 @@ def test_slurm_local_is_submitits_local_executor():
 
 @pytest.mark.parametrize("name", ["local", "slurm", "slurm_local"])
 def test_launcher_options_pass_the_cli_preflight(name, workdir):
-    from coreach.config_check import preflight
+    from coreach.config.check import preflight
 
     preflight("train", [f"hydra/launcher={name}", "seed=0,1"], multirun=True)

@@ -15,7 +15,7 @@ from torch.distributions import Normal, kl_divergence
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError
 from coreach.decoder.policy import DecoderPolicy
-from coreach.protocols import Posterior
+from coreach.host.protocols import Posterior
 from coreach.safety import SafetyLimits
 from coreach.training.terms import TermBatch
 from coreach_plugins.loss.goal_entropy import (

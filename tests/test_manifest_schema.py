@@ -14,7 +14,7 @@ import pytest
 from coreach.runtime.manifest import MANIFEST, BundleError, Manifest, onnx_interface
 
 FOLDER = Path("/bundles/b1")
-# a scene with one board and a person's head, and an arm of two spheres (coreach.scene_bodies.world_json)
+# a scene with one board and a person's head, and an arm of two spheres (coreach.world.scene_bodies.world_json)
 WORLD = {"clearance": 0.02,
          "obstacles": [{"name": "board", "shape": "box", "size": [0.2, 0.6, 0.02], "xyz": [0.7, 0.0, 0.1],
                         "rpy_deg": [0.0, 0.0, 0.0]}],
@@ -136,7 +136,7 @@ def _set(data: dict, dotted: str, value) -> None:
     ("onnx_parity", {"n": 0, "max_abs_diff": 0.0}, "onnx_parity.n"),
     ("belief", {"model": "boltzmann", "beta": "40"}, "belief.beta"),
     ("gate", [], "gate"),
-    # the scene's bodies are checked as a scene file is (coreach.scene_bodies): size, shape, sphere indices
+    # the scene's bodies are checked as a scene file is (coreach.world.scene_bodies): size, shape, sphere indices
     ("safety.world", {**WORLD, "obstacles": [{**WORLD["obstacles"][0], "size": [0.2, -0.6, 0.02]}]},
      r"safety.world, option obstacles\[0\]\.size"),
     ("safety.world", {**WORLD, "obstacles": [{**WORLD["obstacles"][0], "shape": "cone"}]},

@@ -17,7 +17,7 @@ from scipy.stats import chisquare
 
 from coreach.errors import ConfigError
 from coreach_plugins.operator.boltzmann import NO_INPUT, BoltzmannOperator
-from coreach.protocols import Operator
+from coreach.host.protocols import Operator
 
 OPERATOR_DIR = Path(__file__).resolve().parents[1] / "conf" / "coreach_conf" / "operator"
 # one-step progress (m) of M=2 modes x K=3 candidates: differences of a few mm, as in closed loop

@@ -1,4 +1,4 @@
-"""Options declared with type and range (coreach.option_specs): what passes, and the one line for what does not."""
+"""Options declared with type and range (coreach.config.option_specs): what passes, and the one line for what does not."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ from dataclasses import dataclass
 import pytest
 
 from coreach.errors import ConfigError
-from coreach.option_specs import check_options, choice, integer, number, text, vector
+from coreach.config.option_specs import check_options, choice, integer, number, text, vector
 
 
 @dataclass(kw_only=True)

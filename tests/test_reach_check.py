@@ -1,4 +1,4 @@
-"""The arm against a scene before data is made (coreach.reach_check, `coreach check-reach`).
+"""The arm against a scene before data is made (coreach.world.reach_check, `coreach check-reach`).
 
 Outside reference: the geometry of the shipped arm as its URDF writes it (shoulder centre 0.18 m above the
 base, 0.92 m from the shoulder centre to the tool point when stretched): a point farther than that from the
@@ -12,9 +12,9 @@ import math
 import numpy as np
 import pytest
 
-from coreach.reach_check import ReachOptions, check_reach, suggest_base_shift
-from coreach.scenario import Goal, Scenario, load_scenario
-from coreach_plugins.robot.urdf_arm import UrdfArm
+from coreach.world.reach_check import ReachOptions, check_reach, suggest_base_shift
+from coreach.world.scenario import Goal, Scenario, load_scenario
+from coreach.world.urdf_arm import UrdfArm
 from test_cli import run
 
 SHOULDER = np.array([0.0, 0.0, 0.18])

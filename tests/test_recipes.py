@@ -212,7 +212,7 @@ def test_two_recipes_two_seeds_end_to_end(workdir):
     assert md[0] == "```sh"
     words = shlex.split(md[1])
     assert words[:2] == [".venv/bin/coreach", "recipes"] and words[2:] == args
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
 
     again = compose_config("recipes", words[2:])
     assert list(again.select) == ["lin", "cvae"] and list(again.seeds) == [3, 5]

@@ -12,10 +12,10 @@ import pyarrow.parquet as pq
 import pytest
 from conftest import FAST, cli_env
 
-from coreach.config_check import compose_config
+from coreach.config.check import compose_config
 from coreach.episodes import load_parquet
 from coreach.errors import DataError
-from coreach.plugin_registry import build_plugin
+from coreach.host.registry import build_plugin
 from coreach.recordings.import_command import import_recordings
 
 rosbag2 = pytest.importorskip("rosbags.rosbag2")

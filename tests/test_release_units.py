@@ -20,7 +20,7 @@ from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach.decoder.torch_interface import DecoderInterface
 from coreach.decoder.onnx_interface import OnnxBundleInterface
 from coreach_plugins.robot.planar3 import Planar3
-from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
+from coreach.world.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release import gate as G
 from coreach.release import bundle_store, registry
@@ -192,7 +192,7 @@ def test_onnx_bundle_interface_refuses_an_altered_bundle(bundle, tmp_path):
 
 
 def test_replay_without_a_vetting_record_reports_and_passes(bundle, tmp_path):
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
 
     cfg = compose_config("replay", [f"bundle={bundle}", "suite=nominal", "suite.episodes=1",
                                     f"tracking.uri=sqlite:///{tmp_path / 'absent.db'}"])  # fmt: skip
@@ -426,7 +426,7 @@ def test_a_failing_settle_does_not_hide_why_the_publish_failed(tmp_path, monkeyp
 def test_release_settings_looser_than_shipped_are_named():
     """The shipped release settings are not relaxed; each loosened gate, fewer episodes than a suite's own, other
     suites, fewer parity samples or latency steps is named with its shipped value."""
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
     from coreach.release.relaxation import relaxed_settings
     from coreach.runtime.model_card import model_card
 

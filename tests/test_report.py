@@ -18,9 +18,9 @@ from coreach.control.safety_filter import SEPARATION
 from coreach.errors import ConfigError
 from coreach.decoder.torch_interface import DecoderInterface
 from coreach_plugins.interface.direct import DirectControl
-from coreach_plugins.robot.urdf_arm import UrdfArm
+from coreach.world.urdf_arm import UrdfArm
 from coreach.decoder.policy import DecoderPolicy
-from coreach.scenario import load_scenario
+from coreach.world.scenario import load_scenario
 from coreach.vetting.metrics import summarise
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.separation_metrics import FIGURES

@@ -267,7 +267,7 @@ def test_status_refuses_a_bundle_replaced_after_the_fetch(capsys, tmp_path):
 
     from coreach.release.bundle_writer import write_bundle
     from coreach.runtime.verify import sha256_file
-    from coreach_plugins.robot.urdf_arm import shipped_urdf
+    from coreach.world.urdf_arm import shipped_urdf
 
     released = write_bundle(tmp_path / "a", _policy(0), shipped_urdf(), _meta("run-a"), {}, {"ok": True})
     other = write_bundle(tmp_path / "b", _policy(1), shipped_urdf(), _meta("run-b"), {}, {"ok": True})

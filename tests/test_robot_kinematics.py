@@ -12,8 +12,8 @@ import torch
 
 from coreach.errors import ConfigError
 from coreach_plugins.robot.planar3 import Planar3
-from coreach_plugins.robot.urdf_arm import UrdfArm, shipped_urdf
-from coreach.protocols import Robot
+from coreach.world.urdf_arm import UrdfArm, shipped_urdf
+from coreach.host.protocols import Robot
 
 pin = pytest.importorskip("pinocchio")
 
@@ -298,7 +298,7 @@ def test_batched_fk_of_ten_thousand_configurations_is_finite():
 
 
 def test_fk_and_jacobian_in_one_pass_matches_separate_calls():
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     arm = UrdfArm()
     q = torch.rand(20, arm.dof, dtype=torch.float64) - 0.5

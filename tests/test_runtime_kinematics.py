@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from coreach.errors import ConfigError
-from coreach_plugins.robot.urdf_arm import shipped_urdf
-from coreach.geometry import rpy_to_matrix
+from coreach.world.urdf_arm import shipped_urdf
+from coreach.world.geometry import rpy_to_matrix
 from coreach.runtime.kinematics import Chain, quat_to_matrix
 
 pin = pytest.importorskip("pinocchio")

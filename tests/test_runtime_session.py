@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 
 from coreach.context import ContextSpec
 from coreach.errors import DataError
-from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
+from coreach.world.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import BundleError

@@ -35,8 +35,8 @@ NEW_HEAD = ((0.30, 0.55, 0.35), (0.0, 0.0, 0.3))
 
 @pytest.fixture(scope="module")
 def bundle(tmp_path_factory):
-    from coreach.scenario import load_scenario
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.scenario import load_scenario
+    from coreach.world.urdf_arm import UrdfArm
 
     return fb.random_bundle(tmp_path_factory.mktemp("sep") / "bundle", UrdfArm(), load_scenario("bedside_shelf"))
 

@@ -29,7 +29,7 @@ from coreach.episodes import load_parquet
 from coreach.decoder.policy import DecoderPolicy
 from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.kinematics import Chain
-from coreach_plugins.robot.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
+from coreach.world.urdf_arm import SEVEN_JOINT_ARM_HOME, shipped_urdf
 
 pytestmark = pytest.mark.slow
 
@@ -63,8 +63,8 @@ def bundle(tmp_path_factory) -> Path:
     pose is clear of them (person 0.29 m, beyond the 0.23 m reduced-speed zone).
     """
     from coreach.release.metadata import _world_section
-    from coreach.scenario import load_scenario
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.scenario import load_scenario
+    from coreach.world.urdf_arm import UrdfArm
 
     torch.manual_seed(0)
     spec = ContextSpec(dof=7, n_goals=len(GOALS))
@@ -281,7 +281,7 @@ def test_page_draws_every_scene_body_where_the_session_has_it(server, browser, b
     them (the shipped scene has rotated capsules), and the zones grow the person's radii by the keep-out and
     reduced-speed distances."""
     from coreach.control.bodies import pack
-    from coreach.scene_bodies import world_from_json
+    from coreach.world.scene_bodies import world_from_json
 
     url, _, _ = server
     manifest = json.loads((bundle / "manifest.json").read_text())
@@ -573,7 +573,7 @@ def test_recorded_drives_relabelled_for_aggregation(bundle, tmp_path):
     from coreach.testdrive.finetune import relabel_drives
     from coreach.testdrive.sim import Drive
     from coreach_plugins.labeller.scripted import ScriptedLabeller
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     now = [0.0]
     drive = Drive(Session.open(bundle), rate_hz=50.0, record_dir=tmp_path, clock=lambda: now[0])

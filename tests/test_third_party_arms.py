@@ -33,7 +33,7 @@ def _robots() -> Path:
     return third_party_robots()
 
 
-# These arms' collision meshes are bounded by one capsule per link (coreach.link_model), 3-5 cm looser than the
+# These arms' collision meshes are bounded by one capsule per link (coreach.world.link_model), 3-5 cm looser than the
 # meshes: in the bedside shelf with its bodies, such an arm reaches the book only with some sphere touching the
 # shelf. The kinematics and self-check tests below are about reading the arms, so they use the same goals
 # without bodies (`_bare_scene`); `test_loose_mesh_bounds_make_the_bodies_refuse_the_book` shows the world's
@@ -66,8 +66,8 @@ def _bare_suite(folder: Path, scene: Path) -> Path:
 
 @pytest.mark.slow
 def test_loose_mesh_bounds_make_the_bodies_refuse_the_book():
-    from coreach.reach_check import check_reach
-    from coreach.scenario import load_scenario
+    from coreach.world.reach_check import check_reach
+    from coreach.world.scenario import load_scenario
 
     rows = {r.goal: r for r in check_reach(_arm("arm7-a"), load_scenario("bedside_shelf"))}
     assert rows["book"].approach_reachable and rows["book"].fine_reachable  # the poses themselves solve
@@ -76,7 +76,7 @@ def test_loose_mesh_bounds_make_the_bodies_refuse_the_book():
 
 
 def _arm(key: str, **placement):
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     rel, tool = ARMS[key]
     return UrdfArm(urdf=str(_robots() / rel), tool_link=tool, name=key, **placement)
@@ -115,7 +115,7 @@ def test_kinematics_agree_with_pinocchio(key):
     ],
 )
 def test_unsupported_paths_are_refused_in_one_line(key, tool, expected):
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     with pytest.raises(ConfigError) as err:
         UrdfArm(urdf=str(_robots() / ARMS[key][0]), tool_link=tool, name=key)
@@ -129,8 +129,8 @@ def test_a_third_party_arm_from_scene_check_to_vetting(workdir):
     arm's speed limits are about twice the shipped arm's, and the default noise is a fraction of them) they
     reach every goal in 90-100% of episodes (a few wide starts end at joint 2's limit; measured, seed 0), so
     the self-check is set to 0.85 and the misses are dropped; then a short training and vetting run."""
-    from coreach.reach_check import check_reach
-    from coreach.scenario import load_scenario
+    from coreach.world.reach_check import check_reach
+    from coreach.world.scenario import load_scenario
 
     arm = _arm("arm7-a")
     scene = _bare_scene(workdir)
@@ -179,11 +179,11 @@ def test_a_third_party_arm_from_scene_check_to_vetting(workdir):
 def test_other_arms_reach_the_scene_but_their_demonstrations_are_refused_with_a_reason(key, cause, tmp_path):
     """Scene check: every goal reachable from some start. Demonstrations from the arm's default home (the middle
     of its joint ranges) with the same options as arm-a's end-to-end run: refused, one line, goal and cause."""
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
     from coreach.errors import DataError
-    from coreach.plugin_registry import build_plugin
-    from coreach.reach_check import check_reach
-    from coreach.scenario import load_scenario
+    from coreach.host.registry import build_plugin
+    from coreach.world.reach_check import check_reach
+    from coreach.world.scenario import load_scenario
 
     rel, tool = ARMS[key]
     scene = _bare_scene(tmp_path)

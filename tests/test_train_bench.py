@@ -6,7 +6,7 @@ import pytest
 import torch
 
 from coreach.bench.train_bench import _without, run
-from coreach.config_check import compose_config
+from coreach.config.check import compose_config
 from coreach.errors import ConfigError
 
 TINY = ["dataset.episodes=40", "data.batch_size=128", "bench.epochs=1", "bench.rounds=1"]

@@ -9,8 +9,8 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 from coreach.errors import ConfigError
-from coreach.urdf_placement import TCP_LINK, place_arm
-from coreach_plugins.robot.urdf_arm import shipped_urdf
+from coreach.world.urdf_placement import TCP_LINK, place_arm
+from coreach.world.urdf_arm import shipped_urdf
 
 TEXT = open(shipped_urdf()).read()
 
@@ -63,7 +63,7 @@ def test_robot_config_places_the_arm_for_every_stage():
     import torch
 
     from coreach.runtime.kinematics import Chain
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     base_xyz, base_rpy_deg, tool_xyz, tool_rpy_deg = [0.2, -0.4, 0.7], [0.0, 0.0, 90.0], [0.0, 0.0, 0.05], [0, 30, 0]
     arm = UrdfArm(base_xyz=base_xyz, base_rpy_deg=base_rpy_deg, tool_xyz=tool_xyz, tool_rpy_deg=tool_rpy_deg)
@@ -85,16 +85,16 @@ def test_robot_config_places_the_arm_for_every_stage():
 
 
 def test_robot_config_refuses_a_placement_that_is_not_three_numbers():
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     with pytest.raises(ConfigError, match=r"option robot.base_xyz: expected three finite numbers"):
         UrdfArm(base_xyz=[0.1, 0.2])
 
 
 def test_a_decoder_is_used_only_on_the_arm_and_placement_it_was_trained_on():
-    from coreach.robot_identity import check_same_robot, robot_tags
+    from coreach.world.robot_identity import check_same_robot, robot_tags
     from coreach_plugins.robot.planar3 import Planar3
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     trained = robot_tags(UrdfArm())
     check_same_robot(trained, UrdfArm(), "candidate x")  # the same arm passes
@@ -108,7 +108,7 @@ def test_a_decoder_is_used_only_on_the_arm_and_placement_it_was_trained_on():
 def test_demonstrations_of_a_moved_arm_are_not_taken_from_the_unmoved_arms_cache(tmp_path):
     """Same name, joints and limits, another base: the cached demonstrations must not be reused."""
     from coreach_plugins.dataset.scripted_shelf import ScriptedShelf
-    from coreach_plugins.robot.urdf_arm import UrdfArm
+    from coreach.world.urdf_arm import UrdfArm
 
     data = ScriptedShelf(cache_dir=str(tmp_path))
     assert data.cache_path(UrdfArm()) == data.cache_path(UrdfArm())

@@ -8,8 +8,8 @@ import torch
 
 from coreach.errors import ConfigError
 from coreach.runtime.kinematics import Chain
-from coreach.urdf import parse_path, robot_name
-from coreach_plugins.robot.urdf_arm import UrdfArm, shipped_urdf
+from coreach.world.urdf import parse_path, robot_name
+from coreach.world.urdf_arm import UrdfArm, shipped_urdf
 
 
 def test_runtime_chain_and_plugin_agree_on_the_shipped_arm():

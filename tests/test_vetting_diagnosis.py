@@ -12,7 +12,7 @@ import torch
 from scipy.stats import binomtest
 
 from coreach.control.belief_model import BoltzmannGoalBelief
-from coreach_plugins.robot.urdf_arm import UrdfArm
+from coreach.world.urdf_arm import UrdfArm
 from coreach.safety import SafetyLimits
 from coreach.vetting.diagnosis import CAUSES, DiagnosisRules, diagnose, flat_diagnosis
 from coreach.vetting.loop import JOINT_LIMIT, SEPARATION, SPEED_CAP, rollout

@@ -11,11 +11,11 @@ import numpy as np
 import pytest
 import torch
 
-from coreach.geometry import rotation_error
+from coreach.world.geometry import rotation_error
 from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.operator.boltzmann import BoltzmannOperator
-from coreach_plugins.robot.urdf_arm import UrdfArm
-from coreach.protocols import Interface, Operator
+from coreach.world.urdf_arm import UrdfArm
+from coreach.host.protocols import Interface, Operator
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout, rollout_per_episode
 from coreach.vetting.suite import suite_from_dict

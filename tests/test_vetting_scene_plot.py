@@ -12,12 +12,12 @@ import torch
 
 from coreach.control.bodies import Primitive
 from coreach.control.safety_filter import SEPARATION
-from coreach.scenario import load_scenario
+from coreach.world.scenario import load_scenario
 from coreach.vetting.records import RolloutRecord
 from coreach.vetting.scene_plot import (body_outline, convex_hull, elbow_joint, elbow_path, plot_scene_paths,
                                         sample_episodes, scene_figure)  # fmt: skip
-from coreach.world import arm_world
-from coreach_plugins.robot.urdf_arm import UrdfArm
+from coreach.world.scene_arm import arm_world
+from coreach.world.urdf_arm import UrdfArm
 
 ROBOT = UrdfArm()
 CHAIN = arm_world(ROBOT, load_scenario("bedside_shelf")).chain

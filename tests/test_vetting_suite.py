@@ -12,8 +12,8 @@ import yaml
 
 from coreach.demonstrator import rollout as scripted
 from coreach.errors import ConfigError
-from coreach_plugins.robot.urdf_arm import UrdfArm
-from coreach.scenario import load_scenario
+from coreach.world.urdf_arm import UrdfArm
+from coreach.world.scenario import load_scenario
 from coreach.vetting.suite import MIN_SEED, builtin_suites, load_suite
 
 ROBOT = UrdfArm()
@@ -147,7 +147,7 @@ def test_unknown_override_and_unknown_name():
 def test_suite_scene_and_operator_are_config_groups_with_typed_overrides():
     """`suite.episodes`, `scenario.goals.<i>.position` and `operator=` compose like any Hydra override, and the
     suite's own choice of operator gives way to the command line's."""
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
     from coreach.vetting.suite import suite_from_config
 
     cfg = compose_config("vet", ["suite=held-out", "suite.episodes=5", "scenario.goals.1.position=[0.6,-0.2,0.1]"])
@@ -163,7 +163,7 @@ def test_suite_scene_and_operator_are_config_groups_with_typed_overrides():
                                              ("scenario.jitter=-0.1", "scenario.jitter"),
                                              ("scenario.goals.1.position=[0.6,-0.2]", "goals[1].position")])
 def test_bad_group_values_fail_at_compose_time(override, where):
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
 
     with pytest.raises(ConfigError) as err:
         compose_config("vet", [override])
@@ -171,8 +171,8 @@ def test_bad_group_values_fail_at_compose_time(override, where):
 
 
 def test_a_labs_own_suite_file_composes_through_the_same_schema(tmp_path):
-    from coreach.config_check import compose_config
-    from coreach.group_compose import lab_file_overrides
+    from coreach.config.check import compose_config
+    from coreach.config.compose import lab_file_overrides
     from coreach.vetting.suite import suite_from_config
 
     mine = tmp_path / "mine.yaml"

@@ -18,7 +18,7 @@ from coreach.vetting.suite import suite_from_dict
 from coreach.vetting.trajectories import write_trajectories
 from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.interface.direct import DirectControl
-from coreach_plugins.robot.urdf_arm import UrdfArm
+from coreach.world.urdf_arm import UrdfArm
 
 # 2 episodes of 2 s (20 steps): enough to move, small enough for a second
 TINY = dict(scenario="bedside_shelf", episodes=2, seed=12345, horizon_s=2.0,
@@ -68,7 +68,7 @@ def test_parquet_reads_back_the_record(tiny_record, tmp_path):
 
 def test_vet_option_writes_the_file_and_names_it(workdir, capsys):
     from coreach.commands.summaries import print_summary
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
     from coreach.vetting.stage import vet
 
     assert compose_config("vet", [])["trajectories"] is False  # off unless asked

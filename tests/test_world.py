@@ -18,20 +18,20 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import coreach.demonstrator as demonstrator
-from coreach.group_compose import read_yaml_file
+from coreach.config.compose import read_yaml_file
 from coreach.errors import ConfigError, DataError
-from coreach.reach_check import check_reach
+from coreach.world.reach_check import check_reach
 from coreach.release.gate import Thresholds, separation_gates
 from coreach.control.separation import row_thresholds
 from coreach.safety import SEPARATION, SafetyLimits
-from coreach.scenario import Scenario, load_scenario
+from coreach.world.scenario import Scenario, load_scenario
 from coreach.vetting.loop import rollout
 from coreach.vetting.separation_metrics import separation_summary
 from coreach.vetting.suite import suite_from_dict
-from coreach.world import arm_world, check_episodes_clear
+from coreach.world.scene_arm import arm_world, check_episodes_clear
 from coreach.control.belief_model import BoltzmannGoalBelief
 from coreach_plugins.interface.direct import DirectControl
-from coreach_plugins.robot.urdf_arm import UrdfArm
+from coreach.world.urdf_arm import UrdfArm
 
 ROBOT = UrdfArm()
 COREACH = str(Path(sys.executable).parent / "coreach")

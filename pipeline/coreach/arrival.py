@@ -8,7 +8,7 @@ from dataclasses import asdict, dataclass
 import torch
 
 from coreach.errors import DataError
-from coreach.geometry import angle_between
+from coreach.world.geometry import angle_between
 
 __all__ = ["GoalArrival", "arrival_by_goal", "check_arrival", "DEFAULT_MIN_ARRIVAL"]
 

@@ -209,9 +209,9 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
     """Run a subcommand through hydra.main (so Hydra's launchers serve sweeps) and collect summaries."""
     import hydra
 
-    from coreach.config_check import preflight
-    from coreach.group_compose import lab_file_overrides
-    from coreach.group_compose import search_path_overrides
+    from coreach.config.check import preflight
+    from coreach.config.compose import lab_file_overrides
+    from coreach.config.compose import search_path_overrides
 
     config_name, target = HYDRA_COMMANDS[command]
     overrides, lab_conf = lab_file_overrides(overrides)  # suite=./mine.yaml: a lab's own file as an option
@@ -227,7 +227,7 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
     collected: list[dict] = []
 
     def task(cfg):
-        from coreach.workdirs import output_dir
+        from coreach.config.workdirs import output_dir
 
         try:
             summary = task_fn(cfg)

@@ -22,13 +22,13 @@ from torch import Tensor
 from coreach.arrival import DEFAULT_MIN_ARRIVAL, arrival_by_goal, check_arrival
 from coreach.episodes import Episode, EpisodeSet
 from coreach.errors import ConfigError
-from coreach.geometry import matrix_to_quat, rotation_error
+from coreach.world.geometry import matrix_to_quat, rotation_error
 from coreach.control.safety_filter import SafetyLimits
 from coreach.control.servo import dls_step, servo_twist
-from coreach.protocols import Robot
-from coreach.scenario import Layout, Scenario, load_scenario
-from coreach.detour import detour_points, null_space_push
-from coreach.world import arm_world, check_episodes_clear
+from coreach.host.protocols import Robot
+from coreach.world.scenario import Layout, Scenario, load_scenario
+from coreach.world.detour import detour_points, null_space_push
+from coreach.world.scene_arm import arm_world, check_episodes_clear
 
 __all__ = ["dls_step", "scale_to_speed_limits", "clamp_to_joint_limits", "Rollout", "rollout", "generate", "completed_mask",
            "expert_twist", "expert_action"]

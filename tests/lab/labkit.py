@@ -91,8 +91,8 @@ def cli_json(args: list[str], cwd: Path, env: dict | None = None, timeout: float
 
 def warm_dataset(cwd: Path, overrides: list[str]) -> None:
     """Generate the demonstrations once in `cwd/data`, so parallel runs read the cache instead of racing."""
-    from coreach.config_check import compose_config
-    from coreach.plugin_registry import build_plugin
+    from coreach.config.check import compose_config
+    from coreach.host.registry import build_plugin
 
     here = Path.cwd()
     os.chdir(cwd)
@@ -114,7 +114,7 @@ def train_in_child(workdir: str, overrides: list[str], env: dict[str, str], queu
         import torch
 
         torch.set_num_threads(1)  # 8 processes share 2 cores
-        from coreach.config_check import compose_config
+        from coreach.config.check import compose_config
         from coreach.training.run import train
 
         summary = train(compose_config("train", overrides))

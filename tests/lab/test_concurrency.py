@@ -22,7 +22,7 @@ def _context():
     """Worker processes forked from a server that imported coreach once: eight processes at once without
     paying eight interpreter start-ups and torch imports on a 2-core machine."""
     ctx = mp.get_context("forkserver")
-    ctx.set_forkserver_preload(["labkit", "coreach.training.run", "coreach.config_check", "mlflow.tracking"])
+    ctx.set_forkserver_preload(["labkit", "coreach.training.run", "coreach.config.check", "mlflow.tracking"])
     return ctx
 
 
@@ -46,7 +46,7 @@ def _run_all(target, argsets, timeout=300):
 
 def _expected_params(workdir, overrides) -> dict[str, str]:
     """The params one run means to record (training/run.py's run_params), seed aside."""
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
     from coreach.training.run import prepare, run_params
 
     here = os.getcwd()

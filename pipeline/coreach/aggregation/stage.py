@@ -19,14 +19,14 @@ from mlflow.entities import Metric, Param
 from omegaconf import DictConfig, OmegaConf
 
 from coreach import tracking
-from coreach.world import arm_world
+from coreach.world.scene_arm import arm_world
 from coreach.aggregation.visits import visit_episodes, visits_from_record
-from coreach.command_line import command_line_options
+from coreach.config.command_line import command_line_options
 from coreach.episodes import EpisodeSet, save_parquet
 from coreach.errors import ConfigError
 from coreach.decoder import reference as decoder_reference
 from coreach.decoder.torch_interface import DecoderInterface
-from coreach.plugin_registry import build_plugin, builtin_option
+from coreach.host.registry import build_plugin, builtin_option
 from coreach.safety import limits_from_config
 from coreach.training.run import train
 from coreach.vetting.loop import rollout

@@ -10,7 +10,7 @@ import torch
 from torch import Tensor
 
 from coreach.episodes import Episode
-from coreach.geometry import matrix_to_quat, rotation_error
+from coreach.world.geometry import matrix_to_quat, rotation_error
 from coreach.vetting.records import RolloutRecord
 from coreach.vetting.suite import EpisodePlan
 
@@ -31,7 +31,7 @@ class Visits:
     episode: Tensor  # [N] long: index of the rollout episode
     step: Tensor  # [N] long: step within that episode
     dt: float
-    world: Any = None  # the suite scene's ArmWorld (coreach.world.arm_world), None without bodies: labels
+    world: Any = None  # the suite scene's ArmWorld (coreach.world.scene_arm.arm_world), None without bodies: labels
     # then go through the same separation step and null-space push as the demonstrator's
 
     def __len__(self) -> int:

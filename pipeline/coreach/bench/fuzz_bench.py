@@ -58,7 +58,7 @@ def random_bundle(folder: str | Path, robot, scene, world: bool = True, seed: in
     import torch
 
     from coreach.context import ContextSpec
-    from coreach.plugin_registry import builtin_option
+    from coreach.host.registry import builtin_option
     from coreach.decoder.policy import DecoderPolicy
     from coreach.release.bundle_writer import write_bundle
     from coreach.release.metadata import _nominal_layout, _world_section
@@ -493,8 +493,8 @@ def run(cfg) -> dict:
             folder = bundle_folder(bundle, uri=cfg.get("tracking", {}).get("uri"))
             label = str(folder.resolve())
         else:
-            from coreach.plugin_registry import build_plugin
-            from coreach.scenario import load_scenario
+            from coreach.host.registry import build_plugin
+            from coreach.world.scenario import load_scenario
 
             scene = load_scenario(str(cfg.scenario))
             box = (tuple(cfg.workspace_min), tuple(cfg.workspace_max))

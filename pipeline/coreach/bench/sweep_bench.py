@@ -65,7 +65,7 @@ def _sweep(args: list[str], env: dict) -> tuple[float, list[dict]]:
 
 
 def run(cfg: DictConfig) -> dict:
-    from coreach.config_check import compose_config
+    from coreach.config.check import compose_config
     from coreach.training.run import prepare
 
     b = cfg.bench

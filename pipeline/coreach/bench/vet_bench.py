@@ -22,7 +22,7 @@ from coreach.context import ContextSpec
 from coreach.errors import ConfigError
 from coreach.decoder import reference as decoder_reference
 from coreach.decoder.torch_interface import DecoderInterface
-from coreach.plugin_registry import build_plugin, builtin_option
+from coreach.host.registry import build_plugin, builtin_option
 from coreach.tracking import resolve_uri
 from coreach.safety import limits_from_config
 from coreach.vetting.loop import rollout, rollout_per_episode

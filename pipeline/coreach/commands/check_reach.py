@@ -7,9 +7,9 @@ from dataclasses import asdict
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin
-from coreach.reach_check import ReachOptions, check_reach, suggest_base_shift
-from coreach.scenario import load_scenario
+from coreach.host.registry import build_plugin
+from coreach.world.reach_check import ReachOptions, check_reach, suggest_base_shift
+from coreach.world.scenario import load_scenario
 
 
 def run(cfg: DictConfig) -> dict:

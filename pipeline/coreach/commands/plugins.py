@@ -8,7 +8,7 @@ from dataclasses import asdict
 from rich.console import Console
 from rich.table import Table
 
-from coreach.plugin_registry import discover
+from coreach.host.registry import discover
 
 
 def show_plugins(as_json: bool) -> int:

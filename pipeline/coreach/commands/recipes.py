@@ -151,8 +151,8 @@ def stage_command(command: str, where: str):
 
 def compose_stage(config_name: str, overrides: list[str], where: str) -> DictConfig:
     """Compose a sub-stage's config inside the running Hydra app; failures name the recipe or option."""
-    from coreach.group_compose import compose_here
-    from coreach.schemas import check_groups, check_plugins
+    from coreach.config.compose import compose_here
+    from coreach.config.plugin_options import check_groups, check_plugins
 
     cfg = compose_here(config_name, overrides, where)
     try:
@@ -199,8 +199,8 @@ def _say(message: str) -> None:
 def recipes(cfg: DictConfig) -> dict:
     """Train every selected recipe once per seed, vet all decoders and the baselines on each suite, and write
     results.md, results.csv and results.json into `out` (also logged on one MLflow run)."""
-    from coreach.plugin_registry import build_plugin
-    from coreach.group_compose import suite_overrides
+    from coreach.host.registry import build_plugin
+    from coreach.config.compose import suite_overrides
     from coreach.vetting.suite import suite_from_config
 
     t0 = time.perf_counter()

@@ -14,7 +14,7 @@ Every primitive is written as one shape: a box of half extents h, rounded by a r
 (Textbook signed distance functions of convex primitives; the comparison is tests/test_bodies_coal.py, against
 the coal collision library.)
 
-A link of the arm is modelled as spheres (coreach.link_model), so the distance between a link body and an
+A link of the arm is modelled as spheres (coreach.world.link_model), so the distance between a link body and an
 obstacle is `sdf(centre) - sphere radius`: exact for a sphere, and one code path for every obstacle at once.
 The gradient of the distance with respect to the sphere centre (a unit vector, the direction in which the
 distance grows fastest) is returned with it: the separation filter needs it to predict how a command changes

@@ -1,6 +1,6 @@
 """Separation from furniture and from the person: the safety filter's last step, and what vetting measures.
 
-The arm is a set of spheres (coreach.link_model), each attached to one link. For every pair of (sphere,
+The arm is a set of spheres (coreach.world.link_model), each attached to one link. For every pair of (sphere,
 body) and every allowed pair of spheres on non-adjacent links (self-collision), the filter knows the distance
 d (coreach.control.bodies) and its gradient with respect to the joint positions, g = n^T J_s (n: the unit
 direction in which d grows, J_s [3, n]: the sphere centre's linear Jacobian). A command qd then closes the gap
@@ -75,7 +75,7 @@ class SeparationSettings:
 @dataclass
 class World:
     """What the filter keeps the arm clear of: furniture and the person as primitives, the link spheres
-    (centres in their link frames and radii, from coreach.link_model), the self-collision pairs, and the
+    (centres in their link frames and radii, from coreach.world.link_model), the self-collision pairs, and the
     rule's settings. `set_poses` moves bodies at run time (e.g. the head from a lab's perception)."""
 
     furniture: list[Primitive]

@@ -3,7 +3,7 @@
 Resolved-rate control (Whitney 1969) with damped least squares (Nakamura & Hanafusa 1986; Wampler 1986):
 twist v = [k_p (p* - p) capped in norm at v_max, k_r rot_err(R*, R) capped in norm at w_max], then
 qd = J^T (J J^T + damping^2 I)^-1 v. `dls_step` and `cap_norm` are array-API code (numpy or torch);
-`servo_twist` uses coreach.geometry's rotation error (torch).
+`servo_twist` uses coreach.world.geometry's rotation error (torch).
 """
 
 from __future__ import annotations
@@ -37,7 +37,7 @@ def servo_twist(pos, rot, target, target_rot, k_p: float, k_r: float, v_max: flo
     capped in norm."""
     import torch
 
-    from coreach.geometry import rotation_error
+    from coreach.world.geometry import rotation_error
 
     rot_err = rotation_error(target_rot, rot)
     return torch.cat([cap_norm(k_p * (target - pos), v_max), cap_norm(k_r * rot_err, w_max)], dim=-1)

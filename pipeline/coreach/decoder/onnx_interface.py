@@ -14,7 +14,7 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
-from coreach.interfaces import STICK_DIM, episode_sticks
+from coreach.host.interfaces import STICK_DIM, episode_sticks
 from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes, verify_bundle
 
 # Stick step of the central differences behind `stick_gain`: the graph runs in float32, so the rounding error

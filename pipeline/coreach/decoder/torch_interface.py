@@ -7,7 +7,7 @@ from torch import Tensor
 
 from coreach.errors import ConfigError
 from coreach.decoder.policy import DecoderPolicy
-from coreach.interfaces import STICK_DIM, episode_sticks
+from coreach.host.interfaces import STICK_DIM, episode_sticks
 
 class DecoderInterface:
     """stick [K, 2] (or [E, K, 2]) -> policy(stick, context) in every episode; one mode. `source`: where the

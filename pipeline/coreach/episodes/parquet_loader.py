@@ -17,7 +17,7 @@ from coreach.errors import DataError
 if TYPE_CHECKING:
     import pyarrow as pa
 
-    from coreach.protocols import Robot
+    from coreach.host.protocols import Robot
 
 
 def load_parquet(path: str | os.PathLike, robot: Robot | None = None, min_steps: int = 2) -> EpisodeSet:
@@ -211,7 +211,7 @@ def _check_speeds(qd: np.ndarray, rows: _Rows, robot: Robot, where: str, joint_n
 def _forward_kinematics(robot: Robot, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     import torch
 
-    from coreach.geometry import matrix_to_quat
+    from coreach.world.geometry import matrix_to_quat
 
     with torch.no_grad():
         pos, rot = robot.fk(torch.as_tensor(q, dtype=torch.float64))

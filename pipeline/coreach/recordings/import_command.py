@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 from omegaconf import DictConfig
 
-from coreach.command_line import command_line_options
+from coreach.config.command_line import command_line_options
 from coreach.episodes import EpisodeSet
 from coreach.errors import ConfigError, DataError
 from coreach.recordings.bag_reader import read_bag
@@ -21,8 +21,8 @@ from coreach.recordings.to_episodes import ArmLimits, build_episodes, recording_
 
 def import_recordings(cfg: DictConfig) -> dict:
     """Read every input, check and resample it, cut it at goal-label changes, and write one Parquet file."""
-    from coreach.plugin_registry import build_plugin
-    from coreach.scenario import load_scenario
+    from coreach.host.registry import build_plugin
+    from coreach.world.scenario import load_scenario
 
     inputs, topics, checks, dt, min_steps = read_options(cfg)
     robot = build_plugin(cfg.robot, "robot")

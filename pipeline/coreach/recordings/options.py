@@ -1,4 +1,4 @@
-"""The options of `coreach import-recordings`, each with its type and range (checked by coreach.option_specs)."""
+"""The options of `coreach import-recordings`, each with its type and range (checked by coreach.config.option_specs)."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ from dataclasses import dataclass
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
-from coreach.option_specs import check_options, choice, integer, number, text
+from coreach.config.option_specs import check_options, choice, integer, number, text
 from coreach.recordings.timing import TimingLimits
 from coreach.recordings.to_episodes import Checks
 from coreach.recordings.topics import CLOCKS, TopicMap

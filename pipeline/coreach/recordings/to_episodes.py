@@ -131,7 +131,7 @@ def build_episodes(pieces: list[Piece], robot, goal_names: list[str], layout, fi
     """Episodes with tool poses from the robot's forward kinematics and the scenario's nominal layout."""
     import torch
 
-    from coreach.geometry import matrix_to_quat
+    from coreach.world.geometry import matrix_to_quat
 
     index = {g: i for i, g in enumerate(goal_names)}
     q_all = np.concatenate([p.q for p in pieces])

@@ -119,7 +119,7 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
     [G,3]}, dataset_fingerprint, training_run_id, git_commit, safety.workspace_min/max [3] (m, base frame).
     meta (optional): tool_link, q_home, belief {beta, floor, min_motion}, safety {tcp_speed_max,
     watchdog_timeout_s, lookahead_s, speed_fraction}, stick {deadband}, tolerances {...}, world (the manifest's
-    safety.world section, coreach.scene_bodies.world_json; {} without bodies).
+    safety.world section, coreach.world.scene_bodies.world_json; {} without bodies).
     Bad metadata is a one-line ConfigError naming `release meta.<key>`; `files` stays empty for write_bundle.
     """
     # imported here so verify_bundle needs no more than numpy
@@ -258,6 +258,6 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
 
 
 def _urdf_robot_name(text: str) -> str | None:
-    from coreach.urdf import robot_name  # the one URDF reader; the text was already parsed by Chain
+    from coreach.world.urdf import robot_name  # the one URDF reader; the text was already parsed by Chain
 
     return robot_name(text)

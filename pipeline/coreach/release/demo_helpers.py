@@ -6,7 +6,7 @@ import logging
 
 from omegaconf import DictConfig
 
-from coreach.group_compose import suite_overrides
+from coreach.config.compose import suite_overrides
 from coreach.release import registry
 
 log = logging.getLogger("coreach.release")

@@ -9,11 +9,11 @@ from omegaconf import ListConfig
 
 from coreach.errors import ConfigError
 from coreach.decoder.torch_interface import DecoderInterface
-from coreach.plugin_registry import build_plugin
+from coreach.host.registry import build_plugin
 from coreach.release import gate as G
 from coreach.release.bundle_writer import write_bundle
 from coreach.release.relaxation import relaxed_settings
-from coreach.robot_identity import check_same_robot
+from coreach.world.robot_identity import check_same_robot
 from coreach.runtime.bundle import PARITY_TOLERANCE, BundleError, verify_bundle
 from coreach.safety import limits_from_config, workspace_box
 from coreach.vetting.loop import rollout

@@ -22,7 +22,7 @@ from coreach.runtime.kinematics import Chain
 from coreach.runtime.session import arm_world_from_manifest
 from coreach.errors import ConfigError
 from coreach.decoder.onnx_interface import OnnxBundleInterface
-from coreach.plugin_registry import build_option
+from coreach.world.urdf_arm import UrdfArm
 from coreach.runtime.belief_manifest import belief_from_manifest
 from coreach.release.gate import count_violations
 from coreach.release.bundle_store import bundle_folder
@@ -47,8 +47,7 @@ def bundle_robot(m: Manifest):
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "robot.urdf"
         path.write_bytes(data)
-        return build_option("robot", "seven_joint_arm", urdf=str(path), tool_link=m.tool_link, home=m.q_home.tolist(),
-                            name=m.robot_name)
+        return UrdfArm(urdf=str(path), tool_link=m.tool_link, home=m.q_home.tolist(), name=m.robot_name)
 
 
 def bundle_limits(m: Manifest) -> SafetyLimits:

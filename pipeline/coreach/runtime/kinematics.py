@@ -6,8 +6,8 @@ from pathlib import Path
 
 import numpy as np
 
-from coreach.geometry import quat_to_matrix, rpy_to_matrix
-from coreach.urdf import JointSpec, parse_path, read_path
+from coreach.world.geometry import quat_to_matrix, rpy_to_matrix
+from coreach.world.urdf import JointSpec, parse_path, read_path
 
 __all__ = ["Chain", "SpherePoints", "quat_to_matrix"]  # quat_to_matrix re-exported for the runtime session
 

@@ -92,7 +92,7 @@ class Manifest:
     watchdog_timeout_s: float = _at("safety.watchdog_timeout_s", "number", lo=0.0, open_lo=True)
     lookahead_s: float = _at("safety.lookahead_s", "number", lo=0.0, open_lo=True)
     speed_fraction: float = _at("safety.speed_fraction", "number", lo=0.0, hi=1.0, open_lo=True)  # of URDF limits
-    # the scene's bodies, the separation settings and the arm's sphere model (coreach.scene_bodies.world_json);
+    # the scene's bodies, the separation settings and the arm's sphere model (coreach.world.scene_bodies.world_json);
     # {} = no bodies (the separation step is off)
     world: dict[str, Any] = _at("safety.world", "mapping")
     tolerances: dict[str, Any] = _at("tolerances", "mapping")
@@ -297,7 +297,7 @@ def _check_across(m: Manifest) -> None:
     _number("onnx_parity.max_abs_diff", _get(m.onnx_parity, "max_abs_diff", "onnx_parity"), lo=0.0)
     _check_belief(m.belief)
     if m.world:
-        from coreach.scene_bodies import world_from_json
+        from coreach.world.scene_bodies import world_from_json
 
         try:
             _, _, _, links = world_from_json(m.world, "safety.world")

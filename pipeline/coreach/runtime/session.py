@@ -32,7 +32,7 @@ from coreach.runtime.kinematics import Chain, quat_to_matrix
 from coreach.control.belief_tracker import track
 from coreach.control.safety_filter import JOINT_LIMIT, SEPARATION, SPEED_CAP, SafetyLimits
 from coreach.runtime.arm_world import ArmWorld
-from coreach.scene_bodies import world_from_json
+from coreach.world.scene_bodies import world_from_json
 
 # keep_inside computes 0 * (limit - q): an infinite (continuous-joint) limit would give nan, so unbounded
 # joints get a bound no arm reaches instead.

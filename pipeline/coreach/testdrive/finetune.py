@@ -16,7 +16,7 @@ from coreach.aggregation.visits import Visits
 from coreach.episodes import Episode, EpisodeSet, load_parquet
 from coreach.episodes.drive_files import check_drive_file
 from coreach.errors import DataError
-from coreach.geometry import quat_to_matrix
+from coreach.world.geometry import quat_to_matrix
 
 
 def drive_visits(paths) -> tuple[Visits, list[tuple[Episode, np.ndarray]], EpisodeSet]:
@@ -79,7 +79,7 @@ def relabel_command(cfg) -> dict:
     from coreach.episodes import save_parquet
     from coreach.episodes.drive_files import drive_files
     from coreach.errors import ConfigError
-    from coreach.plugin_registry import build_plugin
+    from coreach.host.registry import build_plugin
 
     robot = build_plugin(cfg.robot, "robot")
     labeller = build_plugin(cfg.labeller, "labeller")

@@ -26,7 +26,7 @@ def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> 
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    from coreach.geometry import matrix_to_quat
+    from coreach.world.geometry import matrix_to_quat
 
     m = drive.manifest
     ep = Episode(

@@ -17,11 +17,11 @@ import numpy as np
 import onnxruntime as ort
 
 from coreach.context import build_context
-from coreach.geometry import angle_between
+from coreach.world.geometry import angle_between
 from coreach.runtime.bundle import BundleError, sha256_bytes, sha256_file
 from coreach.runtime.kinematics import Chain, quat_to_matrix
 from coreach.runtime.session import Session
-from coreach.urdf import parse_path
+from coreach.world.urdf import parse_path
 
 PATH_POINTS = 400  # tool-path points kept for the page (8 s at 50 Hz)
 MAP_GRID = 5  # action map: MAP_GRID x MAP_GRID sticks over the box

@@ -17,7 +17,7 @@ from torch.utils.data import DataLoader, Sampler
 from coreach.context import ContextSpec, build_context
 from coreach.control.belief_tracker import track
 from coreach.episodes import EpisodeSet
-from coreach.geometry import quat_to_matrix
+from coreach.world.geometry import quat_to_matrix
 
 
 @dataclass

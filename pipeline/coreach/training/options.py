@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from coreach.option_specs import integer, number
+from coreach.config.option_specs import integer, number
 
 
 @dataclass

@@ -18,14 +18,14 @@ from omegaconf import DictConfig, OmegaConf
 from coreach import tracking
 from coreach.context import ContextSpec
 from coreach.errors import ConfigError
-from coreach.plugin_registry import build_plugin, build_terms
+from coreach.host.registry import build_plugin, build_terms
 from coreach.decoder.policy import DecoderPolicy
-from coreach.robot_identity import robot_tags
+from coreach.world.robot_identity import robot_tags
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import MlflowEpochLogger, progress_callbacks
 from coreach.training.data import DemoDataModule, replay, split_by_episode
 from coreach.training.system import DecoderSystem
-from coreach.workdirs import output_dir, sweep_tag
+from coreach.config.workdirs import output_dir, sweep_tag
 
 log = logging.getLogger("coreach.train")
 

@@ -7,7 +7,7 @@ from typing import TYPE_CHECKING
 
 from torch import Tensor
 
-from coreach.protocols import Posterior
+from coreach.host.protocols import Posterior
 
 if TYPE_CHECKING:
     from coreach.decoder.policy import DecoderPolicy

@@ -36,11 +36,11 @@ from coreach.control.belief_tracker import track
 from coreach.control.safety_filter import JOINT_LIMIT, SEPARATION, SPEED_CAP, WORKSPACE
 from coreach.control.separation import Geometry, measure
 from coreach.errors import ConfigError
-from coreach.protocols import takes_dt
-from coreach.geometry import rotation_error
+from coreach.host.protocols import takes_dt
+from coreach.world.geometry import rotation_error
 from coreach.vetting.records import LoopState, RolloutRecord
 from coreach.vetting.suite import EpisodePlan, Suite
-from coreach.world import arm_world
+from coreach.world.scene_arm import arm_world
 
 __all__ = ["rollout", "rollout_per_episode", "ORIENTATION_WEIGHT", "REACH_PROGRESS", "JOINT_LIMIT", "SPEED_CAP",
            "WORKSPACE", "SEPARATION", "EXCESS_TOL"]

@@ -13,8 +13,8 @@ from coreach import tracking
 from coreach.errors import ConfigError
 from coreach.decoder import reference as decoder_reference
 from coreach.decoder.torch_interface import DecoderInterface
-from coreach.plugin_registry import build_plugin
-from coreach.robot_identity import check_same_robot
+from coreach.host.registry import build_plugin
+from coreach.world.robot_identity import check_same_robot
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import interactive
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
@@ -24,7 +24,7 @@ from coreach.vetting.report import standard_plots, write_report
 from coreach.vetting.scene_plot import scene_plots
 from coreach.vetting.suite import suite_from_config
 from coreach.vetting.trajectories import write_trajectories
-from coreach.world import arm_world
+from coreach.world.scene_arm import arm_world
 
 log = logging.getLogger("coreach.vet")
 BASELINES_DIR = "interface"

@@ -14,12 +14,12 @@ from torch import Tensor
 
 from omegaconf import DictConfig, OmegaConf
 
-from coreach.config_schemas import (DEFAULT_ORIENTATION_TOL_DEG, DEFAULT_POSITION_TOL, MIN_SEED, SuiteConfig,
+from coreach.config.schemas import (DEFAULT_ORIENTATION_TOL_DEG, DEFAULT_POSITION_TOL, MIN_SEED, SuiteConfig,
                                     ToleranceConfig)  # fmt: skip
 from coreach.errors import ConfigError
-from coreach.group_compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
-from coreach.option_specs import check_ranges, is_number
-from coreach.scenario import Layout, Scenario, load_scenario, scenario_from_config
+from coreach.config.compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
+from coreach.config.option_specs import check_ranges, is_number
+from coreach.world.scenario import Layout, Scenario, load_scenario, scenario_from_config
 
 __all__ = ["Suite", "EpisodePlan", "load_suite", "builtin_suites", "build_suite", "suite_from_config", "suite_from_dict",
            "MIN_SEED"]
@@ -138,7 +138,7 @@ class Suite:
         """The operator plugin, checked against the Operator protocol."""
         from omegaconf import OmegaConf
 
-        from coreach.plugin_registry import build_plugin
+        from coreach.host.registry import build_plugin
 
         try:
             return build_plugin(OmegaConf.create(self.operator), "operator")
@@ -183,7 +183,7 @@ class Suite:
         """Run the scripted demonstrator, noise-free, from the start pose to every used goal at its offset
         position; a goal it cannot complete within the tolerances and the horizon is out of reach."""
         from coreach.demonstrator import rollout as scripted
-        from coreach.geometry import angle_between
+        from coreach.world.geometry import angle_between
 
         scene = self.scene
         used = self.goal_indices

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from coreach.episodes import EpisodeSet, load_parquet
-from coreach.errors import ConfigError
-from coreach.protocols import Robot
+from coreach.host.api import EpisodeSet, load_parquet
+from coreach.host.api import ConfigError
+from coreach.host.api import Robot
 
 
 class ParquetFile:

@@ -7,14 +7,14 @@ import json
 from dataclasses import asdict, dataclass
 from pathlib import Path
 
-from coreach.arrival import DEFAULT_MIN_ARRIVAL
-from coreach.demonstrator import generate
-from coreach.episodes import SCHEMA_VERSION, EpisodeSet, load_parquet, save_parquet
-from coreach.errors import ConfigError
-from coreach.option_specs import integer, number, sizes, text
-from coreach.protocols import Robot
-from coreach.robot_identity import TAG_URDF, robot_tags
-from coreach.scenario import load_scenario
+from coreach.host.api import DEFAULT_MIN_ARRIVAL
+from coreach.host.api import generate
+from coreach.host.api import SCHEMA_VERSION, EpisodeSet, load_parquet, save_parquet
+from coreach.host.api import ConfigError
+from coreach.host.api import integer, number, sizes, text
+from coreach.host.api import Robot
+from coreach.host.api import TAG_URDF, robot_tags
+from coreach.host.api import load_scenario
 
 # Bump when the demonstrator's behaviour changes so stale caches are not reused.
 GENERATOR_VERSION = 3  # 3: actions pass the shared safety filter (tool-speed cap, look-ahead before the caps)

@@ -14,11 +14,11 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from coreach.control.servo import servo
-from coreach.demonstrator import rollout
-from coreach.errors import ConfigError
-from coreach.control.belief_model import distance_to_path
-from coreach.interfaces import check_positive
+from coreach.host.api import servo
+from coreach.host.api import rollout
+from coreach.host.api import ConfigError
+from coreach.host.api import distance_to_path
+from coreach.host.api import check_positive
 from coreach_plugins.interface.direct import DirectControl
 
 # The autopilot servoes like the demonstrations it was trained next to: read the demonstrator's defaults

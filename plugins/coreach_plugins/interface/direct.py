@@ -8,8 +8,8 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from coreach.control.servo import dls_step
-from coreach.interfaces import STICK_DIM, check_positive, episode_sticks
+from coreach.host.api import dls_step
+from coreach.host.api import STICK_DIM, check_positive, episode_sticks
 
 # Axis pairs per mode, as rows of the base-frame twist [vx, vy, vz, wx, wy, wz]: (x, y), (z, yaw),
 # (roll, pitch). Stick axis 0 drives the first axis of the pair, stick axis 1 the second. Splitting the six

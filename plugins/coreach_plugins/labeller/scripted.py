@@ -7,10 +7,10 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from coreach.demonstrator import expert_action, expert_twist
-from coreach.detour import null_space_push
-from coreach.errors import ConfigError
-from coreach.option_specs import integer, number
+from coreach.host.api import expert_action, expert_twist
+from coreach.host.api import null_space_push
+from coreach.host.api import ConfigError
+from coreach.host.api import integer, number
 
 
 class ScriptedLabeller:

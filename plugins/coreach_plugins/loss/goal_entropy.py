@@ -12,9 +12,9 @@ from typing import Optional
 import torch
 from torch import Tensor
 
-from coreach.errors import ConfigError
-from coreach.training.terms import TermBatch
-from coreach.option_specs import integer, number
+from coreach.host.api import ConfigError
+from coreach.host.api import TermBatch
+from coreach.host.api import integer, number
 
 _DIST_EPS = 1e-6  # m; smooths |x| at 0 so a tool sitting on an approach point still has a gradient
 

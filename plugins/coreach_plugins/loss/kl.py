@@ -7,9 +7,9 @@ from dataclasses import dataclass
 
 from torch import Tensor
 
-from coreach.errors import ConfigError
-from coreach.training.terms import TermBatch
-from coreach.option_specs import integer, number
+from coreach.host.api import ConfigError
+from coreach.host.api import TermBatch
+from coreach.host.api import integer, number
 
 
 def gaussian_kl(mean: Tensor, logvar: Tensor) -> Tensor:

@@ -7,9 +7,9 @@ from dataclasses import dataclass
 
 from torch import Tensor
 
-from coreach.errors import ConfigError
-from coreach.training.terms import TermBatch
-from coreach.option_specs import number
+from coreach.host.api import ConfigError
+from coreach.host.api import TermBatch
+from coreach.host.api import number
 
 
 class Reconstruction:

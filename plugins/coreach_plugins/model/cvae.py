@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from coreach_plugins.model.vae import StateVAE
-from coreach.option_specs import integer, sizes
+from coreach.host.api import integer, sizes
 
 
 class BeliefCVAE(StateVAE):

@@ -6,9 +6,9 @@ from dataclasses import dataclass
 
 from torch import Tensor, nn
 
-from coreach.nn import check_width, mlp
-from coreach.protocols import Posterior
-from coreach.option_specs import integer
+from coreach.host.api import check_width, mlp
+from coreach.host.api import Posterior
+from coreach.host.api import integer
 
 
 class LinearDecoder(nn.Module):

@@ -7,9 +7,9 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor, nn
 
-from coreach.nn import check_width, mlp
-from coreach.protocols import Posterior
-from coreach.option_specs import integer, sizes
+from coreach.host.api import check_width, mlp
+from coreach.host.api import Posterior
+from coreach.host.api import integer, sizes
 
 
 class StateVAE(nn.Module):

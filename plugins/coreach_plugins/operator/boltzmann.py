@@ -16,8 +16,8 @@ from dataclasses import dataclass, field
 import torch
 from torch import Tensor
 
-from coreach.errors import ConfigError
-from coreach.option_specs import integer, number
+from coreach.host.api import ConfigError
+from coreach.host.api import integer, number
 
 NO_INPUT = -1  # choice meaning "no stick input this step" (a delayed operator before its first reaction)
 

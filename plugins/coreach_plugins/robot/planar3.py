@@ -9,7 +9,7 @@ from typing import Sequence
 import torch
 from torch import Tensor
 
-from coreach.errors import ConfigError
+from coreach.host.api import ConfigError
 
 Q_LIMIT = 2.8  # rad, symmetric; keeps links from folding onto each other
 QD_MAX = 1.5  # rad/s

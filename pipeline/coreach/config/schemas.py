@@ -3,8 +3,8 @@
 Each shipped file of the `suite` and `scenario` config groups starts from its schema (`defaults: [base_suite]`
 or `[base_scenario]`), so a misspelt key or a wrong type fails when the config is composed, and overrides
 such as `suite.episodes=20` or `scenario.goals.1.position=[0.6,0.1,0.3]` are checked the same way. A lab's
-own file, given as a path, is merged onto the same schema (coreach.group_compose). Ranges are declared with
-coreach.option_specs and checked right after composition (one line naming the option).
+own file, given as a path, is merged onto the same schema (coreach.config.compose). Ranges are declared with
+coreach.config.option_specs and checked right after composition (one line naming the option).
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from typing import Any, List, Optional
 
 from coreach.control.separation import SeparationSettings
-from coreach.option_specs import choice, integer, number, vector
+from coreach.config.option_specs import choice, integer, number, vector
 
 _SEPARATION = SeparationSettings()  # the person's terms and the clearance default to the filter's own
 
@@ -68,7 +68,7 @@ class GoalConfig:
 @dataclass
 class BodyConfig:
     name: str = "???"
-    shape: str = "???"  # box, cylinder, sphere, capsule (checked with the sizes by coreach.scene_bodies)
+    shape: str = "???"  # box, cylinder, sphere, capsule (checked with the sizes by coreach.world.scene_bodies)
     size: List[float] = field(default_factory=list)
     xyz: List[float] = field(default_factory=lambda: [0.0, 0.0, 0.0])
     rpy_deg: List[float] = field(default_factory=lambda: [0.0, 0.0, 0.0])
@@ -89,7 +89,7 @@ class PersonConfig:
 
 @dataclass
 class ScenarioConfig:
-    """A scene: goals, furniture and the person (their meaning and checks: coreach.scenario)."""
+    """A scene: goals, furniture and the person (their meaning and checks: coreach.world.scenario)."""
 
     name: str = "???"
     dt: float = number(0.1, 1e-4, 10.0, "s")

@@ -17,7 +17,7 @@ import torch
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import CoreachError
-from coreach.protocols import KINDS, OPTIONAL, Posterior, optional_members
+from coreach.host.protocols import KINDS, OPTIONAL, Posterior, optional_members
 
 # sizes of the small problems the checks build: a 7-joint arm context with 4 goals
 N_JOINTS, N_GOALS, BATCH = 7, 4, 6
@@ -48,7 +48,7 @@ def build(kind: str, obj_or_config: Any, seed: int = 0) -> Any:
     7-joint arm with 4 goals)."""
     if not _is_config(obj_or_config):
         return obj_or_config
-    from coreach.plugin_registry import build_plugin
+    from coreach.host.registry import build_plugin
 
     cfg = OmegaConf.create(obj_or_config if isinstance(obj_or_config, dict) else
                            OmegaConf.to_container(obj_or_config))  # fmt: skip
@@ -75,7 +75,7 @@ def check_protocol(kind: str, obj: Any) -> None:
 
 def check_optional_members(kind: str, obj: Any) -> None:
     """Optional members the plugin defines are of the declared kind: methods callable with the declared
-    parameters, attributes of the declared type (see coreach.protocols.OPTIONAL)."""
+    parameters, attributes of the declared type (see coreach.host.protocols.OPTIONAL)."""
     proto = OPTIONAL.get(kind)
     if proto is None:
         return
@@ -251,7 +251,7 @@ def model_shapes(model) -> None:
     _fail("module", isinstance(model, torch.nn.Module), "a decoder is a torch.nn.Module")
     action, context = _decoder_inputs(model)
     post = model.encode(action, context)
-    _fail("encode", isinstance(post, Posterior), "expected a coreach.protocols.Posterior")
+    _fail("encode", isinstance(post, Posterior), "expected a coreach.host.protocols.Posterior")
     _fail("encode", tuple(post.mean.shape) == (BATCH, model.latent_dim), "mean shape is not [B, latent_dim]")
     _fail("encode", post.logvar is None or tuple(post.logvar.shape) == (BATCH, model.latent_dim), "logvar shape")
     out = model.decode(post.mean, context)
@@ -283,7 +283,7 @@ def loss_batch(seed: int = 0):
     """A TermBatch from a real DecoderPolicy (the built-in cVAE, small) with the real speed caps; epoch is far
     past any warm-up so no term is switched off."""
     from coreach.context import ContextSpec
-    from coreach.plugin_registry import build_plugin, builtin_option
+    from coreach.host.registry import build_plugin, builtin_option
     from coreach.decoder.policy import DecoderPolicy
     from coreach.safety import SafetyLimits
     from coreach.training.terms import TermBatch

@@ -14,7 +14,7 @@ import xml.etree.ElementTree as ET
 from collections.abc import Sequence
 
 from coreach.errors import ConfigError
-from coreach.urdf import document
+from coreach.world.urdf import document
 
 WORLD_LINK = "coreach_world"
 TCP_LINK = "coreach_tcp"

@@ -14,11 +14,11 @@ from torch import Tensor
 
 from coreach.control.bodies import Primitive
 from coreach.control.separation import SeparationSettings
-from coreach.config_schemas import ScenarioConfig
+from coreach.config.schemas import ScenarioConfig
 from coreach.errors import ConfigError
-from coreach.group_compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
-from coreach.geometry import matrix_to_quat, rpy_to_matrix
-from coreach.scene_bodies import check_goals_clear, finite_list, named_entry, parse_obstacles, parse_person
+from coreach.config.compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
+from coreach.world.geometry import matrix_to_quat, rpy_to_matrix
+from coreach.world.scene_bodies import check_goals_clear, finite_list, named_entry, parse_obstacles, parse_person
 
 __all__ = ["Goal", "Scenario", "Layout", "EpisodeLayout", "load_scenario", "builtin_scenarios", "scenario_from_config"]
 
@@ -72,7 +72,7 @@ class Layout:
 
 
 def _vector(value: Any, where: str, what: str) -> list[float]:
-    """Three finite numbers (the scene file's one check, coreach.scene_bodies); ConfigError naming `where`."""
+    """Three finite numbers (the scene file's one check, coreach.world.scene_bodies); ConfigError naming `where`."""
     return list(finite_list(value, 3, where, what))
 
 
@@ -196,7 +196,7 @@ def scenario_from_config(node: Any, where: str = "scenario") -> Scenario:
 
 def load_scenario(name_or_path: str | Path) -> Scenario:
     """A scenario by name (an option of the `scenario` config group, composed through Hydra) or a lab's own
-    YAML file, merged onto the same schema (coreach.config_schemas.ScenarioConfig)."""
+    YAML file, merged onto the same schema (coreach.config.schemas.ScenarioConfig)."""
     if is_file_reference(name_or_path):
         where = str(name_or_path)
         return Scenario.from_dict(on_schema(ScenarioConfig, read_yaml_file(name_or_path, "scenario"), where), where)

@@ -10,7 +10,7 @@ if TYPE_CHECKING:  # keep this module importable without torch (the runtime read
     from torch import Tensor
 
     from coreach.episodes import EpisodeSet
-    from coreach.scenario import Scenario
+    from coreach.world.scenario import Scenario
 
 
 @runtime_checkable
@@ -166,7 +166,7 @@ class Labeller(Protocol):
 # ---------------------------------------------------------------------------------------------------------------
 # Optional members. A plugin may leave these out; the host then falls back to the behaviour each docstring names.
 # They live in protocols of their own because a runtime-checkable Protocol requires every member it declares.
-# `coreach.contracts` checks each one a plugin does define.
+# `coreach.host.contracts` checks each one a plugin does define.
 
 
 class RobotOptional(Protocol):
@@ -181,7 +181,7 @@ class RobotOptional(Protocol):
         URDF; `coreach release` refuses such an arm with one line."""
 
     def link_model(self, clearance: float) -> Any:
-        """The links as spheres (a `coreach.link_model.LinkModel`) for separation from the scene's bodies, with
+        """The links as spheres (a `coreach.world.link_model.LinkModel`) for separation from the scene's bodies, with
         self-collision pairs at least `clearance` apart at home. Without it the arm has no bodies: vetting
         measures no separation and `coreach release` refuses the arm in a scene with bodies."""
 

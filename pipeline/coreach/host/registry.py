@@ -14,8 +14,8 @@ import hydra
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
-from coreach.group_compose import external_config_packages
-from coreach.protocols import KINDS
+from coreach.config.compose import external_config_packages
+from coreach.host.protocols import KINDS
 
 BUILTIN_CONF = "coreach_conf"
 
@@ -82,25 +82,12 @@ def build_plugin(cfg: DictConfig, kind: str, **kwargs):
 
 
 def builtin_option(kind: str, name: str) -> DictConfig:
-    """The config node of built-in option `name` of `kind` (conf/<kind>/<name>.yaml), for host code that needs a
-    specific option (the decoder interface of a trained run, a bundle's ONNX interface) without importing it."""
+    """The config node of built-in option `name` of `kind` (conf/<kind>/<name>.yaml): the benches' pinned model,
+    the aggregation rounds' Parquet dataset."""
     item = resources.files(BUILTIN_CONF) / kind / f"{name}.yaml"
     if not item.is_file():
         raise ConfigError(f"option {kind}", f"no built-in option {name!r}")
     return OmegaConf.create(item.read_text())
-
-
-def build_option(kind: str, option: str, /, **fields):
-    """Build built-in option `option` of `kind` with `fields` set (e.g. run=..., name=...), checked like any plugin."""
-    cfg = builtin_option(kind, option)
-    for key, value in fields.items():
-        cfg[key] = value
-    return build_plugin(cfg, kind)
-
-
-def option_class(kind: str, name: str) -> type:
-    """The class a built-in option builds, for its alternative constructors (e.g. `from_policy`)."""
-    return hydra.utils.get_class(str(builtin_option(kind, name)["_target_"]))
 
 
 def build_terms(loss_cfg: DictConfig) -> list:

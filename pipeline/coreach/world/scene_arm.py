@@ -9,7 +9,7 @@ from coreach.control.separation import measure
 from coreach.errors import ConfigError, DataError
 from coreach.runtime.arm_world import ArmWorld, contact_report
 from coreach.runtime.kinematics import Chain
-from coreach.scenario import Scenario
+from coreach.world.scenario import Scenario
 
 __all__ = ["arm_world", "check_episodes_clear"]
 

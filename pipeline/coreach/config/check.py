@@ -10,10 +10,10 @@ from hydra.core.override_parser.overrides_parser import OverridesParser
 from hydra.errors import HydraException
 from omegaconf.errors import OmegaConfBaseException
 
-from coreach.config_schemas import register
+from coreach.config.schemas import register
 from coreach.errors import ConfigError
-from coreach.group_compose import lab_file_overrides, one_line, search_path_overrides
-from coreach.schemas import check_command_options, check_groups, check_plugins
+from coreach.config.compose import lab_file_overrides, one_line, search_path_overrides
+from coreach.config.plugin_options import check_command_options, check_groups, check_plugins
 
 
 def compose_config(config_name: str, overrides: list[str]):

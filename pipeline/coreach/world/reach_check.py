@@ -5,7 +5,7 @@ kinematics from several starts (damped least squares, Nakamura & Hanafusa 1986, 
 their limits); a pose counts as reachable when a solution is within `pos_tol` and `ang_tol`. Of the solutions
 the one with the largest margin to the joint limits is reported, with its manipulability (the smallest
 singular value of the 6 x n Jacobian: near zero means a singular pose where some tool motion is impossible).
-In a scene with bodies a solution must also keep every link clear (coreach.world: the clearance from furniture
+In a scene with bodies a solution must also keep every link clear (coreach.world.scene_arm: the clearance from furniture
 and between links, the keep-out distance from the person), and the approach must come from open space: the
 tool's path over the last `approach_m` before the approach point, along the approach axis, keeps the gripper's
 largest sphere and the clearance away from every piece of furniture.
@@ -22,8 +22,8 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from coreach.geometry import rotation_error, rpy_to_matrix
-from coreach.option_specs import integer, number
+from coreach.world.geometry import rotation_error, rpy_to_matrix
+from coreach.config.option_specs import integer, number
 
 __all__ = ["ReachOptions", "GoalReach", "check_reach", "suggest_base_shift"]
 
@@ -144,7 +144,7 @@ def _corridor(world, scene, opt: ReachOptions) -> list[str]:
 
 def check_reach(robot, scene, opt: ReachOptions = ReachOptions()) -> list[GoalReach]:
     """One GoalReach per goal of `scene` for `robot` where it stands (the scene's frame is the robot's world)."""
-    from coreach.world import arm_world
+    from coreach.world.scene_arm import arm_world
 
     world = arm_world(robot, scene)
     with torch.no_grad():

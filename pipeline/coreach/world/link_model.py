@@ -36,12 +36,12 @@ from pathlib import Path
 import numpy as np
 
 from coreach.errors import ConfigError
-from coreach.geometry import rpy_to_matrix
-from coreach.urdf import document, parse_path, urdf_floats
+from coreach.world.geometry import rpy_to_matrix
+from coreach.world.urdf import document, parse_path, urdf_floats
 
 __all__ = ["LinkModel", "link_model", "capsule_spheres"]
 
-log = logging.getLogger("coreach.link_model")
+log = logging.getLogger("coreach.world.link_model")
 
 
 @dataclass

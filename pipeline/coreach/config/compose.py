@@ -3,7 +3,7 @@
 Stages that need several suites (the release gate, the recipes, the aggregation rounds) compose each through
 Hydra like the `vet` command does, inside a running Hydra job or outside one (tests, the robot tools), so a
 suite reads the same whichever command runs it. A path to a lab's own YAML file is merged onto the same typed
-schema (coreach.config_schemas) and checked the same way.
+schema (coreach.config.schemas) and checked the same way.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ from hydra.errors import HydraException
 from omegaconf import DictConfig, OmegaConf
 from omegaconf.errors import OmegaConfBaseException
 
-from coreach.config_schemas import register
+from coreach.config.schemas import register
 from coreach.errors import ConfigError
 
 ENTRY_POINT_GROUP = "coreach.plugins"  # outside packages declare their config packages here

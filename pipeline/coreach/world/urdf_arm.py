@@ -15,10 +15,10 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
-from coreach.geometry import rpy_to_matrix
-from coreach.urdf import MOVABLE, JointSpec, parse_path, read_path
-from coreach.link_model import LinkModel, link_model
-from coreach.urdf_placement import place_arm
+from coreach.world.geometry import rpy_to_matrix
+from coreach.world.urdf import MOVABLE, JointSpec, parse_path, read_path
+from coreach.world.link_model import LinkModel, link_model
+from coreach.world.urdf_placement import place_arm
 
 SHIPPED_URDF = "seven_joint_arm.urdf"
 # Elbow bent 129 deg, tool 0.35 m in front of the base at z = 0.27 m, approach axis tilted 56 deg below
@@ -44,11 +44,11 @@ class UrdfArmConfig:
     tool_xyz: list[float] | None = None
     tool_rpy_deg: list[float] | None = None
     collision_override: str = ""
-    _target_: str = "coreach_plugins.robot.urdf_arm.UrdfArm"
+    _target_: str = "coreach.world.urdf_arm.UrdfArm"
 
 
 def _origin_matrix(spec: JointSpec) -> Tensor:
-    """4x4 float64 transform of a URDF <origin> (rotation from coreach.geometry, the shared convention)."""
+    """4x4 float64 transform of a URDF <origin> (rotation from coreach.world.geometry, the shared convention)."""
     m = torch.eye(4, dtype=torch.float64)
     m[:3, :3] = rpy_to_matrix(torch.tensor(spec.rpy, dtype=torch.float64))
     m[:3, 3] = torch.tensor(spec.xyz, dtype=torch.float64)
@@ -230,7 +230,7 @@ class UrdfArm:
         return f"UrdfArm(name={self.name!r}, dof={self.dof}, urdf={self.urdf or SHIPPED_URDF!r})"
 
     def link_model(self, clearance: float) -> LinkModel:
-        """The links as spheres (coreach.link_model): the URDF's collision geometry, meshes resolved beside the
+        """The links as spheres (coreach.world.link_model): the URDF's collision geometry, meshes resolved beside the
         URDF, then `collision_override`; self-collision pairs at least `clearance` apart at home."""
         if clearance not in self._link_models:
             self._link_models[clearance] = link_model(

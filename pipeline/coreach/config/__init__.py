@@ -1,0 +1,1 @@
+"""Configuration: typed schemas, composing config groups, option checks, the command line's records."""
