@@ -141,7 +141,7 @@ def test_a_tracking_server_that_does_not_answer_is_one_line(tmp_path):
     with socket.socket() as s:  # a port nobody listens on once closed
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
-    res = subprocess.run([COREACH, "releases"], cwd=tmp_path, capture_output=True, text=True, timeout=120,
+    res = subprocess.run([COREACH, "bundles"], cwd=tmp_path, capture_output=True, text=True, timeout=120,
                          env=cli_env(MLFLOW_TRACKING_URI=f"http://127.0.0.1:{port}"))  # fmt: skip
     assert res.returncode == 2, res.stderr
     (line,) = res.stderr.strip().splitlines()

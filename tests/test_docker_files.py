@@ -160,13 +160,13 @@ def test_server_store_and_artifacts_point_at_the_stack(services):
 
 
 def test_trainer_sweep_is_a_valid_coreach_command(services, workdir):
-    from coreach.cli import HYDRA_COMMANDS
+    from coreach.commands.table import COMMANDS
     from coreach.config.check import preflight
 
     cmd = list(services["trainer"]["command"])
-    assert cmd[0] in HYDRA_COMMANDS and "-m" in cmd
+    assert cmd[0] in COMMANDS and COMMANDS[cmd[0]].hydra and "-m" in cmd
     overrides = [c for c in cmd[1:] if c != "-m"]
-    preflight(cmd[0], overrides, multirun=True)  # raises ConfigError naming the override at fault
+    preflight(COMMANDS[cmd[0]].config, overrides, multirun=True)  # raises ConfigError naming the override at fault
 
 
 # ---- the image ----------------------------------------------------------------------------------------

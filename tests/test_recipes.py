@@ -137,14 +137,17 @@ def test_bad_options_name_the_option(over, needle):
     assert needle in str(err.value)
 
 
-def test_recipe_commands_go_through_the_cli_registry(monkeypatch):
-    from coreach import cli
+def test_recipe_commands_go_through_the_command_table(monkeypatch):
+    import dataclasses
+
+    from coreach.commands import table
     from coreach.training.run import train
 
-    monkeypatch.delitem(cli.HYDRA_COMMANDS, "aggregate", raising=False)
+    monkeypatch.delitem(table.COMMANDS, "aggregate", raising=False)
     with pytest.raises(ConfigError, match="'aggregate' is not available"):
         rc.stage_command("aggregate", "option recipes.x.command")
-    monkeypatch.setitem(cli.HYDRA_COMMANDS, "aggregate", ("train", "coreach.training.run:train"))
+    stand_in = dataclasses.replace(table.COMMANDS["train"], name="aggregate")
+    monkeypatch.setitem(table.COMMANDS, "aggregate", stand_in)
     assert rc.stage_command("aggregate", "w") == ("train", train)
 
 

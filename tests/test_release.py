@@ -1,4 +1,4 @@
-"""`coreach release`, `drive`, `promote`, `releases` and `bench runtime` end to end on a tiny trained decoder."""
+"""`coreach release`, `replay`, `promote`, `rollback`, `bundles` and `bench runtime` end to end on a tiny trained decoder."""
 
 from __future__ import annotations
 
@@ -141,15 +141,16 @@ def test_drive_matches_vet_on_the_same_suite_and_seeds(released):
     assert driven["stick_gain"]["median"] == pytest.approx(vetted["stick_gain"]["median"], rel=0.01)
 
 
-def test_promote_back_and_releases_commands(released):
+def test_promote_rollback_and_bundles_commands(released):
     cwd, run_id, _ = released
     second = run(["release", f"run={run_id}", *QUICK, *PERMISSIVE], cwd)
     assert second.returncode == 0, second.stderr
     assert run(["promote", NAME, "1"], cwd).returncode == 0
     res = run(["--json", "promote", NAME, "2"], cwd)
     assert res.returncode == 0, res.stderr
-    assert json.loads(res.stdout)["history"] == ["1", "2"]
-    back = run(["promote", NAME, "--back"], cwd)
+    promoted = json.loads(res.stdout)
+    assert promoted["history"] == ["1", "2"] and "not a medical device" in promoted["cautions"][0]
+    back = run(["rollback", NAME], cwd)
     assert back.returncode == 0 and "version 1 restored" in back.stdout, back.stderr
     assert str(_client(cwd).get_model_version_by_alias(NAME, "fielded").version) == "1"
 
@@ -158,13 +159,13 @@ def test_promote_back_and_releases_commands(released):
     assert refused.returncode == 2 and "does not verify" in refused.stderr
     assert len(refused.stderr.strip().splitlines()) == 1
 
-    listing = run(["--json", "releases", NAME], cwd)
+    listing = run(["--json", "bundles", NAME], cwd)
     assert listing.returncode == 0, listing.stderr
     rows = {r["version"]: r for r in json.loads(listing.stdout)}
     assert set(rows) == {"1", "2"}
     assert rows["1"]["aliases"] == ["fielded"] and rows["2"]["aliases"] == ["gate-passed"]
     assert rows["2"]["bundle_status"].startswith("FAILS") and rows["1"]["bundle_status"] == "ok"
-    table = run(["releases"], cwd)
+    table = run(["bundles"], cwd)
     assert table.returncode == 0 and NAME in table.stdout and "@fielded" in table.stdout
 
 

@@ -4,8 +4,8 @@ server CI starts is tests/lab/test_release_crash_server.py, a file of its own so
 Fault injection: the real `coreach release` process is started with COREACH_FAULT_KILL_AT=<step> and sends
 itself SIGKILL on reaching that step boundary of publishing (a hook in coreach.release.publish, as the issue
 allows; the kill itself is the real signal, so no cleanup code of the process runs). After each kill,
-`coreach releases` must show no unusable version, no bundle without its version, no staging folder and no
-RUNNING release run; a following release must then succeed with the next version number.
+`coreach finish-releases` then `coreach bundles` must show no unusable version, no bundle without its version,
+no staging folder and no RUNNING release run; a following release must then succeed with the next version number.
 """
 
 from __future__ import annotations
@@ -54,8 +54,11 @@ def train_small(cwd: Path, uri: str) -> str:
 
 
 def _nothing_half_done(cwd: Path, uri: str, name: str, run_id: str) -> list[int]:
-    """`coreach releases` settles and lists; check the store and the folder; the usable versions."""
-    res = _cli(["--json", "releases"], cwd, uri)
+    """`coreach finish-releases` settles, `coreach bundles` lists; check the store and the folder; the usable
+    versions."""
+    res = _cli(["finish-releases"], cwd, uri)
+    assert res.returncode == 0, res.stderr
+    res = _cli(["--json", "bundles"], cwd, uri)
     assert res.returncode == 0, res.stderr
     rows = [r for r in json.loads(res.stdout) if r["name"] == name]
     assert all(r["gate_passed"] for r in rows), rows  # no unusable (orphan) version is left or listed
@@ -83,7 +86,7 @@ def kill_at_every_step(cwd: Path, uri: str, run_id: str) -> None:
         res = _cli(["release", *base], cwd, uri, COREACH_FAULT_KILL_AT=step)
         assert res.returncode == -signal.SIGKILL, (step, res.returncode, res.stderr[-2000:])
         now = _nothing_half_done(cwd, uri, name, run_id)
-        # only a kill after the version was marked usable leaves a release (finished by the listing)
+        # only a kill after the version was marked usable leaves a release (finished by finish-releases)
         assert len(now) == len(usable) + (step == "finish"), (step, usable, now)
         usable = now
     before = _nothing_half_done(cwd, uri, name, run_id)
@@ -117,7 +120,7 @@ def test_sigterm_rolls_back_before_exit(tmp_path):
 
 def test_repair_removes_what_no_intent_covers(tmp_path):
     """Leftovers of releases before crash-safe publishing: an unusable version, a RUNNING release run, a stray
-    staging folder and a bundle folder without a version; `releases --repair` removes each and says so."""
+    staging folder and a bundle folder without a version; `finish-releases --leftovers` removes each and says so."""
     uri = f"sqlite:///{tmp_path / 'mlflow.db'}"
     client = MlflowClient(uri)
     exp = client.create_experiment("old")
@@ -138,9 +141,9 @@ def test_repair_removes_what_no_intent_covers(tmp_path):
     (tmp_path / "releases" / "live-model" / "v1").mkdir(parents=True)
     scratch = tmp_path / "tmp"  # its own temp folder: repair also clears killed releases' scratch folders there
     scratch.mkdir()
-    res = _cli(["releases", "--repair"], tmp_path, uri, TMPDIR=str(scratch))
+    res = _cli(["finish-releases", "--leftovers"], tmp_path, uri, TMPDIR=str(scratch))
     assert res.returncode == 0, res.stderr
-    said = res.stderr
+    said = res.stdout
     for needle in ("model version old-model 1", f"release run {old}", ".v1.abc.partial", "v7", "registered model old-model"):
         assert needle in said, (needle, said)
     assert "other-tool-model" not in said and "live-model" not in said, said
@@ -155,8 +158,8 @@ def test_repair_removes_what_no_intent_covers(tmp_path):
     client.set_terminated(live)
     client.set_tag(live, TAG_PUBLISH, "done")
     shutil.rmtree(tmp_path / "releases")
-    again = _cli(["releases", "--repair"], tmp_path, uri, TMPDIR=str(scratch))
-    assert "found nothing half-done" in again.stderr, again.stderr
+    again = _cli(["finish-releases", "--leftovers"], tmp_path, uri, TMPDIR=str(scratch))
+    assert "nothing was half-done" in again.stdout, again.stdout
     assert [m.name for m in client.search_registered_models()] == ["other-tool-model"]
 
 

@@ -5,89 +5,55 @@ from __future__ import annotations
 import json
 import os
 import sys
+import textwrap
 import time
 import traceback
 from pathlib import Path
 
-from coreach.commands.table import CAUTION_COMMANDS, HYDRA_COMMANDS, PLAIN_COMMANDS, load_target
+from coreach.commands import table
+from coreach.commands.table import HELP_WIDTH, load_target
 from coreach.errors import CoreachError
 
-USAGE = """usage: coreach [--json] [--debug] COMMAND [-m] [key=value ...]
-
-commands:
-  demo      generate demonstrations, train the decoder families briefly, compare them
-  train     train one decoder (e.g. coreach train model=vae trainer.max_epochs=5)
-  aggregate train, then retrain on closed-loop states labelled by the demonstrator (DAgger rounds)
-            (coreach aggregate +experiment=cvae_goal_entropy 'aggregate.rollout_seeds=[1,2,3]')
-  vet       closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch
-  recipes   train each recipe over several seeds, vet them with the baselines, one table
-            (coreach recipes 'select=[cvae,cvae+goal_entropy]' 'seeds=[0,1,2]' 'train_overrides=["trainer.max_epochs=5"]')
-  check-reach  can the arm, where the robot config places it, reach every goal of a scene (before data is made)
-            (coreach check-reach robot.urdf=arm.urdf robot.tool_link=tcp scene=my_scene.yaml)
-  import-recordings  ROS 2 bags (sqlite3, MCAP) and CSV files -> one Parquet file of demonstrations
-            (coreach import-recordings 'inputs=[bags/run1,run2.csv]' scene=bedside_shelf out=lab.parquet)
-  relabel-drives  recorded test drives -> training data for one fine-tuning round (the demonstrator's labels)
-            (coreach relabel-drives 'drives=[drives/]' out=person.parquet [merge=demos.parquet])
-  plugins   list every registered plugin by kind, with where it came from
-  compare   leaderboard of an experiment's runs: table, CSV and PNG
-            (coreach compare --experiment NAME --sweep TAG --out DIR)
-  release   gate a trained decoder and, if it passes, bundle, register and mark it gate-passed
-            (coreach release run=<run id> [name=bedside-shelf-decoder]; refusal: gate table, exit 3)
-  replay    replay a release bundle's ONNX decoder through a suite and compare with its vetting
-            (coreach replay bundle=releases/<name>/v<version> suite=held-out; or bundle=<name>@fielded,
-            bundle=<name>/<version>: taken from the tracking store, verified, cached under releases/)
-  promote   field a gate-passed version (coreach promote NAME VERSION) or restore the previous one
-            (coreach promote NAME --back)
-  releases  registered versions, aliases and gate results; settles crashed publishes first
-            (coreach releases [NAME] [--repair]: --repair also removes older leftovers, saying what)
-  fetch     the robot computer's fetch: NAME[@ALIAS] from a tracking server, verified, then made current
-            (coreach fetch NAME@fielded --server URL --cache DIR; torch-free: coreach-robot fetch|status)
-  try-bundle  drive a release bundle by hand on a local page (simulation only); drives saved as episodes
-            (coreach try-bundle releases/<name>/v<version>|<name>@<alias> [--port 8765] [--record-dir drives])
-  bench train   training throughput: Lightning against a bare PyTorch loop (target: ratio >= 0.9), and the
-                cVAE with and without goal_entropy (target: <= 2x the time); bench.threads=1 on shared cores
-  bench sweep   a 12-run sweep serially and on 2 joblib workers: parallel efficiency (target >= 0.8)
-  bench runtime per-step latency of a bundle's runtime session against a bare onnxruntime call
-                (coreach bench runtime bundle=<folder>|<name>@<alias>; target: p99 <= 300 us)
-  bench vet     closed-loop throughput: batched loop against a per-episode loop and a bare decoder pass
-  bench fuzz    the runtime session driven with wild sticks from states near every scene body, each step
-                checked with coal on the URDF's collision geometry (target: 0 penetrations, 0 keep-out entries)
-                (coreach bench fuzz [bundle=<folder>|<name>@<alias>] [steps=1000000] [seed=0]; needs pinocchio)
-
-options:
+OPTIONS = """options:
   -m, --multirun  sweep over comma-separated values (coreach train -m model=linear,vae,cvae)
   --json          print only a machine-readable summary on stdout
   --debug         show tracebacks
-  -h, --help      this text; `coreach COMMAND --cfg job` prints the composed config (Hydra)
-"""
-
-def command_help(command: str) -> str:
-    """The usage lines of one command, taken from USAGE so the overview and `COMMAND --help` never differ."""
-    lines = USAGE.splitlines()
-    start = next(i for i, line in enumerate(lines) if line[2:].startswith(command + " ") or line[2:] == command)
-    block = [lines[start]]
-    for line in lines[start + 1:]:
-        if not line.startswith("     "):  # continuation lines are indented past the command column
-            break
-        block.append(line)
-    text = "\n".join(block)
-    if command in HYDRA_COMMANDS:
-        text += ("\n\n  takes Hydra overrides (key=value) and -m for sweeps; `coreach "
-                 f"{command} --cfg job` prints the composed config, `--hydra-help` Hydra's own help")
-    return f"usage: coreach {command} ...\n\n{text}\n"
+  -h, --help      this text; `coreach COMMAND --help` a command's options, `coreach COMMAND --cfg job` the
+                  composed config of a command taking Hydra overrides"""
 
 
-def _bench_lines() -> list[str]:
-    """USAGE's `bench ...` entries with their continuation lines."""
-    out, inside = [], False
-    for line in USAGE.splitlines():
-        if line.startswith("  bench "):
-            inside = True
-        elif not line.startswith("     "):
-            inside = False
-        if inside:
-            out.append(line)
-    return out
+def _entry(name: str, about: str, width: int) -> str:
+    """One command of an overview: its name, then its line wrapped under itself."""
+    return textwrap.fill(about, HELP_WIDTH, initial_indent=f"  {name:<{width}}", subsequent_indent=" " * (width + 2),
+                         break_on_hyphens=False)
+
+
+def overview() -> str:
+    """`coreach --help`: every command of the table with its one line, the flags, and which carry cautions."""
+    commands = table.COMMANDS
+    width = max(len(name) for name in commands) + 2
+    lines = ["usage: coreach [--json] [--debug] COMMAND [-m] [key=value ...]", "", "commands:"]
+    lines += [_entry(c.name, c.about, width) for c in commands.values()]
+    person = [c.name for c in commands.values() if c.toward_person]
+    lines += ["", OPTIONS, "", textwrap.fill(
+        f"coreach is research software, not a medical device. {', '.join(person)} lead toward a person or a "
+        "robot: their help, their output and their --json end with the cautions; read them (`coreach "
+        "COMMAND --help`) before anything is used with people.", HELP_WIDTH, break_on_hyphens=False)]  # fmt: skip
+    return "\n".join(lines) + "\n"
+
+
+def group_help(group: str) -> str:
+    """`coreach GROUP --help` (bench): the commands of the group."""
+    members = table.groups()[group]
+    width = max(len(c.name) for c in members) - len(group) + 1
+    lines = [f"usage: coreach {group} WHAT [-m] [key=value ...]", "", f"{group} commands:"]
+    lines += [_entry(c.name[len(group) + 1:], c.about, width) for c in members]
+    lines += ["", f"`coreach {group} WHAT --help` for the options of one."]
+    return "\n".join(lines) + "\n"
+
+
+def _known() -> str:
+    return ", ".join(sorted([*table.COMMANDS, *table.groups()]))
 
 
 def _fail(message: str, code: int = 2) -> int:
@@ -137,43 +103,34 @@ def main(argv: list[str] | None = None) -> int:
     multirun = "-m" in args or "--multirun" in args
     rest = [a for a in args if a not in ("--json", "--debug", "-m", "--multirun")]
     if not rest or rest[0] in ("-h", "--help", "help"):
-        print(USAGE)
+        print(overview())
         return 0
     command, overrides = rest[0], rest[1:]
-    if command == "bench":
-        what = overrides[0] if overrides else "?"
-        if what in ("-h", "--help", "help"):  # the bench lines of the overview: which benchmarks there are
-            print("usage: coreach bench WHAT ...\n\n" + "\n".join(_bench_lines()) + "\n")
+    if command in table.groups() and command not in table.COMMANDS:  # `bench train`: a command of a group
+        if overrides and overrides[0] in ("-h", "--help", "help"):
+            print(group_help(command))
             return 0
-        command, overrides = f"bench {what}", overrides[1:]
+        if not overrides or overrides[0].startswith("-") or "=" in overrides[0]:
+            members = ", ".join(c.name.split(" ", 1)[1] for c in table.groups()[command])
+            return _fail(f"command {command!r}: which one? expected one of {members} (coreach {command} --help)")
+        command, overrides = f"{command} {overrides[0]}", overrides[1:]
+    cmd = table.COMMANDS.get(command)
+    if cmd is None:
+        return _fail(f"command {command!r}: unknown; expected one of {_known()} (coreach --help)")
     if debug:
         os.environ["HYDRA_FULL_ERROR"] = "1"
     if any(a in ("-h", "--help") for a in overrides):
-        known = [*HYDRA_COMMANDS, *PLAIN_COMMANDS, "plugins", "compare"]
-        if command not in known:
-            return _fail(f"command {command!r}: unknown; expected one of {sorted(known)}")
-        print(command_help(command))
+        print(cmd.help_text())
         return 0
     try:
-        if command == "plugins":
-            from coreach.commands.plugins import show_plugins
-
-            return show_plugins(as_json)
-        if command == "compare":
-            from coreach.commands.compare import compare_command
-
-            return compare_command(overrides, as_json)
-        if command in PLAIN_COMMANDS:
-            code = load_target(PLAIN_COMMANDS[command])(overrides, as_json)
-            if command in CAUTION_COMMANDS and not as_json:
+        if not cmd.hydra:
+            code = load_target(cmd.run)(overrides, as_json)
+            if cmd.cautions() and not as_json and not cmd.prints_cautions:
                 from coreach.commands.summaries import print_cautions, plain_console
 
-                print_cautions(plain_console())
+                print_cautions(plain_console(), cmd.records_person)
             return code
-        if command not in HYDRA_COMMANDS:
-            known = sorted([*HYDRA_COMMANDS, *PLAIN_COMMANDS, "plugins", "compare"])
-            raise CoreachError(f"command {command!r}", f"unknown; expected one of {known}")
-        summaries = run_hydra(command, overrides, multirun, debug)
+        summaries = run_hydra(cmd, overrides, multirun, debug)
         if _hydra_info_only(overrides):  # --cfg job and the like print the config and run nothing
             return 0
     except CoreachError as exc:
@@ -194,7 +151,7 @@ def main(argv: list[str] | None = None) -> int:
         return _fail(f"internal error: {type(exc).__name__}: {exc} (rerun with --debug for the traceback)", 1)
     from coreach.commands.summaries import print_summary
 
-    print_summary(command, summaries, as_json)
+    print_summary(cmd, summaries, as_json)
     # a command that ran fine but reached a negative verdict (a refused release, a replay that does not
     # match its vetting) says so with its own exit code
     return max([0, *(int(s.get("exit_code", 0)) for s in summaries if isinstance(s, dict))])
@@ -205,7 +162,7 @@ def _hydra_info_only(overrides: list[str]) -> bool:
     return any(o.startswith(("--cfg", "-c", "--info", "-i", "--help", "-h", "--hydra-help")) for o in overrides)
 
 
-def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -> list[dict]:
+def run_hydra(cmd: table.Command, overrides: list[str], multirun: bool, debug: bool) -> list[dict]:
     """Run a subcommand through hydra.main (so Hydra's launchers serve sweeps) and collect summaries."""
     import hydra
 
@@ -213,7 +170,7 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
     from coreach.config.compose import lab_file_overrides
     from coreach.config.compose import search_path_overrides
 
-    config_name, target = HYDRA_COMMANDS[command]
+    command, config_name = cmd.name, cmd.config
     overrides, lab_conf = lab_file_overrides(overrides)  # suite=./mine.yaml: a lab's own file as an option
     extra = search_path_overrides(lab_conf)
     if not _hydra_info_only(overrides):
@@ -223,7 +180,7 @@ def run_hydra(command: str, overrides: list[str], multirun: bool, debug: bool) -
     fixed = [f"hydra.job.name={command.replace(' ', '_')}"]
     if multirun:
         fixed.append(f"hydra.sweep.dir={sweep_dir}")
-    task_fn = load_target(target)
+    task_fn = load_target(cmd.run)
     collected: list[dict] = []
 
     def task(cfg):

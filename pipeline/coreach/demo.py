@@ -6,8 +6,9 @@ import logging
 
 from omegaconf import DictConfig
 
-from coreach.commands.recipes import compose_stage, stage_command, user_overrides
+from coreach.commands.recipes import compose_stage, stage_command
 from coreach.commands.summaries import mlflow_hint
+from coreach.config.command_line import override_key, user_overrides
 
 log = logging.getLogger("coreach.demo")
 
@@ -16,7 +17,7 @@ def run_demo(cfg: DictConfig) -> dict:
     """Train each variant of `demo.variants` (a stage, train or aggregate, and its overrides) on the same
     demonstrations, vet them with the baselines in closed loop, then release the best one that passes the
     real gate, field it, step it in a runtime session and replay it against its vetting."""
-    user = [o for o in user_overrides() if not o.lstrip("+~").startswith("demo.")]  # the demo's own options
+    user = [o for o in user_overrides() if not override_key(o).startswith("demo.")]  # the demo's own options
     extra = [str(o) for o in cfg.demo.get("overrides", [])]
     runs = []
     for label, variant in cfg.demo.variants.items():

@@ -81,10 +81,10 @@ def released(tmp_path_factory):
     return released
 
 
-def promote(released, *args: str) -> None:
-    """`coreach promote` on the releasing machine (the registry commands read MLFLOW_TRACKING_URI)."""
+def promote(released, *args: str, command: str = "promote") -> None:
+    """`coreach promote` (or `rollback`) on the releasing machine (the registry commands read MLFLOW_TRACKING_URI)."""
     env = {**released["env"], "MLFLOW_TRACKING_URI": released["uri"], "CI": "true"}
-    res = subprocess.run([COREACH, "promote", released["name"], *args], cwd=released["cwd"], env=env,
+    res = subprocess.run([COREACH, command, released["name"], *args], cwd=released["cwd"], env=env,
                          capture_output=True, text=True, timeout=300)  # fmt: skip
     assert res.returncode == 0, res.stderr[-2000:]
 
@@ -184,15 +184,16 @@ def test_runtime_only_install_fetches_runs_and_follows_a_rollback(released, robo
     assert res.returncode == 0, res.stderr[-2000:]
     assert "version 2 is current (downloaded and verified; was version 1)" in res.stdout
     assert current(cache, name) == "v2"
-    promote(released, "--back")
+    promote(released, command="rollback")
     res = robot(fetch, robot_home, python)
     assert res.returncode == 0, res.stderr[-2000:]
     assert "version 1 is current (already in the cache, verified again; was version 2)" in res.stdout
     assert current(cache, name) == "v1"
     res = robot(["status", name, "--cache", str(cache), "--json"], robot_home, python)
     assert res.returncode == 0, res.stderr
-    (row,) = json.loads(res.stdout)
-    assert (row["current"], row["verified"], row["cached"]) == ("1", True, ["1", "2"])
+    status = json.loads(res.stdout)
+    (row,) = status["bundles"]
+    assert status["cautions"] and (row["current"], row["verified"], row["cached"]) == ("1", True, ["1", "2"])
 
 
 # ------------------------------------------------------------------------------------------ refusals

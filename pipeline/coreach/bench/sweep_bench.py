@@ -19,18 +19,13 @@ from pathlib import Path
 
 from omegaconf import DictConfig
 
+from coreach.config.command_line import override_key, user_overrides
 from coreach.errors import CoreachError
 
 
 def _user_overrides() -> list[str]:
     """The overrides this command was given, minus the bench's own: they apply to every run of both sweeps."""
-    try:
-        from hydra.core.hydra_config import HydraConfig
-
-        task = list(HydraConfig.get().overrides.task)
-    except ValueError:  # not inside a Hydra run
-        return []
-    return [o for o in task if not o.lstrip("+~").startswith(("bench.", "hydra."))]
+    return [o for o in user_overrides() if not override_key(o).startswith("bench.")]
 
 
 _BUSY = "s = 0\nfor i in range(20_000_000):\n    s += i"

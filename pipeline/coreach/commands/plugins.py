@@ -8,6 +8,7 @@ from dataclasses import asdict
 from rich.console import Console
 from rich.table import Table
 
+from coreach.errors import ConfigError
 from coreach.host.registry import discover
 
 
@@ -23,3 +24,10 @@ def show_plugins(as_json: bool) -> int:
         table.add_row(p.kind, p.name, p.target, p.origin)
     Console().print(table)
     return 0
+
+
+def plugins_command(args: list[str], as_json: bool) -> int:
+    """`coreach plugins` as the command table calls it; it takes no arguments."""
+    if args:
+        raise ConfigError("coreach plugins", f"takes no arguments, got {' '.join(args)}")
+    return show_plugins(as_json)

@@ -8,70 +8,102 @@ import sys
 from rich.console import Console
 from rich.table import Table
 
+from coreach.commands import table as command_table
 
-def print_summary(command: str, summaries: list[dict], as_json: bool) -> None:
+
+def print_summary(cmd, summaries: list[dict], as_json: bool) -> None:
+    """The summaries of `cmd` (a command table entry, or its name) as the entry says: JSON (with the cautions
+    where it leads toward a person), or its `show` formatter followed by the cautions."""
+    cmd = command_table.COMMANDS[cmd] if isinstance(cmd, str) else cmd
+    cautions = cmd.cautions()
     if as_json:
-        single = command in ("demo", "vet", "release", "replay", "recipes") and len(summaries) == 1
-        payload = summaries[0] if single else {"runs": summaries}
+        payload = dict(summaries[0]) if cmd.one_summary and len(summaries) == 1 else {"runs": summaries}
+        if cautions:
+            payload["cautions"] = cautions
         print(json.dumps(payload, indent=2, default=str))
         for s in summaries:
-            if command == "release" and not s.get("released", True):
+            if s.get("released") is False:  # a refused release: the one line that says why nothing was written
                 print(refusal_line(s), file=sys.stderr)
         return
     console = plain_console()
-    if command == "train":
-        console.print(training_table(summaries))
-        if summaries:
-            console.print(f"MLflow: {mlflow_hint()}")
-    elif command == "vet":
-        for s in summaries:
-            print_vetting(console, s)
-    elif command == "release":
-        for s in summaries:
-            print_release(console, s)
-    elif command == "replay":
-        for s in summaries:
-            print_replay(console, s)
-    elif command == "recipes":
-        for s in summaries:
-            print_recipes(console, s)
-    elif command == "aggregate":
-        for s in summaries:
-            print_aggregate(console, s)
-    elif command == "check-reach":
-        for s in summaries:
-            print_reach(console, s)
-    elif command == "import-recordings":
-        for s in summaries:
-            print_import(console, s)
-    elif command == "relabel-drives":
-        for s in summaries:
-            merged = f", merged with {s['merged_with']}" if s["merged_with"] else ""
-            console.print(f"{s['drives']} drives relabelled ({s['relabelled_states']} states){merged}: "
-                          f"{s['episodes']} episodes in {s['out']}", markup=False)
-            console.print(f"train on it: {s['train']}", markup=False)
-    elif command.startswith("bench"):
-        for s in summaries:
-            table = Table(title=command)
-            table.add_column("measure")
-            table.add_column("value")
-            for k, v in s.items():
-                table.add_row(k, f"{v:.4g}" if isinstance(v, float) else str(v))
-            console.print(table)
-    elif command == "demo":
-        for s in summaries:
-            console.print(training_table(s.get("runs", [])))
-            if s.get("vetting"):
-                print_vetting(console, s["vetting"])
-            if s.get("release"):
-                print_demo_release(console, s["release"])
-            for line in s.get("next_steps", []):
-                console.print(line)
-    from coreach.commands.table import CAUTION_COMMANDS
+    if cmd.show:
+        command_table.load_target(cmd.show)(console, summaries, cmd.name)
+    if cautions and not cmd.prints_cautions:
+        print_cautions(console, cmd.records_person)
 
-    # release prints them itself, after what it published (a refusal published nothing)
-    if command in CAUTION_COMMANDS and command != "release":
-        print_cautions(console)
+
+# ---- one formatter per command (named by `show` in the command table): (console, summaries, command name)
+
+
+def show_train(console, summaries: list[dict], name: str) -> None:
+    console.print(training_table(summaries))
+    if summaries:
+        console.print(f"MLflow: {mlflow_hint()}")
+
+
+def show_vet(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        print_vetting(console, s)
+
+
+def show_release(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        print_release(console, s)
+
+
+def show_replay(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        print_replay(console, s)
+
+
+def show_recipes(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        print_recipes(console, s)
+
+
+def show_aggregate(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        print_aggregate(console, s)
+
+
+def show_reach(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        print_reach(console, s)
+
+
+def show_import(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        print_import(console, s)
+
+
+def show_relabel(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        merged = f", merged with {s['merged_with']}" if s["merged_with"] else ""
+        console.print(f"{s['drives']} drives relabelled ({s['relabelled_states']} states){merged}: "
+                      f"{s['episodes']} episodes in {s['out']}", markup=False)
+        console.print(f"train on it: {s['train']}", markup=False)
+
+
+def show_bench(console, summaries: list[dict], name: str) -> None:
+    """A benchmark's measures as rows, titled with the command (bench train, bench vet, ...)."""
+    for s in summaries:
+        table = Table(title=name)
+        table.add_column("measure")
+        table.add_column("value")
+        for k, v in s.items():
+            table.add_row(k, f"{v:.4g}" if isinstance(v, float) else str(v))
+        console.print(table)
+
+
+def show_demo(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        console.print(training_table(s.get("runs", [])))
+        if s.get("vetting"):
+            print_vetting(console, s["vetting"])
+        if s.get("release"):
+            print_demo_release(console, s["release"])
+        for line in s.get("next_steps", []):
+            console.print(line)
 
 
 def plain_console() -> Console:
@@ -144,12 +176,13 @@ def refusal_line(s: dict) -> str:
             f"({', '.join(s['failed'])}); nothing was written (no bundle, no MLflow run, no registry version)")
 
 
-def print_cautions(console) -> None:
-    from coreach.runtime.model_card import CAUTIONS
+def print_cautions(console, recording: bool = False) -> None:
+    """The cautions (with the consent line where a person is recorded), as `coreach-robot` prints them."""
+    from coreach.runtime.cautions import cautions
 
     console.print("[bold]Cautions[/bold]")
-    for c in CAUTIONS:
-        console.print(f"  - {c}")
+    for c in cautions(recording):
+        console.print(f"  - {c}", markup=False)
 
 
 def print_release(console, s: dict) -> None:
@@ -203,7 +236,7 @@ def print_replay(console, s: dict) -> None:
 
 def print_recipes(console, s: dict) -> None:
     """The recipes table, where its files went, and the MLflow run that holds them."""
-    from coreach.commands.recipes import terminal_table
+    from coreach.commands.recipes.render import terminal_table
 
     console.print(terminal_table(s))
     # paths and overrides are full of [brackets], which rich would read as markup

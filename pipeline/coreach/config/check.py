@@ -10,6 +10,7 @@ from hydra.core.override_parser.overrides_parser import OverridesParser
 from hydra.errors import HydraException
 from omegaconf.errors import OmegaConfBaseException
 
+from coreach.config.command_line import override_key
 from coreach.config.schemas import register
 from coreach.errors import ConfigError
 from coreach.config.compose import lab_file_overrides, one_line, search_path_overrides
@@ -50,7 +51,7 @@ def _culprit(exc: Exception, overrides: list[str]) -> str | None:
             return o
     text = str(exc)
     for o in overrides:
-        key = o.split("=", 1)[0].lstrip("+~")
+        key = override_key(o)
         if key and re.search(rf"(?<![\w.]){re.escape(key)}(?![\w])", text):
             return o
     return None

@@ -1,9 +1,10 @@
-"""Registry side of releases: model versions that passed the release gate, fielding (`coreach promote`) and listing (`coreach releases`).
+"""Registry side of releases: fielding (`coreach promote`, `coreach rollback`), listing (`coreach bundles`) and
+finishing interrupted publishes (`coreach finish-releases`).
 
 Names of our own: a released version carries the tag coreach.gate_passed=true and, while it is the newest
 release, the alias `gate-passed`; the version on the robots carries the alias `fielded`. The fielding history
 is a JSON list of {version, at} in the registered model's tag coreach.fielded_history, newest last, so
-`coreach promote NAME --back` can restore the version fielded before the current one.
+`coreach rollback NAME` can restore the version fielded before the current one.
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bu
 from coreach.runtime.registry_tags import (FIELDED_ALIAS, GATE_PASSED_ALIAS, MODEL_NAME_RE, TAG_BUNDLE_URI,
                                            TAG_GATE, TAG_GATE_PASSED, TAG_GATE_RELAXED, TAG_HISTORY, TAG_MANIFEST,
                                            TAG_RELEASE_RUN, TAG_SOURCE_RUN)
+from coreach.runtime.cautions import cautions
 from coreach.runtime.model_card import relaxed_warning
 
 HISTORY_KEEP = 40  # entries kept in the history tag (tag values are limited to a few thousand characters)
@@ -64,7 +66,7 @@ def get_version(client, name: str, version: str):
         return client.get_model_version(name, str(version))
     except MlflowException as exc:
         if _missing(exc):
-            raise ConfigError(f"model {name}", f"has no version {version!r}; see coreach releases {name}") from None
+            raise ConfigError(f"model {name}", f"has no version {version!r}; see coreach bundles {name}") from None
         raise
 
 
@@ -110,7 +112,7 @@ def promote(client, name: str, version: str, root: Path | None = None) -> dict:
     """Field `version` of `name` (alias `fielded`) after `check_fieldable`; push it on the history."""
     model = get_model(client, name)
     if model is None:
-        raise ConfigError(f"model {name}", "no such registered model; see coreach releases")
+        raise ConfigError(f"model {name}", "no such registered model; see coreach bundles")
     info = check_fieldable(client, name, str(version), root)
     history = _history(model)
     current = (model.aliases or {}).get(FIELDED_ALIAS)
@@ -129,7 +131,7 @@ def promote_back(client, name: str, root: Path | None = None) -> dict:
     """Restore the version fielded before the current one (it must still pass `check_fieldable`)."""
     model = get_model(client, name)
     if model is None:
-        raise ConfigError(f"model {name}", "no such registered model; see coreach releases")
+        raise ConfigError(f"model {name}", "no such registered model; see coreach bundles")
     history = _history(model)
     if len(history) < 2:
         raise CoreachError(f"model {name}", f"no earlier fielded version to go back to (history: "
@@ -192,52 +194,55 @@ def list_releases(client, name: str | None = None, root: Path | None = None) -> 
 
 
 # ------------------------------------------------------------------------------------- commands
-PROMOTE_USAGE = "coreach promote NAME VERSION | coreach promote NAME --back"
+def _fielding_command(command: str, usage: str, args: list[str], count: int) -> list[str]:
+    """promote's and rollback's positional arguments, or one line with the usage."""
+    if any(a.startswith("-") for a in args) or len(args) != count:
+        raise ConfigError(f"coreach {command}", f"usage: {usage}; got {' '.join(args) or 'no arguments'}")
+    return args
+
+
+def _print_fielded(command: str, result: dict, verb: str, as_json: bool) -> None:
+    if as_json:
+        # what is fielded reaches a robot: the JSON carries the cautions a person reading it must see
+        print(json.dumps({**result, "cautions": cautions()}, indent=2))
+    else:
+        was = f" (was {result['previous']})" if result["previous"] else ""
+        print(f"{result['name']}: version {result['fielded']} {verb} as @{FIELDED_ALIAS}{was}; bundle {result['bundle']}")
+        print(f"fielding history (oldest first): {', '.join(result['history'])}")
+    if result["gate_relaxed"]:
+        print(f"coreach {command}: warning: version {result['fielded']} was {relaxed_warning(result['gate_relaxed'])}",
+              file=sys.stderr)
 
 
 def promote_command(args: list[str], as_json: bool) -> int:
-    back = "--back" in args
-    rest = [a for a in args if a != "--back"]
-    if any(a.startswith("-") for a in rest) or len(rest) != (1 if back else 2):
-        raise ConfigError("coreach promote", f"usage: {PROMOTE_USAGE}; got {' '.join(args) or 'no arguments'}")
-    name = check_name(rest[0])
-    client = client_for()
-    result = promote_back(client, name) if back else promote(client, name, rest[1])
-    if as_json:
-        print(json.dumps(result, indent=2))
-    else:
-        verb = "restored" if back else "fielded"
-        was = f" (was {result['previous']})" if result["previous"] else ""
-        print(f"{name}: version {result['fielded']} {verb} as @{FIELDED_ALIAS}{was}; bundle {result['bundle']}")
-        print(f"fielding history (oldest first): {', '.join(result['history'])}")
-    if result["gate_relaxed"]:
-        print(f"coreach promote: warning: version {result['fielded']} was {relaxed_warning(result['gate_relaxed'])}",
-              file=sys.stderr)
+    """`coreach promote NAME VERSION`: field a gate-passed version."""
+    name, version = _fielding_command("promote", "coreach promote NAME VERSION", args, 2)
+    result = promote(client_for(), check_name(name), version)
+    _print_fielded("promote", result, "fielded", as_json)
     return 0
 
 
-RELEASES_USAGE = "coreach releases [NAME] [--repair] [--json]"
+def rollback_command(args: list[str], as_json: bool) -> int:
+    """`coreach rollback NAME`: field again the version fielded before the current one."""
+    (name,) = _fielding_command("rollback", "coreach rollback NAME", args, 1)
+    result = promote_back(client_for(), check_name(name))
+    _print_fielded("rollback", result, "restored", as_json)
+    return 0
 
 
-def releases_command(args: list[str], as_json: bool) -> int:
-    from coreach.release.settle import repair, settle
+def bundles_command(args: list[str], as_json: bool) -> int:
+    """`coreach bundles [NAME]`: the registered versions; it reads only (the repair is finish-releases)."""
+    from coreach.release.settle import owner_alive, pending_runs
 
-    fix = "--repair" in args
-    rest = [a for a in args if a != "--repair"]
-    if len(rest) > 1 or any(a.startswith("-") for a in rest):
-        raise ConfigError("coreach releases", f"usage: {RELEASES_USAGE}; got {' '.join(args)}")
+    if len(args) > 1 or any(a.startswith("-") for a in args):
+        raise ConfigError("coreach bundles", f"usage: coreach bundles [NAME]; got {' '.join(args)}")
     client = client_for()
-    said: list[str] = []
-
-    def say(line: str) -> None:
-        said.append(line)
-        print(f"coreach releases: {line}", file=sys.stderr)
-
-    # what an earlier crash left is finished or rolled back before anything is listed
-    repair(client, None, say) if fix else settle(client, say)
-    if fix and not said:
-        print("coreach releases: --repair found nothing half-done", file=sys.stderr)
-    rows = list_releases(client, check_name(rest[0]) if rest else None)
+    rows = list_releases(client, check_name(args[0]) if args else None)
+    # a half-published version shows as not gate-passed; say why, and what finishes it, without touching it
+    stalled = [run for run in pending_runs(client) if not owner_alive(run)]
+    if stalled:
+        print(f"coreach bundles: {len(stalled)} release(s) were interrupted while publishing; coreach "
+              "finish-releases finishes or removes them", file=sys.stderr)
     if as_json:
         print(json.dumps(rows, indent=2))
         return 0
@@ -262,5 +267,32 @@ def releases_command(args: list[str], as_json: bool) -> int:
     return 0
 
 
-__all__ = ["GATE_PASSED_ALIAS", "FIELDED_ALIAS", "compact_gate", "promote", "promote_back",
-           "list_releases", "check_fieldable", "promote_command", "releases_command", "check_name", "client_for"]
+def finish_releases_command(args: list[str], as_json: bool) -> int:
+    """`coreach finish-releases [--leftovers]`: settle interrupted publishes (and older leftovers), saying what."""
+    from coreach.release.settle import repair, settle
+
+    leftovers = "--leftovers" in args
+    if [a for a in args if a != "--leftovers"]:
+        raise ConfigError("coreach finish-releases", f"usage: coreach finish-releases [--leftovers]; got {' '.join(args)}")
+    client = client_for()
+    said: list[str] = []
+
+    def say(line: str) -> None:
+        said.append(line)
+        if not as_json:
+            print(line)
+
+    if leftovers:
+        repair(client, None, say)
+    else:
+        settle(client, say)
+    if as_json:
+        print(json.dumps({"leftovers": leftovers, "done": said}, indent=2))
+    elif not said:
+        print("nothing was half-done" + ("" if leftovers else " (--leftovers also looks for what older coreach left)"))
+    return 0
+
+
+__all__ = ["GATE_PASSED_ALIAS", "FIELDED_ALIAS", "compact_gate", "promote", "promote_back", "list_releases",
+           "check_fieldable", "promote_command", "rollback_command", "bundles_command", "finish_releases_command",
+           "check_name", "client_for"]

@@ -5,19 +5,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
-CAUTIONS = (
-    "This is research software. It is not a medical device and has not been certified as one.",
-    "Before any use with people: obtain an ethics review, fit a hardware emergency stop within reach of the "
-    "user and the supervisor, and set speed and force limits per ISO 10218-1/-2 and ISO/TS 15066 "
-    "(and ISO 13482 for personal-care robots).",
-    "Follow your local regulations and the judgement of qualified professionals (clinicians, occupational "
-    "therapists, safety engineers).",
-    "The runtime safety filter (stick box and deadband, non-finite-value fault latch, input watchdog, joint "
-    "speed and tool speed caps, joint position look-ahead, workspace box, separation from the scene's modelled "
-    "bodies) is always on and cannot be switched off; it reduces risk but does not replace the measures above.",
-    "The scene's bodies, the person among them, are models: nothing in coreach senses a person. Keep-out and "
-    "reduced-speed zones protect only as far as the modelled (or tracked) positions are right.",
-)
+from coreach.runtime.cautions import CAUTIONS  # one copy of the text, shared with every command
 
 DEFAULT_LIMITS = (
     "Trained on scripted demonstrations in simulation; behaviour with real users, real sensors and "

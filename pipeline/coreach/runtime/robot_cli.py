@@ -3,6 +3,8 @@
     coreach-robot fetch NAME[@ALIAS] [--server URL] [--cache DIR] [--timeout S] [--json] [--debug]
     coreach-robot status [NAME] [--cache DIR] [--json] [--debug]
 
+Both print the cautions (coreach.runtime.cautions) after their result, and --json carries them as `cautions`.
+
 Exit codes: 0 done; 2 bad input or nothing could be fetched (unknown model or alias, server silent, bundle not
 reachable); 3 the store's bundle was refused (hashes do not match the release). Either way the `current`
 bundle is left as it was. The full CLI runs the same fetch as `coreach fetch ...`.
@@ -19,7 +21,8 @@ from typing import Any
 
 from coreach.errors import CoreachError
 from coreach.runtime.fetch import FIELDED_ALIAS, Fetched, default_cache, fetch, status
-from coreach.runtime.model_card import CAUTIONS, relaxed_warning
+from coreach.runtime.cautions import caution_lines, caution_text, cautions
+from coreach.runtime.model_card import relaxed_warning
 from coreach.runtime.store_client import RefusedBundle
 
 PROG = "coreach-robot"
@@ -41,13 +44,17 @@ def _fetch_options(p: argparse.ArgumentParser) -> None:
 
 
 def parser() -> argparse.ArgumentParser:
-    top = _Parser(prog=PROG, description="Fetch, verify and show the fielded decoder bundle on the robot computer.")
+    # every help text ends with the cautions: whoever reads it is about to put a decoder on a robot
+    top = _Parser(prog=PROG, description="Fetch, verify and show the fielded decoder bundle on the robot computer.",
+                  epilog=caution_text(), formatter_class=argparse.RawDescriptionHelpFormatter)
     top.add_argument("--json", action="store_true", help="print the result as JSON")
     top.add_argument("--debug", action="store_true", help="show tracebacks")
     sub = top.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    f = sub.add_parser("fetch", help="bring NAME@ALIAS from the tracking server, verified, and make it current")
+    extra = {"epilog": caution_text(), "formatter_class": argparse.RawDescriptionHelpFormatter}
+    f = sub.add_parser("fetch", help="bring NAME@ALIAS from the tracking server, verified, and make it current",
+                       **extra)  # fmt: skip
     _fetch_options(f)
-    s = sub.add_parser("status", help="the current bundle of each model in the cache, checked again")
+    s = sub.add_parser("status", help="the current bundle of each model in the cache, checked again", **extra)
     s.add_argument("name", nargs="?", metavar="NAME", help="one model (default: every model in the cache)")
     s.add_argument("--cache", help="local bundle cache (default: COREACH_ROBOT_CACHE, else ~/.cache/coreach/bundles)")
     for p in (f, s):  # also accepted after the command
@@ -71,10 +78,6 @@ def _gate_lines(gate: dict[str, Any]) -> list[str]:
 
 def _fmt(v: Any) -> str:
     return f"{v:.4g}" if isinstance(v, float) else str(v)
-
-
-def cautions_lines() -> list[str]:
-    return ["Cautions", *[f"  - {c}" for c in CAUTIONS]]
 
 
 def fetched_lines(r: Fetched) -> list[str]:
@@ -120,18 +123,18 @@ def status_lines(rows: list[dict[str, Any]], cache: str) -> list[str]:
 def _run_fetch(ns: argparse.Namespace, as_json: bool) -> int:
     result = fetch(ns.ref, server=ns.server, cache=ns.cache, timeout=ns.timeout)
     if as_json:
-        print(json.dumps({**result.as_json(), "cautions": list(CAUTIONS)}, indent=2))
+        print(json.dumps({**result.as_json(), "cautions": cautions()}, indent=2))
     else:
-        print("\n".join([*fetched_lines(result), *cautions_lines()]))
+        print("\n".join([*fetched_lines(result), *caution_lines()]))
     return 0
 
 
 def _run_status(ns: argparse.Namespace, as_json: bool) -> int:
     rows = status(ns.cache, ns.name)
     if as_json:
-        print(json.dumps(rows, indent=2))
+        print(json.dumps({"bundles": rows, "cautions": cautions()}, indent=2))
     else:
-        print("\n".join(status_lines(rows, str(ns.cache or default_cache()))))
+        print("\n".join([*status_lines(rows, str(ns.cache or default_cache())), *caution_lines()]))
     return REFUSED if any(r["verified"] is False for r in rows) else 0
 
 
@@ -181,7 +184,7 @@ def _fail(exc: CoreachError, code: int, debug: bool) -> int:
 
 def fetch_command(args: list[str], as_json: bool) -> int:
     """`coreach fetch NAME[@ALIAS] ...` in the full CLI: the same fetch; a refused bundle exits 3 there too."""
-    p = _Parser(prog="coreach fetch")
+    p = _Parser(prog="coreach fetch", add_help=False)  # `coreach fetch --help` is the command table's
     _fetch_options(p)
     ns = p.parse_args(args)
     try:

@@ -86,6 +86,14 @@ class Session:
     """One decoder on one arm. Build with `Session.open(bundle_folder)`; call `step` at the control rate.
 
     `last` is the StepInfo of the latest step, `belief` the goal belief, `fault` the latched fault.
+
+    Cautions (the full text: `coreach.runtime.cautions.CAUTIONS`; print it with `caution_lines()`): this is
+    research software, not a medical device, and has not been certified as one. Before a Session drives an
+    arm near a person: an ethics review (and each participant's informed consent where drives are recorded),
+    a hardware emergency stop within reach of the user and the supervisor, and speed and force limits set per
+    ISO 10218-1/-2 and ISO/TS 15066 (ISO 13482 for personal-care robots); follow your local regulations and
+    qualified professionals. The safety filter inside `step` is always on and reduces risk; it does not
+    replace those measures, and it keeps the arm only from the bodies the manifest models: it senses no one.
     """
 
     def __init__(self, manifest: Manifest, chain: Chain, decoder: ort.InferenceSession):

@@ -1,4 +1,4 @@
-"""`coreach try-bundle FOLDER`: verify a release bundle, then serve a local page to drive it in simulation."""
+"""`coreach test-drive BUNDLE`: verify a release bundle, then serve a local page to drive it in simulation."""
 
 from __future__ import annotations
 
@@ -8,9 +8,10 @@ import signal
 import threading
 
 from coreach.errors import ConfigError
+from coreach.runtime.cautions import caution_lines, cautions
 
-USAGE = ("coreach try-bundle BUNDLE_FOLDER|NAME@ALIAS [--host 127.0.0.1] [--port 8765] [--rate 50] [--record-dir drives] "
-         "[--position-tol 0.02] [--orientation-tol-deg 15]")
+USAGE = ("coreach test-drive BUNDLE_FOLDER|NAME@ALIAS|NAME/VERSION [--host 127.0.0.1] [--port 8765] [--rate 50] "
+         "[--record-dir drives] [--position-tol 0.02] [--orientation-tol-deg 15]")
 OPTIONS = {"--host": str, "--port": int, "--rate": float, "--record-dir": str, "--position-tol": float,
            "--orientation-tol-deg": float}  # fmt: skip
 NOTICE = ("SIMULATION ONLY. Research software, not a medical device. Nothing this server or its page does can "
@@ -27,29 +28,29 @@ def parse(args: list[str]) -> tuple[str, dict]:
         if key in OPTIONS:
             if not eq:
                 if not rest:
-                    raise ConfigError(f"coreach try-bundle {key}", f"needs a value; usage: {USAGE}")
+                    raise ConfigError(f"coreach test-drive {key}", f"needs a value; usage: {USAGE}")
                 value = rest.pop(0)
             try:
                 opts[key] = OPTIONS[key](value)
             except ValueError:
-                raise ConfigError(f"coreach try-bundle {key}", f"expected a {OPTIONS[key].__name__}, got {value!r}")
+                raise ConfigError(f"coreach test-drive {key}", f"expected a {OPTIONS[key].__name__}, got {value!r}")
         elif a.startswith("-") or folder is not None:
-            raise ConfigError("coreach try-bundle", f"unexpected {a!r}; usage: {USAGE}")
+            raise ConfigError("coreach test-drive", f"unexpected {a!r}; usage: {USAGE}")
         else:
             folder = a
     if folder is None:
-        raise ConfigError("coreach try-bundle", f"no bundle folder given; usage: {USAGE}")
+        raise ConfigError("coreach test-drive", f"no bundle folder given; usage: {USAGE}")
     if not 0 <= opts["--port"] <= 65535:
-        raise ConfigError("coreach try-bundle --port", f"expected 0..65535 (0: any free port), got {opts['--port']}")
+        raise ConfigError("coreach test-drive --port", f"expected 0..65535 (0: any free port), got {opts['--port']}")
     if not (math.isfinite(opts["--rate"]) and 10.0 <= opts["--rate"] <= 1000.0):
-        raise ConfigError("coreach try-bundle --rate", f"expected a control rate in 10..1000 Hz, got {opts['--rate']}")
+        raise ConfigError("coreach test-drive --rate", f"expected a control rate in 10..1000 Hz, got {opts['--rate']}")
     for key in ("--position-tol", "--orientation-tol-deg"):
         if not (math.isfinite(opts[key]) and opts[key] > 0):
-            raise ConfigError(f"coreach try-bundle {key}", f"expected a positive number, got {opts[key]}")
+            raise ConfigError(f"coreach test-drive {key}", f"expected a positive number, got {opts[key]}")
     return folder, opts
 
 
-def try_bundle_command(args: list[str], as_json: bool) -> int:
+def test_drive_command(args: list[str], as_json: bool) -> int:
     from coreach.runtime.session import Session
     from coreach.testdrive.server import TestDriveServer
     from coreach.testdrive.sim import Drive
@@ -57,18 +58,21 @@ def try_bundle_command(args: list[str], as_json: bool) -> int:
     from coreach.release.bundle_store import bundle_folder
 
     ref, opts = parse(args)
-    session = Session.open(bundle_folder(ref, "coreach try-bundle"))  # verifies the bundle; a tampered one raises BundleError (one line, exit 2)
+    session = Session.open(bundle_folder(ref, "coreach test-drive"))  # verifies the bundle; a tampered one raises BundleError (one line, exit 2)
     drive = Drive(session, opts["--rate"], opts["--position-tol"], opts["--orientation-tol-deg"], opts["--record-dir"])
     try:
         server = TestDriveServer(drive, opts["--host"], opts["--port"])
     except OSError as exc:
-        raise ConfigError(f"coreach try-bundle {opts['--host']}:{opts['--port']}", f"cannot listen: {exc.strerror}")
+        raise ConfigError(f"coreach test-drive {opts['--host']}:{opts['--port']}", f"cannot listen: {exc.strerror}")
     server.start()
     if as_json:
         print(json.dumps({"url": server.url, "session_id": drive.session_id, "bundle": str(session.manifest.folder),
-                          "manifest_sha256": drive.manifest_sha256}), flush=True)  # fmt: skip
+                          "manifest_sha256": drive.manifest_sha256, "cautions": cautions(recording=True)}),
+              flush=True)  # fmt: skip
     else:
+        # before the page opens, not after Ctrl-C: a person is about to drive, and perhaps be recorded
         print(NOTICE)
+        print("\n".join(caution_lines(recording=True)))
         print(f"bundle {session.manifest.folder} verified (manifest sha256 {drive.manifest_sha256[:16]}...)")
         print(f"test drive: open {server.url} (recordings go to {drive.record_dir}/; Ctrl-C stops)", flush=True)
     done = threading.Event()

@@ -15,7 +15,7 @@ import numpy as np
 from coreach.episodes import Episode, EpisodeSet, to_table
 from coreach.episodes.drive_files import META_MANIFEST, META_SESSION, META_TOLERANCES
 
-SOURCE = "coreach try-bundle"
+SOURCE = "coreach test-drive"
 FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")
 
 

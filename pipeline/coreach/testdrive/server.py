@@ -8,6 +8,7 @@ that stops sending leaves the Session's watchdog to zero the command.
 
 from __future__ import annotations
 
+import html
 import json
 import math
 import threading
@@ -15,13 +16,17 @@ from http import HTTPStatus
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from importlib import resources
 
+from coreach.runtime.cautions import cautions
 from coreach.testdrive.sim import Drive
 
 MAX_BODY = 4096  # an input or command message is a few dozen bytes
 
 
 def page_html() -> bytes:
-    return resources.files("coreach.testdrive").joinpath("page.html").read_bytes()
+    """The page, with the cautions filled in from their one copy (a person drives here and may be recorded)."""
+    page = resources.files("coreach.testdrive").joinpath("page.html").read_text(encoding="utf-8")
+    items = "".join(f"<li>{html.escape(c)}</li>" for c in cautions(recording=True))
+    return page.replace("<!--CAUTIONS-->", items).encode("utf-8")
 
 
 class _Handler(BaseHTTPRequestHandler):
