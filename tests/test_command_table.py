@@ -182,3 +182,12 @@ def test_a_table_entry_can_be_changed_without_touching_the_cli(monkeypatch, caps
     changed = dataclasses.replace(COMMANDS["plugins"], about="a different line")
     monkeypatch.setattr(table, "COMMANDS", {**COMMANDS, "plugins": changed})
     assert "a different line" in main(capsys, "--help")[1]
+
+
+def test_the_test_drive_page_carries_the_cautions_with_consent():
+    from coreach.testdrive.server import page_html
+
+    page = flat(page_html().decode())
+    assert "<!--CAUTIONS-->" not in page
+    for caution in (*CAUTIONS, RECORDING_CAUTION):
+        assert flat(caution).replace("'", "&#x27;") in page, caution

@@ -336,7 +336,7 @@ def test_a_changed_local_cache_is_refused_and_listed(store, bundle):
 
 
 def test_bundle_references_resolve_through_the_store(store, bundle, monkeypatch, tmp_path):
-    """replay, bench runtime and try-bundle take a folder or NAME@ALIAS / NAME/VERSION from the store."""
+    """replay, bench runtime and test-drive take a folder or NAME@ALIAS / NAME/VERSION from the store."""
     c, name = store.client, "by-reference"
     monkeypatch.setenv("MLFLOW_TRACKING_URI", c.tracking_uri)
     v = _vetted_version(store, bundle, name)

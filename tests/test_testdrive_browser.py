@@ -1,4 +1,4 @@
-"""`coreach try-bundle` in a real browser: headless Chromium (Debian's) driven by Playwright's Python API.
+"""`coreach test-drive` in a real browser: headless Chromium (Debian's) driven by Playwright's Python API.
 
 The server runs as the real command in a subprocess (it prints its address with --json); the page is the
 shipped one. The gamepad path is tested with a scripted Gamepad API stub: an init script replaces
@@ -104,12 +104,12 @@ def _env() -> dict:
 @pytest.fixture(scope="module")
 def server(bundle, tmp_path_factory):
     drives = tmp_path_factory.mktemp("drives")
-    proc = subprocess.Popen(_command("--json", "try-bundle", str(bundle), "--port", "0", "--record-dir", str(drives)),
+    proc = subprocess.Popen(_command("--json", "test-drive", str(bundle), "--port", "0", "--record-dir", str(drives)),
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_env())  # fmt: skip
     line = proc.stdout.readline()
     if not line:
         proc.kill()
-        pytest.fail(f"try-bundle did not start: {proc.stderr.read()}")
+        pytest.fail(f"test-drive did not start: {proc.stderr.read()}")
     info = json.loads(line)
     yield info["url"], info, drives
     proc.terminate()
@@ -506,7 +506,7 @@ def test_tampered_bundle_is_refused_with_one_line(bundle, tmp_path):
     data = bytearray((bad / "decoder.onnx").read_bytes())
     data[-1] ^= 0xFF
     (bad / "decoder.onnx").write_bytes(bytes(data))
-    res = subprocess.run(_command("try-bundle", str(bad), "--port", "0"), capture_output=True, text=True, env=_env(),
+    res = subprocess.run(_command("test-drive", str(bad), "--port", "0"), capture_output=True, text=True, env=_env(),
                          timeout=60)  # fmt: skip
     assert res.returncode != 0
     lines = res.stderr.strip().splitlines()

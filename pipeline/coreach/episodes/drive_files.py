@@ -22,7 +22,7 @@ def check_drive_file(path: Path) -> None:
         missing.insert(0, f"metadata {META_MANIFEST}")
     if missing:
         raise DataError(str(path), f"not a recorded test drive (missing {', '.join(missing)}); drives are written "
-                                   "by coreach try-bundle")  # fmt: skip
+                                   "by coreach test-drive")  # fmt: skip
 
 
 def drive_files(entries, option: str) -> list[Path]:

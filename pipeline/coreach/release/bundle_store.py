@@ -98,7 +98,7 @@ def bundle_folder(ref: str, where: str = "option bundle", uri: str | None = None
     client = client_for(uri)
     model = get_model(client, m["name"])
     if model is None:
-        raise CoreachError(where, f"no registered model {m['name']!r} in the tracking store; see coreach releases")
+        raise CoreachError(where, f"no registered model {m['name']!r} in the tracking store; see coreach bundles")
     if m["alias"]:
         aliases = dict(model.aliases or {})
         if m["alias"] not in aliases:

@@ -86,7 +86,7 @@ def publish(cfg, client, policy, run, label: str, ev: dict) -> dict:
             outcome = settle_run(client, client.get_run(rid), _warn)
         except Exception as settle_exc:  # noqa: BLE001 - the original failure is what the user must see
             _warn(f"could not settle release run {rid} ({str(settle_exc).splitlines()[0][:160]}); the next "
-                  "`coreach releases` settles it")
+                  "`coreach release` or `coreach finish-releases` settles it")
             raise exc from None
         if outcome == "finished" and isinstance(exc, Terminated):
             raise Terminated(f"stopped by SIGTERM after the publish had finished: {name} version "

@@ -9,8 +9,9 @@ owner is gone there are two cases:
 - otherwise nothing of it was usable yet: the version, its bundle folder and staging folders, the training
   run's release tag and finally the run itself are removed (roll back). The run goes last, so a crash during
   the roll-back leaves the intent for the next one to find.
-Every `coreach release` and `coreach releases` settles first; `coreach releases --repair` also removes what
-older versions of coreach left without an intent (unusable versions, RUNNING release runs, stray folders).
+Every `coreach release` settles first, and `coreach finish-releases` does it on demand; `coreach finish-releases
+--leftovers` also removes what older versions of coreach left without an intent (unusable versions, RUNNING
+release runs, stray folders).
 """
 
 from __future__ import annotations

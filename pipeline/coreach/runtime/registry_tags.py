@@ -13,7 +13,7 @@ import re
 # a registered model name; it is also a folder name under releases/ and in the robot's cache
 MODEL_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
 
-# the description of a registered model coreach created (how `releases --repair` tells its own models apart)
+# the description of a registered model coreach created (how `finish-releases --leftovers` tells its own models apart)
 MODEL_DESCRIPTION = "coreach latent-action decoders that passed the release gate"
 
 GATE_PASSED_ALIAS = "gate-passed"

@@ -97,7 +97,7 @@ def relabel_command(cfg) -> dict:
                                                   f"{list(getattr(relabelled, what))}")  # fmt: skip
         if abs(base.dt - relabelled.dt) > 1e-9:
             raise ConfigError("option merge", f"{cfg.merge} has a time step of {base.dt} s, the drives {relabelled.dt} "
-                                              f"s; record drives at the scene's rate (coreach try-bundle --rate "
+                                              f"s; record drives at the scene's rate (coreach test-drive --rate "
                                               f"{1.0 / base.dt:g})")  # fmt: skip
         taken = {ep.episode_id for ep in base}
         if taken & {ep.episode_id for ep in relabelled}:

@@ -32,7 +32,7 @@ def _quantiles(values: list[float], qs: tuple[float, ...]) -> list[float]:
 
 
 def drive_summary(paths, label: str = "person (recorded drives)", confidence: float = 0.95) -> dict:
-    """Summary of recorded drives (Parquet files written by `coreach try-bundle`), one episode per drive.
+    """Summary of recorded drives (Parquet files written by `coreach test-drive`), one episode per drive.
 
     Success: the drive's goal reached (approach pose, then the end of its fine motion, with the tolerances
     the drive was recorded with; the `arrived` column). Time: from the first recorded step to arrival.
