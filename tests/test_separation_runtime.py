@@ -298,7 +298,8 @@ def test_bench_fuzz_command_reports_the_coal_figures(bundle, workdir, capsys, mo
 
     monkeypatch.setenv("CI", "true")
     assert main(["bench", "--help"]) == 0
-    assert "bench fuzz" in capsys.readouterr().out
+    listed = capsys.readouterr().out
+    assert "bench commands:" in listed and "\n  fuzz " in listed
     for extra in ([f"bundle={bundle}"], []):
         assert main(["--json", "bench", "fuzz", "steps=300", "episode_steps=150", *extra]) == 0
         out = json.loads(capsys.readouterr().out)["runs"][0]

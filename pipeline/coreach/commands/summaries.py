@@ -46,6 +46,20 @@ def show_vet(console, summaries: list[dict], name: str) -> None:
         print_vetting(console, s)
 
 
+def show_falsify(console, summaries: list[dict], name: str) -> None:
+    for s in summaries:
+        console.print(f"[bold]falsify[/bold] {s['label']} on space {s['space']['name']}: {s['budget']} scenarios "
+                      f"per search, {', '.join(f'{k} {v:.0f}/min' for k, v in s['scenarios_per_minute'].items())}")
+        for sampler, r in s["searches"].items():
+            first = r["first_failure"] or "none"
+            console.print(f"  {sampler:7s} failures {r['failures']:5d}   first failure after {first}   lowest "
+                          f"robustness {r['lowest_robustness']:+.3f} ({r['worst_cause'] or 'succeeded'})")
+        console.print(f"  counterexample suite: {s['counterexample_suite'] or 'none (no failure found)'}")
+        if s.get("stored_for_model"):
+            console.print(f"  kept for the model: {s['stored_for_model']}")
+        console.print(f"  report: {s['report']}")
+
+
 def show_release(console, summaries: list[dict], name: str) -> None:
     for s in summaries:
         print_release(console, s)

@@ -89,6 +89,22 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
              "train. Example: coreach aggregate +experiment=cvae_goal_entropy 'aggregate.rollout_seeds=[1,2,3]'.",
     ),
     Command(
+        "falsify", "coreach.falsify.stage:falsify", config="falsify", show="coreach.commands.summaries:show_falsify",
+        one_summary=True, toward_person=True,
+        about="search a scenario space for the episodes that break a decoder: coreach falsify decoder=NAME@ALIAS",
+        usage=f"coreach falsify {_HYDRA}",
+        help="Searches a declared scenario space (conf/falsify/: switch time and goals, operator rationality, "
+             "noise, tremor and delay, per-goal layout shift, start pose) for the episodes a decoder fails, "
+             "through the vetting loop with its filter and world; every scenario gets a continuous robustness "
+             "score (negative = failed). optuna's TPE sampler searches; random search with the same budget runs "
+             "beside it. Writes the failures, the search curves and an HTML report (logged to MLflow), and a "
+             "counterexample suite that coreach vet suite=<file> runs; for a registered model it joins "
+             ".coreach/counterexamples/NAME/. Options: decoder= (run id, NAME@ALIAS, models:/NAME/VERSION, "
+             "folder), falsify= (space), falsify.bounds.<parameter>=[low,high], budget=, batch=, seed=, "
+             "optimizer= (tpe, random), baseline=false, keep=, repeats=, report_dir=, log=false. Example: "
+             "coreach falsify decoder=shelf-decoder@candidate budget=2000.",
+    ),
+    Command(
         "vet", "coreach.vetting.stage:vet", config="vet", show="coreach.commands.summaries:show_vet",
         one_summary=True, toward_person=True,
         about="closed-loop vetting: coreach vet 'candidates=[<run id>,direct,blend]' suite=goal-switch",

@@ -11,14 +11,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, List, Optional
+from typing import Any, Dict, List, Optional
 
 from coreach.control.separation import SeparationSettings
 from coreach.config.option_specs import choice, integer, number, vector
 
 _SEPARATION = SeparationSettings()  # the person's terms and the clearance default to the filter's own
 
-__all__ = ["SuiteConfig", "ToleranceConfig", "ScenarioConfig", "GoalConfig", "BodyConfig", "PersonConfig",
+__all__ = ["SuiteConfig", "CaseConfig", "CaseOperatorConfig", "FalsifySpaceConfig", "ToleranceConfig", "ScenarioConfig", "GoalConfig", "BodyConfig", "PersonConfig",
            "register", "MIN_SEED", "DEFAULT_POSITION_TOL", "DEFAULT_ORIENTATION_TOL_DEG"]  # fmt: skip
 
 # Training (demonstration and trainer seeds) uses small integers from 0; vetting draws from 10_000 up so no
@@ -33,6 +33,31 @@ DEFAULT_ORIENTATION_TOL_DEG = 15.0
 class ToleranceConfig:
     position_m: float = number(DEFAULT_POSITION_TOL, 1e-6, 1.0, "m")
     orientation_deg: float = number(DEFAULT_ORIENTATION_TOL_DEG, 1e-3, 180.0, "deg")
+
+
+@dataclass
+class CaseOperatorConfig:
+    """Per-episode operator values of one case (null = the suite operator's own value)."""
+
+    beta: Optional[float] = number(None, 1e-9, math.inf, "per m", optional=True)
+    noise_std: Optional[float] = number(None, 0.0, 10.0, "stick units", optional=True)
+    tremor_std: Optional[float] = number(None, 0.0, 10.0, "stick units", optional=True)
+    tremor_cutoff_hz: Optional[float] = number(None, 1e-6, 1e3, "Hz", optional=True)
+    delay_steps: Optional[int] = None
+
+
+@dataclass
+class CaseConfig:
+    """One explicit episode of a suite (a counterexample found by `coreach falsify`, or a case a lab writes):
+    the goals, the switch, the layout shift of each goal and the start pose, and the operator's values."""
+
+    goal: str = "???"  # initial goal
+    switch_to: Optional[str] = None  # null: no switch
+    switch_at: Optional[float] = number(None, 0.0, 1.0, "of the horizon", optional=True)
+    layout_shift: Dict[str, Any] = field(default_factory=dict)  # goal name -> [dx, dy, dz] m
+    start_offset: List[Any] = field(default_factory=list)  # rad per joint, added to the start pose; [] = none
+    operator: CaseOperatorConfig = field(default_factory=CaseOperatorConfig)
+    robustness: Optional[float] = None  # what the search measured for it (a note; vetting measures anew)
 
 
 @dataclass
@@ -55,6 +80,9 @@ class SuiteConfig:
     dt: Optional[float] = number(None, 1e-4, 10.0, "s", optional=True)  # null = the scenario's
     tolerances: ToleranceConfig = field(default_factory=ToleranceConfig)
     candidates_per_axis: int = integer(5, 2, " (stick grid points per axis)")
+    # explicit episodes: when given, the suite runs each case `episodes` times (layout and start jitter still
+    # apply on top of each case's own shift), and switch_fractions / switch_to are not used
+    cases: List[CaseConfig] = field(default_factory=list)
 
 
 @dataclass
@@ -100,7 +128,22 @@ class ScenarioConfig:
     person: Optional[PersonConfig] = None
 
 
-SCHEMAS = {"suite": ("base_suite", SuiteConfig), "scenario": ("base_scenario", ScenarioConfig)}
+@dataclass
+class FalsifySpaceConfig:
+    """A scenario space `coreach falsify` searches (conf/falsify/<name>.yaml): a base suite (scene, horizon,
+    tolerances, start pose, operator), the goals a case may start at and switch to, and bounds [low, high] per
+    parameter (coreach.falsify.space names the parameters and checks the bounds)."""
+
+    name: str = "???"
+    suite: str = "goal-switch"
+    goals_from: Optional[List[str]] = None  # null = every goal of the scene
+    goals_to: Optional[List[str]] = None  # null = every goal of the scene; a case switches to another goal
+    switch: bool = True  # false: cases without a goal switch
+    bounds: Dict[str, Any] = field(default_factory=dict)  # parameter -> [low, high] (checked by coreach.falsify.space)
+
+
+SCHEMAS = {"suite": ("base_suite", SuiteConfig), "scenario": ("base_scenario", ScenarioConfig),
+           "falsify": ("base_falsify", FalsifySpaceConfig)}  # fmt: skip
 
 
 def register() -> None:

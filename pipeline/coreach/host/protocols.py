@@ -216,6 +216,11 @@ class OperatorOptional(Protocol):
         """`Operator.reset` that also takes the control period `dt` (s) as a keyword, e.g. for band-limited
         tremor; the loop passes `dt=` only to operators whose `reset` has that parameter."""
 
+    def vary(self, values: dict[str, Tensor]) -> None:
+        """After `reset`: per-episode values {name: [E]} of the operator's own options (nan, or -1 for integers,
+        = the operator's configured value). The loop calls it when a suite's cases set operator values; an
+        operator without it cannot run such a suite (one line naming it)."""
+
 
 OPTIONAL: dict[str, type] = {
     "robot": RobotOptional,

@@ -187,6 +187,11 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         keep_out, person_tau = s.keep_out, max(s.person_tau, limits.lookahead_s or dt)
 
     _reset_operator(operator, E, generator, dt)
+    if plan.operator_values:
+        if not callable(getattr(operator, "vary", None)):
+            raise ConfigError(f"operator {operator.name}", "the suite's cases set operator values per episode "
+                                                           "and this operator has no `vary`")  # fmt: skip
+        operator.vary(plan.operator_values)
     belief = belief_model.initial(E, G, q[:, 0])
     anchor = None  # [E, 3] tool position at the last belief update
     for t in range(T + 1):

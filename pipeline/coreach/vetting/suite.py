@@ -14,8 +14,8 @@ from torch import Tensor
 
 from omegaconf import DictConfig, OmegaConf
 
-from coreach.config.schemas import (DEFAULT_ORIENTATION_TOL_DEG, DEFAULT_POSITION_TOL, MIN_SEED, SuiteConfig,
-                                    ToleranceConfig)  # fmt: skip
+from coreach.config.schemas import (DEFAULT_ORIENTATION_TOL_DEG, DEFAULT_POSITION_TOL, MIN_SEED, CaseConfig,
+                                    CaseOperatorConfig, SuiteConfig, ToleranceConfig)  # fmt: skip
 from coreach.errors import ConfigError
 from coreach.config.compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
 from coreach.config.option_specs import check_ranges, is_number
@@ -37,6 +37,9 @@ class EpisodePlan:
     switch_fraction: Tensor  # [E] float64, nan for no switch
     layout: Layout  # E layouts of all G goals
     q_start: Tensor  # [E, n]
+    # per-episode operator values ({name: [E]}; nan, or -1 for delay_steps, = the operator's own value);
+    # empty unless the suite lists cases that set them
+    operator_values: dict = field(default_factory=dict)
 
     def __len__(self) -> int:
         return int(self.goal_initial.shape[0])
@@ -47,6 +50,7 @@ class EpisodePlan:
         return EpisodePlan(
             self.goal_initial[idx], self.goal_final[idx], self.switch_step[idx], self.switch_fraction[idx],
             Layout(lay.names, lay.approach_pos[idx], lay.approach_rot[idx], lay.fine[idx]), self.q_start[idx],
+            {k: v[idx] for k, v in self.operator_values.items()},
         )  # fmt: skip
 
 
@@ -71,6 +75,7 @@ class Suite:
     position_tol: float = DEFAULT_POSITION_TOL  # m
     orientation_tol_deg: float = DEFAULT_ORIENTATION_TOL_DEG
     candidates_per_axis: int = 5
+    cases: list[dict] = field(default_factory=list)  # explicit episodes (CaseConfig as plain data)
     path: str = "suite"  # where it was read from, for error messages
     scenario_obj: Scenario | None = field(default=None, repr=False, compare=False)
 
@@ -93,7 +98,7 @@ class Suite:
 
     @property
     def n_episodes(self) -> int:
-        return self.episodes * len(self.switch_fractions)
+        return self.episodes * (len(self.cases) if self.cases else len(self.switch_fractions))
 
     @property
     def goal_names(self) -> list[str]:
@@ -117,6 +122,8 @@ class Suite:
         """The suite as plain data, in the flat form suite_from_dict reads (for run records and reports)."""
         keys = ["name", "scenario", "operator"] + [f.name for f in dataclasses.fields(SuiteConfig)
                                                    if f.name not in ("name", "tolerances")]  # fmt: skip
+        if not self.cases:
+            keys.remove("cases")
         out = {k: getattr(self, k) for k in keys}
         out["layout_offset"] = list(self.layout_offset)
         out["tolerances"] = self.tolerances
@@ -159,6 +166,11 @@ class Suite:
                 f"({', '.join(scene.goal_names)}); vet it on a suite over a scene with the same goals",
             )
         q0 = self._start_q(robot, where)
+        for i, case in enumerate(self.cases):
+            if case["start_offset"] and len(case["start_offset"]) != robot.dof:
+                raise ConfigError(f"{where}, option cases[{i}].start_offset",
+                                  f"expected [] or {robot.dof} joint offsets (rad) for {robot.name}, got "
+                                  f"{len(case['start_offset'])} values")  # fmt: skip
         self.build_operator()
         self._check_reach(robot, q0, where)
 
@@ -221,6 +233,8 @@ class Suite:
         start jitter, and the final goals when `switch_to` is "random". `robot` gives the home pose and
         joint limits (needed unless `start` lists joint positions and `start_jitter` is 0).
         """
+        if self.cases:
+            return self._cases_plan(generator, robot)
         E, T = self.n_episodes, self.steps
         used = torch.tensor(self.goal_indices, dtype=torch.long)
         U = len(used)
@@ -231,16 +245,7 @@ class Suite:
         has_switch = ~torch.isnan(fractions)
         switch_step = torch.where(has_switch, torch.round(torch.nan_to_num(fractions) * T).long(), -1)
 
-        scene = self.scene
-        jitter = scene.jitter if self.layout_jitter is None else float(self.layout_jitter)
-        layout = dataclasses.replace(scene, jitter=jitter).sample_layouts(E, generator)
-        layout.approach_pos = layout.approach_pos + torch.tensor(self.layout_offset, dtype=torch.float64)
-
-        if robot is None and (self.start == "home" or self.start_jitter > 0):
-            raise ValueError("episodes_plan needs the robot for start='home' or start_jitter > 0")
-        q0 = self._start_q(robot, self.path) if robot is not None else torch.tensor(self.start, dtype=torch.float64)
-        noise = torch.rand(E, q0.shape[0], generator=generator, dtype=torch.float64) * 2 - 1
-        q_start = q0 + self.start_jitter * noise
+        layout, q_start = self._layouts_and_starts(E, generator, robot)
         if robot is not None:
             lo, hi = robot.q_lower.to(torch.float64), robot.q_upper.to(torch.float64)
             q_start = torch.minimum(torch.maximum(q_start, lo), hi)
@@ -251,6 +256,54 @@ class Suite:
             final_slot = (slot + torch.randint(1, max(U, 2), (E,), generator=generator)) % U
         final_slot = torch.where(has_switch, final_slot, slot)
         return EpisodePlan(used[slot], used[final_slot], switch_step, fractions, layout, q_start)
+
+    def _layouts_and_starts(self, E: int, generator: torch.Generator, robot) -> tuple[Layout, Tensor]:
+        """E layouts (the scene's jitter replaced by `layout_jitter`, `layout_offset` added) and E start poses
+        (start jitter drawn, clamped to the joint limits), in that draw order."""
+        scene = self.scene
+        jitter = scene.jitter if self.layout_jitter is None else float(self.layout_jitter)
+        layout = dataclasses.replace(scene, jitter=jitter).sample_layouts(E, generator)
+        layout.approach_pos = layout.approach_pos + torch.tensor(self.layout_offset, dtype=torch.float64)
+        if robot is None and (self.start == "home" or self.start_jitter > 0):
+            raise ValueError("episodes_plan needs the robot for start='home' or start_jitter > 0")
+        q0 = self._start_q(robot, self.path) if robot is not None else torch.tensor(self.start, dtype=torch.float64)
+        noise = torch.rand(E, q0.shape[0], generator=generator, dtype=torch.float64) * 2 - 1
+        return layout, q0 + self.start_jitter * noise
+
+    def _cases_plan(self, generator: torch.Generator, robot) -> EpisodePlan:
+        """The suite's cases, each `episodes` times (case-major): the case's goals and switch, its layout shift
+        on top of the drawn layout, its start offset on top of the drawn start, its operator values."""
+        names = self.goal_names
+        R, T = self.episodes, self.steps
+        E = R * len(self.cases)
+        layout, q_start = self._layouts_and_starts(E, generator, robot)
+
+        def per_case(values, dtype) -> Tensor:
+            return torch.tensor(values, dtype=dtype).repeat_interleave(R, dim=0)
+
+        initial = per_case([names.index(c["goal"]) for c in self.cases], torch.long)
+        final = per_case([names.index(c["switch_to"] or c["goal"]) for c in self.cases], torch.long)
+        fraction = per_case([math.nan if c["switch_to"] is None else float(c["switch_at"]) for c in self.cases],
+                            torch.float64)  # fmt: skip
+        step = torch.where(torch.isnan(fraction), -1,
+                           torch.round(torch.nan_to_num(fraction) * T).long().clamp(1, T - 1))  # fmt: skip
+        shift = per_case([[c["layout_shift"].get(g, [0.0, 0.0, 0.0]) for g in names] for c in self.cases],
+                         torch.float64)  # [E, G, 3]
+        layout.approach_pos = layout.approach_pos + shift
+        n = q_start.shape[1]
+        q_start = q_start + per_case([c["start_offset"] or [0.0] * n for c in self.cases], torch.float64)
+        if robot is not None:
+            lo, hi = robot.q_lower.to(torch.float64), robot.q_upper.to(torch.float64)
+            q_start = torch.minimum(torch.maximum(q_start, lo), hi)
+        values = {}
+        for key in ("beta", "noise_std", "tremor_std", "tremor_cutoff_hz"):
+            if any(c["operator"].get(key) is not None for c in self.cases):
+                values[key] = per_case([math.nan if c["operator"].get(key) is None else float(c["operator"][key])
+                                        for c in self.cases], torch.float64)  # fmt: skip
+        if any(c["operator"].get("delay_steps") is not None for c in self.cases):
+            values["delay_steps"] = per_case([-1 if c["operator"].get("delay_steps") is None
+                                              else int(c["operator"]["delay_steps"]) for c in self.cases], torch.long)
+        return EpisodePlan(initial, final, step, fraction, layout, q_start, values)
 
 
 class _StartAt:
@@ -313,21 +366,51 @@ def build_suite(node: Any, scene: Scenario, operator: dict, where: str) -> Suite
         if f is not None and not (is_number(f) and 0.0 < f < 1.0):
             raise ConfigError(f"{where}.switch_fractions[{i}]",
                               f"expected null (no switch) or a fraction of the horizon strictly between 0 and 1, got {f!r}")  # fmt: skip
-    if any(f is not None for f in fractions) and len(scene.goals if goals is None else goals) < 2:
+    if any(f is not None for f in fractions) and len(scene.goals if goals is None else goals) < 2 and not o["cases"]:
         raise ConfigError(f"{where}.switch_fractions", "goal switches need at least 2 goals")
+    cases = [_check_case(c, scene, f"{where}.cases[{i}]") for i, c in enumerate(o["cases"])]
     suite = Suite(
         name=o["name"], scenario=scene.name, operator=dict(operator), goals=goals,
         layout_offset=tuple(float(v) for v in o["layout_offset"]), layout_jitter=o["layout_jitter"], start=start,
         start_jitter=float(o["start_jitter"]), switch_fractions=list(fractions), switch_to=o["switch_to"],
         episodes=o["episodes"], seed=o["seed"], horizon_s=float(o["horizon_s"]), dt=o["dt"],
         position_tol=float(tol["position_m"]), orientation_tol_deg=float(tol["orientation_deg"]),
-        candidates_per_axis=o["candidates_per_axis"], path=where, scenario_obj=scene,
+        candidates_per_axis=o["candidates_per_axis"], cases=cases, path=where, scenario_obj=scene,
     )  # fmt: skip
     for i, f in enumerate(fractions):
         if f is not None and not 1 <= round(f * suite.steps) <= suite.steps - 1:
             raise ConfigError(f"{where}.switch_fractions[{i}]",
                               f"switch at step {round(f * suite.steps)} of {suite.steps}; expected a step inside the horizon")  # fmt: skip
     return suite
+
+
+def _check_case(case: Any, scene: Scenario, where: str) -> dict:
+    """One case as plain data, checked against CaseConfig and the scene (goal names, switch, shift vectors)."""
+    c = on_schema(CaseConfig, OmegaConf.to_container(case) if isinstance(case, DictConfig) else case, where)
+    check_ranges(CaseConfig, c, where)
+    check_ranges(CaseOperatorConfig, c["operator"], f"{where}.operator")
+    names = scene.goal_names
+    for key in ("goal", "switch_to"):
+        if c[key] is not None and c[key] not in names:
+            raise ConfigError(f"{where}.{key}", f"unknown goal {c[key]!r}; scenario {scene.name!r} has {names}")
+    if (c["switch_to"] is None) != (c["switch_at"] is None):
+        raise ConfigError(f"{where}.switch_at", "give switch_to and switch_at together (or neither: no switch)")
+    if c["switch_to"] is not None and c["switch_to"] == c["goal"]:
+        raise ConfigError(f"{where}.switch_to", f"a switch leads to another goal than {c['goal']!r}")
+    if c["switch_at"] is not None and not 0.0 < c["switch_at"] < 1.0:
+        raise ConfigError(f"{where}.switch_at", f"expected a fraction of the horizon strictly between 0 and 1, "
+                                                f"got {c['switch_at']!r}")  # fmt: skip
+    for g, v in c["layout_shift"].items():
+        if g not in names:
+            raise ConfigError(f"{where}.layout_shift.{g}", f"unknown goal; scenario {scene.name!r} has {names}")
+        if len(v) != 3 or not all(is_number(x) for x in v):
+            raise ConfigError(f"{where}.layout_shift.{g}", f"expected [dx, dy, dz] in m, got {list(v)!r}")
+    if not all(is_number(x) for x in c["start_offset"]):
+        raise ConfigError(f"{where}.start_offset", f"expected joint offsets in rad, got {c['start_offset']!r}")
+    delay = c["operator"].get("delay_steps")
+    if delay is not None and (not isinstance(delay, int) or isinstance(delay, bool) or delay < 0):
+        raise ConfigError(f"{where}.operator.delay_steps", f"expected null or an integer >= 0, got {delay!r}")
+    return c
 
 
 def suite_from_config(cfg: DictConfig, where: str = "suite") -> Suite:

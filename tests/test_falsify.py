@@ -1,0 +1,213 @@
+"""coreach falsify: the space's checks, the robustness score, the search against random search, per-episode
+operator values, counterexample suites through `coreach vet`, and the command end to end on a tiny decoder."""
+
+from __future__ import annotations
+
+import json
+import statistics
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import torch
+import yaml
+from conftest import SMALL, cli_env
+
+from coreach.errors import ConfigError
+from coreach.falsify.counterexamples import model_name, suite_data, write_suite
+from coreach.falsify.robustness import robustness
+from coreach.falsify.search import search
+from coreach.falsify.space import space_from_config
+
+COREACH = str(Path(sys.executable).parent / "coreach")
+GOALS = ["lamp_switch", "bottle", "book", "drawer_knob"]
+BOUNDS = {"switch_at": [0.1, 0.9], "beta": [100.0, 800.0], "tremor_std": [0.0, 0.4], "layout_shift_m": [-0.04, 0.04],
+          "delay_steps": [0, 3]}  # fmt: skip
+
+
+def run(args, cwd, timeout=600):
+    return subprocess.run([COREACH, *args], cwd=cwd, capture_output=True, text=True, env=cli_env(), timeout=timeout)
+
+
+def space(**bounds):
+    return space_from_config({"name": "t", "bounds": {**BOUNDS, **bounds}}, GOALS, "falsify/t.yaml")
+
+
+# ------------------------------------------------------------------------------------------------ the space
+@pytest.mark.parametrize("key, value, words", [
+    ("beta", [800.0, 100.0], "inverted bounds"),
+    ("tremor_std", [0.2, 0.2], "empty interval"),
+    ("tremor_std", [], "expected [low, high]"),
+    ("head_tilt", [0.0, 1.0], "unknown parameter"),
+    ("switch_at", [0.0, 0.5], "leaves the parameter's range"),
+    ("delay_steps", [0.5, 2.0], "integer bounds"),
+])  # fmt: skip
+def test_bad_bounds_are_refused_naming_the_parameter(key, value, words):
+    with pytest.raises(ConfigError) as exc:
+        space(**{key: value})
+    assert f"falsify/t.yaml.bounds.{key}" in exc.value.where and words in exc.value.problem
+
+
+def test_a_case_stays_inside_the_bounds_and_always_switches_goal():
+    sp = space()
+    gen = torch.Generator().manual_seed(0)
+
+    def draw(name, lo, hi, kind):
+        u = float(torch.rand((), generator=gen))
+        return round(lo + u * (hi - lo)) if kind == "int" else lo + u * (hi - lo)
+
+    for _ in range(200):
+        c = sp.case(lambda name, ch: ch[int(torch.randint(len(ch), (), generator=gen))], draw, 7)
+        assert c["switch_to"] != c["goal"] and 0.1 <= c["switch_at"] <= 0.9
+        assert 100.0 <= c["operator"]["beta"] <= 800.0 and c["operator"]["delay_steps"] in (0, 1, 2, 3)
+        assert set(c["layout_shift"]) == set(GOALS)
+        assert all(-0.04 <= x <= 0.04 for v in c["layout_shift"].values() for x in v)
+
+
+def test_model_names_from_references():
+    assert model_name("shelf@candidate") == "shelf" and model_name("models:/shelf@prod") == "shelf"
+    assert model_name("models:/shelf/3") == "shelf" and model_name("0123456789abcdef0123456789abcdef") is None
+
+
+# --------------------------------------------------------------------------------------------- the search
+def _constructed(cases):
+    """A known failure region (all four at once): a late switch (after 0.8) to the drawer knob, the knob
+    shifted more than 3 cm forward, an operator less rational than beta 250. The score is the largest of the
+    four margins, so it is negative exactly inside the region (the form of a robustness score of a
+    conjunction: the smallest margin to leaving the region, as in signal temporal logic robustness)."""
+    scores = [max(0.3 * (c["switch_to"] != "drawer_knob") - 0.05, 0.8 - c["switch_at"],
+                  10 * (0.03 - c["layout_shift"]["drawer_knob"][0]), (c["operator"]["beta"] - 250) / 1000)
+              for c in cases]  # fmt: skip
+    return scores, [{} for _ in cases]
+
+
+def test_the_search_finds_the_constructed_failure_before_random_search():
+    """Fixed seeds, small budget: the median number of evaluations to the first failure over 5 seeds is
+    smaller for TPE than for random search over the same space (the region holds about 1/300 of it:
+    1/4 goal x 1/8 switch x 1/8 shift x 0.21 beta)."""
+    sp = space()
+    first = {}
+    for sampler in ("tpe", "random"):
+        found = [search(sp, _constructed, 1200, 50, seed, sampler, 7, stop_at_failure=True).first_failure
+                 for seed in range(5)]  # fmt: skip
+        first[sampler] = statistics.median(f if f is not None else 10_000 for f in found)
+    assert first["tpe"] < first["random"], first
+
+
+# ------------------------------------------------------------------------- cases, robustness, the operator
+def _case_suite(tmp_path: Path, cases: list[dict], horizon: float = 30.0, episodes: int = 1) -> Path:
+    from coreach.vetting.suite import load_suite
+
+    base = load_suite("goal-switch")
+    data = suite_data(base, "cx", cases, episodes, {"by": "test"})
+    data["horizon_s"] = horizon
+    return write_suite(tmp_path / "cx.yaml", data)
+
+
+def test_robustness_is_negative_exactly_for_failed_episodes(tmp_path):
+    """The direct baseline through explicit cases, one long enough to succeed and the same with a 3 s horizon
+    that cannot: the score's sign follows success, and it lies in [-1, 1]."""
+    from coreach.host.registry import build_plugin
+    from coreach.safety import limits_from_config
+    from coreach.config.check import compose_config
+    from coreach.vetting.loop import rollout
+    from coreach.vetting.stage import build_candidate
+    from coreach.vetting.suite import load_suite
+
+    cfg = compose_config("vet", [])
+    robot, belief = build_plugin(cfg.robot, "robot"), build_plugin(cfg.belief, "belief")
+    limits = limits_from_config(robot, cfg.safety)
+    interface, _ = build_candidate("direct", None, "sqlite:///unused.db")
+    cases = [{"goal": "bottle"}, {"goal": "book", "switch_to": "lamp_switch", "switch_at": 0.3}]
+    for horizon in (30.0, 3.0):
+        suite = load_suite(_case_suite(tmp_path, cases, horizon, episodes=2))
+        record = rollout(robot, interface, suite.build_operator(), suite, belief, limits, suite.generator())
+        score = robustness(record)["score"]
+        assert ((score < 0) == ~record.success).all() and (score.abs() <= 1).all()
+        assert bool(record.success.all()) == (horizon == 30.0)
+
+
+def test_per_episode_operator_values_equal_to_its_own_reproduce_it():
+    """`vary` with every episode at the operator's own values draws the same choices and sticks as the
+    operator without it (the same random stream), and a per-episode delay of d gives no input for d steps."""
+    from coreach_plugins.operator.boltzmann import NO_INPUT, BoltzmannOperator
+
+    E = 6
+    value = torch.randn(E, 1, 25, dtype=torch.float64) * 0.01
+    stick = torch.zeros(E, 2, dtype=torch.float64)
+    out = []
+    for varied in (False, True):
+        op = BoltzmannOperator(beta=300.0, tremor_std=0.2, noise_std=0.1, delay_steps=0)
+        gen = torch.Generator().manual_seed(3)
+        op.reset(E, gen, dt=0.1)
+        if varied:
+            op.vary({"beta": torch.full((E,), 300.0), "tremor_std": torch.full((E,), 0.2),
+                     "noise_std": torch.full((E,), float("nan"))})  # fmt: skip
+        out.append([(op.choose(value, t, gen), op.perturb(stick, t, gen)) for t in range(5)])
+    for (c0, s0), (c1, s1) in zip(*out):
+        assert torch.equal(c0, c1) and torch.allclose(s0, s1, atol=1e-8)  # the pole in float vs tensor arithmetic
+
+    op = BoltzmannOperator(greedy=True)
+    op.reset(3, torch.Generator(), dt=0.1)
+    op.vary({"delay_steps": torch.tensor([0, 2, -1])})  # -1: the operator's own (0)
+    picks = torch.stack([op.choose(value[:3], t, None) for t in range(4)])  # [T, 3]
+    assert (picks[:2, 1] == NO_INPUT).all() and (picks[2:, 1] >= 0).all()
+    assert (picks[:, 0] >= 0).all() and (picks[:, 2] >= 0).all()
+
+
+def test_a_counterexample_suite_runs_through_vet_and_a_hand_edit_is_refused(tmp_path):
+    cases = [{"goal": "bottle", "switch_to": "drawer_knob", "switch_at": 0.6, "layout_shift": {"drawer_knob": [0, 0.02, 0]},
+              "operator": {"beta": 200.0, "delay_steps": 2}}, {"goal": "book", "operator": {"noise_std": 0.1}}]  # fmt: skip
+    path = _case_suite(tmp_path, cases, horizon=5.0, episodes=2)
+    res = run(["--json", "vet", f"suite={path}", "candidates=[direct]", "log=false", f"report_dir={tmp_path / 'r'}"],
+              tmp_path)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    summary = json.loads(res.stdout)["summaries"]["direct"]
+    assert summary["n_episodes"] == 4 and summary["suite"] == "cx"
+
+    data = yaml.safe_load(path.read_text())
+    data["cases"][0]["operator"]["betta"] = 100.0  # a typo made by hand
+    path.write_text(yaml.safe_dump(data))
+    res = run(["vet", f"suite={path}", "candidates=[direct]", "log=false"], tmp_path)
+    assert res.returncode == 2 and len(res.stderr.strip().splitlines()) == 1, res.stderr
+    assert "betta" in res.stderr and "Traceback" not in res.stderr
+
+
+# -------------------------------------------------------------------------------------------- the command
+@pytest.fixture(scope="module")
+def decoder(tmp_path_factory):
+    cwd = tmp_path_factory.mktemp("falsify")
+    res = run(["--json", "train", *SMALL], cwd)
+    assert res.returncode == 0, res.stderr
+    return cwd, json.loads(res.stdout)["runs"][0]["run_id"]
+
+
+def test_falsify_end_to_end_on_a_tiny_decoder(decoder):
+    """Two small searches (TPE and random, 20 scenarios each): the figures, the report and, when
+    something failed, a counterexample suite that vet runs."""
+    cwd, run_id = decoder
+    res = run(["--json", "falsify", f"decoder={run_id}", "budget=20", "batch=10", "report_dir=out",
+               "falsify.bounds.switch_at=[0.3,0.7]"], cwd)  # fmt: skip
+    assert res.returncode == 0, res.stderr
+    s = json.loads(res.stdout)
+    assert set(s["searches"]) == {"tpe", "random"} and s["budget"] == 20
+    assert all(v > 0 for v in s["scenarios_per_minute"].values())
+    assert Path(s["report"]).is_file() and (cwd / "out" / "evaluations.csv").read_text().count("\n") == 41
+    assert s["worst"]["robustness"] == min(r["lowest_robustness"] for r in s["searches"].values())
+    if s["counterexample_suite"]:
+        res = run(["--json", "vet", f"suite={s['counterexample_suite']}", "candidates=[direct]", "log=false",
+                   "suite.episodes=1", "report_dir=vet"], cwd)  # fmt: skip
+        assert res.returncode == 0, res.stderr
+
+
+@pytest.mark.parametrize("args, words", [
+    (["budget=0"], "option budget"),
+    (["decoder=direct"], "is a baseline interface, not a decoder"),
+    (["falsify.bounds.beta=[800,100]"], "inverted bounds"),
+    (["+falsify.bounds.head_tilt=[0,1]"], "unknown parameter"),
+])  # fmt: skip
+def test_bad_input_gets_one_line_and_exit_2(tmp_path, args, words):
+    res = run(["falsify", "decoder=0123456789abcdef0123456789abcdef", *args], tmp_path)
+    assert res.returncode == 2, res.stderr
+    assert len(res.stderr.strip().splitlines()) == 1 and words in res.stderr, res.stderr
