@@ -211,3 +211,31 @@ def test_bad_input_gets_one_line_and_exit_2(tmp_path, args, words):
     res = run(["falsify", "decoder=0123456789abcdef0123456789abcdef", *args], tmp_path)
     assert res.returncode == 2, res.stderr
     assert len(res.stderr.strip().splitlines()) == 1 and words in res.stderr, res.stderr
+
+
+def test_the_gate_with_the_step_refuses_a_decoder_that_fails_inside_the_budget(decoder):
+    """A barely trained decoder, every other gate loosened so that only the new rows can refuse it: the
+    falsification step finds a failure within 20 scenarios and the release is refused (exit 3) naming it; a
+    counterexample suite kept for the model name runs as a gate suite of its own."""
+    cwd, run_id = decoder
+    short = cwd / "nominal-short.yaml"
+    short.write_text("scenario: bedside_shelf\noperator: expert\nname: nominal-short\nepisodes: 1\nhorizon_s: 10.0\n"
+                     "seed: 10000\n")  # fmt: skip
+    kept = cwd / ".coreach" / "counterexamples" / "falsify-test"
+    cases = [{"goal": "bottle", "switch_to": "book", "switch_at": 0.5, "operator": {"delay_steps": 1}}]
+    from coreach.vetting.suite import load_suite
+
+    write_suite(kept / "earlier.yaml", suite_data(load_suite("goal-switch"), "cx", cases, 1, {"by": "test"}))
+    loose = ["gates.success_lo=0", "gates.recovery_lo=0", "gates.max_violations=1000000", "gates.stick_gain_median=0",
+             "gates.latency_p99_us=1000000", "gates.max_contacts=1000000", "gates.max_keep_out=1000000",
+             "gates.min_separation_m=0", "gates.max_excess=1000000"]  # fmt: skip
+    res = run(["--json", "release", f"run={run_id}", f"gate_suites=[{short}]", "name=falsify-test",
+               "latency.steps=300", "latency.warmup=20", *loose, "falsification.enabled=true",
+               "falsification.budget=20", "falsification.batch=10"], cwd)  # fmt: skip
+    assert res.returncode == 3, res.stderr
+    out = json.loads(res.stdout)
+    gates = out["gates"]
+    assert "success[counterexamples/earlier]" in gates
+    row = gates["falsification[bedside_shelf]"]
+    assert not row["passed"] and row["value"] >= 1 and out["released"] is False
+    assert "falsification[bedside_shelf]" in out["failed"]

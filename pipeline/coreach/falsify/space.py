@@ -8,12 +8,12 @@ from typing import Any, Callable
 
 from omegaconf import DictConfig, OmegaConf
 
-from coreach.config.compose import on_schema
+from coreach.config.compose import compose_here, is_file_reference, on_schema, options, read_yaml_file
 from coreach.config.option_specs import is_number
 from coreach.config.schemas import FalsifySpaceConfig
 from coreach.errors import ConfigError
 
-__all__ = ["PARAMETERS", "Space", "space_from_config", "Suggest"]
+__all__ = ["PARAMETERS", "Space", "space_from_config", "space_node", "Suggest"]
 
 AXES = ("x", "y", "z")
 
@@ -126,3 +126,14 @@ def space_from_config(node: Any, goal_names: list[str], where: str) -> Space:
     if not o["switch"] and "switch_at" in bounds:
         raise ConfigError(f"{where}.bounds.switch_at", "the space has switch: false; leave switch_at out")
     return Space(o["name"], o["suite"], goals["goals_from"], goals["goals_to"], bool(o["switch"]), bounds)
+
+
+def space_node(ref: str, where: str) -> tuple[dict, str]:
+    """(the space's options as plain data, where they came from) for a name of the `falsify` config group
+    (composed with its schema) or a lab's own YAML file; `space_from_config` checks them against the scene."""
+    if is_file_reference(ref):
+        return read_yaml_file(ref, "falsify space"), f"{where} ({ref})"
+    if ref not in options("falsify"):
+        raise ConfigError(where, f"unknown falsify space {ref!r}; expected one of {options('falsify')} or a .yaml path")
+    cfg = compose_here("falsify", [f"falsify={ref}"], f"falsify/{ref}.yaml")
+    return OmegaConf.to_container(cfg.falsify, resolve=True), f"falsify/{ref}.yaml"

@@ -19,7 +19,8 @@ from coreach.falsify.counterexamples import model_name, store_for_model, suite_d
 from coreach.falsify.report import plot_failure_paths, plot_robustness, plot_search_curves, write_html
 from coreach.falsify.robustness import robustness
 from coreach.falsify.search import SAMPLERS, SearchResult, search
-from coreach.falsify.space import space_from_config
+from coreach.falsify.counterexamples import COUNTEREXAMPLES_DIR
+from coreach.falsify.space import space_from_config, space_node
 from coreach.host.registry import build_plugin
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import interactive
@@ -32,7 +33,7 @@ from coreach.world.scene_arm import arm_world
 log = logging.getLogger("coreach.falsify")
 PATH_EVERY = 5  # keep every 5th tool position of a failure's path for the plots (0.5 s at dt 0.1 s)
 
-__all__ = ["falsify", "Evaluator"]
+__all__ = ["falsify", "Evaluator", "gate_search", "counterexample_suites"]
 
 
 def _positive_int(cfg: DictConfig, key: str, lo: int = 1) -> int:
@@ -233,3 +234,28 @@ def _log(cfg: DictConfig, summary: dict, source: str, out: Path) -> str:
     client.log_artifacts(rid, str(out), "falsify")
     client.set_terminated(rid)
     return rid
+
+
+def gate_search(space_ref: str, budget: int, batch: int, seed: int, robot, interface, belief, limits) -> dict:
+    """The release gate's falsification step: TPE over the space with the budget; what the model card records
+    (space, budget, optimizer, the failures found and the worst case)."""
+    if not isinstance(budget, int) or isinstance(budget, bool) or budget < 1:
+        raise ConfigError("option falsification.budget", f"expected an integer >= 1 (or enabled=false), got {budget!r}")
+    t0 = time.perf_counter()
+    node, where = space_node(space_ref, "option falsification.space")
+    base = load_suite(str(node.get("suite", "goal-switch")))
+    space = space_from_config(node, base.goal_names, where)
+    base.validate(robot, spec_n_goals=interface.policy_.spec.n_goals)
+    evaluate = Evaluator(base, robot, interface, belief, limits, seed)
+    result = search(space, evaluate, budget, batch, seed, "tpe", robot.dof)
+    worst = result.worst
+    return {"space": space.to_dict(), "budget": budget, "optimizer": "tpe (optuna)", "seed": seed,
+            "scenarios": len(result.evaluations), "failures": len(result.failures),
+            "worst": {"robustness": worst.score, "case": worst.case, "cause": worst.info.get("cause", "")},
+            "seconds": time.perf_counter() - t0}  # fmt: skip
+
+
+def counterexample_suites(model: str, root: str | Path | None = None) -> list[Path]:
+    """The counterexample suites kept for a registered model name, oldest first."""
+    folder = Path(root or COUNTEREXAMPLES_DIR) / model
+    return sorted(folder.glob("*.yaml")) if folder.is_dir() else []

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 from pathlib import Path
 
 from omegaconf import ListConfig
 
 from coreach.errors import ConfigError
+from coreach.falsify.stage import counterexample_suites, gate_search
 from coreach.decoder.torch_interface import DecoderInterface
 from coreach.host.registry import build_plugin
 from coreach.release import gate as G
@@ -41,6 +43,14 @@ def _suites(cfg) -> list:
     return [load_suite(s, **overrides) for s in suite_refs(cfg)]
 
 
+def _counterexample_suites(cfg) -> list:
+    """The model name's counterexample suites (coreach falsify), each named by its file, at their own size."""
+    if not cfg.counterexamples.use:
+        return []
+    return [dataclasses.replace(load_suite(p), name=f"counterexamples/{p.stem}")
+            for p in counterexample_suites(str(cfg.name), cfg.counterexamples.get("dir"))]  # fmt: skip
+
+
 def _urdf(robot, staging: Path) -> Path:
     """The robot's URDF text (robot protocol `urdf_text`) written into `staging`; robots without one are refused."""
     text = robot.urdf_text() if hasattr(robot, "urdf_text") else None
@@ -70,7 +80,7 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
     """Every gate on `policy`; builds the vetting report and a staged bundle inside `staging`."""
     th = G.Thresholds.from_config(cfg.gates, PARITY_TOLERANCE)
     workspace = workspace_box(cfg.safety)
-    suites = _suites(cfg)
+    suites = _suites(cfg) + _counterexample_suites(cfg)
     robot = build_plugin(cfg.robot, "robot")
     belief = build_plugin(cfg.belief, "belief")
     limits = limits_from_config(robot, cfg.safety)
@@ -95,6 +105,13 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
         goal_rot = suite.episodes_plan(suite.generator(), robot).layout.approach_rot
         plots += diagnosis_plots(f"{label} on {suite.name}", record, interface, robot, goal_rot,
                                  summaries[suite.name], report_dir)  # fmt: skip
+    falsification = None
+    if cfg.falsification.enabled:
+        f = cfg.falsification
+        log.info("release gate: falsification of %s on %s (%d scenarios)", label, f.space, f.budget)
+        falsification = gate_search(str(f.space), f.budget, int(f.batch), int(f.seed), robot, interface, belief,
+                                    limits)  # fmt: skip
+        results.append(G.falsification_gate(falsification))
     keyed = {f"{label} on {k}": v for k, v in summaries.items()}
     plots = standard_plots(keyed, report_dir) + plots
     report = write_report(keyed, plots, report_dir, f"coreach release gate: {label}",
@@ -102,7 +119,9 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
                            "episodes": ", ".join(str(s["n_episodes"]) for s in summaries.values())},
                           sections=diagnosis_html(keyed))  # fmt: skip
     relaxed = relaxed_settings(cfg, {ref: load_suite(ref).episodes for ref in suite_refs(cfg)})
-    meta = {**release_meta(cfg, robot, suites, run, label, summaries), "gate_relaxed": relaxed}
+    meta = {**release_meta(cfg, robot, suites, run, label, summaries), "gate_relaxed": relaxed,
+            "falsification": falsification or {"ran": False},
+            "counterexample_suites": [s.name for s in suites if s.name.startswith("counterexamples/")]}  # fmt: skip
 
     parity, latency = None, None
     try:
@@ -119,4 +138,4 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
             log.warning("ONNX parity could not be measured: %s", probe_exc)
     results += G.artifact_gates(parity, int(cfg.parity_n), latency, th)
     return {"results": results, "summaries": summaries, "meta": meta, "report": report, "urdf": urdf,
-            "latency": latency, "parity": parity, "relaxed": relaxed}  # fmt: skip
+            "latency": latency, "parity": parity, "relaxed": relaxed, "falsification": falsification}  # fmt: skip

@@ -131,6 +131,16 @@ def suite_gates(suite: str, summary: dict, violations: dict, th: Thresholds) -> 
     return out
 
 
+def falsification_gate(found: dict) -> GateResult:
+    """The falsification step: no scenario of the search may fail."""
+    w = found["worst"]
+    case = w["case"]
+    where = f"{case['goal']}" + (f" -> {case['switch_to']} at {case['switch_at']:.2f}" if case.get("switch_to") else "")
+    return _check(f"falsification[{found['space']['name']}]", f"failed scenarios in a search of {found['budget']}",
+                  found["failures"], 0, "<=", f"worst robustness {w['robustness']:+.3f} ({where}"
+                  f"{', ' + w['cause'] if w['cause'] else ''})")  # fmt: skip
+
+
 def separation_gates(suite: str, sep: dict | None, th: Thresholds) -> list[GateResult]:
     """Contacts (a link inside furniture or two non-adjacent links overlapping), keep-out entries and the
     closest approach to furniture and between links, over the whole suite (none without scene bodies)."""

@@ -39,6 +39,8 @@ def relaxed_settings(cfg, suite_own_episodes: dict[str, int]) -> list[str]:
         if fewer:
             out.append(f"episodes={int(cfg.episodes)} per switch cell (the suites' own: "
                        + ", ".join(f"{name} {own}" for name, own in fewer.items()) + ")")
+    if not cfg.counterexamples.use:
+        out.append("counterexamples.use=false (shipped true): earlier counterexample suites not run")
     if int(cfg.parity_n) < int(shipped.parity_n):
         out.append(f"parity_n={int(cfg.parity_n)} (shipped {int(shipped.parity_n)})")
     if int(cfg.latency.steps) < int(shipped.latency.steps):

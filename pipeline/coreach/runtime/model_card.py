@@ -66,6 +66,27 @@ def relaxed_warning(relaxed) -> str:
             f"people: {listed}")
 
 
+def falsification_lines(found: dict | None, counterexamples: list) -> list[str]:
+    """What the card says of the search for failures (coreach falsify) and the counterexample suites run."""
+    if not found or not found.get("budget"):
+        lines = ["No falsification step ran for this release: the decoder met the fixed gate suites only, not a "
+                 "search for the scenarios that break it (`coreach falsify`; release option "
+                 "falsification.enabled)."]
+    else:
+        w = found["worst"]
+        case = w.get("case") or {}
+        bounds = ", ".join(f"{k} {v}" for k, v in (found.get("space", {}).get("bounds") or {}).items())
+        lines = [f"- Space: {found['space']['name']} (base suite {found['space'].get('suite')}; bounds {bounds})",
+                 f"- Budget: {found['budget']} scenarios, optimizer {found['optimizer']}, seed {found['seed']}",
+                 f"- Failures found: {found['failures']}",
+                 f"- Worst case: robustness {w['robustness']:+.3f}, goal {case.get('goal')}"
+                 + (f" switching to {case['switch_to']} at {case['switch_at']:.2f} of the horizon"
+                    if case.get("switch_to") else "") + (f" ({w['cause']})" if w.get("cause") else "")]
+    if counterexamples:
+        lines += ["", "Counterexample suites of earlier versions run as gate suites: " + ", ".join(counterexamples)]
+    return lines
+
+
 def model_card(meta: dict, gate: dict, metrics: dict) -> str:
     """Markdown model card from the release metadata, the gate's results and the evaluation metrics.
 
@@ -115,6 +136,8 @@ def model_card(meta: dict, gate: dict, metrics: dict) -> str:
                   *[_gate_row(k, v) for k, v in gate.items()]]
     else:
         lines.append("No gate results were supplied with this release.")
+    lines += ["", "## Falsification", "", *falsification_lines(meta.get("falsification"),
+                                                             meta.get("counterexample_suites") or [])]
     lines += ["", "## Safety filter settings", ""]
     if safety:
         lines += [f"- {k}: {_fmt(v) if not isinstance(v, (list, tuple)) else list(v)}" for k, v in safety.items()]
