@@ -239,3 +239,20 @@ def test_the_gate_with_the_step_refuses_a_decoder_that_fails_inside_the_budget(d
     row = gates["falsification[bedside_shelf]"]
     assert not row["passed"] and row["value"] >= 1 and out["released"] is False
     assert "falsification[bedside_shelf]" in out["failed"]
+
+
+def test_goal_weights_under_sample_a_goal_by_largest_remainder():
+    """Hamilton's (largest remainder) apportionment: 400 episodes at weights 1:1:1:0.1 give 400 x 0.3226 =
+    129.03 each and 12.90 -> quotas 129, 129, 129, 12 plus the one seat left to the largest remainder (0.90):
+    129/129/129/13; equal weights give round robin; a bad weight list is refused naming the option."""
+    from coreach.demonstrator import rollout, weighted_goals
+
+    assert torch.bincount(weighted_goals(400, [1, 1, 1, 0.1])).tolist() == [129, 129, 129, 13]
+    assert weighted_goals(8, [1, 1, 1, 1]).tolist() == [0, 1, 2, 3, 0, 1, 2, 3]
+    from coreach.host.registry import build_plugin
+    from coreach.config.check import compose_config
+
+    robot = build_plugin(compose_config("vet", []).robot, "robot")
+    with pytest.raises(ConfigError) as exc:
+        rollout(robot, "bedside_shelf", 4, goal_weights=[1, 1, 1])
+    assert exc.value.where == "option goal_weights"

@@ -150,6 +150,7 @@ def rollout(
     via_steps: tuple[int, int] | list[int] = (5, 30),
     record_via: bool = True,
     label_clean: bool = False,
+    goal_weights: list[float] | None = None,
 ) -> Rollout:
     """Step all episodes together; see `generate` for the options."""
     if isinstance(scenario, str):
@@ -174,13 +175,19 @@ def rollout(
         raise ConfigError("option via_steps", f"expected [min, max] steps, got {via_steps!r}") from None
     if not 0 <= via_lo <= via_hi:
         raise ConfigError("option via_steps", f"expected 0 <= min <= max, got {list(via_steps)}")
+    if goal_weights is not None and (len(goal_weights) != len(scenario.goals) or not all(
+            isinstance(w, (int, float)) and math.isfinite(w) and w >= 0 for w in goal_weights) or not sum(goal_weights) > 0):  # fmt: skip
+        raise ConfigError("option goal_weights", f"expected one weight >= 0 per goal ({scenario.goal_names}), not all "
+                                                 f"0; got {goal_weights!r}")  # fmt: skip
 
     E, dt = int(n_episodes), float(scenario.dt)
     f64 = torch.float64
     gen = torch.Generator().manual_seed(int(seed))
     layout = scenario.sample_layouts(E, gen)
     G = len(scenario.goals)
-    if goal_order == "round_robin":
+    if goal_weights is not None:
+        goals = weighted_goals(E, goal_weights)
+    elif goal_order == "round_robin":
         goals = torch.arange(E) % G
     else:
         goals = torch.randint(G, (E,), generator=gen)
@@ -277,6 +284,20 @@ def rollout(
     quat = matrix_to_quat(rec_rot[:, :T])
     return Rollout(rec_q[:, :T], rec_qd[:, :T], rec_pos[:, :T], quat, lengths, completed, goals, layout, dt,
                    fine_phase=fine_phase, q_end=q, via_goals=torch.where(has_via, via, -1))  # fmt: skip
+
+
+def weighted_goals(E: int, weights: list[float]) -> Tensor:
+    """[E] goal indices in shares proportional to `weights` (largest remainder), interleaved evenly: each goal's
+    k-th episode sits at (k + 0.5) / count of the way through. Deterministic (no draws), so a weighted set differs
+    from an equal one only in which goal each episode has. Used to under-sample a goal on purpose."""
+    w = torch.tensor([float(x) for x in weights], dtype=torch.float64)
+    exact = w / w.sum() * E
+    counts = exact.floor().long()
+    for g in torch.argsort(exact - counts, descending=True)[: E - int(counts.sum())]:
+        counts[g] += 1
+    keys = torch.cat([(torch.arange(int(c), dtype=torch.float64) + 0.5) / max(int(c), 1) for c in counts])
+    goals = torch.cat([torch.full((int(c),), g, dtype=torch.long) for g, c in enumerate(counts)])
+    return goals[torch.argsort(keys, stable=True)]
 
 
 def generate(

@@ -124,7 +124,7 @@ def options(group: str) -> list[str]:
 
 
 # Groups a user may name by a file path on the command line (`coreach vet suite=./my-suite.yaml`).
-FILE_GROUPS = ("suite", "scenario")
+FILE_GROUPS = ("suite", "scenario", "falsify")
 
 
 def lab_file_overrides(overrides: list[str], root: Path | None = None) -> tuple[list[str], list[str]]:
@@ -155,8 +155,8 @@ def lab_file_overrides(overrides: list[str], root: Path | None = None) -> tuple[
             _write_option(root, "suite", stem, ["base_suite@suite", {"override /scenario": scene},
                                                 {"override /operator": chosen}, "_self_"], "suite", data,
                           None if chosen else {"operator": operator})  # fmt: skip
-        else:
-            _write_option(root, "scenario", stem, ["base_scenario", "_self_"], None, data)
+        else:  # a scene or a falsify space: the file's options on the group's schema
+            _write_option(root, key, stem, [f"base_{key}", "_self_"], None, data)
         out.append(f"{key}={stem}")
         used = True
     return out, ([f"file://{root}"] if used else [])

@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 from dataclasses import asdict, dataclass
+from typing import List, Optional
 from pathlib import Path
 
 from coreach.host.api import DEFAULT_MIN_ARRIVAL
@@ -39,6 +40,7 @@ class ScriptedShelfConfig:
     record_via: bool = True
     label_clean: bool = False
     min_arrival: float = number(DEFAULT_MIN_ARRIVAL, 0.0, 1.0)
+    goal_weights: Optional[List[float]] = None  # relative share of episodes per goal; null = equal shares
 
 
 class ScriptedShelf:
@@ -64,6 +66,7 @@ class ScriptedShelf:
         record_via: bool = True,
         label_clean: bool = False,
         min_arrival: float = DEFAULT_MIN_ARRIVAL,
+        goal_weights: list[float] | None = None,
     ):
         if int(episodes) < 1:
             raise ConfigError("dataset.episodes", f"expected at least 1 episode, got {episodes}")
@@ -80,6 +83,8 @@ class ScriptedShelf:
                        "via_steps": [int(v) for v in via_steps], "record_via": bool(record_via)}  # fmt: skip
         if label_clean:  # only when set, so the cache names of earlier settings stay as they were
             self.starts["label_clean"] = True
+        if goal_weights is not None:  # likewise: equal shares keep their earlier cache names
+            self.starts["goal_weights"] = [float(w) for w in goal_weights]
         self.min_arrival = float(min_arrival)
 
     def cache_path(self, robot: Robot) -> Path:
