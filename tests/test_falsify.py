@@ -256,3 +256,17 @@ def test_goal_weights_under_sample_a_goal_by_largest_remainder():
     with pytest.raises(ConfigError) as exc:
         rollout(robot, "bedside_shelf", 4, goal_weights=[1, 1, 1])
     assert exc.value.where == "option goal_weights"
+
+
+def test_the_model_card_records_the_search_or_says_none_ran():
+    from coreach.runtime.model_card import model_card
+
+    none = model_card({"name": "m"}, {}, {})
+    assert "## Falsification" in none and "No falsification step ran" in none
+    found = {"space": {"name": "bedside_shelf", "suite": "goal-switch", "bounds": {"beta": [150.0, 800.0]}},
+             "budget": 400, "optimizer": "tpe (optuna)", "seed": 0, "failures": 3,
+             "worst": {"robustness": -0.41, "case": {"goal": "bottle", "switch_to": "book", "switch_at": 0.79},
+                       "cause": "oscillating"}}  # fmt: skip
+    card = model_card({"name": "m", "falsification": found, "counterexample_suites": ["counterexamples/a"]}, {}, {})
+    assert "Budget: 400 scenarios, optimizer tpe (optuna)" in card and "Failures found: 3" in card
+    assert "robustness -0.410, goal bottle switching to book at 0.79" in card and "counterexamples/a" in card
