@@ -126,7 +126,7 @@ def main(argv: list[str] | None = None) -> int:
         if not cmd.hydra:
             code = load_target(cmd.run)(overrides, as_json)
             if cmd.cautions() and not as_json and not cmd.prints_cautions:
-                from coreach.commands.summaries import print_cautions, plain_console
+                from coreach.commands.console import plain_console, print_cautions
 
                 print_cautions(plain_console(), cmd.records_person)
             return code

@@ -41,7 +41,7 @@ def run_demo(cfg: DictConfig) -> dict:
             "vet at full size: .venv/bin/coreach vet 'candidates=[<run id>,direct,blend]' suite=held-out"
         )
         if cfg.demo.release.enabled:
-            from coreach.release.stage import release_best
+            from coreach.release.demo_helpers import release_best
 
             result["release"] = release_best(result, cfg)  # its summary says whether anything was released
     result["next_steps"] = steps

@@ -5,10 +5,10 @@ from __future__ import annotations
 import json
 import sys
 
-from rich.console import Console
 from rich.table import Table
 
 from coreach.commands import table as command_table
+from coreach.commands.console import plain_console, print_cautions
 
 
 def print_summary(cmd, summaries: list[dict], as_json: bool) -> None:
@@ -106,11 +106,6 @@ def show_demo(console, summaries: list[dict], name: str) -> None:
             console.print(line)
 
 
-def plain_console() -> Console:
-    """Rich console; a fixed width when stdout is not a terminal, so logs and tests see whole lines."""
-    return Console(width=None if sys.stdout.isatty() else 160)
-
-
 def training_table(runs: list[dict]) -> Table:
     """One row per run; validation values at the best epoch. Totals mix different loss recipes, so the
     reconstruction column is the one to compare across decoders."""
@@ -176,15 +171,6 @@ def refusal_line(s: dict) -> str:
             f"({', '.join(s['failed'])}); nothing was written (no bundle, no MLflow run, no registry version)")
 
 
-def print_cautions(console, recording: bool = False) -> None:
-    """The cautions (with the consent line where a person is recorded), as `coreach-robot` prints them."""
-    from coreach.runtime.cautions import cautions
-
-    console.print("[bold]Cautions[/bold]")
-    for c in cautions(recording):
-        console.print(f"  - {c}", markup=False)
-
-
 def print_release(console, s: dict) -> None:
     """The gate table, then what was published (and the cautions), or why nothing was."""
     from coreach.release.gate import gate_table
@@ -236,9 +222,9 @@ def print_replay(console, s: dict) -> None:
 
 def print_recipes(console, s: dict) -> None:
     """The recipes table, where its files went, and the MLflow run that holds them."""
-    from coreach.commands.recipes.render import terminal_table
+    from coreach.commands.recipes.render import terminal_table as recipes_table
 
-    console.print(terminal_table(s))
+    console.print(recipes_table(s))
     # paths and overrides are full of [brackets], which rich would read as markup
     console.print(f"written: {', '.join(s['files'].values())}", markup=False)
     console.print(f"recipes run in MLflow: {s['parent_run']} ({s['tracking']})", markup=False)

@@ -9,7 +9,7 @@ if TYPE_CHECKING:  # keep this module importable without torch (the runtime read
     import numpy as np
     from torch import Tensor
 
-    from coreach.episodes import EpisodeSet
+    from coreach.episodes.episode_set import EpisodeSet  # the module itself: the package's loader reads Robot
     from coreach.world.scenario import Scenario
 
 

@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import Callable
 
 from coreach.release.bundle_store import PARTIAL, releases_root
-from coreach.release.registry import get_model
+from coreach.release.registry_client import get_model
 from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, MODEL_DESCRIPTION, TAG_CREATED_MODEL, TAG_GATE_PASSED,
                                            TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT,
                                            TAG_SOURCE_RUN, TAG_VERSION, release_tag)

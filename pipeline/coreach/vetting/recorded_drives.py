@@ -16,7 +16,7 @@ import numpy as np
 from coreach.episodes import load_parquet
 from coreach.errors import DataError
 from coreach.episodes.drive_files import META_MANIFEST, META_TOLERANCES, check_drive_file
-from coreach.vetting.metrics import wilson_interval
+from coreach.vetting.rates import wilson_interval
 
 NAN = float("nan")
 
