@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import inspect
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
@@ -237,8 +238,6 @@ def optional_members(kind: str) -> list[str]:
 
 def takes_dt(operator: Any) -> bool:
     """Whether `operator.reset` accepts the control period as the keyword `dt` (see `OperatorOptional.reset`)."""
-    import inspect
-
     return "dt" in inspect.signature(operator.reset).parameters
 
 

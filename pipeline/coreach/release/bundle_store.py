@@ -15,8 +15,8 @@ from pathlib import Path
 
 from coreach.errors import CoreachError
 from coreach.release.registry_client import client_for, get_model, get_version
-from coreach.runtime.registry_tags import MODEL_NAME_RE, TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST, TAG_RELEASE_RUN
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
+from coreach.runtime.registry_tags import MODEL_NAME_RE, TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST, TAG_RELEASE_RUN
 
 BUNDLE_ARTIFACT = "bundle"  # artifact path of the bundle inside its release run
 PARTIAL = ".partial"  # suffix of every staging folder under a releases folder

@@ -14,16 +14,19 @@ import json
 import sys
 from pathlib import Path
 
+from rich.console import Console
+from rich.table import Table
+
 from coreach.errors import ConfigError, CoreachError
 from coreach.release.bundle_store import cached, releases_root
 from coreach.release.registry_client import client_for, get_model, get_version
 from coreach.release.settle import owner_alive, pending_runs, repair, settle
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
+from coreach.runtime.cautions import cautions
+from coreach.runtime.model_card import relaxed_warning
 from coreach.runtime.registry_tags import (FIELDED_ALIAS, GATE_PASSED_ALIAS, MODEL_NAME_RE, TAG_BUNDLE_URI,
                                            TAG_GATE, TAG_GATE_PASSED, TAG_GATE_RELAXED, TAG_HISTORY, TAG_MANIFEST,
                                            TAG_RELEASE_RUN, TAG_SOURCE_RUN)
-from coreach.runtime.cautions import cautions
-from coreach.runtime.model_card import relaxed_warning
 
 HISTORY_KEEP = 40  # entries kept in the history tag (tag values are limited to a few thousand characters)
 
@@ -209,9 +212,6 @@ def bundles_command(args: list[str], as_json: bool) -> int:
     if as_json:
         print(json.dumps(rows, indent=2))
         return 0
-    from rich.console import Console
-    from rich.table import Table
-
     table = Table(title="released decoders (coreach release; field with coreach promote NAME VERSION)")
     for col in ("model", "version", "aliases", "gate passed", "gates", "key values", "bundle", "created"):
         table.add_column(col, no_wrap=col in ("model", "version", "created"))

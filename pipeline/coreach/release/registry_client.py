@@ -12,7 +12,7 @@ from coreach.tracking import resolve_uri
 
 def client_for(uri: str | None = None):
     """An MlflowClient on the tracking store `uri` (None: coreach.tracking.resolve_uri's default)."""
-    from mlflow.tracking import MlflowClient  # late: mlflow (~1.3 s) only when a store is reached; a bundle folder needs none
+    from mlflow.tracking import MlflowClient  # late: mlflow (~1.3 s); a bundle folder needs none
 
     return MlflowClient(tracking_uri=resolve_uri(uri))
 
