@@ -18,7 +18,7 @@ from omegaconf import OmegaConf
 
 from coreach.commands import recipes as rc
 from coreach.errors import ConfigError
-from coreach.vetting.metrics import wilson_interval
+from coreach.vetting.rates import wilson_interval
 
 COREACH = str(Path(sys.executable).parent / "coreach")
 

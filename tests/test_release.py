@@ -184,7 +184,7 @@ def test_release_best_releases_a_demo_decoder_and_drives_it(trained, monkeypatch
     from hydra import initialize_config_module
     from omegaconf import OmegaConf
 
-    from coreach.release.stage import release_best
+    from coreach.release.demo_helpers import release_best
 
     cwd, run_id = trained
     monkeypatch.chdir(cwd)

@@ -29,7 +29,7 @@ from coreach.release.bundle_writer import write_bundle
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file
 from coreach.safety import SafetyLimits
 from coreach.vetting.loop import rollout
-from coreach.vetting.metrics import wilson_interval
+from coreach.vetting.rates import wilson_interval
 from coreach.vetting.suite import load_suite
 
 GATES = {"success_lo": 0.6, "recovery_lo": 0.5, "max_violations": 0, "stick_gain_median": 0.02,

@@ -16,11 +16,10 @@ from coreach.vetting.metrics import (
     Tolerances,
     bound_by_confidence,
     flat_metrics,
-    rate,
     summarise,
     ultimate_bound,
-    wilson_interval,
 )
+from coreach.vetting.rates import rate, wilson_interval
 from coreach.vetting.records import RolloutRecord
 
 # ---- Wilson score interval ----

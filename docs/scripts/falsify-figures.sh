@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # The figures of docs/falsify.md ("What it found"): run from an empty folder with coreach installed.
 # 1. the planted weakness: the default recipe on demonstrations with the drawer knob under-sampled 10:1, searched in
-#    a gentle space (falsify-gentle.yaml) by TPE and by random search, 5 search seeds, batches of 10;
+#    a gentle space (falsify-gentle.yaml) by TPE and by random search, 5 search seeds, batches of 50;
 # 2. the default recipe, 3 training seeds, 2,000 scenarios each in the shipped space (conf/falsify/bedside_shelf.yaml).
 set -euo pipefail
 here="$(cd "$(dirname "$0")" && pwd)"
@@ -14,7 +14,7 @@ for suite in nominal goal-switch held-out; do
     coreach --json vet "candidates=[$planted]" suite=$suite log=false report_dir=vet-planted-$suite > vet-planted-$suite.json
 done
 for seed in 0 1 2 3 4; do
-    coreach --json falsify decoder="$planted" falsify="$here/falsify-gentle.yaml" budget=400 batch=10 seed=$seed \
+    coreach --json falsify decoder="$planted" falsify="$here/falsify-gentle.yaml" budget=300 batch=50 seed=$seed \
         log=false report_dir=planted-$seed > planted-$seed.json
 done
 
@@ -25,7 +25,7 @@ for seed in 0 1 2; do
 done
 python3 - <<'PY'
 import json
-print("planted weakness: evaluations to the first failure (and failures in 400), per search seed")
+print("planted weakness: evaluations to the first failure (and failures in 300), per search seed")
 for seed in range(5):
     s = json.load(open(f"planted-{seed}.json"))["searches"]
     print(seed, {k: (v["first_failure"], v["failures"]) for k, v in s.items()})

@@ -8,6 +8,7 @@ import sys
 import textwrap
 import time
 import traceback
+import warnings
 from pathlib import Path
 
 from coreach.commands import table
@@ -63,8 +64,6 @@ def _fail(message: str, code: int = 2) -> int:
 
 def _quiet_library_warnings() -> None:
     """Deprecation chatter from library internals that a user can do nothing about."""
-    import warnings
-
     warnings.filterwarnings("ignore", message=r".*LeafSpec.*")
     warnings.filterwarnings("ignore", message=r".*Checkpoint directory .* exists and is not empty.*")
     warnings.filterwarnings("ignore", message=r".*does not have many workers.*")
@@ -126,7 +125,7 @@ def main(argv: list[str] | None = None) -> int:
         if not cmd.hydra:
             code = load_target(cmd.run)(overrides, as_json)
             if cmd.cautions() and not as_json and not cmd.prints_cautions:
-                from coreach.commands.summaries import print_cautions, plain_console
+                from coreach.commands.console import plain_console, print_cautions  # late: rich; --help stays fast
 
                 print_cautions(plain_console(), cmd.records_person)
             return code
@@ -149,7 +148,7 @@ def main(argv: list[str] | None = None) -> int:
         if unreachable:
             return _fail(unreachable)
         return _fail(f"internal error: {type(exc).__name__}: {exc} (rerun with --debug for the traceback)", 1)
-    from coreach.commands.summaries import print_summary
+    from coreach.commands.summaries import print_summary  # late: torch, matplotlib; --help stays fast
 
     print_summary(cmd, summaries, as_json)
     # a command that ran fine but reached a negative verdict (a refused release, a replay that does not
@@ -164,11 +163,11 @@ def _hydra_info_only(overrides: list[str]) -> bool:
 
 def run_hydra(cmd: table.Command, overrides: list[str], multirun: bool, debug: bool) -> list[dict]:
     """Run a subcommand through hydra.main (so Hydra's launchers serve sweeps) and collect summaries."""
-    import hydra
+    import hydra  # late: --help stays fast
 
-    from coreach.config.check import preflight
-    from coreach.config.compose import lab_file_overrides
-    from coreach.config.compose import search_path_overrides
+    from coreach.config.check import preflight  # late: imports hydra; --help stays fast
+    from coreach.config.compose import lab_file_overrides  # late: imports hydra; --help stays fast
+    from coreach.config.compose import search_path_overrides  # late: imports hydra; --help stays fast
 
     command, config_name = cmd.name, cmd.config
     overrides, lab_conf = lab_file_overrides(overrides)  # suite=./mine.yaml: a lab's own file as an option
@@ -184,7 +183,7 @@ def run_hydra(cmd: table.Command, overrides: list[str], multirun: bool, debug: b
     collected: list[dict] = []
 
     def task(cfg):
-        from coreach.config.workdirs import output_dir
+        from coreach.config.workdirs import output_dir  # late: imports hydra; --help stays fast
 
         try:
             summary = task_fn(cfg)

@@ -9,6 +9,8 @@ from omegaconf import DictConfig
 from coreach.commands.recipes import compose_stage, stage_command
 from coreach.commands.summaries import mlflow_hint
 from coreach.config.command_line import override_key, user_overrides
+from coreach.release.demo_helpers import release_best
+from coreach.vetting.stage import vet
 
 log = logging.getLogger("coreach.demo")
 
@@ -30,8 +32,6 @@ def run_demo(cfg: DictConfig) -> dict:
     result = {"runs": runs}
     steps = [f"MLflow: {mlflow_hint()}"]
     if cfg.demo.vet.enabled:
-        from coreach.vetting.stage import vet
-
         candidates = [r["run_id"] for r in runs] + list(cfg.demo.vet.baselines)
         vet_cfg = compose_stage("vet", [f"candidates=[{','.join(candidates)}]", f"suite={cfg.demo.vet.suite}",
                                    f"suite.episodes={cfg.demo.vet.episodes}"], "option demo.vet")  # fmt: skip
@@ -41,8 +41,6 @@ def run_demo(cfg: DictConfig) -> dict:
             "vet at full size: .venv/bin/coreach vet 'candidates=[<run id>,direct,blend]' suite=held-out"
         )
         if cfg.demo.release.enabled:
-            from coreach.release.stage import release_best
-
             result["release"] = release_best(result, cfg)  # its summary says whether anything was released
     result["next_steps"] = steps
     return result

@@ -73,8 +73,8 @@ def _store_lock(uri: str):
 
 def client(cfg_tracking: DictConfig):
     """An MlflowClient on the configured store, and the id of the configured experiment (created if new)."""
-    import mlflow
-    from mlflow.tracking import MlflowClient
+    import mlflow  # late: mlflow (~1.3 s); the URI helpers need none
+    from mlflow.tracking import MlflowClient  # late: mlflow (~1.3 s); the URI helpers need none
 
     # stdout belongs to `--json`: MLflow would print a "View run at" link there for a server URI
     os.environ.setdefault("MLFLOW_SUPPRESS_PRINTING_URL_TO_STDOUT", "true")
@@ -151,7 +151,7 @@ def library_versions() -> dict[str, str]:
 
 def log_params_batched(c, run_id: str, params: dict[str, str]) -> None:
     """Params in batches of 100 (MLflow's per-call limit) so a server sees few round trips."""
-    from mlflow.entities import Param
+    from mlflow.entities import Param  # late: mlflow (~1.3 s); the URI helpers need none
 
     items = [Param(k, v) for k, v in sorted(params.items())]
     for i in range(0, len(items), 100):

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import logging
+import tempfile
 import time
 from pathlib import Path
 
@@ -140,8 +141,6 @@ def _inherit_recipe(cfg: DictConfig, run_id: str) -> DictConfig:
     """`cfg` with the start run's recipe (INHERITED), so the rounds retrain what the start run trained.
 
     Refuses a command line that also sets one of those options: which of the two was meant is not clear."""
-    import tempfile
-
     client, _ = tracking.client(cfg.tracking)
     try:
         with tempfile.TemporaryDirectory() as tmp:

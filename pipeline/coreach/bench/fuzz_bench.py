@@ -23,12 +23,23 @@ import sys
 import tempfile
 import time
 from dataclasses import dataclass, field
+from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 from typing import Callable, Iterable
 
 import numpy as np
+import torch
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
+from coreach.context import ContextSpec
+from coreach.decoder.policy import DecoderPolicy
 from coreach.errors import ConfigError
+from coreach.host.registry import build_plugin, builtin_option
+from coreach.release.bundle_store import bundle_folder
+from coreach.release.bundle_writer import write_bundle
+from coreach.release.metadata import _nominal_layout, _world_section
+from coreach.runtime.session import Session
+from coreach.world.scenario import load_scenario
 
 log = logging.getLogger("coreach.bench")
 
@@ -55,14 +66,6 @@ def random_bundle(folder: str | Path, robot, scene, world: bool = True, seed: in
     latent 2) for `robot` (a robot plugin with urdf_text) on `scene`'s goals; with `world`, the manifest's
     safety.world holds the scene's bodies and the arm's sphere model as a release writes them. The decoder's
     action normalisation asks for about 1 rad/s, more than the caps allow, so the filters have work to do."""
-    import torch
-
-    from coreach.context import ContextSpec
-    from coreach.host.registry import builtin_option
-    from coreach.decoder.policy import DecoderPolicy
-    from coreach.release.bundle_writer import write_bundle
-    from coreach.release.metadata import _nominal_layout, _world_section
-
     folder = Path(folder)
     spec = ContextSpec(dof=robot.dof, n_goals=len(scene.goal_names))
     torch.manual_seed(seed)
@@ -91,7 +94,7 @@ def random_bundle(folder: str | Path, robot, scene, world: bool = True, seed: in
 def _coal_shape(p):
     """coal's shape for a scene Primitive: Box(x, y, z) full side lengths, Cylinder(radius, full length),
     Capsule(radius, length without the caps), Sphere(radius), all along the body's local z."""
-    import coal
+    import coal  # late: optional (the test extra), for the reference check only
 
     s = p.size
     return {"box": lambda: coal.Box(*s), "cylinder": lambda: coal.Cylinder(s[0], s[1]),
@@ -106,7 +109,7 @@ class CoalReference:
 
     def __init__(self, urdf_text: str, joint_names, furniture, person, keep_out: float):
         try:
-            import pinocchio as pin
+            import pinocchio as pin  # late: optional (test extra); else says what to install
         except ImportError:
             raise ConfigError("coreach bench fuzz", "needs pinocchio and coal (the independent reference): "
                                                     "pip install -e '.[test]'") from None  # fmt: skip
@@ -459,12 +462,10 @@ def fuzz(session, ref: CoalReference, starts: list[Start], steps: int, seed: int
 
 # ----------------------------------------------------------------------------------------- the command
 def _coal_version() -> str:
-    from importlib.metadata import PackageNotFoundError, version
-
     try:
         return version("coal")
     except PackageNotFoundError:
-        import coal
+        import coal  # late: optional (the test extra)
 
         return getattr(coal, "__version__", "?")
 
@@ -477,8 +478,6 @@ def _show_progress() -> bool:
 def run(cfg) -> dict:
     """`coreach bench fuzz`: cfg.bundle (a folder, NAME@ALIAS or NAME/VERSION; empty: a random bundle on
     cfg.scenario for cfg.robot, written to a temporary folder), cfg.steps, cfg.seed, cfg.episode_steps."""
-    from coreach.runtime.session import Session
-
     steps, episode_steps = int(cfg.steps), int(cfg.episode_steps)
     if steps < 1 or episode_steps < 1:
         raise ConfigError("option steps/episode_steps", f"expected positive integers, got {cfg.steps!r}, "
@@ -488,14 +487,9 @@ def run(cfg) -> dict:
     bundle = str(cfg.get("bundle") or "")
     with tempfile.TemporaryDirectory(prefix="coreach-fuzz-") as tmp:
         if bundle:
-            from coreach.release.bundle_store import bundle_folder
-
             folder = bundle_folder(bundle, uri=cfg.get("tracking", {}).get("uri"))
             label = str(folder.resolve())
         else:
-            from coreach.host.registry import build_plugin
-            from coreach.world.scenario import load_scenario
-
             scene = load_scenario(str(cfg.scenario))
             box = (tuple(cfg.workspace_min), tuple(cfg.workspace_max))
             folder = random_bundle(Path(tmp) / "bundle", build_plugin(cfg.robot, "robot"), scene, True,
@@ -510,8 +504,6 @@ def run(cfg) -> dict:
                  ", ".join(f"{s.body} {s.distance_m:.3f} m" for s in starts))
         bar = None
         if _show_progress():
-            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
-
             bar = Progress(TextColumn("fuzz"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
                            transient=True)  # fmt: skip
             bar.start()

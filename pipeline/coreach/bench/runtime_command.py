@@ -5,14 +5,12 @@ from __future__ import annotations
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.errors import ConfigError
+from coreach.release.bundle_store import bundle_folder
+from coreach.runtime.latency import run_runtime_bench
 
 
 def run(cfg: DictConfig) -> dict:
     """Latency of `cfg.bundle`'s runtime session against a bare onnxruntime call, in one run."""
-    from coreach.runtime.latency import run_runtime_bench
-
-    from coreach.release.bundle_store import bundle_folder
-
     bundle = "" if OmegaConf.is_missing(cfg, "bundle") else str(cfg.bundle)
     if not bundle:
         raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>) or a "

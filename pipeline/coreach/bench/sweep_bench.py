@@ -19,8 +19,10 @@ from pathlib import Path
 
 from omegaconf import DictConfig
 
+from coreach.config.check import compose_config
 from coreach.config.command_line import override_key, user_overrides
 from coreach.errors import CoreachError
+from coreach.training.run import prepare
 
 
 def _user_overrides() -> list[str]:
@@ -60,9 +62,6 @@ def _sweep(args: list[str], env: dict) -> tuple[float, list[dict]]:
 
 
 def run(cfg: DictConfig) -> dict:
-    from coreach.config.check import compose_config
-    from coreach.training.run import prepare
-
     b = cfg.bench
     if int(b.runs) < 2 or int(b.workers) < 2:
         raise CoreachError("bench.runs / bench.workers", "expected at least 2 runs and 2 workers")

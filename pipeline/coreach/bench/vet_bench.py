@@ -19,12 +19,14 @@ import torch
 from omegaconf import DictConfig, OmegaConf
 
 from coreach.context import ContextSpec
-from coreach.errors import ConfigError
 from coreach.decoder import reference as decoder_reference
+from coreach.decoder.policy import DecoderPolicy
 from coreach.decoder.torch_interface import DecoderInterface
+from coreach.errors import ConfigError
 from coreach.host.registry import build_plugin, builtin_option
-from coreach.tracking import resolve_uri
+from coreach.release.export import sample_inputs
 from coreach.safety import limits_from_config
+from coreach.tracking import resolve_uri
 from coreach.vetting.loop import rollout, rollout_per_episode
 from coreach.vetting.suite import load_suite
 
@@ -33,8 +35,6 @@ log = logging.getLogger("coreach.bench")
 
 def _policy(cfg, robot, n_goals: int):
     """The decoder to drive: a trained one, or an untrained 2 x 256 cVAE (throughput does not need skill)."""
-    from coreach.decoder.policy import DecoderPolicy
-
     if cfg.get("run"):
         return decoder_reference.load(str(cfg.run), resolve_uri(cfg.get("tracking", {}).get("uri")), "option run")[0], str(cfg.run)
     torch.manual_seed(0)
@@ -46,8 +46,6 @@ def _policy(cfg, robot, n_goals: int):
 
 def _bare_seconds(policy, E: int, K: int, T: int) -> float:
     """T forward passes over E*K (stick, context) inputs, the loop's call pattern without the loop."""
-    from coreach.release.export import sample_inputs
-
     stick, context = (torch.from_numpy(a) for a in sample_inputs(policy, E * K, seed=0))
     dtype = next(policy.parameters()).dtype
     stick, context = stick.to(dtype), context.to(dtype)

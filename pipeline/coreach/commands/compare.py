@@ -13,7 +13,13 @@ import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from matplotlib.figure import Figure
+from mlflow.tracking import MlflowClient
+from rich.console import Console
+from rich.table import Table
+
 from coreach.errors import ConfigError, CoreachError
+from coreach.tracking import resolve_uri, sqlite_path
 
 USAGE = "coreach compare [--experiment NAME] [--sweep TAG] [--out DIR] [--uri URI] [--sort METRIC] [--limit N]"
 DEFAULT_SORT = ("best/val/reconstruction", "best/val/loss")
@@ -112,10 +118,6 @@ def row_of(run) -> Row:
 
 def fetch_runs(uri: str, experiment: str, sweep: str | None) -> list:
     """Every training run of the experiment (optionally of one sweep), across result pages."""
-    from mlflow.tracking import MlflowClient
-
-    from coreach.tracking import sqlite_path
-
     db = sqlite_path(uri)
     if db is not None and not db.exists():  # reading must not create an empty store
         raise CoreachError(f"tracking store {db}", "does not exist (train first, or pass --uri / set COREACH_TRACKING_URI)")
@@ -205,8 +207,6 @@ def _atomic_write(path: Path, data: bytes) -> None:
 
 def png_bytes(rows: list[Row], sort: str, title: str) -> bytes:
     """Bars of the ranking metric per run; a second panel with the first vetting metric and its interval."""
-    from matplotlib.figure import Figure  # a bare Figure renders with Agg: no display needed
-
     _, vet = _columns(rows)
     shown = [r for r in rows if r.metric(sort) is not None]
     vet_key_shown = next((k for k in vet if any(r.vet.get(k) and r.vet[k].lo is not None for r in rows)), None)
@@ -237,8 +237,6 @@ def png_bytes(rows: list[Row], sort: str, title: str) -> bytes:
 
 
 def table(rows: list[Row], sort: str, title: str):
-    from rich.table import Table
-
     best, vet = _columns(rows)
     t = Table(title=title)
     for col in ("#", "label", "model", "losses", "seed", "status"):
@@ -287,7 +285,6 @@ def compare_command(args: list[str], as_json: bool) -> int:
     if opts.help:
         print(USAGE)
         return 0
-    from coreach.tracking import resolve_uri
 
     os.environ.setdefault("MLFLOW_SUPPRESS_PRINTING_URL_TO_STDOUT", "true")
     result = compare(resolve_uri(opts.uri), opts.experiment, opts.sweep, Path(opts.out), opts.sort, opts.limit)
@@ -304,7 +301,6 @@ def compare_command(args: list[str], as_json: bool) -> int:
         }  # fmt: skip
         print(json.dumps(payload, indent=2))
         return 0
-    from rich.console import Console
 
     console = Console(width=None if sys.stdout.isatty() else 200)
     console.print(table(result["rows"], result["sort"], result["title"]))

@@ -5,10 +5,15 @@ from __future__ import annotations
 import json
 import sys
 
-from rich.console import Console
 from rich.table import Table
 
 from coreach.commands import table as command_table
+from coreach.commands.console import plain_console, print_cautions
+from coreach.release.gate import gate_table, violation_text
+from coreach.runtime.model_card import relaxed_warning
+from coreach.tracking import resolve_uri
+from coreach.vetting.diagnosis_report import cause_table, goal_table
+from coreach.vetting.report import separation_tables, terminal_table
 
 
 def print_summary(cmd, summaries: list[dict], as_json: bool) -> None:
@@ -70,11 +75,6 @@ def show_replay(console, summaries: list[dict], name: str) -> None:
         print_replay(console, s)
 
 
-def show_recipes(console, summaries: list[dict], name: str) -> None:
-    for s in summaries:
-        print_recipes(console, s)
-
-
 def show_aggregate(console, summaries: list[dict], name: str) -> None:
     for s in summaries:
         print_aggregate(console, s)
@@ -120,11 +120,6 @@ def show_demo(console, summaries: list[dict], name: str) -> None:
             console.print(line)
 
 
-def plain_console() -> Console:
-    """Rich console; a fixed width when stdout is not a terminal, so logs and tests see whole lines."""
-    return Console(width=None if sys.stdout.isatty() else 160)
-
-
 def training_table(runs: list[dict]) -> Table:
     """One row per run; validation values at the best epoch. Totals mix different loss recipes, so the
     reconstruction column is the one to compare across decoders."""
@@ -150,8 +145,6 @@ def training_table(runs: list[dict]) -> Table:
 
 
 def mlflow_hint() -> str:
-    from coreach.tracking import resolve_uri
-
     uri = resolve_uri(None)
     if uri.startswith("sqlite:"):
         return f"runs are in {uri}; browse them with: .venv/bin/mlflow ui --backend-store-uri {uri}"
@@ -159,8 +152,6 @@ def mlflow_hint() -> str:
 
 
 def print_vetting(console, result: dict) -> None:
-    from coreach.vetting.report import separation_tables, terminal_table
-
     console.print(terminal_table(result["summaries"]))
     for table in separation_tables(result["summaries"]):
         console.print(table)
@@ -174,8 +165,6 @@ def print_vetting(console, result: dict) -> None:
 
 def print_diagnosis(console, summaries: dict) -> None:
     """Success per goal, the causes of failed episodes, and what they point to (summaries with a diagnosis)."""
-    from coreach.vetting.diagnosis_report import cause_table, goal_table
-
     if not any(s.get("diagnosis") for s in summaries.values()):
         return
     console.print(goal_table(summaries))
@@ -190,19 +179,8 @@ def refusal_line(s: dict) -> str:
             f"({', '.join(s['failed'])}); nothing was written (no bundle, no MLflow run, no registry version)")
 
 
-def print_cautions(console, recording: bool = False) -> None:
-    """The cautions (with the consent line where a person is recorded), as `coreach-robot` prints them."""
-    from coreach.runtime.cautions import cautions
-
-    console.print("[bold]Cautions[/bold]")
-    for c in cautions(recording):
-        console.print(f"  - {c}", markup=False)
-
-
 def print_release(console, s: dict) -> None:
     """The gate table, then what was published (and the cautions), or why nothing was."""
-    from coreach.release.gate import gate_table
-
     verdict = "released" if s["released"] else "REFUSED"
     console.print(gate_table(s["gates"], f"release gate: {s['label']} (training run {s['training_run']}): {verdict}"))
     if not s["released"]:
@@ -211,8 +189,6 @@ def print_release(console, s: dict) -> None:
         return
     console.print(f"released {s['name']} version {s['version']} (@{', @'.join(s.get('aliases', []))}): {s['bundle']}")
     if s.get("gate_relaxed"):
-        from coreach.runtime.model_card import relaxed_warning
-
         console.print(f"[bold red]warning:[/bold red] version {s['version']} was "
                       f"{relaxed_warning(s['gate_relaxed'])}", highlight=False)
     console.print(f"release run {s['release_run']} in {s['tracking']}; the bundle is stored there ({s.get('bundle_uri')})"
@@ -225,11 +201,7 @@ def print_release(console, s: dict) -> None:
 
 def print_replay(console, s: dict) -> None:
     """The vetting table of the replay, the limit checks and the comparison with the bundle's vetting."""
-    from coreach.vetting.report import terminal_table
-
     console.print(terminal_table(s["summaries"]))
-    from coreach.release.gate import violation_text
-
     console.print(f"limit violations in the replay: {violation_text(s['violations'])}")
     c = s.get("comparison")
     if not c:
@@ -246,17 +218,6 @@ def print_replay(console, s: dict) -> None:
         console.print(table)
         console.print("replay MATCHES vetting" if c["match"] else "[bold red]replay does NOT match vetting[/bold red]")
     console.print(f"({s['note']})")
-
-
-def print_recipes(console, s: dict) -> None:
-    """The recipes table, where its files went, and the MLflow run that holds them."""
-    from coreach.commands.recipes.render import terminal_table
-
-    console.print(terminal_table(s))
-    # paths and overrides are full of [brackets], which rich would read as markup
-    console.print(f"written: {', '.join(s['files'].values())}", markup=False)
-    console.print(f"recipes run in MLflow: {s['parent_run']} ({s['tracking']})", markup=False)
-    console.print(f"reproduce with: {s['command']}", markup=False, soft_wrap=True)
 
 
 def print_aggregate(console, s: dict) -> None:

@@ -120,7 +120,7 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
     ),
     Command(
         "recipes", "coreach.commands.recipes.run:recipes", config="recipes",
-        show="coreach.commands.summaries:show_recipes", one_summary=True,
+        show="coreach.commands.recipes.render:show_recipes", one_summary=True,
         about="train each recipe over several seeds, vet them with the baselines, one table",
         usage=f"coreach recipes {_HYDRA}",
         help="Trains every recipe (recipes.<label>: {command: train|aggregate, overrides: [...]}, narrowed by "

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from hydra.core.hydra_config import HydraConfig
+
 
 def override_key(override: str) -> str:
     """The dotted key an override sets: `+robot.urdf=x`, `~robot.urdf` and `robot.urdf=x` -> `robot.urdf`."""
@@ -11,8 +13,6 @@ def override_key(override: str) -> str:
 def user_overrides() -> list[str]:
     """The overrides the running Hydra command was started with, as the user typed them (Hydra's own
     `hydra.*` left out); empty when not run as a Hydra app (e.g. a stage called inside `coreach recipes`)."""
-    from hydra.core.hydra_config import HydraConfig
-
     try:
         task = list(HydraConfig.get().overrides.task)
     except ValueError:  # HydraConfig not set

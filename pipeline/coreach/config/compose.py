@@ -8,10 +8,15 @@ schema (coreach.config.schemas) and checked the same way.
 
 from __future__ import annotations
 
+import os
 import re
+import tempfile
+from importlib import metadata
+from importlib.resources import files
 from pathlib import Path
 from typing import Any
 
+import yaml
 from hydra import compose, initialize_config_module
 from hydra.core.global_hydra import GlobalHydra
 from hydra.errors import HydraException
@@ -42,8 +47,6 @@ def one_line(exc: Exception) -> str:
 
 def external_config_packages() -> list[tuple[str, str]]:
     """(config package, origin) for every installed package that declares coreach plugins."""
-    from importlib import metadata
-
     found = []
     for ep in metadata.entry_points(group=ENTRY_POINT_GROUP):
         dist = ep.dist.name if ep.dist else "unknown distribution"
@@ -81,8 +84,6 @@ def is_file_reference(name: str | Path) -> bool:
 
 def read_yaml_file(path: str | Path, what: str) -> dict:
     """A lab's own YAML file as plain data; ConfigError naming the file when it is missing or not YAML."""
-    import yaml
-
     p = Path(path).expanduser()
     if not p.is_file():
         raise ConfigError(f"{what} {path}", f"file not found; expected a YAML {what} file")
@@ -117,8 +118,6 @@ def on_schema(schema: type, data: Any, where: str) -> dict:
 
 def options(group: str) -> list[str]:
     """The shipped options of a config group (conf/<group>/*.yaml)."""
-    from importlib.resources import files
-
     folder = files("coreach_conf") / group
     return sorted(p.name[: -len(".yaml")] for p in folder.iterdir() if p.name.endswith(".yaml"))
 
@@ -165,11 +164,6 @@ def lab_file_overrides(overrides: list[str], root: Path | None = None) -> tuple[
 def _write_option(root: Path, group: str, name: str, defaults: list, under: str | None, data: dict,
                   beside: dict | None = None) -> None:
     """Write conf option `group/name.yaml` (temp file, then rename: a killed command leaves no half file)."""
-    import os
-    import tempfile
-
-    import yaml
-
     folder = root / group
     folder.mkdir(parents=True, exist_ok=True)
     header = ("# @package _global_\n" if under else "") + "# written by coreach from a lab's own file\n"

@@ -16,6 +16,8 @@ import dataclasses
 import math
 from typing import Any
 
+from omegaconf import ListConfig, OmegaConf
+
 from coreach.errors import ConfigError
 
 __all__ = ["number", "integer", "choice", "text", "vector", "sizes", "check_options", "check_ranges", "is_number"]
@@ -134,8 +136,6 @@ def check_ranges(spec: type, values: dict, where: str) -> None:
 def _plain(v: Any) -> Any:
     """OmegaConf ListConfig -> list, so a composed node checks like parsed YAML."""
     try:
-        from omegaconf import ListConfig, OmegaConf
-
         if isinstance(v, ListConfig):
             return OmegaConf.to_container(v)
     except ImportError:  # the runtime has no omegaconf and never composes configs

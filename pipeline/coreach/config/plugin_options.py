@@ -13,8 +13,12 @@ import inspect
 from omegaconf import DictConfig, OmegaConf
 from omegaconf.errors import OmegaConfBaseException
 
-from coreach.errors import ConfigError
 from coreach.config.option_specs import check_ranges
+from coreach.config.schemas import SCHEMAS, ToleranceConfig
+from coreach.errors import ConfigError
+from coreach.training.options import TRAINING_OPTIONS
+from coreach.world.reach_check import ReachOptions
+from coreach.world.scenario import scenario_from_config
 
 PLUGIN_NODES = ("robot", "dataset", "belief", "model", "interface", "operator", "labeller")
 # passed by the trainer at build time, never written in a config
@@ -93,9 +97,6 @@ def check_plugins(cfg: DictConfig) -> None:
 
 def check_command_options(cfg: DictConfig) -> None:
     """Types and ranges of the commands' own options (seed, data split, trainer) where a config has them."""
-    from coreach.world.reach_check import ReachOptions
-    from coreach.training.options import TRAINING_OPTIONS
-
     for path, spec in (*TRAINING_OPTIONS, ("reach", ReachOptions)):
         node = cfg if not path else cfg.get(path)
         if not isinstance(node, DictConfig) or (not path and "trainer" not in node):
@@ -110,8 +111,6 @@ def check_command_options(cfg: DictConfig) -> None:
 def check_groups(cfg: DictConfig) -> None:
     """Ranges of the user-written groups present in a composed config (their types and keys were checked
     by their ConfigStore schemas while composing): `suite.episodes=-1` fails here, in one line."""
-    from coreach.config.schemas import SCHEMAS, ToleranceConfig
-
     for group, (_, schema) in SCHEMAS.items():
         node = cfg.get(group)
         if isinstance(node, DictConfig):
@@ -119,6 +118,4 @@ def check_groups(cfg: DictConfig) -> None:
             if group == "suite" and isinstance(node.get("tolerances"), DictConfig):
                 check_ranges(ToleranceConfig, dict(node.tolerances), "suite.tolerances")
     if isinstance(cfg.get("scenario"), DictConfig):  # the scene's own rules (sizes, goals clear of bodies)
-        from coreach.world.scenario import scenario_from_config
-
         scenario_from_config(cfg.scenario, f"scenario {cfg.scenario.get('name', '')}".strip())

@@ -13,6 +13,8 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, Dict, List, Optional
 
+from hydra.core.config_store import ConfigStore
+
 from coreach.control.separation import SeparationSettings
 from coreach.config.option_specs import choice, integer, number, vector
 
@@ -148,8 +150,6 @@ SCHEMAS = {"suite": ("base_suite", SuiteConfig), "scenario": ("base_scenario", S
 
 def register() -> None:
     """Store the schemas in Hydra's ConfigStore (idempotent): before any config is composed."""
-    from hydra.core.config_store import ConfigStore
-
     cs = ConfigStore.instance()
     for group, (name, node) in SCHEMAS.items():
         cs.store(group=group, name=name, node=node)

@@ -5,11 +5,12 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+from hydra.core.hydra_config import HydraConfig
+from hydra.types import RunMode
+
 
 def output_dir() -> Path:
     try:
-        from hydra.core.hydra_config import HydraConfig
-
         return Path(HydraConfig.get().runtime.output_dir)
     except (ValueError, ImportError):  # not inside a Hydra run (tests, notebooks)
         path = Path(".coreach") / "runs" / time.strftime("%Y%m%d-%H%M%S") / str(time.perf_counter_ns())
@@ -20,9 +21,6 @@ def output_dir() -> Path:
 def sweep_tag() -> str | None:
     """The sweep folder name in a Hydra multirun, so a sweep's runs can be grouped in MLflow."""
     try:
-        from hydra.core.hydra_config import HydraConfig
-        from hydra.types import RunMode
-
         hc = HydraConfig.get()
     except (ValueError, ImportError):
         return None

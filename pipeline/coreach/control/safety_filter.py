@@ -26,7 +26,7 @@ Array-API code (numpy at runtime, torch in training and vetting), batched over a
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -210,8 +210,6 @@ class SafetyLimits:
 
     def with_workspace(self, workspace_min, workspace_max, lookahead_s: float | None = None) -> SafetyLimits:
         """The same limits with a workspace box (and look-ahead)."""
-        from dataclasses import replace
-
         return replace(self, workspace_min=tuple(float(v) for v in workspace_min),
                        workspace_max=tuple(float(v) for v in workspace_max),
                        lookahead_s=self.lookahead_s if lookahead_s is None else float(lookahead_s))

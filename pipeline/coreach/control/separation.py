@@ -33,7 +33,7 @@ robot, torch in vetting; `qd` may carry extra leading candidate axes ([..., B, n
 from __future__ import annotations
 
 import threading
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -123,8 +123,6 @@ class World:
         """Move named bodies: {name: (xyz, rpy)} in the world frame (rpy in rad). The new bodies are built
         aside and swapped in with one assignment (a control step reads either the old or the new set), and
         writers take a lock (two perception threads cannot lose each other's update)."""
-        from dataclasses import replace
-
         with self._lock:
             moved = list(self.furniture) + list(self.person)
             index = {b.name: i for i, b in enumerate(moved)}

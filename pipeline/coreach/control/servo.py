@@ -8,7 +8,10 @@ qd = J^T (J J^T + damping^2 I)^-1 v. `dls_step` and `cap_norm` are array-API cod
 
 from __future__ import annotations
 
+import torch
+
 from coreach.control.arrays import namespace
+from coreach.world.geometry import rotation_error
 
 
 def dls_step(J, twist, damping: float):
@@ -35,10 +38,6 @@ def cap_norm(v, limit: float):
 def servo_twist(pos, rot, target, target_rot, k_p: float, k_r: float, v_max: float, w_max: float):
     """Tool twist [B, 6] toward a target position [B, 3] and orientation [B, 3, 3]: proportional, each part
     capped in norm."""
-    import torch
-
-    from coreach.world.geometry import rotation_error
-
     rot_err = rotation_error(target_rot, rot)
     return torch.cat([cap_norm(k_p * (target - pos), v_max), cap_norm(k_r * rot_err, w_max)], dim=-1)
 

@@ -3,14 +3,12 @@
 from __future__ import annotations
 
 import json
-from typing import TYPE_CHECKING
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from coreach.errors import DataError
-
-if TYPE_CHECKING:
-    import pyarrow as pa
 
 
 class ColumnReader:
@@ -34,8 +32,6 @@ class ColumnReader:
             raise self.fail(name, "has missing (null) values; expected a value everywhere", row)
 
     def integers(self, name: str) -> np.ndarray:
-        import pyarrow as pa
-
         col = self.table.column(name)
         if not pa.types.is_integer(col.type):
             raise self.fail(name, f"expected integers, got type {col.type}")
@@ -43,8 +39,6 @@ class ColumnReader:
         return col.to_numpy().astype(np.int64)
 
     def strings(self, name: str) -> np.ndarray:
-        import pyarrow as pa
-
         col = self.table.column(name)
         if pa.types.is_dictionary(col.type):
             col = col.cast(col.type.value_type)
@@ -55,9 +49,6 @@ class ColumnReader:
 
     def _flatten(self, name: str, arr: pa.Array, width: int, what: str, per_row: int = 1) -> pa.Array:
         """Values of a list column whose every entry has `width` items; entry i lies on file row i // per_row."""
-        import pyarrow as pa
-        import pyarrow.compute as pc
-
         t = arr.type
         if not (pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t)):
             raise self.fail(name, f"expected lists of {width} ({what}), got type {t}")
@@ -75,8 +66,6 @@ class ColumnReader:
 
     def floats(self, name: str, width: int, what: str, goals: int | None = None) -> np.ndarray:
         """Finite float64 [rows, width], or [rows, goals, width] for the per-goal layout columns."""
-        import pyarrow as pa
-
         arr = self.table.column(name).combine_chunks()
         rows = len(arr)
         if goals is None:

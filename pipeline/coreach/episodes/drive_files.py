@@ -4,6 +4,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import pyarrow.parquet as pq
+
 from coreach.errors import ConfigError, DataError
 
 META_MANIFEST = "coreach.bundle_manifest_sha256"  # sha256 of the bundle's manifest.json the drive ran
@@ -14,8 +16,6 @@ DRIVE_COLUMNS = ("arrived", "phase")  # written by every test-drive recording, a
 
 def check_drive_file(path: Path) -> None:
     """DataError unless `path` is a recorded test drive (its metadata and columns, read from the schema only)."""
-    import pyarrow.parquet as pq
-
     schema = pq.read_schema(path)
     missing = [f"column {c}" for c in DRIVE_COLUMNS if c not in schema.names]
     if META_MANIFEST.encode() not in (schema.metadata or {}):

@@ -9,14 +9,15 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from coreach.episodes.column_reader import ColumnReader, names_metadata
 from coreach.episodes.episode_set import OPTIONAL_COLUMNS, REQUIRED_COLUMNS, SCHEMA_VERSION, Episode, EpisodeSet
 from coreach.errors import DataError
+from coreach.world.geometry import matrix_to_quat
 
 if TYPE_CHECKING:
-    import pyarrow as pa
-
     from coreach.host.protocols import Robot
 
 
@@ -56,9 +57,6 @@ def load_parquet(path: str | os.PathLike, robot: Robot | None = None, min_steps:
 
 
 def _read_table(path: Path) -> tuple[pa.Table, str]:
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
     where = str(path)
     if not path.is_file():
         raise DataError(where, "file not found; expected a Parquet file of demonstrations")
@@ -209,9 +207,7 @@ def _check_speeds(qd: np.ndarray, rows: _Rows, robot: Robot, where: str, joint_n
 
 
 def _forward_kinematics(robot: Robot, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    import torch
-
-    from coreach.world.geometry import matrix_to_quat
+    import torch  # late: only for missing ee_* columns; test drives read files without torch
 
     with torch.no_grad():
         pos, rot = robot.fk(torch.as_tensor(q, dtype=torch.float64))

@@ -6,27 +6,21 @@ import json
 import os
 import uuid
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from coreach.episodes.episode_set import SCHEMA_VERSION, EpisodeSet
 from coreach.errors import DataError
 
-if TYPE_CHECKING:
-    import pyarrow as pa
-
 
 def _fixed(values: np.ndarray, width: int) -> pa.Array:
-    import pyarrow as pa
-
     return pa.FixedSizeListArray.from_arrays(pa.array(np.ascontiguousarray(values, dtype=np.float64).ravel()), width)
 
 
 def _per_row_layout(blocks: list[np.ndarray], lengths: np.ndarray, width: int) -> pa.Array:
     """list<fixed_size_list[width]> column: each episode's [G, width] block repeated on its rows."""
-    import pyarrow as pa
-
     G = blocks[0].shape[0]
     rows = np.repeat(np.stack(blocks), lengths, axis=0)  # [rows, G, width]
     offsets = pa.array(np.arange(rows.shape[0] + 1, dtype=np.int32) * G)
@@ -35,8 +29,6 @@ def _per_row_layout(blocks: list[np.ndarray], lengths: np.ndarray, width: int) -
 
 def to_table(episode_set: EpisodeSet) -> pa.Table:
     """The Parquet table (schema version 1) of an episode set."""
-    import pyarrow as pa
-
     eps = episode_set.episodes
     if not eps:
         raise DataError("episode set", "no episodes to save")
@@ -67,8 +59,6 @@ def to_table(episode_set: EpisodeSet) -> pa.Table:
 
 def save_parquet(episode_set: EpisodeSet, path: str | os.PathLike) -> Path:
     """Write the set to `path` atomically: a temporary file in the same folder, then os.replace."""
-    import pyarrow.parquet as pq
-
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     table = to_table(episode_set)

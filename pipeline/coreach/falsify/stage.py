@@ -11,7 +11,9 @@ import time
 from pathlib import Path
 
 import torch
+from mlflow.entities import Metric, Param
 from omegaconf import DictConfig
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
 from coreach import tracking
 from coreach.errors import ConfigError
@@ -99,8 +101,6 @@ class Evaluator:
 def _progress(total: int, label: str):
     if not interactive():
         return None, None
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
-
     bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn())
     bar.start()
     task = bar.add_task(label, total=total)
@@ -213,8 +213,6 @@ def falsify(cfg: DictConfig) -> dict:
 
 def _log(cfg: DictConfig, summary: dict, source: str, out: Path) -> str:
     """A falsification run in MLflow: the settings, the figures per search and the report folder."""
-    from mlflow.entities import Metric, Param  # late: mlflow's entities load with the tracking client anyway
-
     client, exp_id = tracking.client(cfg.tracking)
     tags = {"coreach.stage": "falsify", "coreach.label": summary["label"]}
     if len(source) == 32 and "/" not in source:

@@ -8,16 +8,23 @@ line. A plugin is given either built or as its config ({"_target_": ..., ...}), 
 from __future__ import annotations
 
 import inspect
+import json
 import math
 from collections.abc import Callable, Iterator
 from typing import Any
 
+import hydra
 import numpy as np
 import torch
 from omegaconf import DictConfig, OmegaConf
 
+from coreach.context import ContextSpec
+from coreach.decoder.policy import DecoderPolicy
 from coreach.errors import CoreachError
 from coreach.host.protocols import KINDS, OPTIONAL, Posterior, optional_members
+from coreach.host.registry import build_plugin, builtin_option
+from coreach.safety import SafetyLimits
+from coreach.training.terms import TermBatch
 
 # sizes of the small problems the checks build: a 7-joint arm context with 4 goals
 N_JOINTS, N_GOALS, BATCH = 7, 4, 6
@@ -35,10 +42,6 @@ def _is_config(x: Any) -> bool:
 
 
 def _model_width(cfg) -> int:
-    import hydra
-
-    from coreach.context import ContextSpec
-
     blocks = getattr(hydra.utils.get_class(str(cfg["_target_"])), "context_blocks", ())
     return len(ContextSpec(dof=N_JOINTS, n_goals=N_GOALS).columns(blocks))
 
@@ -48,7 +51,6 @@ def build(kind: str, obj_or_config: Any, seed: int = 0) -> Any:
     7-joint arm with 4 goals)."""
     if not _is_config(obj_or_config):
         return obj_or_config
-    from coreach.host.registry import build_plugin
 
     cfg = OmegaConf.create(obj_or_config if isinstance(obj_or_config, dict) else
                            OmegaConf.to_container(obj_or_config))  # fmt: skip
@@ -218,7 +220,6 @@ def belief_manifest(belief) -> None:
     """If present, to_manifest is plain JSON with a "model" name, and from_manifest rebuilds an equal model."""
     if not hasattr(belief, "to_manifest"):
         return
-    import json
 
     section = belief.to_manifest()
     _fail("to_manifest", isinstance(section, dict) and isinstance(section.get("model"), str), "needs a 'model' name")
@@ -241,8 +242,6 @@ def _decoder_inputs(model, seed: int = 1):
 
 
 def model_context_width(model) -> int:
-    from coreach.context import ContextSpec
-
     return len(ContextSpec(dof=N_JOINTS, n_goals=N_GOALS).columns(model.context_blocks))
 
 
@@ -282,12 +281,6 @@ def model_gradients(model) -> None:
 def loss_batch(seed: int = 0):
     """A TermBatch from a real DecoderPolicy (the built-in cVAE, small) with the real speed caps; epoch is far
     past any warm-up so no term is switched off."""
-    from coreach.context import ContextSpec
-    from coreach.host.registry import build_plugin, builtin_option
-    from coreach.decoder.policy import DecoderPolicy
-    from coreach.safety import SafetyLimits
-    from coreach.training.terms import TermBatch
-
     g = torch.Generator().manual_seed(seed)
     spec = ContextSpec(dof=N_JOINTS, n_goals=N_GOALS)
     torch.manual_seed(seed)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import inspect
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
@@ -9,7 +10,7 @@ if TYPE_CHECKING:  # keep this module importable without torch (the runtime read
     import numpy as np
     from torch import Tensor
 
-    from coreach.episodes import EpisodeSet
+    from coreach.episodes.episode_set import EpisodeSet  # the module itself: the package's loader reads Robot
     from coreach.world.scenario import Scenario
 
 
@@ -242,8 +243,6 @@ def optional_members(kind: str) -> list[str]:
 
 def takes_dt(operator: Any) -> bool:
     """Whether `operator.reset` accepts the control period as the keyword `dt` (see `OperatorOptional.reset`)."""
-    import inspect
-
     return "dt" in inspect.signature(operator.reset).parameters
 
 

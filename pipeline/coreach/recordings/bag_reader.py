@@ -5,6 +5,8 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+from rosbags.rosbag2 import Reader
+from rosbags.typesys import Stores, get_typestore
 
 from coreach.errors import CoreachError, DataError
 from coreach.recordings.recording import Recording, Stream
@@ -14,8 +16,6 @@ from coreach.recordings.topics import JOINT_STATE, JOY, MULTI_ARRAY, STRING, Top
 def read_bag(path: str | Path, joint_names: list[str], topics: TopicMap) -> Recording:
     """The streams of one bag folder, joints reordered by name into `joint_names`. DataError (one line naming
     the bag and topic) for a missing or mistyped topic, a joint-name mismatch or an unreadable file."""
-    from rosbags.rosbag2 import Reader
-
     path = Path(path)
     where = f"bag {path}"
     if not path.is_dir():
@@ -35,8 +35,6 @@ def read_bag(path: str | Path, joint_names: list[str], topics: TopicMap) -> Reco
 
 def _read_open(reader, path: Path, where: str, joint_names: list[str], topics: TopicMap,
                sidecar: tuple[str, str] | None) -> Recording:  # fmt: skip
-    from rosbags.typesys import Stores, get_typestore
-
     types = {}
     for c in reader.connections:
         types.setdefault(c.topic, c.msgtype)

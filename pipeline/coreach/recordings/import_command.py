@@ -7,23 +7,23 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
+import torch
 from omegaconf import DictConfig
 
 from coreach.config.command_line import command_line_options
 from coreach.episodes import EpisodeSet
 from coreach.errors import ConfigError, DataError
+from coreach.host.registry import build_plugin
 from coreach.recordings.bag_reader import read_bag
 from coreach.recordings.csv_reader import read_csv
 from coreach.recordings.options import WHERE, read_options
 from coreach.recordings.stick_parquet import save_with_stick
 from coreach.recordings.to_episodes import ArmLimits, build_episodes, recording_pieces
+from coreach.world.scenario import load_scenario
 
 
 def import_recordings(cfg: DictConfig) -> dict:
     """Read every input, check and resample it, cut it at goal-label changes, and write one Parquet file."""
-    from coreach.host.registry import build_plugin
-    from coreach.world.scenario import load_scenario
-
     inputs, topics, checks, dt, min_steps = read_options(cfg)
     robot = build_plugin(cfg.robot, "robot")
     try:
@@ -32,7 +32,6 @@ def import_recordings(cfg: DictConfig) -> dict:
         raise (ConfigError(f"{WHERE}, option scene", e.problem) if e.where == "option scenario" else e) from None
     dt = scenario.dt if dt is None else dt
     arm = ArmLimits.of(robot)
-    import torch
 
     # the nominal scene: bags do not carry the layout, and a recording was made in one fixed scene
     layout = replace(scenario, jitter=0.0).sample_layouts(1, torch.Generator().manual_seed(0)).to_episode(0)

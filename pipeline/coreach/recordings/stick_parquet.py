@@ -7,6 +7,8 @@ import uuid
 from pathlib import Path
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from coreach.episodes import EpisodeSet, to_table
 
@@ -18,9 +20,6 @@ STICK_COLUMN = "stick"
 def save_with_stick(episode_set: EpisodeSet, sticks: list[np.ndarray] | None, path: str | os.PathLike) -> Path:
     """The set as coreach.episodes.to_table writes it, plus `stick` when given (one [T, k] array per
     episode); a temporary file in the same folder, then os.replace."""
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     table = to_table(episode_set)

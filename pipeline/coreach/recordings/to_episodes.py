@@ -5,12 +5,14 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import torch
 
 from coreach.episodes import Episode
 from coreach.errors import DataError
 from coreach.recordings import resample
 from coreach.recordings.recording import Recording, Stream
 from coreach.recordings.timing import TimingLimits, check_stream
+from coreach.world.geometry import matrix_to_quat
 
 
 @dataclass
@@ -129,10 +131,6 @@ def recording_pieces(rec: Recording, arm: ArmLimits, dt: float, checks: Checks,
 
 def build_episodes(pieces: list[Piece], robot, goal_names: list[str], layout, first_id: int = 0) -> list[Episode]:
     """Episodes with tool poses from the robot's forward kinematics and the scenario's nominal layout."""
-    import torch
-
-    from coreach.world.geometry import matrix_to_quat
-
     index = {g: i for i, g in enumerate(goal_names)}
     q_all = np.concatenate([p.q for p in pieces])
     with torch.no_grad():

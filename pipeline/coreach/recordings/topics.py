@@ -5,6 +5,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
+import yaml
+
 from coreach.errors import DataError
 
 JOINT_STATE = "sensor_msgs/msg/JointState"
@@ -28,8 +30,6 @@ class TopicMap:
 
 def sidecar_goal(bag: Path, suffix: str) -> tuple[str, str] | None:
     """(goal name, file) from `<bag><suffix>` beside the bag folder, or None when there is no such file."""
-    import yaml
-
     path = bag.parent / f"{bag.name}{suffix}"
     if not path.is_file():
         return None

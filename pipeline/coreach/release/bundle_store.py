@@ -14,8 +14,9 @@ import tempfile
 from pathlib import Path
 
 from coreach.errors import CoreachError
-from coreach.runtime.registry_tags import MODEL_NAME_RE, TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST, TAG_RELEASE_RUN
+from coreach.release.registry_client import client_for, get_model, get_version
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
+from coreach.runtime.registry_tags import MODEL_NAME_RE, TAG_BUNDLE_URI, TAG_GATE_PASSED, TAG_MANIFEST, TAG_RELEASE_RUN
 
 BUNDLE_ARTIFACT = "bundle"  # artifact path of the bundle inside its release run
 PARTIAL = ".partial"  # suffix of every staging folder under a releases folder
@@ -93,8 +94,6 @@ def bundle_folder(ref: str, where: str = "option bundle", uri: str | None = None
     if not m or ".." in m["name"]:
         raise CoreachError(where, f"{ref!r} is neither a bundle folder nor a released model as NAME@ALIAS or "
                                   "NAME/VERSION (e.g. bedside-shelf-decoder@fielded)")  # fmt: skip
-    from coreach.release.registry import client_for, get_model, get_version
-
     client = client_for(uri)
     model = get_model(client, m["name"])
     if model is None:

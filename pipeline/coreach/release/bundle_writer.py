@@ -16,10 +16,16 @@ from typing import Any, Callable
 import numpy as np
 
 from coreach.errors import ConfigError
+from coreach.release.export import export_onnx, onnx_parity
+from coreach.runtime.belief_manifest import belief_from_manifest
+from coreach.runtime.kinematics import Chain
 from coreach.runtime.manifest import (CORE_FILES, DEFAULT_DEADBAND, DEFAULT_LOOKAHEAD_S, DEFAULT_WATCHDOG_S,
                                       MANIFEST, PARITY_TOLERANCE, SCHEMA_VERSION, BundleError, Manifest,
                                       onnx_interface)
+from coreach.runtime.model_card import model_card
 from coreach.runtime.verify import _check_name, sha256_file, verify_bundle
+from coreach.safety import DEFAULT_TCP_SPEED_MAX
+from coreach.world.urdf import robot_name as urdf_robot_name  # a local robot_name is the manifest's
 
 
 def _plain(value: Any, where: str) -> Any:
@@ -98,8 +104,6 @@ def _belief_section(meta: dict) -> dict:
     as the Boltzmann model (the only one before models named themselves), missing parameters take the model's
     defaults.
     """
-    from coreach.runtime.belief_manifest import belief_from_manifest
-
     section = meta.get("belief") or {}
     if not isinstance(section, dict):
         raise ConfigError("release meta.belief", f"expected a mapping, got {type(section).__name__}")
@@ -122,9 +126,6 @@ def build_manifest(policy, chain, robot_name: str, meta: dict, gate: dict, parit
     safety.world section, coreach.world.scene_bodies.world_json; {} without bodies).
     Bad metadata is a one-line ConfigError naming `release meta.<key>`; `files` stays empty for write_bundle.
     """
-    # imported here so verify_bundle needs no more than numpy
-    from coreach.safety import DEFAULT_TCP_SPEED_MAX
-
     spec = policy.spec
     n, g, d = policy.action_dim, spec.n_goals, policy.latent_dim
     goal_names = meta.get("goal_names")
@@ -196,10 +197,6 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
     there, so a clean-up after a crash can tell whose it is); `before_rename` runs when the staged bundle is
     complete and verified.
     """
-    from coreach.release.export import export_onnx, onnx_parity  # torch side, only when writing
-    from coreach.runtime.kinematics import Chain
-    from coreach.runtime.model_card import model_card
-
     out_dir = Path(out_dir)
     if out_dir.exists() or out_dir.is_symlink():
         raise BundleError(str(out_dir), "already exists; bundles are never overwritten, choose a new folder")
@@ -258,6 +255,4 @@ def write_bundle(out_dir: str | Path, policy, robot_urdf_path: str | Path, meta:
 
 
 def _urdf_robot_name(text: str) -> str | None:
-    from coreach.world.urdf import robot_name  # the one URDF reader; the text was already parsed by Chain
-
-    return robot_name(text)
+    return urdf_robot_name(text)  # the one URDF reader; the text was already parsed by Chain

@@ -4,10 +4,15 @@ from __future__ import annotations
 
 import logging
 
+import numpy as np
+from hydra import compose
 from omegaconf import DictConfig
 
 from coreach.config.compose import suite_overrides
 from coreach.release import registry
+from coreach.release.replay import replay
+from coreach.release.stage import release
+from coreach.runtime.session import Session
 
 log = logging.getLogger("coreach.release")
 
@@ -34,10 +39,6 @@ def runtime_tryout(bundle: str, seconds: float, stick=(0.6, 0.3), dt: float = 0.
     `seconds` of a constant simulated stick at a 100 Hz control rate (dt, common practice for arm velocity
     control), integrating q += qd dt from the home pose. Returns how far the tool went, the belief at the
     end and on how many steps each filter acted."""
-    import numpy as np
-
-    from coreach.runtime.session import Session
-
     session = Session.open(bundle)
     m = session.manifest
     q = np.asarray(m.q_home, dtype=np.float64).copy()
@@ -68,11 +69,6 @@ def release_best(demo_result: dict, cfg: DictConfig) -> dict:
     thin demo evidence may well be refused: that is the honest outcome, and the refusal tables are the result.
     Returns {"attempts": [release summaries], "release": the passing one or None, "replay": its replay}.
     """
-    from hydra import compose
-
-    from coreach.release.replay import replay
-    from coreach.release.stage import release  # the command; imported here as it re-exports these helpers
-
     node = (cfg.get("demo") or {}).get("release") or {}
     overrides = [str(o) for o in node.get("overrides", ["episodes=10", "latency.steps=1500"])]
     max_tries = int(node.get("max_tries", 2))

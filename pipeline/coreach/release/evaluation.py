@@ -8,22 +8,24 @@ from pathlib import Path
 
 from omegaconf import ListConfig
 
+from coreach.decoder.torch_interface import DecoderInterface
 from coreach.errors import ConfigError
 from coreach.falsify.stage import counterexample_suites, gate_search
-from coreach.decoder.torch_interface import DecoderInterface
 from coreach.host.registry import build_plugin
 from coreach.release import gate as G
 from coreach.release.bundle_writer import write_bundle
+from coreach.release.export import export_onnx, onnx_parity
+from coreach.release.metadata import release_meta
 from coreach.release.relaxation import relaxed_settings
-from coreach.world.robot_identity import check_same_robot
 from coreach.runtime.bundle import PARITY_TOLERANCE, BundleError, verify_bundle
+from coreach.runtime.latency import run_runtime_bench
 from coreach.safety import limits_from_config, workspace_box
+from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import summarise
-from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots
 from coreach.vetting.report import standard_plots, write_report
 from coreach.vetting.suite import load_suite
-from coreach.release.metadata import release_meta
+from coreach.world.robot_identity import check_same_robot
 
 log = logging.getLogger("coreach.release")
 
@@ -67,8 +69,6 @@ def _latency(bundle: Path, node) -> dict:
     """Runtime latency on the staged bundle: the round (of `rounds`) with the lowest p99. Other jobs on the
     machine only ever add time, so the quietest round is the best estimate of what the decoder and runtime
     cost; a single busy round on a shared computer measured 8.7 ms p99 against 0.5 ms for the next one."""
-    from coreach.runtime.latency import run_runtime_bench
-
     rounds = max(1, int(node.get("rounds", 3)))
     steps = max(50, int(node.steps) // rounds)
     results = [run_runtime_bench(bundle, steps=steps, warmup=int(node.warmup)) for _ in range(rounds)]
@@ -129,8 +129,6 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
         parity = float(verify_bundle(staged).onnx_parity["max_abs_diff"])
         latency = _latency(staged, cfg.latency)
     except BundleError as exc:  # parity beyond the writer's own limit: measure it for the table
-        from coreach.release.export import export_onnx, onnx_parity
-
         log.warning("staged bundle refused: %s", exc)
         try:
             parity = onnx_parity(policy, export_onnx(policy, staging / "probe.onnx"), n=int(cfg.parity_n))

@@ -14,6 +14,8 @@ import math
 from dataclasses import asdict, dataclass
 
 import torch
+from rich.markup import escape
+from rich.table import Table
 
 from coreach.errors import ConfigError
 
@@ -250,9 +252,6 @@ def as_json(results: list[GateResult]) -> dict:
 
 def gate_table(results, title: str):
     """A rich Table of every gate (accepts GateResults or their as_json mapping)."""
-    from rich.markup import escape
-    from rich.table import Table
-
     rows = results.items() if isinstance(results, dict) else [(r.name, asdict(r)) for r in results]
     table = Table(title=title)
     for col in ("gate", "measured", "threshold", "result", "what / detail"):

@@ -2,15 +2,16 @@
 
 from __future__ import annotations
 
+import torch
+
 from coreach.errors import ConfigError
 from coreach.host.registry import build_plugin
+from coreach.world.geometry import matrix_to_quat, rpy_to_matrix
+from coreach.world.scene_arm import arm_world
+from coreach.world.scene_bodies import world_json
 
 
 def _nominal_layout(scene) -> dict:
-    import torch
-
-    from coreach.world.geometry import matrix_to_quat, rpy_to_matrix
-
     rpy = torch.deg2rad(torch.tensor([g.approach_rpy_deg for g in scene.goals], dtype=torch.float64))
     return {
         "goal_pos": [list(g.position) for g in scene.goals],
@@ -51,9 +52,6 @@ def _model_card_metrics(summaries: dict) -> dict:
 
 def _world_section(robot, scene) -> dict:
     """The manifest's safety.world: the gate suites' scene bodies and the arm's sphere model."""
-    from coreach.world.scene_bodies import world_json
-    from coreach.world.scene_arm import arm_world
-
     world = arm_world(robot, scene)
     if world is None:
         return {}

@@ -25,6 +25,7 @@ import sys
 import time
 from pathlib import Path
 
+from mlflow.entities import Metric, Param
 from omegaconf import OmegaConf
 
 from coreach.release import gate as G
@@ -95,8 +96,6 @@ def publish(cfg, client, policy, run, label: str, ev: dict) -> dict:
 
 
 def _steps(cfg, client, policy, run, label, ev, name, root: Path, rid: str) -> dict:
-    from mlflow.entities import Metric, Param
-
     run_id = run.info.run_id
     gate = G.as_json(ev["results"])
     _boundary("register")

@@ -14,14 +14,19 @@ import json
 import sys
 from pathlib import Path
 
+from rich.console import Console
+from rich.table import Table
+
 from coreach.errors import ConfigError, CoreachError
 from coreach.release.bundle_store import cached, releases_root
+from coreach.release.registry_client import client_for, get_model, get_version
+from coreach.release.settle import owner_alive, pending_runs, repair, settle
 from coreach.runtime.bundle import MANIFEST, BundleError, sha256_file, verify_bundle
+from coreach.runtime.cautions import cautions
+from coreach.runtime.model_card import relaxed_warning
 from coreach.runtime.registry_tags import (FIELDED_ALIAS, GATE_PASSED_ALIAS, MODEL_NAME_RE, TAG_BUNDLE_URI,
                                            TAG_GATE, TAG_GATE_PASSED, TAG_GATE_RELAXED, TAG_HISTORY, TAG_MANIFEST,
                                            TAG_RELEASE_RUN, TAG_SOURCE_RUN)
-from coreach.runtime.cautions import cautions
-from coreach.runtime.model_card import relaxed_warning
 
 HISTORY_KEEP = 40  # entries kept in the history tag (tag values are limited to a few thousand characters)
 
@@ -31,43 +36,6 @@ def check_name(name) -> str:
         raise ConfigError("option name", f"expected a model name of letters, digits, '-', '_' or '.' (it is also a "
                                          f"folder name), got {name!r}")  # fmt: skip
     return name
-
-
-def client_for(uri: str | None = None):
-    from mlflow.tracking import MlflowClient
-
-    from coreach.tracking import resolve_uri
-
-    return MlflowClient(tracking_uri=resolve_uri(uri))
-
-
-def _missing(exc: Exception) -> bool:
-    from mlflow.exceptions import MlflowException
-
-    return isinstance(exc, MlflowException) and "RESOURCE_DOES_NOT_EXIST" in str(getattr(exc, "error_code", ""))
-
-
-def get_model(client, name: str):
-    """The registered model `name`, or None."""
-    from mlflow.exceptions import MlflowException
-
-    try:
-        return client.get_registered_model(name)
-    except MlflowException as exc:
-        if _missing(exc):
-            return None
-        raise
-
-
-def get_version(client, name: str, version: str):
-    from mlflow.exceptions import MlflowException
-
-    try:
-        return client.get_model_version(name, str(version))
-    except MlflowException as exc:
-        if _missing(exc):
-            raise ConfigError(f"model {name}", f"has no version {version!r}; see coreach bundles {name}") from None
-        raise
 
 
 def compact_gate(gate: dict) -> dict:
@@ -232,8 +200,6 @@ def rollback_command(args: list[str], as_json: bool) -> int:
 
 def bundles_command(args: list[str], as_json: bool) -> int:
     """`coreach bundles [NAME]`: the registered versions; it reads only (the repair is finish-releases)."""
-    from coreach.release.settle import owner_alive, pending_runs
-
     if len(args) > 1 or any(a.startswith("-") for a in args):
         raise ConfigError("coreach bundles", f"usage: coreach bundles [NAME]; got {' '.join(args)}")
     client = client_for()
@@ -246,9 +212,6 @@ def bundles_command(args: list[str], as_json: bool) -> int:
     if as_json:
         print(json.dumps(rows, indent=2))
         return 0
-    from rich.console import Console
-    from rich.table import Table
-
     table = Table(title="released decoders (coreach release; field with coreach promote NAME VERSION)")
     for col in ("model", "version", "aliases", "gate passed", "gates", "key values", "bundle", "created"):
         table.add_column(col, no_wrap=col in ("model", "version", "created"))
@@ -269,8 +232,6 @@ def bundles_command(args: list[str], as_json: bool) -> int:
 
 def finish_releases_command(args: list[str], as_json: bool) -> int:
     """`coreach finish-releases [--leftovers]`: settle interrupted publishes (and older leftovers), saying what."""
-    from coreach.release.settle import repair, settle
-
     leftovers = "--leftovers" in args
     if [a for a in args if a != "--leftovers"]:
         raise ConfigError("coreach finish-releases", f"usage: coreach finish-releases [--leftovers]; got {' '.join(args)}")
@@ -295,4 +256,4 @@ def finish_releases_command(args: list[str], as_json: bool) -> int:
 
 __all__ = ["GATE_PASSED_ALIAS", "FIELDED_ALIAS", "compact_gate", "promote", "promote_back", "list_releases",
            "check_fieldable", "promote_command", "rollback_command", "bundles_command", "finish_releases_command",
-           "check_name", "client_for"]
+           "check_name", "client_for", "get_model", "get_version"]

@@ -16,22 +16,25 @@ import tempfile
 import time
 from pathlib import Path
 
+from mlflow.exceptions import MlflowException
+from mlflow.tracking import MlflowClient
 from omegaconf import DictConfig, OmegaConf
 
+from coreach.decoder.onnx_interface import OnnxBundleInterface
+from coreach.errors import ConfigError
+from coreach.release.bundle_store import bundle_folder
+from coreach.release.gate import count_violations
+from coreach.runtime.belief_manifest import belief_from_manifest
+from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes
 from coreach.runtime.kinematics import Chain
 from coreach.runtime.session import arm_world_from_manifest
-from coreach.errors import ConfigError
-from coreach.decoder.onnx_interface import OnnxBundleInterface
-from coreach.world.urdf_arm import UrdfArm
-from coreach.runtime.belief_manifest import belief_from_manifest
-from coreach.release.gate import count_violations
-from coreach.release.bundle_store import bundle_folder
-from coreach.runtime.bundle import BundleError, Manifest, sha256_bytes
 from coreach.runtime.session import limits_from_manifest
 from coreach.safety import SafetyLimits
+from coreach.tracking import resolve_uri, sqlite_path
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import summarise
 from coreach.vetting.suite import suite_from_config
+from coreach.world.urdf_arm import UrdfArm
 
 log = logging.getLogger("coreach.replay")
 MISMATCH_EXIT = 3
@@ -57,11 +60,6 @@ def bundle_limits(m: Manifest) -> SafetyLimits:
 
 def vetted_metrics(tracking_uri: str, run_id: str, suite: str) -> tuple[dict | None, str]:
     """The vet/<suite>/... metrics recorded on the training run (by coreach vet or release), and a note."""
-    from mlflow.exceptions import MlflowException
-    from mlflow.tracking import MlflowClient
-
-    from coreach.tracking import sqlite_path
-
     db = sqlite_path(tracking_uri)
     if db is not None and not db.exists():
         return None, f"no tracking store at {db}"
@@ -114,8 +112,6 @@ def compare(summary: dict, vetted: dict | None, tol) -> dict | None:
 
 def replay(cfg: DictConfig) -> dict:
     """Replay `cfg.bundle` on `cfg.suite`; the summary, limit checks and the comparison with its vetting."""
-    from coreach.tracking import resolve_uri
-
     t0 = time.perf_counter()
     if OmegaConf.is_missing(cfg, "bundle") or not str(cfg.bundle):
         raise ConfigError("option bundle", "expected a release bundle folder (releases/<name>/v<version>) or a "

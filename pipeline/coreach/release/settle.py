@@ -24,8 +24,10 @@ import time
 from pathlib import Path
 from typing import Callable
 
+from mlflow.store.artifact.artifact_repository_registry import get_artifact_repository
+
 from coreach.release.bundle_store import PARTIAL, releases_root
-from coreach.release.registry import get_model
+from coreach.release.registry_client import get_model
 from coreach.runtime.registry_tags import (GATE_PASSED_ALIAS, MODEL_DESCRIPTION, TAG_CREATED_MODEL, TAG_GATE_PASSED,
                                            TAG_MODEL_NAME, TAG_OWNER, TAG_PUBLISH, TAG_RELEASE_RUN, TAG_ROOT,
                                            TAG_SOURCE_RUN, TAG_VERSION, release_tag)
@@ -129,8 +131,6 @@ def settle_run(client, run, say: Say) -> str:
 
 def _remove_artifacts(client, run, say: Say) -> None:
     """The bundle files an unfinished publish uploaded (best effort: `mlflow gc` removes what is left)."""
-    from mlflow.store.artifact.artifact_repository_registry import get_artifact_repository
-
     try:
         repo = get_artifact_repository(run.info.artifact_uri, tracking_uri=client.tracking_uri)
         if repo.list_artifacts():

@@ -105,7 +105,4 @@ def _gate_and_publish(cfg, client, policy, run, label: str, uri: str, t0: float)
     return out
 
 
-# the demo helpers live in coreach.release.demo_helpers; these names stay importable from here (coreach.demo)
-from coreach.release.demo_helpers import release_best, runtime_tryout  # noqa: E402
-
-__all__ = ["release", "release_best", "runtime_tryout", "evaluate", "publish", "REFUSED_EXIT"]
+__all__ = ["release", "evaluate", "publish", "REFUSED_EXIT"]

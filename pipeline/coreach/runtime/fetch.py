@@ -27,6 +27,7 @@ import contextlib
 import datetime as _dt
 import errno
 import fcntl
+import hashlib
 import json
 import os
 import re
@@ -95,8 +96,6 @@ class _LocalSource:
         return self._file(name).read_bytes()
 
     def download(self, name: str, dest: Path) -> str:
-        import hashlib
-
         h = hashlib.sha256()
         with open(self._file(name), "rb") as src, open(dest, "wb") as out:
             copy_stream(src, lambda b: (h.update(b), out.write(b)), None, str(self.folder / name))

@@ -17,6 +17,8 @@ from typing import Any
 import numpy as np
 
 from coreach.errors import ConfigError, CoreachError
+from coreach.runtime.belief_manifest import BELIEF_MODELS, belief_from_manifest
+from coreach.world.scene_bodies import world_from_json
 
 # 2: the manifest carries the scene's bodies (safety.world); a runtime that reads schema 1 would run such a
 # bundle without its separation step, so it must refuse it, and this one refuses schema 1 bundles (no world)
@@ -297,8 +299,6 @@ def _check_across(m: Manifest) -> None:
     _number("onnx_parity.max_abs_diff", _get(m.onnx_parity, "max_abs_diff", "onnx_parity"), lo=0.0)
     _check_belief(m.belief)
     if m.world:
-        from coreach.world.scene_bodies import world_from_json
-
         try:
             _, _, _, links = world_from_json(m.world, "safety.world")
         except ConfigError as exc:
@@ -307,8 +307,6 @@ def _check_across(m: Manifest) -> None:
 
 def _check_belief(section: dict[str, Any]) -> None:
     """The belief model must be on the host's allow-list; it is built once so its own checks refuse bad values."""
-    from coreach.runtime.belief_manifest import BELIEF_MODELS, belief_from_manifest
-
     model = _string("belief.model", _get(section, "model", "belief"))
     if model not in BELIEF_MODELS:
         raise _bad("belief.model", f"one of {sorted(BELIEF_MODELS)}", model)

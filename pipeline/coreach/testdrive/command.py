@@ -8,7 +8,11 @@ import signal
 import threading
 
 from coreach.errors import ConfigError
+from coreach.release.bundle_store import bundle_folder
 from coreach.runtime.cautions import caution_lines, cautions
+from coreach.runtime.session import Session
+from coreach.testdrive.server import TestDriveServer
+from coreach.testdrive.sim import Drive
 
 USAGE = ("coreach test-drive BUNDLE_FOLDER|NAME@ALIAS|NAME/VERSION [--host 127.0.0.1] [--port 8765] [--rate 50] "
          "[--record-dir drives] [--position-tol 0.02] [--orientation-tol-deg 15]")
@@ -51,12 +55,6 @@ def parse(args: list[str]) -> tuple[str, dict]:
 
 
 def test_drive_command(args: list[str], as_json: bool) -> int:
-    from coreach.runtime.session import Session
-    from coreach.testdrive.server import TestDriveServer
-    from coreach.testdrive.sim import Drive
-
-    from coreach.release.bundle_store import bundle_folder
-
     ref, opts = parse(args)
     session = Session.open(bundle_folder(ref, "coreach test-drive"))  # verifies the bundle; a tampered one raises BundleError (one line, exit 2)
     drive = Drive(session, opts["--rate"], opts["--position-tol"], opts["--orientation-tol-deg"], opts["--record-dir"])

@@ -8,21 +8,22 @@ alone or merged with the demonstrations; the fine-tuned decoder is then vetted a
 """
 
 from __future__ import annotations
+from pathlib import Path
 
 import numpy as np
+import pyarrow.parquet as pq
 import torch
 
 from coreach.aggregation.visits import Visits
-from coreach.episodes import Episode, EpisodeSet, load_parquet
-from coreach.episodes.drive_files import check_drive_file
-from coreach.errors import DataError
+from coreach.episodes import Episode, EpisodeSet, load_parquet, save_parquet
+from coreach.episodes.drive_files import check_drive_file, drive_files
+from coreach.errors import ConfigError, DataError
+from coreach.host.registry import build_plugin
 from coreach.world.geometry import quat_to_matrix
 
 
 def drive_visits(paths) -> tuple[Visits, list[tuple[Episode, np.ndarray]], EpisodeSet]:
     """Visits (every recorded step, in order) of the drives in `paths`; the episodes and their rows."""
-    import pyarrow.parquet as pq
-
     parts, sets = [], None
     for path in paths:
         es = load_parquet(path)
@@ -74,13 +75,6 @@ def relabel_drives(paths, robot, labeller, id_offset: int = 9_000_000) -> Episod
 def relabel_command(cfg) -> dict:
     """`coreach relabel-drives`: recorded drives -> one Parquet file of relabelled episodes, optionally merged
     with a demonstrations file, ready for `coreach train dataset=parquet_file` (one fine-tuning round)."""
-    from pathlib import Path
-
-    from coreach.episodes import save_parquet
-    from coreach.episodes.drive_files import drive_files
-    from coreach.errors import ConfigError
-    from coreach.host.registry import build_plugin
-
     robot = build_plugin(cfg.robot, "robot")
     labeller = build_plugin(cfg.labeller, "labeller")
     paths = drive_files(cfg.drives, "drives")

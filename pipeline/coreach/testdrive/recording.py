@@ -6,14 +6,18 @@ loader ignores columns it does not know). File metadata adds the bundle's manife
 
 from __future__ import annotations
 
+import json
 import os
 import uuid
 from pathlib import Path
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
 
 from coreach.episodes import Episode, EpisodeSet, to_table
 from coreach.episodes.drive_files import META_MANIFEST, META_SESSION, META_TOLERANCES
+from coreach.world.geometry import matrix_to_quat
 
 SOURCE = "coreach test-drive"
 FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")
@@ -21,13 +25,6 @@ FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed
 
 def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> Path:
     """Write rows recorded by `Drive.tick` to `path` atomically (temp file in the same folder, os.replace)."""
-    import json
-
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    from coreach.world.geometry import matrix_to_quat
-
     m = drive.manifest
     ep = Episode(
         episode_id=episode, goal=goal, q=np.stack([r["q"] for r in rows]), qd=np.stack([r["qd"] for r in rows]),
@@ -73,8 +70,6 @@ def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> 
 
 
 def _fixed(values, width: int, kind=None):
-    import pyarrow as pa
-
     kind = kind or pa.float64()
     dtype = {pa.bool_(): bool, pa.int8(): np.int8}.get(kind, np.float64)
     flat = np.asarray(values, dtype=dtype).reshape(-1)

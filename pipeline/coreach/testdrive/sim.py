@@ -131,7 +131,7 @@ class Drive:
 
     def stop_recording(self) -> str | None:
         """End the drive being recorded and save it (None when it was too short to be an episode)."""
-        from coreach.testdrive.recording import save_drive  # pyarrow only when something is saved
+        from coreach.testdrive.recording import save_drive  # late: pyarrow only when a drive is saved
 
         with self._lock:
             rows, self._recording = self._recording, None

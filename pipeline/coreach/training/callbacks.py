@@ -7,6 +7,7 @@ import sys
 import time
 
 import lightning as L
+from lightning.pytorch.callbacks import RichProgressBar
 from mlflow.entities import Metric
 
 
@@ -41,6 +42,5 @@ def interactive() -> bool:
 def progress_callbacks() -> list[L.Callback]:
     if not interactive():
         return []
-    from lightning.pytorch.callbacks import RichProgressBar
 
     return [RichProgressBar(console_kwargs={"stderr": True})]

@@ -13,6 +13,7 @@ import torch
 from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
 from lightning.pytorch.utilities.exceptions import SIGTERMException
 from mlflow.entities import Metric
+from mlflow.exceptions import MlflowException
 from omegaconf import DictConfig, OmegaConf
 
 from coreach import tracking
@@ -106,8 +107,6 @@ def run_params(cfg: DictConfig, episodes, train_s, val_s) -> dict[str, str]:
 
 def resume_target(client, run_id: str, cfg: DictConfig) -> tuple[str, Path]:
     """The run to continue and its output folder; refuses a run that cannot be continued as configured."""
-    from mlflow.exceptions import MlflowException
-
     try:
         run = client.get_run(run_id)
     except MlflowException:

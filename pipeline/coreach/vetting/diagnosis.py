@@ -40,7 +40,7 @@ from torch import Tensor
 
 from coreach.errors import ConfigError
 from coreach.vetting.loop import JOINT_LIMIT, SEPARATION, SPEED_CAP
-from coreach.vetting.metrics import rate, visited_steps
+from coreach.vetting.rates import rate, visited_steps
 from coreach.vetting.records import RolloutRecord
 
 NEEDED = ("goal_targets", "phase1_step", "position_tol")  # the vetting loop's extras a diagnosis reads

@@ -3,16 +3,19 @@ HTML sections and terminal tables of the diagnosis."""
 
 from __future__ import annotations
 
+import html
 from collections import Counter
 from pathlib import Path
 
 import numpy as np
 import torch
 from matplotlib.figure import Figure
+from rich.table import Table
 
 from coreach.vetting.diagnosis import CAUSES
 from coreach.vetting.report import (PLANES, _save, arrow_scale, draw_stick_panel, plot_action_maps, state_from_record,
                                     tool_velocities)
+from coreach.vetting.report import _table, fmt_rate
 
 __all__ = ["diagnosis_plots", "plot_failure_paths", "plot_failure_action_maps", "plot_reach_by_goal", "failure_end_episodes"]
 
@@ -136,10 +139,6 @@ def diagnosis_plots(label: str, record, interface, robot, goal_rot, summary: dic
 
 def diagnosis_html(summaries: dict[str, dict]) -> str:
     """HTML sections: cause shares per interface, success per goal x switch cell, and what to fix."""
-    import html
-
-    from coreach.vetting.report import _table, fmt_rate
-
     diags = {k: s["diagnosis"] for k, s in summaries.items() if s.get("diagnosis")}
     if not diags:
         return ""
@@ -171,8 +170,6 @@ def cause_table(summaries: dict[str, dict]):
 
     Causes are rows named with the HTML section's words (CAUSES), not the internal keys; as rows, the
     sentences stay readable in a terminal as narrow as 80 columns."""
-    from rich.table import Table
-
     diags = {k: s["diagnosis"] for k, s in summaries.items() if s.get("diagnosis")}
     table = Table(title="why episodes failed (share of failed episodes)")
     table.add_column("cause")
@@ -186,8 +183,6 @@ def cause_table(summaries: dict[str, dict]):
 
 def goal_table(summaries: dict[str, dict]):
     """Rich table: per interface, success per final goal over all switch cells, with the goal's reach."""
-    from rich.table import Table
-
     diags = {k: s["diagnosis"] for k, s in summaries.items() if s.get("diagnosis")}
     goals = list(next(iter(diags.values()))["per_goal"]) if diags else []
     table = Table(title="success per final goal, all switch cells (reach: visited states with a stick toward it)")

@@ -15,20 +15,12 @@ import torch
 from torch import Tensor
 
 from coreach.errors import ConfigError
+from coreach.vetting.diagnosis import NEEDED, diagnose, flat_diagnosis
+from coreach.vetting.rates import rate, visited_steps
 from coreach.vetting.records import RolloutRecord
 from coreach.vetting.separation_metrics import flat_separation, separation_summary
 
 MIN_FIT_SAMPLES = 8  # transitions below which a decay-rate fit is reported as nan rather than guessed
-
-
-@dataclass(frozen=True)
-class Rate:
-    """A success proportion with its Wilson score interval."""
-
-    value: float
-    lo: float
-    hi: float
-    n: int
 
 
 @dataclass(frozen=True)
@@ -61,36 +53,6 @@ class Tolerances:
         if len(out.bins) < 2 or any(b <= a for a, b in zip(out.bins, out.bins[1:])):
             raise ConfigError("tolerances.bins", f"expected at least 2 increasing edges, got {list(out.bins)}")
         return out
-
-
-def wilson_interval(successes: int, n: int, confidence: float = 0.95) -> tuple[float, float]:
-    """Wilson (1927) score interval for a binomial proportion; (0, 1) when n = 0 (nothing observed).
-
-    Unlike the normal-approximation interval it stays inside [0, 1] and does not collapse to a point at 0 or
-    n successes, which matters for the small per-cell counts of a vetting suite.
-    """
-    successes, n = int(successes), int(n)
-    if n < 0 or not 0 <= successes <= max(n, 0):
-        raise ValueError(f"expected 0 <= successes <= n, got successes={successes}, n={n}")
-    if n == 0:
-        return 0.0, 1.0
-    z = NormalDist().inv_cdf(0.5 + confidence / 2.0)
-    p = successes / n
-    z2n = z * z / n
-    centre = (p + z2n / 2.0) / (1.0 + z2n)
-    half = z / (1.0 + z2n) * math.sqrt(p * (1.0 - p) / n + z2n / (4.0 * n))
-    # At 0 or n successes the bound is exactly 0 or 1; rounding would otherwise leave a 1e-17 there.
-    lo = 0.0 if successes == 0 else max(0.0, centre - half)
-    hi = 1.0 if successes == n else min(1.0, centre + half)
-    return lo, hi
-
-
-def rate(successes: Tensor, confidence: float = 0.95) -> Rate:
-    """Proportion of True in a bool tensor (any shape) with its Wilson interval."""
-    n = int(successes.numel())
-    k = int(successes.sum())
-    lo, hi = wilson_interval(k, n, confidence)
-    return Rate(k / n if n else float("nan"), lo, hi, n)
 
 
 # ---- the ultimate bound of the distance to the waypoint ----
@@ -164,13 +126,6 @@ def bound_by_confidence(record: RolloutRecord, bins=(0.0, 0.5, 0.8, 0.95, 1.0)) 
 
 
 # ---- the summary ----
-
-
-def visited_steps(record: RolloutRecord) -> Tensor:
-    """[E, T] bool: steps taken while the episode ran (before its success step, or all of them)."""
-    T = record.limit_scaled.shape[1]
-    end = torch.where(record.success, record.success_step.clamp(0, T), torch.full_like(record.success_step, T))
-    return torch.arange(T)[None, :] < end[:, None]
 
 
 def _quantiles(values: Tensor, qs: tuple[float, ...]) -> list[float]:
@@ -282,8 +237,6 @@ def summarise(record: RolloutRecord, tolerances=None) -> dict:
 
 def _diagnosis(record: RolloutRecord, level: float) -> dict | None:
     """Why episodes failed (coreach.vetting.diagnosis), when the record carries the loop's extras."""
-    from coreach.vetting.diagnosis import NEEDED, diagnose  # it builds on this module's rates: imported late
-
     if not isinstance(record.extras, dict) or any(k not in record.extras for k in NEEDED):
         return None
     return diagnose(record, level)
@@ -312,8 +265,6 @@ def flat_metrics(summary: dict) -> dict[str, float]:
             put(f"ultimate_bound/{row['bin']}/{k}", row[k])
     out.update(flat_separation(summary.get("separation")))
     if summary.get("diagnosis"):
-        from coreach.vetting.diagnosis import flat_diagnosis
-
         for k, v in flat_diagnosis(summary["diagnosis"]).items():
             put(k, v)
     return out

@@ -12,11 +12,12 @@ import math
 from pathlib import Path
 
 import numpy as np
+import pyarrow.parquet as pq
 
 from coreach.episodes import load_parquet
-from coreach.errors import DataError
 from coreach.episodes.drive_files import META_MANIFEST, META_TOLERANCES, check_drive_file
-from coreach.vetting.metrics import wilson_interval
+from coreach.errors import DataError
+from coreach.vetting.rates import wilson_interval
 
 NAN = float("nan")
 
@@ -42,8 +43,6 @@ def drive_summary(paths, label: str = "person (recorded drives)", confidence: fl
     Metrics a person's drive cannot give (recovery after a scripted goal switch, reachability, the
     ultimate bound) are reported as not measured.
     """
-    import pyarrow.parquet as pq
-
     paths = [Path(p) for p in paths]
     if not paths:
         raise DataError("recorded drives", "no drive files given")

@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 import torch
 from matplotlib.figure import Figure  # a bare Figure renders with Agg: no pyplot, no display, no global state
+from rich.table import Table
 from torch import Tensor
 
 from coreach.context import build_context
@@ -375,8 +376,6 @@ def separation_html(summaries: dict[str, dict]) -> str:
 def separation_tables(summaries: dict[str, dict]) -> list:
     """Rich tables of the separation figures per interface, and per interface and final goal (none when no
     summary has a scene with bodies)."""
-    from rich.table import Table
-
     if not any(s.get("separation") for s in summaries.values()):
         return []
     labels = [FIGURES[k] for k in TERMINAL_SEPARATION]
@@ -469,8 +468,6 @@ belief confidence falls in each bin; w/k is where the error settles.</p>{bounds}
 
 def terminal_table(summaries: dict[str, dict]):
     """The headline metrics, one row per interface, as a rich Table."""
-    from rich.table import Table
-
     table = Table(title="Closed-loop vetting (simulated operators; 95% Wilson intervals)")
     for col in ("interface", *(LABELS[k] for k in ("suite", "success", "worst_recovery", "time_to_success",
                                                    "stick_gain_median", "limit_share"))):

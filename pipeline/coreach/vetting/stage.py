@@ -5,25 +5,30 @@ from __future__ import annotations
 import json
 import logging
 import time
+from importlib import resources
 from pathlib import Path
 
+from mlflow.entities import Metric, Param
 from omegaconf import DictConfig, ListConfig, OmegaConf
+from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
 from coreach import tracking
-from coreach.errors import ConfigError
 from coreach.decoder import reference as decoder_reference
 from coreach.decoder.torch_interface import DecoderInterface
+from coreach.episodes.drive_files import drive_files
+from coreach.errors import ConfigError
 from coreach.host.registry import build_plugin
-from coreach.world.robot_identity import check_same_robot
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import interactive
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import flat_metrics, summarise
+from coreach.vetting.recorded_drives import drive_summary
 from coreach.vetting.report import standard_plots, write_report
 from coreach.vetting.scene_plot import scene_plots
 from coreach.vetting.suite import suite_from_config
 from coreach.vetting.trajectories import write_trajectories
+from coreach.world.robot_identity import check_same_robot
 from coreach.world.scene_arm import arm_world
 
 log = logging.getLogger("coreach.vet")
@@ -42,8 +47,6 @@ def candidate_list(value) -> list[str]:
 
 
 def _baseline_config(name: str):
-    from importlib import resources
-
     path = resources.files("coreach_conf") / BASELINES_DIR / f"{name}.yaml"
     if not path.is_file():
         return None
@@ -72,8 +75,6 @@ class _Progress:
     def __init__(self, suite_name: str):
         self.bar = None
         if interactive():
-            from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
-
             self.bar = Progress(TextColumn("{task.description}"), BarColumn(), TimeRemainingColumn(),
                                 transient=False)  # fmt: skip
             self.bar.start()
@@ -175,9 +176,6 @@ def vet(cfg: DictConfig) -> dict:
 def _drives_summary(entries, suite) -> dict | None:
     """The recorded drives' summary (None without drives); ConfigError naming the option for a missing file
     or drives recorded on other goals than the suite's."""
-    from coreach.episodes.drive_files import drive_files
-    from coreach.vetting.recorded_drives import drive_summary
-
     if not entries:
         return None
     summary = drive_summary(drive_files(entries, "drives"))
@@ -196,7 +194,6 @@ def _log_vetting(client, exp_id, label, source, suite, summary, out: Path) -> st
     rid = run.info.run_id
     metrics = flat_metrics(summary)
     now = int(time.time() * 1000)
-    from mlflow.entities import Metric, Param
 
     batch = [Metric(k, v, now, 0) for k, v in metrics.items()]
     for i in range(0, len(batch), 500):

@@ -11,14 +11,16 @@ from typing import Any
 
 import torch
 from torch import Tensor
-
 from omegaconf import DictConfig, OmegaConf
 
-from coreach.config.schemas import (DEFAULT_ORIENTATION_TOL_DEG, DEFAULT_POSITION_TOL, MIN_SEED, CaseConfig,
-                                    CaseOperatorConfig, SuiteConfig, ToleranceConfig)  # fmt: skip
-from coreach.errors import ConfigError
 from coreach.config.compose import SUITE_CONFIG, compose_here, is_file_reference, on_schema, options, read_yaml_file
 from coreach.config.option_specs import check_ranges, is_number
+from coreach.config.schemas import (DEFAULT_ORIENTATION_TOL_DEG, DEFAULT_POSITION_TOL, MIN_SEED, CaseConfig,
+                                    CaseOperatorConfig, SuiteConfig, ToleranceConfig)  # fmt: skip
+from coreach.demonstrator import rollout as scripted
+from coreach.errors import ConfigError
+from coreach.host.registry import build_plugin
+from coreach.world.geometry import angle_between
 from coreach.world.scenario import Layout, Scenario, load_scenario, scenario_from_config
 
 __all__ = ["Suite", "EpisodePlan", "load_suite", "builtin_suites", "build_suite", "suite_from_config", "suite_from_dict",
@@ -143,10 +145,6 @@ class Suite:
 
     def build_operator(self):
         """The operator plugin, checked against the Operator protocol."""
-        from omegaconf import OmegaConf
-
-        from coreach.host.registry import build_plugin
-
         try:
             return build_plugin(OmegaConf.create(self.operator), "operator")
         except ConfigError as exc:
@@ -194,9 +192,6 @@ class Suite:
     def _check_reach(self, robot, q0: Tensor, where: str) -> None:
         """Run the scripted demonstrator, noise-free, from the start pose to every used goal at its offset
         position; a goal it cannot complete within the tolerances and the horizon is out of reach."""
-        from coreach.demonstrator import rollout as scripted
-        from coreach.world.geometry import angle_between
-
         scene = self.scene
         used = self.goal_indices
         goals = [dataclasses.replace(scene.goals[i]) for i in used]

@@ -34,8 +34,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import yaml
 
 from coreach.errors import ConfigError
+from coreach.runtime.kinematics import Chain
 from coreach.world.geometry import rpy_to_matrix
 from coreach.world.urdf import document, parse_path, urdf_floats
 
@@ -105,7 +107,7 @@ def _mesh_capsules(path: Path, scale: np.ndarray, where: str) -> list[tuple[np.n
     face whose projection meets the piece. Along a triangle the distance from a line is convex, so it peaks at
     a vertex: every point of every face lies in the capsule of the piece it projects into."""
     try:
-        import trimesh
+        import trimesh  # late: trimesh (~0.8 s), only for mesh collision geometry
 
         mesh = trimesh.load(str(path), force="mesh")
         verts = np.asarray(mesh.vertices, dtype=np.float64) * scale
@@ -196,8 +198,6 @@ def _collision_capsules(link: ET.Element, urdf_dir: Path | None, where: str) -> 
 
 
 def _override(path: str | Path, known: list[str], moving: list[str]) -> dict[str, list[tuple]]:
-    import yaml
-
     where = str(path)
     p = Path(path)
     if not p.is_file():
@@ -240,8 +240,6 @@ def link_model(urdf_text: str, tool_link: str, *, urdf_dir: str | Path | None = 
                override: str | Path | None = None, home=None, clearance: float = 0.02,
                where: str = "robot.urdf") -> LinkModel:  # fmt: skip
     """The sphere model of the links on the root-to-tool path that move (module docstring)."""
-    from coreach.runtime.kinematics import Chain
-
     robot = document(urdf_text, where)
     joints = parse_path(urdf_text, tool_link, where)
     chain = Chain(joints, tool_link)

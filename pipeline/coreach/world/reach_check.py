@@ -19,11 +19,14 @@ import itertools
 import math
 from dataclasses import dataclass
 
+import numpy as np
 import torch
 from torch import Tensor
 
-from coreach.world.geometry import rotation_error, rpy_to_matrix
 from coreach.config.option_specs import integer, number
+from coreach.control.bodies import pack, point_distances
+from coreach.world.geometry import rotation_error, rpy_to_matrix
+from coreach.world.scene_arm import arm_world
 
 __all__ = ["ReachOptions", "GoalReach", "check_reach", "suggest_base_shift"]
 
@@ -123,10 +126,6 @@ def _solved(robot, scene, shift: Tensor, opt: ReachOptions, world=None):
 
 def _corridor(world, scene, opt: ReachOptions) -> list[str]:
     """Per goal, the furniture body in the approach corridor ("" when it is open)."""
-    import numpy as np
-
-    from coreach.control.bodies import pack, point_distances
-
     if world is None or not scene.obstacles:
         return [""] * len(scene.goals)
     r_tool = world.gripper_radius
@@ -144,8 +143,6 @@ def _corridor(world, scene, opt: ReachOptions) -> list[str]:
 
 def check_reach(robot, scene, opt: ReachOptions = ReachOptions()) -> list[GoalReach]:
     """One GoalReach per goal of `scene` for `robot` where it stands (the scene's frame is the robot's world)."""
-    from coreach.world.scene_arm import arm_world
-
     world = arm_world(robot, scene)
     with torch.no_grad():
         reach, err, margin, sv, pose_ok = _solved(robot, scene, torch.zeros(1, 3, dtype=torch.float64), opt, world)

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, NamedTuple
 
@@ -156,7 +156,6 @@ class Scenario:
         taken = {g.name for g in goals}
         obstacles = parse_obstacles(d.get("obstacles"), where, taken)
         person, separation = parse_person(d.get("person"), where, taken)
-        from dataclasses import replace
 
         separation = replace(separation, clearance=clearance)
         points = [p for g in goals for p in (g.position, [a + b for a, b in zip(g.position, g.fine_motion)])]

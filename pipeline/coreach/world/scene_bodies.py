@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -152,8 +153,6 @@ def world_json(obstacles: list[Primitive], person: list[Primitive], settings: Se
 def world_from_json(section: dict, where: str) -> tuple[list[Primitive], list[Primitive], SeparationSettings, dict]:
     """(obstacles, person, settings, link model dict) of a manifest's `world` section; ConfigError naming the
     field for anything malformed (the same checks as a scene file)."""
-    from dataclasses import replace
-
     extra = sorted(set(section) - {"clearance", "obstacles", "person", "links"})
     if extra:
         raise ConfigError(f"{where}.{extra[0]}", "unknown field; expected clearance, obstacles, person, links")

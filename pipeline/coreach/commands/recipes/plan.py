@@ -3,11 +3,14 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from importlib import resources
 from pathlib import Path
 
 from omegaconf import DictConfig, ListConfig
 
 from coreach.errors import ConfigError
+from coreach.vetting.stage import BASELINES_DIR
+from coreach.vetting.suite import MIN_SEED
 
 RECIPE_COMMANDS = ("train", "aggregate")  # stages that end in one trained decoder with an MLflow run id
 RECIPE_KEYS = ("command", "overrides")
@@ -64,8 +67,6 @@ def _recipe(label: str, node) -> Recipe:
 
 
 def _seeds(value) -> tuple[int, ...]:
-    from coreach.vetting.suite import MIN_SEED
-
     if not isinstance(value, (list, tuple, ListConfig)) or len(value) == 0:
         raise ConfigError("option seeds", "expected a non-empty list of training seeds")
     seeds = []
@@ -113,9 +114,5 @@ def plan_from(cfg: DictConfig) -> Plan:
 
 
 def _shipped_baselines() -> list[str]:
-    from importlib import resources
-
-    from coreach.vetting.stage import BASELINES_DIR
-
     folder = resources.files("coreach_conf") / BASELINES_DIR
     return sorted(p.name[:-5] for p in folder.iterdir() if p.name.endswith(".yaml") and p.name != "decoder.yaml")

@@ -7,6 +7,9 @@ import io
 import json
 from pathlib import Path
 
+from rich.markup import escape
+from rich.table import Table
+
 from coreach.commands.compare import _atomic_write
 from coreach.commands.recipes.stats import _finite, rate_at
 
@@ -141,9 +144,6 @@ def write_results(result: dict, out: Path) -> dict[str, str]:
 
 
 def terminal_table(result: dict):
-    from rich.markup import escape
-    from rich.table import Table
-
     table = Table(title="Recipes across training seeds (simulated operators; 95% Wilson intervals; "
                         "spread: min / median / max, worst lower bound)")  # fmt: skip
     table.add_column("recipe")
@@ -154,3 +154,15 @@ def terminal_table(result: dict):
         style = "bold" if ends else ("dim" if seed == "baseline" else None)
         table.add_row(*(escape(x) for x in (recipe, seed, *cells)), style=style, end_section=ends)
     return table
+
+
+def show_recipes(console, summaries: list[dict], name: str) -> None:
+    """The terminal summary of `coreach recipes` (the command table's `show`): the table, where its files
+    went, and the MLflow run that holds them. It lives here, not in coreach.commands.summaries, so the other
+    commands' summaries do not import the recipes package (training and vetting)."""
+    for s in summaries:
+        console.print(terminal_table(s))
+        # paths and overrides are full of [brackets], which rich would read as markup
+        console.print(f"written: {', '.join(s['files'].values())}", markup=False)
+        console.print(f"recipes run in MLflow: {s['parent_run']} ({s['tracking']})", markup=False)
+        console.print(f"reproduce with: {s['command']}", markup=False, soft_wrap=True)

@@ -7,7 +7,9 @@ import logging
 import shlex
 import time
 
+from mlflow.entities import Param
 from omegaconf import DictConfig
+from rich.console import Console
 
 from coreach import tracking
 from coreach.commands import table
@@ -16,7 +18,13 @@ from coreach.commands.recipes.render import write_results
 from coreach.commands.recipes.stats import assemble
 from coreach.commands.table import load_target
 from coreach.config.command_line import override_key, user_overrides
+from coreach.config.compose import compose_here, suite_overrides
+from coreach.config.plugin_options import check_groups, check_plugins
 from coreach.errors import ConfigError, CoreachError
+from coreach.host.registry import build_plugin
+from coreach.training.callbacks import interactive
+from coreach.vetting.stage import vet
+from coreach.vetting.suite import suite_from_config
 
 log = logging.getLogger("coreach.recipes")
 PROGRAM = ".venv/bin/coreach recipes"
@@ -32,9 +40,6 @@ def stage_command(command: str, where: str):
 
 def compose_stage(config_name: str, overrides: list[str], where: str) -> DictConfig:
     """Compose a sub-stage's config inside the running Hydra app; failures name the recipe or option."""
-    from coreach.config.compose import compose_here
-    from coreach.config.plugin_options import check_groups, check_plugins
-
     cfg = compose_here(config_name, overrides, where)
     try:
         check_plugins(cfg)
@@ -54,11 +59,7 @@ def _tracking_overrides(overrides: list[str]) -> list[str]:
 
 
 def _say(message: str) -> None:
-    from coreach.training.callbacks import interactive
-
     if interactive():
-        from rich.console import Console
-
         Console(stderr=True).rule(message)
     else:
         log.info(message)
@@ -67,10 +68,6 @@ def _say(message: str) -> None:
 def recipes(cfg: DictConfig) -> dict:
     """Train every selected recipe once per seed, vet all decoders and the baselines on each suite, and write
     results.md, results.csv and results.json into `out` (also logged on one MLflow run)."""
-    from coreach.host.registry import build_plugin
-    from coreach.config.compose import suite_overrides
-    from coreach.vetting.suite import suite_from_config
-
     t0 = time.perf_counter()
     plan = plan_from(cfg)
     given = user_overrides()
@@ -113,7 +110,6 @@ def recipes(cfg: DictConfig) -> dict:
                             "seconds": summary.get("seconds")})  # fmt: skip
             _adopt(client, summary["run_id"], parent, r.label, seed)
             log.info("%s seed %d: run %s", r.label, seed, summary["run_id"])
-        from coreach.vetting.stage import vet
 
         candidates = [t["run_id"] for t in trained] + list(plan.baselines)
         vetted = {}
@@ -141,7 +137,6 @@ def _start_parent(client, exp_id, plan: Plan, cmd: str, commit: str | None) -> s
     if commit:
         tags["mlflow.source.git.commit"] = commit
     run = client.create_run(exp_id, run_name="recipes " + ", ".join(r.label for r in plan.recipes), tags=tags)
-    from mlflow.entities import Param
 
     params = {"recipes": json.dumps({r.label: {"command": r.command, "overrides": list(r.overrides)}
                                      for r in plan.recipes}),
