@@ -184,3 +184,15 @@ def test_analyze_command_end_to_end_names_bad_rows_and_writes_owner_only(tmp_pat
     assert cli.main(["study", "analyze", "bedside_shelf", "--trials", str(data / "trials.csv")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len([line for line in err if "error" in line]) == 1 and "outside 0-100" in err[-1]
+
+
+def test_the_aggregates_for_tracking_hold_no_participant():
+    """What upload_to_tracking logs: per-condition and test figures only (the MLflow call itself was checked
+    by hand against a sqlite store; importing MLflow here would double this file's time)."""
+    from coreach.study.analysis import aggregates, analyse
+
+    frame = _study_frame(seed=4, people=6, trials=2)
+    plan = {"conditions": [{"name": c} for c in ("decoder", "direct", "blend")], "config": {"seed": 1}}
+    metrics = aggregates(analyse(frame, plan, resamples=50))
+    assert metrics and not any(code in key for key in metrics for code in set(frame["participant"]))
+    assert "decoder/success_rate" in metrics and "time_model/decoder/effect" in metrics

@@ -279,7 +279,7 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
         study=True, prints_cautions=True,
         about="paired statistics of a study's trials: Friedman, Wilcoxon with Holm, mixed model, GEE; HTML report",
         usage="coreach [--json] study analyze NAME [--trials PATH ...] [--version N] [--root DIR] [--out DIR] "
-              "[--reference CONDITION] [--bootstrap N]",
+              "[--reference CONDITION] [--bootstrap N] [--uri URI]",
         help="Reads the study's long-format trial table (columns participant, condition, task, trial, success, "
              "time_s; optional tlx_mental, tlx_physical, tlx_temporal, tlx_performance, tlx_effort, "
              "tlx_frustration on a 0-100 scale and preference, a rank with 1 the most preferred) and writes "
@@ -291,7 +291,9 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
              "sessions/*/trials.csv of the study), --version N (default the latest), --root DIR (default "
              ".coreach/studies), --out DIR (default the version's analysis/), --reference CONDITION (the "
              "models' baseline; default direct), --bootstrap N (resamples for the rank-biserial interval, "
-             "2000). With upload_to_tracking: true in the plan, aggregates (never participant rows) go to MLflow.",
+             "2000), --uri URI (the tracking store; default COREACH_TRACKING_URI, else MLFLOW_TRACKING_URI, else "
+             "./mlflow.db). Only with upload_to_tracking: true in the plan, aggregates (never participant rows) "
+             "are logged to MLflow. Example: coreach study analyze bedside_shelf --trials trials/.",
     ),
     Command(
         "bench train", "coreach.bench.train_bench:run", config="bench_train", show="coreach.commands.summaries:show_bench",
