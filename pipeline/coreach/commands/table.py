@@ -28,6 +28,7 @@ class Command:
     toward_person: bool = False  # leads toward a person or a robot: help, output and --json carry the cautions
     records_person: bool = False  # a person's drives are recorded or used: the cautions add ethics and consent
     prints_cautions: bool = False  # its own output places the cautions (after what it published, at start, ...)
+    study: bool = False  # plans or analyses a user study: the cautions add ethics approval and consent for it
 
     @property
     def hydra(self) -> bool:
@@ -35,9 +36,9 @@ class Command:
 
     def cautions(self) -> list[str]:
         """What its help, terminal output and --json end with ([] when it leads toward no person)."""
-        if not (self.toward_person or self.records_person):
+        if not (self.toward_person or self.records_person or self.study):
             return []
-        return cautions(recording=self.records_person)
+        return cautions(recording=self.records_person, study=self.study)
 
     def help_text(self) -> str:
         """`coreach NAME --help`."""
@@ -48,7 +49,7 @@ class Command:
                 "composed config, `--hydra-help` Hydra's own help. --json prints only the summary on stdout.",
                 HELP_WIDTH, break_on_hyphens=False))  # fmt: skip
         if self.cautions():
-            parts.append(caution_text(recording=self.records_person, width=HELP_WIDTH))
+            parts.append(caution_text(recording=self.records_person, width=HELP_WIDTH, study=self.study))
         return "\n\n".join(parts) + "\n"
 
 
@@ -271,6 +272,44 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
              "(8765; 0 for any free port), --rate HZ (control rate, 50), --record-dir DIR (drives), "
              "--position-tol M (arrival position tolerance, 0.02) and --orientation-tol-deg DEG (15). Ctrl-C "
              "stops it.",
+    ),
+    Command(
+        "study plan", "coreach.study.commands:plan_command", toward_person=True, records_person=True, study=True,
+        prints_cautions=True,
+        about="plan a within-subject user study: Williams-balanced order, pseudonymous codes, a frozen schedule",
+        usage="coreach [--json] study plan NAME [--new-version] [--root DIR] [study.KEY=VALUE ...]",
+        help="Composes the study NAME (conf/coreach_conf/study/NAME.yaml: conditions, tasks, trials, "
+             "practice_trials, participants, codes, seed, pilot, upload_to_tracking; study.KEY=VALUE overrides "
+             "it) and writes its frozen schedule, plan.json (owner-only), to ROOT/NAME/v<N>/: the condition "
+             "order of each participant from a Williams design, the task order of each block shuffled with the "
+             "seed, pseudonymous participant codes and the letters A, B, C... participants see in place of the "
+             "conditions (the key is in the plan, for the experimenter). The same config again changes nothing; "
+             "a changed config replaces the latest version while it has no sessions (ROOT/NAME/v<N>/sessions/"
+             "<code>/), and once it has, is refused unless --new-version writes v<N+1>. Options: --new-version, "
+             "--root DIR (default .coreach/studies). Bundle folders must exist; NAME@ALIAS and NAME/VERSION "
+             "references are checked for their form only. Example: coreach study plan bedside_shelf "
+             "study.participants=18.",
+    ),
+    Command(
+        "study analyze", "coreach.study.commands:analyze_command", toward_person=True, records_person=True,
+        study=True, prints_cautions=True,
+        about="paired statistics of a study's trials: Friedman, Wilcoxon with Holm, mixed model, GEE; HTML report",
+        usage="coreach [--json] study analyze NAME [--trials PATH ...] [--version N] [--root DIR] [--out DIR] "
+              "[--reference CONDITION] [--bootstrap N] [--uri URI]",
+        help="Reads the study's long-format trial table (columns participant, condition, task, trial, success, "
+             "time_s; optional tlx_mental, tlx_physical, tlx_temporal, tlx_performance, tlx_effort, "
+             "tlx_frustration on a 0-100 scale and preference, a rank with 1 the most preferred) and writes "
+             "per-condition and per-task summaries, the Friedman test with pairwise Wilcoxon signed-rank tests "
+             "(Holm-corrected) and paired effect sizes with 95% intervals, a mixed model of completion time "
+             "(random intercept per participant) and a GEE of success (binomial, exchangeable), as CSV tables "
+             "and a self-contained report.html. A row or file that cannot be read is named in a warning and "
+             "left out. Options: --trials PATH (a CSV file or a folder of them, repeatable; default every "
+             "sessions/*/trials.csv of the study), --version N (default the latest), --root DIR (default "
+             ".coreach/studies), --out DIR (default the version's analysis/), --reference CONDITION (the "
+             "models' baseline; default direct), --bootstrap N (resamples for the rank-biserial interval, "
+             "2000), --uri URI (the tracking store; default COREACH_TRACKING_URI, else MLFLOW_TRACKING_URI, else "
+             "./mlflow.db). Only with upload_to_tracking: true in the plan, aggregates (never participant rows) "
+             "are logged to MLflow. Example: coreach study analyze bedside_shelf --trials trials/.",
     ),
     Command(
         "bench train", "coreach.bench.train_bench:run", config="bench_train", show="coreach.commands.summaries:show_bench",

@@ -20,8 +20,9 @@ from coreach.config.option_specs import choice, integer, number, vector
 
 _SEPARATION = SeparationSettings()  # the person's terms and the clearance default to the filter's own
 
-__all__ = ["SuiteConfig", "CaseConfig", "CaseOperatorConfig", "FalsifySpaceConfig", "ToleranceConfig", "ScenarioConfig", "GoalConfig", "BodyConfig", "PersonConfig",
-           "register", "MIN_SEED", "DEFAULT_POSITION_TOL", "DEFAULT_ORIENTATION_TOL_DEG"]  # fmt: skip
+__all__ = ["SuiteConfig", "CaseConfig", "CaseOperatorConfig", "FalsifySpaceConfig", "ToleranceConfig",
+           "ScenarioConfig", "GoalConfig", "BodyConfig", "PersonConfig", "StudyConfig", "StudyConditionConfig",
+           "StudyTaskConfig", "register", "MIN_SEED", "DEFAULT_POSITION_TOL", "DEFAULT_ORIENTATION_TOL_DEG"]  # fmt: skip
 
 # Training (demonstration and trainer seeds) uses small integers from 0; vetting draws from 10_000 up so no
 # vetting episode can coincide with a training one.
@@ -144,8 +145,48 @@ class FalsifySpaceConfig:
     bounds: Dict[str, Any] = field(default_factory=dict)  # parameter -> [low, high] (checked by coreach.falsify.space)
 
 
+
+@dataclass
+class StudyConditionConfig:
+    """One interface a participant drives: a released bundle (`ref`: a bundle folder, NAME@ALIAS or
+    NAME/VERSION) or a baseline (`direct`, `blend`; no ref). `name` labels it in the analysis."""
+
+    kind: str = "???"  # bundle, direct, blend (checked by coreach.study.plan, which names the condition)
+    ref: Optional[str] = None
+    name: Optional[str] = None  # null: the ref for a bundle, the kind for a baseline
+
+
+@dataclass
+class StudyTaskConfig:
+    """One task: reach `goal` (a goal of the study's scene); optionally the goal changes to `switch_to`
+    `switch_at_s` seconds into the trial."""
+
+    name: str = "???"
+    goal: str = "???"
+    switch_to: Optional[str] = None
+    switch_at_s: Optional[float] = number(None, 0.0, 1e4, "s", optional=True)
+
+
+@dataclass
+class StudyConfig:
+    """A within-subject user study (coreach study plan): who drives what, in which order, how often."""
+
+    name: str = "???"
+    scenario: str = "bedside_shelf"  # the scene whose goals the tasks name
+    conditions: List[StudyConditionConfig] = field(default_factory=list)
+    tasks: List[StudyTaskConfig] = field(default_factory=list)
+    trials: int = integer(3, 1, " (measured trials per condition and task)")
+    practice_trials: int = integer(2, 0, " (practice trials per condition, before its measured trials)")
+    participants: int = integer(12, 1, " (participants)")
+    codes: Optional[List[str]] = None  # null: generated pseudonymous codes; else the lab's own, one each
+    seed: int = integer(0, 0, " (the schedule's seed)")
+    pilot: bool = False
+    upload_to_tracking: bool = False  # log aggregates (never participant rows) of the analysis to MLflow
+
+
+
 SCHEMAS = {"suite": ("base_suite", SuiteConfig), "scenario": ("base_scenario", ScenarioConfig),
-           "falsify": ("base_falsify", FalsifySpaceConfig)}  # fmt: skip
+           "falsify": ("base_falsify", FalsifySpaceConfig), "study": ("base_study", StudyConfig)}  # fmt: skip
 
 
 def register() -> None:

@@ -28,15 +28,25 @@ RECORDING_CAUTION = (
 )
 
 
-def cautions(recording: bool = False) -> list[str]:
-    """The cautions as a list (the `cautions` field of a command's JSON); `recording` adds the consent line."""
-    return [*CAUTIONS, *([RECORDING_CAUTION] if recording else [])]
+# Where a study with people is planned or analysed (coreach study): the study is the lab's, under its review.
+STUDY_CAUTION = (
+    "A user study is research with people: it needs an approved ethics review and each participant's informed "
+    "consent before the first session. coreach supports that process (schedules, pseudonymous codes, "
+    "statistics) and does not replace it; follow your local regulations and the judgement of qualified "
+    "professionals on who may take part, how sessions are supervised and how data are kept."
+)
 
 
-def caution_lines(recording: bool = False, width: int | None = None) -> list[str]:
+def cautions(recording: bool = False, study: bool = False) -> list[str]:
+    """The cautions as a list (the `cautions` field of a command's JSON); `recording` adds the consent line,
+    `study` the line on ethics approval and consent for a user study."""
+    return [*CAUTIONS, *([RECORDING_CAUTION] if recording else []), *([STUDY_CAUTION] if study else [])]
+
+
+def caution_lines(recording: bool = False, width: int | None = None, study: bool = False) -> list[str]:
     """A "Cautions" heading and one bullet per caution, wrapped to `width` columns when given (help texts)."""
     out = ["Cautions"]
-    for text in cautions(recording):
+    for text in cautions(recording, study):
         if width is None:
             out.append(f"  - {text}")
         else:
@@ -45,6 +55,6 @@ def caution_lines(recording: bool = False, width: int | None = None) -> list[str
     return out
 
 
-def caution_text(recording: bool = False, width: int = 100) -> str:
+def caution_text(recording: bool = False, width: int = 100, study: bool = False) -> str:
     """The cautions as the closing block of a `--help` text."""
-    return "\n".join(caution_lines(recording, width))
+    return "\n".join(caution_lines(recording, width, study))

@@ -1,0 +1,1 @@
+"""User studies: plan a within-subject study (schedule, codes) and analyse its trials with paired statistics."""
