@@ -11,6 +11,7 @@ from coreach.study.files import private_folder, write_private
 from coreach.study.plan import PLAN_FILE, SESSIONS, latest_folder, read_plan
 from coreach.study.report import render
 from coreach.study.trials import read_trials
+from coreach.study.upload import log_aggregates
 
 
 def _nan_free(value):
@@ -50,8 +51,6 @@ def run_analysis(root: Path, name: str, version: int | None = None, trials: list
         "report": str(report), "tables": [str(out / f) for f in tables],
     }
     if plan["config"].get("upload_to_tracking"):
-        from coreach.study.upload import log_aggregates
-
         summary["mlflow_run"] = log_aggregates(aggregates(result), plan, number, digest, uri)
     write_private(out / "summary.json", json.dumps(summary, indent=2, default=str) + "\n")
     return summary

@@ -9,6 +9,8 @@ from pathlib import Path
 
 from coreach.errors import ConfigError
 from coreach.runtime.cautions import cautions
+from coreach.study.analyze import run_analysis
+from coreach.study.plan import DEFAULT_ROOT, build_plan, compose_study, freeze
 
 PLAN_USAGE = "coreach [--json] study plan NAME [--new-version] [--root DIR] [study.KEY=VALUE ...]"
 ANALYZE_USAGE = ("coreach [--json] study analyze NAME [--trials PATH ...] [--version N] [--root DIR] [--out DIR] "
@@ -27,8 +29,6 @@ def _print_cautions() -> None:
 
 
 def plan_command(args: list[str], as_json: bool) -> int:
-    from coreach.study.plan import DEFAULT_ROOT, build_plan, compose_study, freeze
-
     p = _Parser(prog="coreach study plan", usage=PLAN_USAGE, add_help=False)
     p.add_argument("name")
     p.add_argument("--new-version", action="store_true")
@@ -64,9 +64,6 @@ def plan_command(args: list[str], as_json: bool) -> int:
 
 
 def analyze_command(args: list[str], as_json: bool) -> int:
-    from coreach.study.analyze import run_analysis
-    from coreach.study.plan import DEFAULT_ROOT
-
     p = _Parser(prog="coreach study analyze", usage=ANALYZE_USAGE, add_help=False)
     p.add_argument("name")
     p.add_argument("--trials", type=Path, action="append", default=None)

@@ -7,6 +7,8 @@ import warnings
 
 import numpy as np
 import pandas as pd
+import statsmodels.api as sm
+import statsmodels.formula.api as smf
 
 
 def _design(frame: pd.DataFrame, conditions: list[str], reference: str) -> pd.DataFrame:
@@ -44,8 +46,6 @@ def time_model(frame: pd.DataFrame, conditions: list[str], reference: str, outco
     """Linear mixed model `outcome ~ condition + task` with a random intercept per participant (REML), fitted
     on successful trials (a failed trial has no completion time); condition effects in the outcome's units
     against `reference` with 95% Wald intervals."""
-    import statsmodels.formula.api as smf
-
     data = _design(frame[frame["success"] == 1].dropna(subset=[outcome]), conditions, reference)
     if data["participant"].nunique() < 2 or data["condition"].nunique() < 2:
         return {"fitted": False, "note": "needs >= 2 participants and >= 2 conditions with successful trials",
@@ -64,9 +64,6 @@ def success_model(frame: pd.DataFrame, conditions: list[str], reference: str) ->
     """GEE of success (binomial family, logit link, exchangeable working correlation within a participant,
     robust standard errors); condition effects in log-odds against `reference` and as odds ratios, 95%
     intervals."""
-    import statsmodels.api as sm
-    import statsmodels.formula.api as smf
-
     data = _design(frame, conditions, reference)
     data["success"] = data["success"].astype(float)
     rates = data.groupby("condition", observed=True)["success"].mean()

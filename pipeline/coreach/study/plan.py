@@ -10,7 +10,11 @@ import time
 from pathlib import Path
 
 import numpy as np
+from omegaconf import OmegaConf
 
+from coreach.config.compose import SUITE_CONFIG, compose_here
+from coreach.config.option_specs import check_ranges
+from coreach.config.schemas import StudyConfig, StudyTaskConfig
 from coreach.errors import ConfigError
 from coreach.runtime.cautions import cautions
 from coreach.study.codes import check_codes, generate_codes
@@ -28,12 +32,6 @@ _VERSION = re.compile(r"^v([0-9]+)$")
 def compose_study(name: str, overrides: list[str]) -> dict:
     """The study config NAME (conf/coreach_conf/study/NAME.yaml) with `study.KEY=VALUE` overrides, checked
     against its schema and ranges, as plain data."""
-    from omegaconf import OmegaConf
-
-    from coreach.config.compose import compose_here
-    from coreach.config.option_specs import check_ranges
-    from coreach.config.schemas import StudyConfig, StudyTaskConfig
-
     for o in overrides:
         if not o.startswith("study.") or "=" not in o:
             raise ConfigError(f"override {o!r}", "expected study.KEY=VALUE (e.g. study.participants=18)")
@@ -46,8 +44,6 @@ def compose_study(name: str, overrides: list[str]) -> dict:
 
 def scenario_goals(scenario: str) -> list[str]:
     """The goal names of a shipped scene (composed through Hydra, without building the scene's bodies)."""
-    from coreach.config.compose import SUITE_CONFIG, compose_here
-
     cfg = compose_here(SUITE_CONFIG, [f"scenario={scenario}"], f"study.scenario {scenario!r}")
     return [str(g.name) for g in cfg.scenario.goals]
 

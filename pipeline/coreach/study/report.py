@@ -7,6 +7,9 @@ import html
 import io
 import math
 
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
 import pandas as pd
 
 from coreach.runtime.cautions import cautions
@@ -21,13 +24,8 @@ def _png(fig) -> str:
 def paired_plot(wide: pd.DataFrame, title: str) -> str:
     """One line per participant across the conditions, over a box per condition with its points: the
     within-subject differences the paired tests judge are the slopes of the lines."""
-    import matplotlib
-
-    matplotlib.use("Agg")  # no display on a lab server; never opens a window
-    import matplotlib.pyplot as plt
-    import numpy as np
-
-    fig, (left, right) = plt.subplots(1, 2, figsize=(9, 3.4))
+    fig = Figure(figsize=(9, 3.4))  # a bare Figure renders with Agg: no pyplot, no display, no global state
+    left, right = fig.subplots(1, 2)
     xs = np.arange(wide.shape[1])
     for _, row in wide.iterrows():
         left.plot(xs, row.to_numpy(float), color="0.55", lw=0.9, marker="o", ms=3)
@@ -42,9 +40,7 @@ def paired_plot(wide: pd.DataFrame, title: str) -> str:
     right.set_xticks(xs, [str(c) for c in wide.columns])
     right.set_title("box and strip per condition", fontsize=9)
     fig.suptitle(title, fontsize=10)
-    out = _png(fig)
-    plt.close(fig)
-    return out
+    return _png(fig)
 
 
 def _table(frame: pd.DataFrame) -> str:

@@ -4,15 +4,15 @@ from __future__ import annotations
 
 import time
 
+from mlflow.entities import Metric, RunTag
+from omegaconf import OmegaConf
+
+from coreach import tracking
+
 
 def log_aggregates(metrics: dict[str, float], plan: dict, version: int, digest: str, uri: str | None) -> str:
     """One MLflow run in the experiment coreach-study holding `metrics` (coreach.study.analysis.aggregates) and
     tags naming the study, its plan version and hash; returns the run id."""
-    from mlflow.entities import Metric, RunTag
-    from omegaconf import OmegaConf
-
-    from coreach import tracking
-
     c, experiment = tracking.client(OmegaConf.create({"uri": uri, "experiment": "coreach-study"}))
     run = c.create_run(experiment, run_name=f"{plan['name']}-v{version}-analysis",
                        tags={"coreach.study": plan["name"], "coreach.study.version": str(version),
