@@ -23,6 +23,8 @@ class DecoderSystem(L.LightningModule):
         self.limits = limits
         self.dt = dt
         self.lr = lr
+        # per stage: term name -> (batch-size weighted sum, samples) over the epoch so far
+        self._sums: dict[str, dict[str, list]] = {}
 
     def term_batch(self, batch: dict) -> TermBatch:
         policy = self.policy
@@ -57,12 +59,36 @@ class DecoderSystem(L.LightningModule):
         tb = self.term_batch(batch)
         n = batch["action"].shape[0]
         total = torch.zeros((), dtype=tb.action.dtype)
+        sums = self._sums.setdefault(stage, {})
         for term in self.terms:
             value = term(tb)
-            self.log(f"{stage}/{term.name}", value, on_step=False, on_epoch=True, batch_size=n)
+            _add(sums, term.name, value, n)
             total = total + term.weight * value
-        self.log(f"{stage}/loss", total, on_step=False, on_epoch=True, batch_size=n, prog_bar=stage == "val")
+        _add(sums, "loss", total, n)
         return total
+
+    # The epoch means are summed here and logged once per epoch: `self.log` on every step cost about a third
+    # of a Lightning step at the default batch size (its result collection is moved and updated per call;
+    # cProfile of `coreach bench train`: 1.4 s of 4.4 s), for the same batch-size weighted epoch means.
+    def _log_epoch(self, stage: str) -> None:
+        for name, (total, n) in self._sums.pop(stage, {}).items():
+            self.log(f"{stage}/{name}", total / n, on_step=False, on_epoch=True, batch_size=n,
+                     prog_bar=stage == "val" and name == "loss")  # fmt: skip
+
+    def on_train_epoch_start(self) -> None:
+        self._sums.pop("train", None)
+
+    def on_train_batch_end(self, outputs, batch, batch_idx: int) -> None:
+        # after the epoch's last batch, before validation and before any callback's on_train_epoch_end reads
+        # the epoch's metrics (coreach.training.callbacks)
+        if batch_idx + 1 >= self.trainer.num_training_batches:
+            self._log_epoch("train")
+
+    def on_validation_epoch_start(self) -> None:
+        self._sums.pop("val", None)
+
+    def on_validation_epoch_end(self) -> None:
+        self._log_epoch("val")
 
     def training_step(self, batch: dict, batch_idx: int) -> torch.Tensor:
         return self._step(batch, "train")
@@ -72,3 +98,11 @@ class DecoderSystem(L.LightningModule):
 
     def configure_optimizers(self):
         return torch.optim.Adam(self.policy.parameters(), lr=self.lr)
+
+
+def _add(sums: dict, name: str, value: torch.Tensor, n: int) -> None:
+    """Add a batch's mean `value` over `n` samples to the epoch's running (sum, count); detached, so the sum
+    holds no graph."""
+    entry = sums.setdefault(name, [torch.zeros((), dtype=torch.float64), 0])
+    entry[0] = entry[0] + value.detach().to(torch.float64) * n
+    entry[1] += n
