@@ -46,9 +46,14 @@ def show_train(console, summaries: list[dict], name: str) -> None:
         console.print(f"MLflow: {mlflow_hint()}")
 
 
-def show_vet(console, summaries: list[dict], name: str) -> None:
-    for s in summaries:
-        print_vetting(console, s)
+def each(printer):
+    """A formatter that prints every summary of a command with `printer(console, summary)`."""
+
+    def show(console, summaries: list[dict], name: str) -> None:
+        for s in summaries:
+            printer(console, s)
+
+    return show
 
 
 def show_falsify(console, summaries: list[dict], name: str) -> None:
@@ -63,31 +68,6 @@ def show_falsify(console, summaries: list[dict], name: str) -> None:
         if s.get("stored_for_model"):
             console.print(f"  kept for the model: {s['stored_for_model']}")
         console.print(f"  report: {s['report']}")
-
-
-def show_release(console, summaries: list[dict], name: str) -> None:
-    for s in summaries:
-        print_release(console, s)
-
-
-def show_replay(console, summaries: list[dict], name: str) -> None:
-    for s in summaries:
-        print_replay(console, s)
-
-
-def show_aggregate(console, summaries: list[dict], name: str) -> None:
-    for s in summaries:
-        print_aggregate(console, s)
-
-
-def show_reach(console, summaries: list[dict], name: str) -> None:
-    for s in summaries:
-        print_reach(console, s)
-
-
-def show_import(console, summaries: list[dict], name: str) -> None:
-    for s in summaries:
-        print_import(console, s)
 
 
 def show_relabel(console, summaries: list[dict], name: str) -> None:
@@ -302,3 +282,8 @@ def print_reach(console, s: dict) -> None:
         console.print(f"suggested placement: move the base by [{dx}, {dy}, {dz}] m in the scene's frame (add it to "
                       f"robot.base_xyz); every goal is then reachable, joint-limit margin {sug['limit_margin_rad']:.2f} rad",
                       markup=False)  # fmt: skip
+
+
+# the commands whose summaries print one by one (after the printers they name are defined)
+show_vet, show_release, show_replay = each(print_vetting), each(print_release), each(print_replay)
+show_aggregate, show_reach, show_import = each(print_aggregate), each(print_reach), each(print_import)
