@@ -33,6 +33,7 @@ from coreach.vetting.suite import Suite, load_suite
 from coreach.world.scene_arm import arm_world
 
 log = logging.getLogger("coreach.falsify")
+RANDOM_SEED_OFFSET = 1_000  # the baseline's seed is the search's plus this
 PATH_EVERY = 5  # keep every 5th tool position of a failure's path for the plots (0.5 s at dt 0.1 s)
 
 __all__ = ["falsify", "Evaluator", "gate_search", "counterexample_suites"]
@@ -149,7 +150,10 @@ def falsify(cfg: DictConfig) -> dict:
         if bar is None:
             log.info("falsify %s with %s: %d scenarios in batches of %d", interface.name, name, budget, batch)
         try:
-            results.append(search(space, evaluate, budget, batch, seed, name, robot.dof, tick))
+            # random search draws from its own seed: with TPE's, its first batch would be TPE's random start
+            # point for point, and the two could not differ before TPE's model takes over
+            own = seed if name == samplers[0] else seed + RANDOM_SEED_OFFSET
+            results.append(search(space, evaluate, budget, batch, own, name, robot.dof, tick))
         finally:
             if bar is not None:
                 bar.stop()
@@ -195,7 +199,7 @@ def falsify(cfg: DictConfig) -> dict:
     summary = {
         "decoder": ref, "label": interface.name, "source": source, "space": space.to_dict(), "budget": budget,
         "batch": batch, "seed": seed, "optimizer": samplers[0],
-        "searches": {r.sampler: {"failures": len(r.failures), "first_failure": r.first_failure,
+        "searches": {r.sampler: {"seed": r.seed, "failures": len(r.failures), "first_failure": r.first_failure,
                                  "lowest_robustness": r.worst.score, "worst_case": r.worst.case,
                                  "worst_cause": r.worst.info.get("cause", "")} for r in results},
         "worst": {"robustness": worst.score, "case": worst.case, "cause": worst.info.get("cause", "")},
