@@ -44,10 +44,11 @@ def overview() -> str:
 
 
 def group_help(group: str) -> str:
-    """`coreach GROUP --help` (bench): the commands of the group."""
+    """`coreach GROUP --help` (bench, study): the commands of the group."""
     members = table.groups()[group]
     width = max(len(c.name) for c in members) - len(group) + 1
-    lines = [f"usage: coreach {group} WHAT [-m] [key=value ...]", "", f"{group} commands:"]
+    takes = "[-m] [key=value ...]" if any(c.hydra for c in members) else "[options]"
+    lines = [f"usage: coreach {group} WHAT {takes}", "", f"{group} commands:"]
     lines += [_entry(c.name[len(group) + 1:], c.about, width) for c in members]
     lines += ["", f"`coreach {group} WHAT --help` for the options of one."]
     return "\n".join(lines) + "\n"
