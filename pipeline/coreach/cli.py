@@ -96,6 +96,14 @@ def _unreachable_store(exc: Exception) -> str | None:
 
 
 def main(argv: list[str] | None = None) -> int:
+    try:
+        return _main(argv)
+    except BrokenPipeError:  # `coreach ... | head`: the reader left; stop quietly, as other command-line tools do
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())  # Python's own advice for SIGPIPE
+        return 1
+
+
+def _main(argv: list[str] | None = None) -> int:
     _quiet_library_warnings()
     args = list(sys.argv[1:] if argv is None else argv)
     as_json = "--json" in args
