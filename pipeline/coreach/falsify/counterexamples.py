@@ -12,7 +12,7 @@ import yaml
 
 from coreach.vetting.suite import Suite
 
-__all__ = ["suite_data", "write_suite", "store_for_model", "model_name", "COUNTEREXAMPLES_DIR"]
+__all__ = ["suite_data", "write_suite", "store_for_model", "model_name", "write_text", "COUNTEREXAMPLES_DIR"]
 
 COUNTEREXAMPLES_DIR = Path(".coreach") / "counterexamples"
 
@@ -51,27 +51,31 @@ def suite_data(base: Suite, name: str, cases: list[dict], repeats: int, found_by
     }
 
 
+def write_text(path: Path, text: str) -> Path:
+    """Write a file whole or not at all: a temp file beside it, then a rename (a killed command leaves no half
+    file)."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+    return path
+
+
 def write_suite(path: Path, data: dict) -> Path:
     """Write the suite file atomically (temp file, then rename); `found_by` goes into the header comment, since
     the suite schema has no such key."""
     found = data.pop("found_by", {})
     header = "# A counterexample suite written by coreach falsify: run it with coreach vet suite=<this file>.\n"
     header += "".join(f"# {k}: {v}\n" for k, v in found.items())
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".tmp")
-    with os.fdopen(fd, "w") as fh:
-        fh.write(header + yaml.safe_dump(data, sort_keys=False))
-    os.replace(tmp, path)
-    return path
+    return write_text(path, header + yaml.safe_dump(data, sort_keys=False))
 
 
 def store_for_model(model: str, source: Path, root: Path | None = None) -> Path:
     """Copy a counterexample suite into the model's collection (.coreach/counterexamples/<model>/)."""
-    folder = (root or COUNTEREXAMPLES_DIR) / model
-    target = folder / f"{time.strftime('%Y%m%d-%H%M%S')}-{source.stem}.yaml"
-    folder.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=folder, suffix=".tmp")
-    with os.fdopen(fd, "w") as fh:
-        fh.write(source.read_text())
-    os.replace(tmp, target)
-    return target
+    target = (root or COUNTEREXAMPLES_DIR) / model / f"{time.strftime('%Y%m%d-%H%M%S')}-{source.stem}.yaml"
+    return write_text(target, source.read_text())

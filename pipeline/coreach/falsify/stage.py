@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import dataclasses
+import io
 import json
 import logging
 import math
@@ -17,7 +18,7 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 
 from coreach import tracking
 from coreach.errors import ConfigError
-from coreach.falsify.counterexamples import model_name, store_for_model, suite_data, write_suite
+from coreach.falsify.counterexamples import model_name, store_for_model, suite_data, write_suite, write_text
 from coreach.falsify.report import plot_failure_paths, plot_robustness, plot_search_curves, write_html
 from coreach.falsify.robustness import robustness
 from coreach.falsify.search import SAMPLERS, SearchResult, search
@@ -174,15 +175,15 @@ def falsify(cfg: DictConfig) -> dict:
             stored = store_for_model(model, suite_file, Path(cfg.counterexamples_dir) if cfg.get(
                 "counterexamples_dir") else None)  # fmt: skip
 
-    with open(out / "evaluations.csv", "w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(["sampler", "index", "robustness", "task", "separation", "cause", "case"])
-        for r in results:
-            for e in r.evaluations:
-                w.writerow([r.sampler, e.index, f"{e.score:.5f}", f"{e.info.get('task', math.nan):.5f}",
-                            f"{e.info.get('separation', math.nan):.5f}", e.info.get("cause", ""),
-                            json.dumps(e.case)])  # fmt: skip
-    (out / "failures.json").write_text(json.dumps(
+    table = io.StringIO()
+    w = csv.writer(table)
+    w.writerow(["sampler", "index", "robustness", "task", "separation", "cause", "case"])
+    for r in results:
+        for e in r.evaluations:
+            w.writerow([r.sampler, e.index, f"{e.score:.5f}", f"{e.info.get('task', math.nan):.5f}",
+                        f"{e.info.get('separation', math.nan):.5f}", e.info.get("cause", ""), json.dumps(e.case)])
+    write_text(out / "evaluations.csv", table.getvalue())
+    write_text(out / "failures.json", json.dumps(
         [{"sampler": s, "robustness": e.score, "case": e.case, "cause": e.info.get("cause"),
           "stage": e.info.get("stage"), "path": e.info.get("path")} for s, e in failures], indent=1))  # fmt: skip
     plots = [plot_search_curves(results, out / "search_curve.png"), plot_robustness(results, out / "robustness.png")]
@@ -209,7 +210,7 @@ def falsify(cfg: DictConfig) -> dict:
         "report": str(report.resolve()),
         "seconds": time.perf_counter() - t0,
     }
-    (out / "summary.json").write_text(json.dumps(summary, indent=2, default=str))
+    write_text(out / "summary.json", json.dumps(summary, indent=2, default=str))
     if cfg.log:
         summary["run_id"] = _log(cfg, summary, source, out)
     return summary
