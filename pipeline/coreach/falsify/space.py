@@ -121,8 +121,9 @@ def space_from_config(node: Any, goal_names: list[str], where: str) -> Space:
         if not chosen or unknown:
             raise ConfigError(f"{where}.{key}", f"expected null or goal names of the scene {goal_names}, got {o[key]!r}")
         goals[key] = list(chosen)
-    if o["switch"] and len(set(goals["goals_from"]) | set(goals["goals_to"])) < 2:
-        raise ConfigError(f"{where}.goals_to", "a space with switches needs at least 2 goals")
+    if o["switch"] and len(goals["goals_to"]) < 2:
+        # a switch always changes goal: from any start there must be another goal to switch to
+        raise ConfigError(f"{where}.goals_to", "a space with switches needs at least 2 goals to switch to")
     if not o["switch"] and "switch_at" in bounds:
         raise ConfigError(f"{where}.bounds.switch_at", "the space has switch: false; leave switch_at out")
     return Space(o["name"], o["suite"], goals["goals_from"], goals["goals_to"], bool(o["switch"]), bounds)
