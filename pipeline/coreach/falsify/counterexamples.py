@@ -3,16 +3,15 @@ kept per registered model name so that every later version meets all of them."""
 
 from __future__ import annotations
 
-import os
-import tempfile
 import time
 from pathlib import Path
 
 import yaml
 
+from coreach.vetting.report import write_text
 from coreach.vetting.suite import Suite
 
-__all__ = ["suite_data", "write_suite", "store_for_model", "model_name", "write_text", "COUNTEREXAMPLES_DIR"]
+__all__ = ["suite_data", "write_suite", "store_for_model", "model_name", "COUNTEREXAMPLES_DIR"]
 
 COUNTEREXAMPLES_DIR = Path(".coreach") / "counterexamples"
 
@@ -49,21 +48,6 @@ def suite_data(base: Suite, name: str, cases: list[dict], repeats: int, found_by
         "cases": [dict(c) for c in cases],
         "found_by": found_by,
     }
-
-
-def write_text(path: Path, text: str) -> Path:
-    """Write a file whole or not at all: a temp file beside it, then a rename (a killed command leaves no half
-    file)."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
-    return path
 
 
 def write_suite(path: Path, data: dict) -> Path:

@@ -4,15 +4,13 @@ failures' tool paths over the scene, one self-contained HTML page."""
 from __future__ import annotations
 
 import html
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 from matplotlib.figure import Figure  # a bare Figure renders with Agg: no pyplot, no display
 
 from coreach.falsify.search import SearchResult
-from coreach.vetting.report import CAUTION, STYLE, _image, _save, _table
+from coreach.vetting.report import CAUTION, STYLE, _image, _save, _table, write_text
 from coreach.vetting.scene_plot import body_outline
 
 __all__ = ["plot_search_curves", "plot_robustness", "plot_failure_paths", "write_html"]
@@ -95,9 +93,4 @@ budget shows only that none was found, not that none exists.</p>
 <h2>Plots</h2>{"".join(_image(p) for p in plots)}
 </body></html>
 """
-    path = out_dir / "report.html"
-    fd, tmp = tempfile.mkstemp(dir=out_dir, suffix=".html")
-    with os.fdopen(fd, "w", encoding="utf-8") as f:
-        f.write(page)
-    os.replace(tmp, path)
-    return path
+    return write_text(out_dir / "report.html", page)

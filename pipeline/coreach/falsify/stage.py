@@ -18,17 +18,18 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 
 from coreach import tracking
 from coreach.errors import ConfigError
-from coreach.falsify.counterexamples import model_name, store_for_model, suite_data, write_suite, write_text
+from coreach.falsify.counterexamples import (COUNTEREXAMPLES_DIR, model_name, store_for_model, suite_data,
+                                             write_suite)  # fmt: skip
 from coreach.falsify.report import plot_failure_paths, plot_robustness, plot_search_curves, write_html
 from coreach.falsify.robustness import robustness
 from coreach.falsify.search import SAMPLERS, SearchResult, search
-from coreach.falsify.counterexamples import COUNTEREXAMPLES_DIR
 from coreach.falsify.space import space_from_config, space_node
 from coreach.host.registry import build_plugin
 from coreach.safety import limits_from_config
 from coreach.training.callbacks import interactive
 from coreach.vetting.diagnosis import classify
 from coreach.vetting.loop import rollout
+from coreach.vetting.report import write_text
 from coreach.vetting.stage import _baseline_config, build_candidate
 from coreach.vetting.suite import Suite, load_suite
 from coreach.world.scene_arm import arm_world

@@ -454,11 +454,18 @@ belief confidence falls in each bin; w/k is where the error settles.</p>{bounds}
 {"".join(_image(p) for p in plots)}
 </body></html>
 """
-    path = out_dir / "report.html"
-    fd, tmp = tempfile.mkstemp(dir=out_dir, suffix=".html")
+    return write_text(out_dir / "report.html", page)
+
+
+def write_text(path: Path, text: str) -> Path:
+    """Write a file whole or not at all: a temp file beside it, then a rename (a killed command leaves no half
+    file)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, suffix=".tmp")
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(page)
+            f.write(text)
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):
