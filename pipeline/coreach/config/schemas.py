@@ -168,6 +168,18 @@ class StudyTaskConfig:
 
 
 @dataclass
+class StudyPopulationConfig:
+    """Who the simulated participants of `coreach study simulate` are: each draws its Boltzmann operator's
+    values uniformly from these [low, high] ranges (beta log-uniform; delay_steps whole control steps)."""
+
+    beta: List[float] = field(default_factory=lambda: [100.0, 500.0])  # 1/m of one-step progress
+    noise_std: List[float] = field(default_factory=lambda: [0.0, 0.1])  # stick units, white
+    tremor_std: List[float] = field(default_factory=lambda: [0.0, 0.1])  # stick units, band-limited
+    tremor_cutoff_hz: List[float] = field(default_factory=lambda: [1.0, 4.0])
+    delay_steps: List[int] = field(default_factory=lambda: [0, 2])  # control steps of reaction delay
+
+
+@dataclass
 class StudyConfig:
     """A within-subject user study (coreach study plan): who drives what, in which order, how often."""
 
@@ -182,6 +194,10 @@ class StudyConfig:
     seed: int = integer(0, 0, " (the schedule's seed)")
     pilot: bool = False
     upload_to_tracking: bool = False  # log aggregates (never participant rows) of the analysis to MLflow
+    trial_time_limit_s: float = number(30.0, 1.0, 600.0, "s")  # an unfinished trial ends as a failure here
+    session_rate_hz: float = number(50.0, 10.0, 1000.0, "Hz")  # control rate of a person's session
+    simulate_rate_hz: float = number(10.0, 5.0, 1000.0, "Hz")  # control rate of a simulated participant
+    population: StudyPopulationConfig = field(default_factory=StudyPopulationConfig)
 
 
 

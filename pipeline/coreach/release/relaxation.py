@@ -49,3 +49,31 @@ def relaxed_settings(cfg, suite_own_episodes: dict[str, int]) -> list[str]:
 
 
 __all__ = ["relaxed_settings", "shipped_release_config"]
+
+
+# a gate row's name (before its [suite] or @cell) -> the threshold it was held to
+ROW_THRESHOLDS = {"success": "success_lo", "recovery": "recovery_lo", "violations": "max_violations",
+                  "stick_gain": "stick_gain_median", "contacts": "max_contacts", "keep_out": "max_keep_out",
+                  "person_speed": "max_excess", "separation": "min_separation_m", "onnx_parity": "parity_max_abs",
+                  "latency_p99": "latency_p99_us"}  # fmt: skip
+
+
+def relaxed_gate(gate: dict) -> list[str]:
+    """What a released bundle's own gate record (manifest `gate`: rows with threshold and op) shows was looser
+    than shipped: a threshold beyond the shipped one, or a shipped gate suite that no row vetted on. Read from
+    the bundle itself, so it holds for a folder copied off the registry too."""
+    shipped = shipped_release_config()
+    out, suites = [], set()
+    for row, entry in (gate or {}).items():
+        key = ROW_THRESHOLDS.get(row.split("[")[0].split("@")[0])
+        if "[" in row:
+            suites.add(row.split("[", 1)[1].rstrip("]"))
+        if key is None or not isinstance(entry, dict) or entry.get("threshold") is None:
+            continue
+        value, default = float(entry["threshold"]), float(shipped.gates[key])
+        if (value < default) if key in LOOSER_IF_LOWER else (value > default):
+            out.append(f"{row}: threshold {value:g} (shipped {default:g})")
+    missing = [s for s in shipped.gate_suites if s not in suites]
+    if missing:
+        out.append(f"not vetted on the shipped gate suite(s) {', '.join(missing)}")
+    return out

@@ -235,9 +235,7 @@ class Session:
         context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot,
                                 layout.features)
         info.context = context = context.astype(np.float32)  # [1, C]
-        self._stick_in[0] = s
-        (out,) = self._ort.run(self._out_names, {"stick": self._stick_in, "context": context})
-        qd = out[0].astype(np.float64)  # [n]
+        qd = self._decode(s, context, q, pos, rot, jac)
         info.qd_decoder = qd
         if not np.isfinite(qd).all():
             return self._latch(info, "decoder output is not finite")
@@ -253,6 +251,35 @@ class Session:
             return self._latch(info, "safety filter produced a non-finite command")
         info.qd = qd
         return qd
+
+    def _decode(self, s: np.ndarray, context: np.ndarray, q, pos, rot, jac) -> np.ndarray:
+        """The interface's joint velocity [n] for the conditioned stick s [d] at this state: the bundle's
+        decoder. A study's baseline conditions (direct control, blending) replace this one method, so they
+        drive through the same belief, limits and separation step as the decoder they are compared with."""
+        self._stick_in[0] = s
+        (out,) = self._ort.run(self._out_names, {"stick": self._stick_in, "context": context})
+        return out[0].astype(np.float64)
+
+    def preview(self, sticks, q) -> np.ndarray:
+        """What each of the sticks [K, d] would command at q, before the filters (box and deadband applied as
+        `step` applies them; a released stick commands zero): joint velocities [M, K, n], M the interface's
+        modes (1 for a decoder). For a simulated operator choosing a stick and the page's action map; it
+        neither steps the belief nor changes any state."""
+        q = np.asarray(q, dtype=np.float64)
+        pos, rot, jac = self.chain.fk_jacobian(q)
+        shaped, _, released = self.limits.condition_stick(np.asarray(sticks, dtype=np.float64))
+        layout = self._layout
+        context = build_context(q[None], pos[None], rot[None], self._belief, layout.targets, layout.goal_rot,
+                                layout.features).astype(np.float32)  # fmt: skip
+        out = self._preview(shaped, context, q, pos, rot, jac)
+        out[:, released] = 0.0
+        return out
+
+    def _preview(self, shaped, context, q, pos, rot, jac) -> np.ndarray:
+        k = len(shaped)
+        (out,) = self._ort.run(self._out_names, {"stick": shaped.astype(np.float32),
+                                                 "context": np.repeat(context, k, axis=0)})  # fmt: skip
+        return out.astype(np.float64)[None]
 
     # ------------------------------------------------------------------------------------------ helpers
     def _vector(self, value, length: int, name: str) -> np.ndarray:

@@ -32,7 +32,8 @@ def run_analysis(root: Path, name: str, version: int | None = None, trials: list
         warn(message)
 
     paths = trials or sorted((folder / SESSIONS).glob("*/trials.csv"))
-    frame = align_to_plan(read_trials(list(paths), note), plan, note)
+    read = read_trials(list(paths), note)
+    frame = align_to_plan(read, plan, note)
     result = analyse(frame, plan, reference, resamples)
     out = private_folder(out or folder / "analysis")
     tables = {"by_condition.csv": result["by_condition"], "by_condition_task.csv": result["by_condition_task"],
@@ -45,7 +46,8 @@ def run_analysis(root: Path, name: str, version: int | None = None, trials: list
     summary = {
         "study": plan["name"], "version": number, "plan_sha256": digest, "pilot": plan["pilot"],
         "rows": int(len(result["frame"])), "participants": int(result["frame"]["participant"].nunique()),
-        "left_out": len(left_out), "reference": result["reference"],
+        "left_out": len(left_out), "practice_rows": int(read.attrs.get("practice", 0)),
+        "incomplete_trials": int(read.attrs.get("incomplete", 0)), "reference": result["reference"],
         "friedman": {k: {kk: _nan_free(vv) for kk, vv in o["friedman"].items()} for k, o in result["outcomes"].items()},
         "time_effects": result["time_model"]["effects"], "success_effects": result["success_model"]["effects"],
         "report": str(report), "tables": [str(out / f) for f in tables],

@@ -68,6 +68,18 @@ def check_tasks(tasks: list[dict], goals: list[str], where: str) -> list[dict]:
     return [dict(t) for t in tasks]
 
 
+def check_population(population: dict, where: str) -> None:
+    """Each simulated-participant parameter is a [low, high] range inside what the operator accepts."""
+    floors = {"beta": 1e-9, "noise_std": 0.0, "tremor_std": 0.0, "tremor_cutoff_hz": 1e-9, "delay_steps": 0}
+    for key, floor in floors.items():
+        r = population.get(key)
+        if r is None or len(r) != 2 or not all(isinstance(v, (int, float)) for v in r):
+            raise ConfigError(f"{where}.{key}", f"{r!r}; expected [low, high]")
+        lo, hi = float(r[0]), float(r[1])
+        if not (floor <= lo <= hi < float("inf")):
+            raise ConfigError(f"{where}.{key}", f"[{r[0]}, {r[1]}]; expected {floor:g} <= low <= high (finite)")
+
+
 def build_plan(study: dict, base: Path | None = None) -> dict:
     """The schedule (a plain, JSON-ready dict) for a composed study; the same config always gives the same
     plan, since every random choice comes from one numpy Generator seeded with `study['seed']`."""
@@ -76,6 +88,7 @@ def build_plan(study: dict, base: Path | None = None) -> dict:
         raise ConfigError(f"{where}.participants", "zero participants; expected at least one")
     if study["trials"] < 1:
         raise ConfigError(f"{where}.trials", "zero trials; expected at least one per condition and task")
+    check_population(study.get("population") or {}, f"{where}.population")
     conditions = check_conditions(study["conditions"], where, base)
     tasks = check_tasks(study["tasks"], scenario_goals(study["scenario"]), where)
     n = len(conditions)

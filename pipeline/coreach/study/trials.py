@@ -12,7 +12,9 @@ from coreach.errors import DataError
 from coreach.study.tlx import COLUMNS as TLX_COLUMNS
 
 REQUIRED = ("participant", "condition", "task", "trial", "success", "time_s")
-OPTIONAL_NUMBERS = (*TLX_COLUMNS, "preference")
+# the figures a session writes per trial (coreach.study.trial.trial_figures), and the block's ratings
+FIGURES = ("path_m", "idle_s", "reversals", "mode_switches", "filter_activations", "min_furniture_m", "min_person_m")
+OPTIONAL_NUMBERS = (*FIGURES, *TLX_COLUMNS, "liking", "preference")
 _TRUE, _FALSE = {"1", "true", "yes", "1.0"}, {"0", "false", "no", "0.0"}
 
 
@@ -64,10 +66,18 @@ def _row(raw: dict, where: str) -> dict:
     return out
 
 
+def _flag(raw: dict, key: str, default: bool) -> bool:
+    text = (raw.get(key) or "").strip().lower()
+    return default if text == "" else text in _TRUE
+
+
 def read_trials(paths: list[Path], warn) -> pd.DataFrame:
     """Every readable row of every file as one DataFrame (`_where` names each row's file and line).
-    `warn(message)` is called once per file or row left out, with the reason; DataError when nothing is left."""
+    `warn(message)` is called once per file or row left out, with the reason; DataError when nothing is left.
+    Practice trials and trials a session marked incomplete (columns `practice`, `complete`) are not errors:
+    they are left out and counted in the frame's attrs ("practice", "incomplete")."""
     rows: list[dict] = []
+    skipped = {"practice": 0, "incomplete": 0}
     files = trial_files(paths)
     if not files:
         raise DataError("trials", f"no trial files found in {', '.join(str(p) for p in paths)}")
@@ -84,6 +94,12 @@ def read_trials(paths: list[Path], warn) -> pd.DataFrame:
                     if None in raw:  # more cells than header names: the row is shifted, no cell can be trusted
                         warn(f"{where}: left out, more cells than columns")
                         continue
+                    if _flag(raw, "practice", False):
+                        skipped["practice"] += 1
+                        continue
+                    if not _flag(raw, "complete", True):
+                        skipped["incomplete"] += 1
+                        continue
                     try:
                         rows.append(_row(raw, where))
                     except ValueError as exc:
@@ -97,4 +113,6 @@ def read_trials(paths: list[Path], warn) -> pd.DataFrame:
     dup = frame.duplicated(subset=["participant", "condition", "task", "trial"], keep="first")
     for where in frame.loc[dup, "_where"]:
         warn(f"{where}: left out, the same participant, condition, task and trial appear earlier")
-    return frame.loc[~dup].reset_index(drop=True)
+    out = frame.loc[~dup].reset_index(drop=True)
+    out.attrs.update(skipped)
+    return out

@@ -20,11 +20,12 @@ from coreach.episodes.drive_files import META_MANIFEST, META_SESSION, META_TOLER
 from coreach.world.geometry import matrix_to_quat
 
 SOURCE = "coreach test-drive"
-FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")
+FLAG_COLUMNS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped", "separation_held")
 
 
-def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> Path:
-    """Write rows recorded by `Drive.tick` to `path` atomically (temp file in the same folder, os.replace)."""
+def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path, extra_meta: dict | None = None) -> Path:
+    """Write rows recorded by `Drive.tick` to `path` atomically (temp file in the same folder, os.replace).
+    `extra_meta` adds file metadata (a study's trial: study, plan, participant code, condition letter, task)."""
     m = drive.manifest
     ep = Episode(
         episode_id=episode, goal=goal, q=np.stack([r["q"] for r in rows]), qd=np.stack([r["qd"] for r in rows]),
@@ -56,12 +57,14 @@ def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path) -> 
         META_TOLERANCES.encode(): json.dumps({"position_m": drive.position_tol,
                                               "orientation_rad": drive.orientation_tol}).encode(),
     })  # fmt: skip
+    meta.update({f"coreach.{k}".encode(): json.dumps(v).encode() for k, v in (extra_meta or {}).items()})
     table = table.replace_schema_metadata(meta)
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.parent / f".{path.name}.{uuid.uuid4().hex}.tmp"
     try:
         pq.write_table(table, tmp)
+        os.chmod(tmp, 0o600)  # a person's drive: the owner's only
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)

@@ -27,7 +27,7 @@ PATH_POINTS = 400  # tool-path points kept for the page (8 s at 50 Hz)
 MAP_GRID = 5  # action map: MAP_GRID x MAP_GRID sticks over the box
 MAX_RECORD_STEPS = 60_000  # 20 min at 50 Hz: a forgotten recording stops growing
 NEVER = -1e9  # stick time before any input arrived: finite (a non-finite time would latch a fault), and stale
-FLAGS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped")
+FLAGS = ("stale", "deadband", "stick_clipped", "position_limited", "speed_capped", "separation_held")
 
 
 def goal_progress(phase: int, pos, rot, targets: np.ndarray, goal_rot: np.ndarray, pos_tol: float,

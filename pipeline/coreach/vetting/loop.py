@@ -104,7 +104,7 @@ def _reset_operator(operator, n: int, generator: torch.Generator, dt: float) -> 
         operator.reset(n, generator)
 
 
-def _values(twist: Tensor, to_wp: Tensor, rot_err: Tensor, mode: Tensor, switch_cost: int, margin: float) -> Tensor:
+def candidate_values(twist: Tensor, to_wp: Tensor, rot_err: Tensor, mode: Tensor, switch_cost: int, margin: float) -> Tensor:
     """Each candidate's value [E, M, K] (m): one-step progress toward the waypoint (to_wp [E, 3] away) plus
     ORIENTATION_WEIGHT times progress toward the approach orientation (rot_err [E, 3], axis-angle)."""
     dx, dth = twist[..., :3], twist[..., 3:]  # [E, M, K, 3]
@@ -263,7 +263,7 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
         safe, flags = _limit(limits, q[:, None, None, :], raw, jac_lin[:, None, None], pos[:, None, None], dt,
                              sep_state)
         twist = torch.einsum("eij,emkj->emki", jac, safe) * dt  # [E, M, K, 6] one-step tool motion
-        value = _values(twist, to_wp, rot_err, mode, switch_cost, margin)
+        value = candidate_values(twist, to_wp, rot_err, mode, switch_cost, margin)
         rec_reach[:, t] = _reachable(twist[..., :3], pos, approach, tol_pos)
         if stick_gain_every and t % stick_gain_every == 0:
             rec_stick_gain[:, t] = interface.stick_gain(state).to(dtype)
