@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 
 from coreach.errors import ConfigError
+from coreach.runtime.manifest import BundleError
 from coreach.study.codes import check_codes
 from coreach.study.plan import PLAN_FILE, build_plan, compose_study, freeze, plan_hash, read_plan
 from coreach.study.williams import carry_over_counts, williams_rows
@@ -144,9 +145,9 @@ def test_bad_studies_are_refused_naming_the_option(study, tmp_path):
         with pytest.raises(ConfigError, match=words):
             build_plan({**study, **change})
     bundle = tmp_path / "bundle"
-    bundle.mkdir()
-    ok = build_plan({**study, "conditions": [{"kind": "bundle", "ref": str(bundle)}, {"kind": "direct"}]})
-    assert ok["conditions"][0]["ref_checked"] == "folder exists"
+    bundle.mkdir()  # a folder, but not a release bundle: verified when the plan is made, not at the first session
+    with pytest.raises(BundleError, match="manifest.json"):
+        build_plan({**study, "conditions": [{"kind": "bundle", "ref": str(bundle)}, {"kind": "direct"}]})
 
 
 # ---- the real command, in a subprocess: one line on stderr, exit 2

@@ -312,6 +312,45 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
              "are logged to MLflow. Example: coreach study analyze bedside_shelf --trials trials/.",
     ),
     Command(
+        "study simulate", "coreach.study.commands:simulate_command", toward_person=True, study=True,
+        prints_cautions=True,
+        about="run the frozen plan with simulated participants through the session code, then the analysis",
+        usage="coreach [--json] study simulate NAME [--participants N] [--fresh] [--rate HZ] [--version N] "
+              "[--root DIR] [--uri URI]",
+        help="Runs every participant of the latest plan (or the first N) as a simulated operator drawn from the "
+             "study's population (beta, noise, tremor, reaction delay), headless, through the same session "
+             "code a person's session runs: consent, practice, trials on the conditions' own Sessions (the "
+             "bundle's runtime session; direct and blend as Sessions on the first bundle's arm, limits and "
+             "scene), TLX, liking and ranking (answered by a plain invented model), written after every step. "
+             "Then the analysis. Everything goes to <study>/v<N>/simulation/, apart from real sessions. A "
+             "check of the protocol, its timing and its analysis before anyone is recruited; no robot moves. "
+             "Options: --participants N, --fresh (start the simulation over), --rate HZ (control rate; default "
+             "the plan's simulate_rate_hz, 10), --version N, --root DIR, --uri URI (to resolve NAME@ALIAS "
+             "bundles). A killed run resumes where it stopped; the trial it was in is marked incomplete.",
+    ),
+    Command(
+        "study withdraw", "coreach.study.commands:withdraw_command", toward_person=True, records_person=True,
+        study=True, prints_cautions=True,
+        about="delete one participant's recordings, answers and derived rows everywhere; rebuild the analyses",
+        usage="coreach [--json] study withdraw NAME CODE [--root DIR]",
+        help="Removes CODE's session folders (recorded drives, questionnaire answers, state, trial table) from "
+             "every version of study NAME and every export holding them, rebuilds each analysis from the "
+             "participants who remain, and records the code as withdrawn (the code and the time only) so it is "
+             "never used for a new session. Refused while a session of CODE is running. Killed part-way, "
+             "running it again finishes the job. Copies outside the study folder must be deleted by hand.",
+    ),
+    Command(
+        "study export", "coreach.study.commands:export_command", toward_person=True, records_person=True,
+        study=True, prints_cautions=True,
+        about="a sharable copy of a study version: trials and answers as numbers, no free text, no times",
+        usage="coreach [--json] study export NAME [--version N] [--root DIR] [--out DIR] [--drives]",
+        help="Writes the plan, one trial table of every session, the questionnaire answers (TLX subscales, "
+             "liking, ranking) and the analysis tables to OUT (default <study>/v<N>/exports/export-v<N>; an "
+             "existing folder is refused), leaving out comments (free text) and every date and time. "
+             "--drives adds the recorded drives. Pseudonymous codes stay; share the copy only as the ethics "
+             "approval and data-protection rules allow.",
+    ),
+    Command(
         "bench train", "coreach.bench.train_bench:run", config="bench_train", show="coreach.commands.summaries:show_bench",
         about="training throughput: Lightning against a bare PyTorch loop; the cVAE with and without a regulariser",
         usage=f"coreach bench train {_HYDRA}",

@@ -102,3 +102,117 @@ def analyze_command(args: list[str], as_json: bool) -> int:
         print(f"  aggregates logged to MLflow run {summary['mlflow_run']}")
     _print_cautions()
     return 0
+
+
+SIMULATE_USAGE = ("coreach [--json] study simulate NAME [--participants N] [--fresh] [--rate HZ] [--version N] "
+                  "[--root DIR] [--uri URI]")  # fmt: skip
+WITHDRAW_USAGE = "coreach [--json] study withdraw NAME CODE [--root DIR]"
+EXPORT_USAGE = "coreach [--json] study export NAME [--version N] [--root DIR] [--out DIR] [--drives]"
+
+
+def _warn(message: str) -> None:  # stderr: stdout belongs to --json
+    print(f"coreach: warning: {message}", file=sys.stderr)
+
+
+def _progress(total: int, label: str):
+    """A rich bar for a person at a terminal; nothing in CI or a pipe."""
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn  # late: rich only for a bar
+
+    from coreach.training.callbacks import interactive  # late: the training package only for its TTY test
+
+    if not interactive():
+        return None, None
+    bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn())
+    bar.start()
+    task = bar.add_task(label, total=total)
+    return bar, lambda done, total: bar.update(task, completed=done, total=total)
+
+
+def simulate_command(args: list[str], as_json: bool) -> int:
+    from coreach.study.simulate import simulate_study  # late: torch and the vetting loop, not for --help
+
+    p = _Parser(prog="coreach study simulate", usage=SIMULATE_USAGE, add_help=False)
+    p.add_argument("name")
+    p.add_argument("--participants", type=int, default=None)
+    p.add_argument("--fresh", action="store_true")
+    p.add_argument("--rate", type=float, default=None)
+    p.add_argument("--version", type=int, default=None)
+    p.add_argument("--root", type=Path, default=DEFAULT_ROOT)
+    p.add_argument("--uri", default=None)
+    ns = p.parse_args(args)
+    if ns.participants is not None and ns.participants < 1:
+        p.error(f"--participants {ns.participants}: expected at least 1")
+    if ns.rate is not None and not 5.0 <= ns.rate <= 1000.0:
+        p.error(f"--rate {ns.rate}: expected a control rate in 5..1000 Hz")
+    bar, progress = (None, None) if as_json else _progress(ns.participants or 0, "simulated participants")
+    try:
+        summary = simulate_study(ns.root, ns.name, ns.version, ns.participants, ns.fresh, ns.rate, ns.uri,
+                                 progress=progress, warn=_warn)  # fmt: skip
+    finally:
+        if bar is not None:
+            bar.stop()
+    if as_json:
+        print(json.dumps({**summary, "cautions": cautions(recording=True, study=True)}, indent=2, default=str))
+        return 0
+    print(f"study {summary['study']} v{summary['version']}: {summary['simulated']} simulated participants in "
+          f"{summary['seconds_total']:.0f} s ({summary['seconds_driving']:.0f} s driving at {summary['rate_hz']:g} Hz) "
+          f"-> {summary['folder']}")  # fmt: skip
+    print("  simulated operators, not people: a check of the protocol, its timing and its analysis; no robot moved")
+    _print_analysis(summary)
+    _print_cautions()
+    return 0
+
+
+def _print_analysis(summary: dict) -> None:
+    print(f"  {summary['rows']} measured trials analysed ({summary['incomplete_trials']} incomplete and "
+          f"{summary['practice_rows']} practice left out; {summary['left_out']} rows or files left out, named above)")
+    for outcome, f in summary["friedman"].items():
+        if f["p"] is not None:
+            print(f"  {outcome}: Friedman chi2 = {f['statistic']:.3f}, p = {f['p']:.4g} (n = {f['n']})")
+    print(f"  report: {summary['report']}")
+
+
+def withdraw_command(args: list[str], as_json: bool) -> int:
+    from coreach.study.withdraw import withdraw  # late: the analysis stack only when it runs
+
+    p = _Parser(prog="coreach study withdraw", usage=WITHDRAW_USAGE, add_help=False)
+    p.add_argument("name")
+    p.add_argument("code")
+    p.add_argument("--root", type=Path, default=DEFAULT_ROOT)
+    ns = p.parse_args(args)
+    summary = withdraw(ns.root, ns.name, ns.code, warn=_warn)
+    if as_json:
+        print(json.dumps({**summary, "cautions": cautions(recording=True, study=True)}, indent=2))
+        return 0
+    print(f"participant {ns.code} withdrawn from study {ns.name} ({', '.join(summary['versions'])}); the code is "
+          "recorded as withdrawn (code and time only) and will not be used again")  # fmt: skip
+    for path in summary["removed"]:
+        print(f"  deleted {path}")
+    for path in summary["rebuilt"]:
+        print(f"  rebuilt {path} without them")
+    print("  copies made outside this folder (shared exports, backups) must be deleted by hand; analyses logged to "
+          "a tracking server held aggregates only")  # fmt: skip
+    _print_cautions()
+    return 0
+
+
+def export_command(args: list[str], as_json: bool) -> int:
+    from coreach.study.export import export_study  # late: only when it runs
+
+    p = _Parser(prog="coreach study export", usage=EXPORT_USAGE, add_help=False)
+    p.add_argument("name")
+    p.add_argument("--version", type=int, default=None)
+    p.add_argument("--root", type=Path, default=DEFAULT_ROOT)
+    p.add_argument("--out", type=Path, default=None)
+    p.add_argument("--drives", action="store_true")
+    ns = p.parse_args(args)
+    summary = export_study(ns.root, ns.name, ns.version, ns.out, ns.drives)
+    if as_json:
+        print(json.dumps({**summary, "cautions": cautions(recording=True, study=True)}, indent=2))
+        return 0
+    print(f"study {ns.name} v{summary['version']}: {summary['participants']} participants, {summary['trial_rows']} "
+          f"trial rows -> {summary['folder']}")  # fmt: skip
+    print("  left out: comments (free text) and every date and time; pseudonymous codes stay. Share it only as "
+          "your ethics approval and data-protection rules allow.")  # fmt: skip
+    _print_cautions()
+    return 0

@@ -16,6 +16,8 @@ from coreach.config.compose import SUITE_CONFIG, compose_here
 from coreach.config.option_specs import check_ranges
 from coreach.config.schemas import StudyConfig, StudyTaskConfig
 from coreach.errors import ConfigError
+from coreach.release.relaxation import relaxed_gate
+from coreach.runtime.bundle import verify_bundle
 from coreach.runtime.cautions import cautions
 from coreach.study.codes import check_codes, generate_codes
 from coreach.study.conditions import check_conditions
@@ -80,6 +82,16 @@ def check_population(population: dict, where: str) -> None:
             raise ConfigError(f"{where}.{key}", f"[{r[0]}, {r[1]}]; expected {floor:g} <= low <= high (finite)")
 
 
+def check_vetted(folder: Path, where: str, pilot: bool) -> None:
+    """A bundle a participant drives must be verified and released with the shipped gate settings (or
+    looser only in a pilot)."""
+    loose = relaxed_gate(verify_bundle(folder).gate)
+    if loose and not pilot:
+        raise ConfigError(where, f"{folder} was released with gate settings looser than shipped "
+                                 f"({'; '.join(loose)}); a study drives vetted bundles only, unless it says "
+                                 "pilot: true")  # fmt: skip
+
+
 def build_plan(study: dict, base: Path | None = None) -> dict:
     """The schedule (a plain, JSON-ready dict) for a composed study; the same config always gives the same
     plan, since every random choice comes from one numpy Generator seeded with `study['seed']`."""
@@ -91,6 +103,10 @@ def build_plan(study: dict, base: Path | None = None) -> dict:
     check_population(study.get("population") or {}, f"{where}.population")
     conditions = check_conditions(study["conditions"], where, base)
     tasks = check_tasks(study["tasks"], scenario_goals(study["scenario"]), where)
+    for i, c in enumerate(conditions):
+        if c["ref_checked"] == "folder exists":  # registry references are checked when a session resolves them
+            check_vetted(Path(c["ref"]) if base is None else base / c["ref"], f"{where}.conditions.{i}.ref",
+                         bool(study["pilot"]))  # fmt: skip
     n = len(conditions)
     if n > len(string.ascii_uppercase):
         raise ConfigError(f"{where}.conditions", f"{n} conditions; at most 26 (one letter each)")

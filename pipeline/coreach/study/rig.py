@@ -11,11 +11,11 @@ from pathlib import Path
 
 from coreach.errors import ConfigError
 from coreach.release.bundle_store import bundle_folder
-from coreach.release.relaxation import relaxed_gate
 from coreach.runtime.bundle import verify_bundle
 from coreach.runtime.session import Session
 from coreach.study.baselines import condition_session
 from coreach.study.files import private_folder
+from coreach.study.plan import check_vetted
 from coreach.study.session import DRIVES, Step, StudySession
 from coreach.study.trial import TrialRun, TrialSpec
 from coreach.testdrive.recording import save_drive
@@ -36,11 +36,8 @@ def resolve_bundles(plan: dict, where: str = "study", uri: str | None = None) ->
             continue
         at = f"{where} condition {c['name']} ({c['ref']})"
         folder = bundle_folder(c["ref"], at, uri)
+        check_vetted(folder, at, plan["pilot"])
         m = verify_bundle(folder)
-        loose = relaxed_gate(m.gate)
-        if loose and not plan["pilot"]:
-            raise ConfigError(at, f"released with gate settings looser than shipped ({'; '.join(loose)}); a study "
-                                  "drives vetted bundles only, unless the plan says pilot: true")  # fmt: skip
         missing = sorted(goals - set(m.goal_names))
         if missing:
             raise ConfigError(at, f"the bundle has no goal {', '.join(missing)} (its goals: {', '.join(m.goal_names)})")

@@ -19,10 +19,11 @@ _TRUE, _FALSE = {"1", "true", "yes", "1.0"}, {"0", "false", "no", "0.0"}
 
 
 def trial_files(paths: list[Path]) -> list[Path]:
-    """The CSV files of `paths` (a file, or every *.csv in a folder, sorted)."""
+    """The CSV files of `paths` (a file; or every *.csv in a folder and every */trials.csv below it, sorted)."""
     out: list[Path] = []
     for p in paths:
-        out += sorted(p.glob("*.csv")) if p.is_dir() else [p]
+        # a folder of tables, or a sessions/ folder (each participant's <code>/trials.csv)
+        out += sorted(p.glob("*.csv")) + sorted(p.glob("*/trials.csv")) if p.is_dir() else [p]
     return out
 
 
