@@ -25,7 +25,6 @@ from coreach.study.plan import PLAN_FILE, build_plan, compose_study, read_plan
 from coreach.study.rig import resolve_bundles
 from coreach.study.session import StudySession, steps_of
 from coreach.study.simulate import SIMULATION, simulate_study
-from coreach.study.withdraw import withdraw
 from study_fixtures import study_bundle, tiny_overrides, tiny_plan
 
 REPO = Path(__file__).resolve().parents[1]

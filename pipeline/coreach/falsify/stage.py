@@ -14,7 +14,6 @@ from pathlib import Path
 import torch
 from mlflow.entities import Metric, Param
 from omegaconf import DictConfig
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
 from coreach import tracking
 from coreach.errors import ConfigError
@@ -25,8 +24,8 @@ from coreach.falsify.robustness import robustness
 from coreach.falsify.search import SAMPLERS, SearchResult, search
 from coreach.falsify.space import space_from_config, space_node
 from coreach.host.registry import build_plugin
+from coreach.progress import progress_bar
 from coreach.safety import limits_from_config
-from coreach.training.callbacks import interactive
 from coreach.vetting.diagnosis import classify
 from coreach.vetting.loop import rollout
 from coreach.vetting.report import write_text
@@ -101,15 +100,6 @@ class Evaluator:
         return scores["score"].tolist(), infos
 
 
-def _progress(total: int, label: str):
-    if not interactive():
-        return None, None
-    bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn())
-    bar.start()
-    task = bar.add_task(label, total=total)
-    return bar, lambda done: bar.update(task, completed=done)
-
-
 def _failure_row(sampler: str, e) -> list[str]:
     c = e.case
     op = ", ".join(f"{k} {v:.3g}" for k, v in c["operator"].items())
@@ -148,7 +138,7 @@ def falsify(cfg: DictConfig) -> dict:
     speed = {}
     for name in samplers:
         evaluate = Evaluator(base, robot, interface, belief, limits, seed)
-        bar, tick = _progress(budget, f"{name}: {interface.name}")
+        bar, tick = progress_bar(budget, f"{name}: {interface.name}")
         if bar is None:
             log.info("falsify %s with %s: %d scenarios in batches of %d", interface.name, name, budget, batch)
         try:

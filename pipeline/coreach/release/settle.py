@@ -58,10 +58,11 @@ def owner_alive(run) -> bool:
         return (time.time() - run.info.start_time / 1000) < STALE_AFTER_S
     if Path("/proc/self/stat").exists():
         return _start_ticks(int(pid)) == ticks
-    return _running(int(pid))
+    return process_running(int(pid))
 
 
-def _running(pid: int) -> bool:
+def process_running(pid: int) -> bool:
+    """Whether process `pid` exists on this computer (a release's owner, a study session's server)."""
     if Path("/proc/self/stat").exists():
         return _start_ticks(pid) is not None
     try:
@@ -195,7 +196,7 @@ def _clean_scratch(say: Say) -> None:
     """Scratch folders of release processes on this computer that no longer run (killed mid-gate)."""
     for path in Path(tempfile.gettempdir()).glob(f"{TMP_PREFIX}*-*"):
         pid = path.name[len(TMP_PREFIX):].split("-", 1)[0]
-        if pid.isdigit() and path.is_dir() and not _running(int(pid)):
+        if pid.isdigit() and path.is_dir() and not process_running(int(pid)):
             shutil.rmtree(path, ignore_errors=True)
             say(f"removed {path}: scratch folder of a release that was killed")
 

@@ -107,8 +107,8 @@ def aggregates(result: dict) -> dict[str, float]:
     any participant."""
     out: dict[str, float] = {}
     for _, row in result["by_condition"].iterrows():
-        for key in ("success_rate", "time_s_mean", "tlx_mean", "preference_mean", "participants", "trials"):
-            if key in row and isinstance(row[key], (int, float, np.integer, np.floating)) and math.isfinite(row[key]):
+        for key in row.index:  # every column of the per-condition summary is an aggregate over participants
+            if key != "condition" and isinstance(row[key], (int, float, np.integer, np.floating)) and math.isfinite(row[key]):
                 out[f"{row['condition']}/{key}"] = float(row[key])
     for name, o in result["outcomes"].items():
         for key in ("statistic", "p"):

@@ -114,20 +114,6 @@ def _warn(message: str) -> None:  # stderr: stdout belongs to --json
     print(f"coreach: warning: {message}", file=sys.stderr)
 
 
-def _progress(total: int, label: str):
-    """A rich bar for a person at a terminal; nothing in CI or a pipe."""
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn  # late: rich only for a bar
-
-    from coreach.training.callbacks import interactive  # late: the training package only for its TTY test
-
-    if not interactive():
-        return None, None
-    bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeElapsedColumn())
-    bar.start()
-    task = bar.add_task(label, total=total)
-    return bar, lambda done, total: bar.update(task, completed=done, total=total)
-
-
 def simulate_command(args: list[str], as_json: bool) -> int:
     from coreach.study.simulate import simulate_study  # late: torch and the vetting loop, not for --help
 
@@ -144,7 +130,9 @@ def simulate_command(args: list[str], as_json: bool) -> int:
         p.error(f"--participants {ns.participants}: expected at least 1")
     if ns.rate is not None and not 5.0 <= ns.rate <= 1000.0:
         p.error(f"--rate {ns.rate}: expected a control rate in 5..1000 Hz")
-    bar, progress = (None, None) if as_json else _progress(ns.participants or 0, "simulated participants")
+    from coreach.progress import progress_bar  # late: rich, not for --help
+
+    bar, progress = (None, None) if as_json else progress_bar(ns.participants or 0, "simulated participants")
     try:
         summary = simulate_study(ns.root, ns.name, ns.version, ns.participants, ns.fresh, ns.rate, ns.uri,
                                  progress=progress, warn=_warn)  # fmt: skip

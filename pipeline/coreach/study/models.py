@@ -5,7 +5,6 @@ from __future__ import annotations
 import math
 import warnings
 
-import numpy as np
 import pandas as pd
 import statsmodels.api as sm
 import statsmodels.formula.api as smf

@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from coreach.errors import ConfigError, DataError
+from coreach.release.settle import process_running
 from coreach.study.files import private_folder, write_private
 from coreach.study.plan import PLAN_FILE, SESSIONS, latest_folder, plan_hash, read_plan
 from coreach.study.tlx import COLUMNS as TLX_COLUMNS, SUBSCALES, raw_tlx
@@ -292,7 +293,7 @@ class SessionLock:
                     pid = int(self.path.read_text().strip() or "0")
                 except (OSError, ValueError):
                     pid = 0
-                if pid and _alive(pid):
+                if pid and process_running(pid):
                     raise ConfigError(str(self.path.parent), f"a session for this participant is already running "
                                                              f"(process {pid})") from None  # fmt: skip
                 self.path.unlink(missing_ok=True)
@@ -304,13 +305,3 @@ class SessionLock:
 
     def __exit__(self, *exc) -> None:
         self.path.unlink(missing_ok=True)
-
-
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True

@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import os
-import sys
 import time
 
 import lightning as L
 from lightning.pytorch.callbacks import RichProgressBar
 from mlflow.entities import Metric
+
+from coreach.progress import interactive
 
 
 class MlflowEpochLogger(L.Callback):
@@ -32,11 +32,6 @@ class MlflowEpochLogger(L.Callback):
 
     def load_state_dict(self, state_dict: dict) -> None:
         self.history = list(state_dict.get("history", []))
-
-
-def interactive() -> bool:
-    """A rich progress bar only for a person at a terminal; CI and pipes get quiet logs."""
-    return sys.stderr.isatty() and not os.environ.get("CI")
 
 
 def progress_callbacks() -> list[L.Callback]:

@@ -19,7 +19,7 @@ from coreach.episodes.drive_files import drive_files
 from coreach.errors import ConfigError
 from coreach.host.registry import build_plugin
 from coreach.safety import limits_from_config
-from coreach.training.callbacks import interactive
+from coreach.progress import interactive
 from coreach.vetting.diagnosis_report import diagnosis_html, diagnosis_plots, plot_reach_by_goal
 from coreach.vetting.loop import rollout
 from coreach.vetting.metrics import flat_metrics, summarise

@@ -22,7 +22,7 @@ from coreach.config.compose import compose_here, suite_overrides
 from coreach.config.plugin_options import check_groups, check_plugins
 from coreach.errors import ConfigError, CoreachError
 from coreach.host.registry import build_plugin
-from coreach.training.callbacks import interactive
+from coreach.progress import interactive
 from coreach.vetting.stage import vet
 from coreach.vetting.suite import suite_from_config
 
