@@ -113,20 +113,21 @@ def population_from(planted: dict, structure: Structure) -> Population:
     return pop
 
 
-def check_times(pop: Population) -> None:
+def check_times(pop: Population, where: str = f"{WHERE}.base_time_s") -> None:
     fastest = pop.base_time_s + min(pop.time_s.values()) + min(pop.task_time_s.values())
     sd = math.hypot(pop.participant_sd_time_s, pop.residual_sd_time_s)
     if fastest < MIN_SDS_ABOVE_ZERO * sd:
-        raise ConfigError(f"{WHERE}.base_time_s", f"the fastest condition and task average {fastest:.3g} s, "
+        raise ConfigError(where, f"the fastest condition and task average {fastest:.3g} s, "
                           f"less than {MIN_SDS_ABOVE_ZERO:g} standard deviations ({sd:.3g} s) above zero: the "
-                          "normal time model would draw negative times; raise base_time_s or lower the spreads")  # fmt: skip
+                          "normal time model would draw negative times; raise base_time_s or lower the "
+                          "spreads")  # fmt: skip
 
 
 def with_difference(pop: Population, difference_s: float) -> Population:
     """The same population with `first` planted `difference_s` seconds from `second` (other conditions kept)."""
     time = {**pop.time_s, pop.first: pop.time_s[pop.second] + difference_s}
     out = dataclasses.replace(pop, time_s=time, difference_s=difference_s)
-    check_times(out)
+    check_times(out, f"{WHERE}.power.time_s")
     return out
 
 

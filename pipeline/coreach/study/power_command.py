@@ -84,7 +84,8 @@ def power_command(args: list[str], as_json: bool) -> int:
     for row in summary["coverage"]:
         unit = "s" if row["scale"] == "time_s" else "log-odds (population-averaged)"
         print(f"    {row['scale']:8s} {row['condition']}: true {row['true']:+.3f} {unit}, coverage "
-              f"{row['coverage']:.1%} [{row['coverage_lo']:.1%}, {row['coverage_hi']:.1%}] of {row['fitted']}")  # fmt: skip
+              f"{row['coverage']:.1%} [{row['coverage_lo']:.1%}, {row['coverage_hi']:.1%}] of "
+              f"{row['fitted']}")  # fmt: skip
     q = summary["power_question"]
     print(f"  power, time of {q['first']} minus {q['second']} = {q['difference_s']:+g} s, alpha 0.05:")
     for row in summary["power"]:
@@ -92,6 +93,10 @@ def power_command(args: list[str], as_json: bool) -> int:
               f"[{row['power_lo']:.0%}, {row['power_hi']:.0%}]")  # fmt: skip
     for test, n in summary["smallest_n"][float(q["difference_s"])].items():
         print(f"  smallest n reaching {TARGET:.0%} with {test}: {n if n is not None else 'not reached'}")
+    unbalanced = [r["participants"] for r in summary["power"] if r["participants"] not in summary["balanced_counts"]]
+    if unbalanced:
+        print(f"  not a multiple of the design's sequences (a real study's order would be unbalanced): "
+              f"{', '.join(str(n) for n in sorted(set(unbalanced)))}")  # fmt: skip
     print(f"  files: {', '.join(summary['files'])}")
     print("\n".join(caution_lines(recording=False, study=True)))  # no person is recorded: the study's cautions
     return 0

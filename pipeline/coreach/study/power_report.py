@@ -65,10 +65,11 @@ def render(summary: dict, coverage: pd.DataFrame, power: pd.DataFrame, png: byte
              f"estimates; largest departure of the integrated rates from an additive logit model: "
              f"{truth['nonadditivity']:.2g} log-odds.</p>", _table(coverage),
              "<h2>Power</h2>",
-             f"<p>Share of simulated studies rejecting at alpha 0.05, per number of participants; Wilson 95% "
-             f"intervals. Tests: " + "; ".join(f"<b>{html.escape(k)}</b>: {html.escape(v)}" for k, v in TESTS.items())
+             "<p>Share of simulated studies rejecting at alpha 0.05, per number of participants; Wilson 95% "
+             "intervals. Tests: " + "; ".join(f"<b>{html.escape(k)}</b>: {html.escape(v)}" for k, v in TESTS.items())
              + ".</p>",
-             f"<img alt='power curve' src='data:image/png;base64,{base64.b64encode(png).decode('ascii')}'>", _table(power)]  # fmt: skip
+             f"<img alt='power curve' src='data:image/png;base64,{base64.b64encode(png).decode('ascii')}'>",
+             _table(power)]  # fmt: skip
     smallest = "".join(f"<li>{d:+g} s, {html.escape(t)}: {n if n is not None else 'not reached at the counts tried'}"
                        f"</li>" for d, tests in summary["smallest_n"].items() for t, n in tests.items())  # fmt: skip
     parts.append(f"<p>Smallest number of participants reaching {TARGET:.0%} power:</p><ul>{smallest}</ul>")

@@ -10,7 +10,6 @@ import math
 import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
-import pandas as pd
 
 from coreach.runtime.cautions import cautions
 
