@@ -22,7 +22,8 @@ _SEPARATION = SeparationSettings()  # the person's terms and the clearance defau
 
 __all__ = ["SuiteConfig", "CaseConfig", "CaseOperatorConfig", "FalsifySpaceConfig", "ToleranceConfig",
            "ScenarioConfig", "GoalConfig", "BodyConfig", "PersonConfig", "StudyConfig", "StudyConditionConfig",
-           "StudyTaskConfig", "register", "MIN_SEED", "DEFAULT_POSITION_TOL", "DEFAULT_ORIENTATION_TOL_DEG"]  # fmt: skip
+           "StudyTaskConfig", "StudyPlantedConfig", "StudyPlantedEffectConfig", "StudyPowerConfig", "register",
+           "MIN_SEED", "DEFAULT_POSITION_TOL", "DEFAULT_ORIENTATION_TOL_DEG"]  # fmt: skip
 
 # Training (demonstration and trainer seeds) uses small integers from 0; vetting draws from 10_000 up so no
 # vetting episode can coincide with a training one.
@@ -177,6 +178,37 @@ class StudyPopulationConfig:
     tremor_std: List[float] = field(default_factory=lambda: [0.0, 0.1])  # stick units, band-limited
     tremor_cutoff_hz: List[float] = field(default_factory=lambda: [1.0, 4.0])
     delay_steps: List[int] = field(default_factory=lambda: [0, 2])  # control steps of reaction delay
+class StudyPlantedEffectConfig:
+    """A fixed effect planted in simulated outcomes: seconds added to the completion time, log-odds added to
+    the success logit (coreach.study.planted)."""
+
+    time_s: float = number(0.0, -1e4, 1e4, "s")
+    log_odds: float = number(0.0, -20.0, 20.0)
+
+
+@dataclass
+class StudyPowerConfig:
+    """The difference a power analysis asks about: completion time of `first` minus `second`, in seconds."""
+
+    first: Optional[str] = None  # null: the first condition that is not `second`
+    second: Optional[str] = None  # null: the analysis' reference (direct when the study has it)
+    time_s: float = number(-2.0, -1e4, 1e4, "s")
+
+
+@dataclass
+class StudyPlantedConfig:
+    """A statistical population with known condition effects, for `coreach study power` (coverage of the
+    analysis' intervals, power by simulation). Times are normal on the seconds scale with a random intercept
+    per participant; success is logistic with a random intercept per participant on the log-odds scale."""
+
+    base_time_s: float = number(40.0, 0.0, 1e4, "s", open_range=True)  # a condition and task with no effect
+    participant_sd_time_s: float = number(5.0, 0.0, 1e4, "s")
+    residual_sd_time_s: float = number(7.0, 0.0, 1e4, "s", open_range=True)  # > 0: the mixed model needs noise
+    base_success: float = number(0.8, 0.0, 1.0, open_range=True)  # a participant with intercept 0, no effect
+    participant_sd_log_odds: float = number(0.5, 0.0, 10.0)
+    effects: Dict[str, StudyPlantedEffectConfig] = field(default_factory=dict)  # condition name -> effect
+    tasks: Dict[str, StudyPlantedEffectConfig] = field(default_factory=dict)  # task name -> effect
+    power: StudyPowerConfig = field(default_factory=StudyPowerConfig)
 
 
 @dataclass
@@ -198,6 +230,8 @@ class StudyConfig:
     session_rate_hz: float = number(50.0, 10.0, 1000.0, "Hz")  # control rate of a person's session
     simulate_rate_hz: float = number(10.0, 5.0, 1000.0, "Hz")  # control rate of a simulated participant
     population: StudyPopulationConfig = field(default_factory=StudyPopulationConfig)
+    # simulation assumptions for power analysis only; not part of the frozen schedule (coreach.study.plan)
+    planted: StudyPlantedConfig = field(default_factory=StudyPlantedConfig)
 
 
 

@@ -46,11 +46,16 @@ def align_to_plan(frame: pd.DataFrame, plan: dict, warn) -> pd.DataFrame:
     return out
 
 
+def default_reference(conditions: list[str]) -> str:
+    """The models' baseline when none is asked for: `direct` when the study has it, else the first condition."""
+    return "direct" if "direct" in conditions else conditions[0]
+
+
 def analyse(frame: pd.DataFrame, plan: dict, reference: str | None = None, resamples: int = 2000) -> dict:
     """Everything the report shows, from rows already aligned to the plan. The bootstrap draws from a
     Generator seeded with the plan's seed, so the same trials give the same intervals."""
     conditions = [c["name"] for c in plan["conditions"]]
-    reference = reference or ("direct" if "direct" in conditions else conditions[0])
+    reference = reference or default_reference(conditions)
     if reference not in conditions:
         raise ConfigError("--reference", f"{reference!r} is not a condition of the plan; expected one of "
                                          f"{', '.join(conditions)}")  # fmt: skip

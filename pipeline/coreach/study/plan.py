@@ -29,6 +29,9 @@ PLAN_FILE = "plan.json"
 SESSIONS = "sessions"  # <study folder>/sessions/<code>/: a session has started for that participant
 DEFAULT_ROOT = Path(".coreach") / "studies"
 _VERSION = re.compile(r"^v([0-9]+)$")
+# Study-config sections that describe simulated populations, not the schedule: kept out of the frozen plan so
+# that changing a simulation assumption neither changes the plan's hash nor asks for a new version
+SIMULATION_ONLY = ("planted",)
 
 
 def compose_study(name: str, overrides: list[str]) -> dict:
@@ -134,7 +137,7 @@ def build_plan(study: dict, base: Path | None = None) -> dict:
         "format": PLAN_FORMAT,
         "name": study["name"],
         "pilot": bool(study["pilot"]),
-        "config": study,
+        "config": {k: v for k, v in study.items() if k not in SIMULATION_ONLY},
         "conditions": conditions,
         "letters": letters,  # the experimenter's key: never shown on a participant's page
         "design": {"kind": "Williams", "rows": rows, "sequences": len(rows),

@@ -14,6 +14,11 @@ from matplotlib.figure import Figure
 from coreach.runtime.cautions import cautions
 
 
+STYLE = ("body{font-family:sans-serif;max-width:1100px;margin:2em auto;font-size:14px}"
+         "table{border-collapse:collapse;margin:.5em 0}td,th{border:1px solid #ccc;padding:2px 6px;"
+         "text-align:right}th{background:#eee}.warn{color:#8a4b00}img{max-width:100%}")  # fmt: skip
+
+
 def _png(fig) -> str:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=96, bbox_inches="tight")
@@ -104,8 +109,5 @@ def render(result: dict, plan: dict, version: int, warnings: list[str]) -> str:
                         "log-odds (and odds ratios)"))  # fmt: skip
     items = "".join(f"<li>{html.escape(c)}</li>" for c in cautions(recording=True, study=True))
     parts.append(f"<h2>Cautions</h2><ul>{items}</ul>")
-    style = ("body{font-family:sans-serif;max-width:1100px;margin:2em auto;font-size:14px}"
-             "table{border-collapse:collapse;margin:.5em 0}td,th{border:1px solid #ccc;padding:2px 6px;"
-             "text-align:right}th{background:#eee}.warn{color:#8a4b00}img{max-width:100%}")  # fmt: skip
-    return (f"<!doctype html><html><head><meta charset='utf-8'><title>Study {name}</title><style>{style}"
+    return (f"<!doctype html><html><head><meta charset='utf-8'><title>Study {name}</title><style>{STYLE}"
             f"</style></head><body>{''.join(parts)}</body></html>\n")  # fmt: skip
