@@ -291,6 +291,26 @@ COMMANDS: dict[str, Command] = {c.name: c for c in (
              "study.participants=18.",
     ),
     Command(
+        "study session", "coreach.study.session_command:session_command", toward_person=True, records_person=True,
+        study=True, prints_cautions=True,
+        about="serve one participant's session of a planned study on a local page (simulation only), resumable",
+        usage="coreach [--json] study session NAME CODE [--version N] [--root DIR] [--host 127.0.0.1] [--port 8766] "
+              "[--uri URI]",
+        help="Opens participant CODE's session of the frozen plan of study NAME and serves it on a local page: the "
+             "experimenter confirms that informed consent was recorded, then per condition block (shown only as "
+             "its letter) the practice and measured trials on the simulated arm (a 3-2-1 countdown, the arm "
+             "moves only while a trial runs, which ends on arrival or at the plan's trial_time_limit_s), the "
+             "raw NASA-TLX and the liking question, and at the end the ranking of the letters. Every step is "
+             "written to ROOT/NAME/v<N>/sessions/CODE/ (state.json, trials.csv, responses.json, drives/; owner-"
+             "only); a reloaded page or a stopped server ends the running trial as incomplete and the session "
+             "goes on with the next step. Bundles are verified, and one released with looser gate settings is "
+             "refused unless the plan is a pilot; one server per participant. No address or browser detail is "
+             "stored. Options: --version N (default the latest), --root DIR (default .coreach/studies), --host "
+             "(default 127.0.0.1), --port (default 8766; 0 any free port), --uri URI (the tracking store that "
+             "resolves NAME@ALIAS bundle references). --json prints {url, participant, version, cautions} and "
+             "serves until Ctrl-C or SIGTERM. Example: coreach study session bedside_shelf P01-7Q3K.",
+    ),
+    Command(
         "study analyze", "coreach.study.commands:analyze_command", toward_person=True, records_person=True,
         study=True, prints_cautions=True,
         about="paired statistics of a study's trials: Friedman, Wilcoxon with Holm, mixed model, GEE; HTML report",

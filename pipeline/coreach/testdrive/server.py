@@ -22,11 +22,18 @@ from coreach.testdrive.sim import Drive
 MAX_BODY = 4096  # an input or command message is a few dozen bytes
 
 
+def fill_page(page: str, items: list[str]) -> bytes:
+    """A page with the cautions filled in from their one copy and the shared drawing code (draw.js) inlined, so
+    the test-drive and study pages draw the arm with one code and each stays one self-contained file."""
+    shared = resources.files("coreach.testdrive").joinpath("draw.js").read_text(encoding="utf-8")
+    listed = "".join(f"<li>{html.escape(c)}</li>" for c in items)
+    return page.replace("<!--CAUTIONS-->", listed).replace("/*SHARED*/", shared).encode("utf-8")
+
+
 def page_html() -> bytes:
-    """The page, with the cautions filled in from their one copy (a person drives here and may be recorded)."""
+    """The page, with the cautions filled in (a person drives here and may be recorded)."""
     page = resources.files("coreach.testdrive").joinpath("page.html").read_text(encoding="utf-8")
-    items = "".join(f"<li>{html.escape(c)}</li>" for c in cautions(recording=True))
-    return page.replace("<!--CAUTIONS-->", items).encode("utf-8")
+    return fill_page(page, cautions(recording=True))
 
 
 class _Handler(BaseHTTPRequestHandler):
@@ -60,14 +67,16 @@ class _Handler(BaseHTTPRequestHandler):
         else:
             self._json({"error": "not found"}, HTTPStatus.NOT_FOUND)
 
-    def do_POST(self) -> None:
+    def _post_body(self) -> dict | None:
+        """The JSON object of a POST from this page (None: refused, and the answer already sent)."""
         if not self._host_ok():
-            return
+            return None
         # Only this page may drive: a request from another origin (a web page elsewhere in the same
         # browser) is refused, and JSON bodies force browsers to ask before sending cross-origin.
         origin = self.headers.get("Origin")
         if origin is not None and origin != f"http://{self.headers.get('Host')}":
-            return self._json({"error": "cross-origin request refused"}, HTTPStatus.FORBIDDEN)
+            self._json({"error": "cross-origin request refused"}, HTTPStatus.FORBIDDEN)
+            return None
         try:
             length = int(self.headers.get("Content-Length", "0"))
             if not 0 < length <= MAX_BODY:
@@ -76,7 +85,14 @@ class _Handler(BaseHTTPRequestHandler):
             if not isinstance(body, dict):
                 raise ValueError("not an object")
         except (ValueError, json.JSONDecodeError):
-            return self._json({"error": "expected a small JSON object"}, HTTPStatus.BAD_REQUEST)
+            self._json({"error": "expected a small JSON object"}, HTTPStatus.BAD_REQUEST)
+            return None
+        return body
+
+    def do_POST(self) -> None:
+        body = self._post_body()
+        if body is None:
+            return
         path = self.path.split("?", 1)[0]
         try:
             if path == "/api/input":

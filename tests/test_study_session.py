@@ -1,0 +1,151 @@
+"""`coreach study session`: bad input through the real command (one line, exit 2, nothing written), and the
+helpers the browser test shares (a small untrained bundle on the bedside shelf's goals, a tiny plan, the
+server started as the real command in a subprocess)."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import torch
+
+from coreach import cli
+from coreach.context import ContextSpec
+from coreach.decoder.policy import DecoderPolicy
+from coreach.release.bundle_writer import write_bundle
+from coreach.release.metadata import _nominal_layout, _world_section
+from coreach.world.scenario import load_scenario
+from coreach.world.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
+
+ROOT = Path(__file__).resolve().parents[1]
+STUDY = "bedside_shelf"
+BUNDLE_CONDITION = "candidate"  # the bundle condition's name: the page must never show it
+
+
+def study_bundle(out: Path) -> Path:
+    """An untrained decoder released with write_bundle on the bedside shelf's goals and bodies (no training:
+    the session, not the decoder, is tested). Its gate is empty, which counts as loosened: plans using it
+    must be pilots."""
+    torch.manual_seed(0)
+    scene = load_scenario("bedside_shelf")
+    spec = ContextSpec(dof=7, n_goals=len(scene.goal_names))
+    policy = DecoderPolicy.build({"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
+                                  "hidden": [32, 32]}, spec, 7)  # fmt: skip
+    policy.set_normalisation(torch.randn(400, spec.width) * 0.5, torch.randn(400, 7) * 0.3)
+    meta = {"goal_names": scene.goal_names, "nominal_layout": _nominal_layout(scene),
+            "dataset_fingerprint": "sha256:feed", "training_run_id": "run-study", "git_commit": "0" * 40,
+            "q_home": list(SEVEN_JOINT_ARM_HOME),
+            "safety": {"workspace_min": [-0.2, -0.8, 0.0], "workspace_max": [1.0, 0.8, 1.2]},
+            "parity_n": 200, "world": _world_section(UrdfArm(), scene)}  # fmt: skip
+    return write_bundle(out, policy, shipped_urdf(), meta, {}, {"passed": True})
+
+
+def make_plan(root: Path, bundle: Path, *overrides: str, pilot: bool = True, participants: int = 2) -> dict:
+    """A tiny plan made by `coreach study plan`: the bundle and direct control, the lamp task, one practice and
+    one measured trial per block, trials ending at 3 s."""
+    args = ["--json", "study", "plan", STUDY, "--root", str(root),
+            f"study.conditions=[{{kind:bundle,ref:'{bundle}',name:{BUNDLE_CONDITION}}},{{kind:direct}}]",
+            "study.tasks=[{name:lamp,goal:lamp_switch}]", "study.trials=1", "study.practice_trials=1",
+            f"study.participants={participants}", f"study.pilot={str(pilot).lower()}",
+            "study.trial_time_limit_s=3", *overrides]  # fmt: skip
+    assert cli.main(args) == 0
+    return json.loads((root / STUDY / "v1" / "plan.json").read_text())["plan"]
+
+
+def command(*args: str) -> list[str]:
+    return [sys.executable, "-m", "coreach.cli", *args]
+
+
+def env() -> dict:
+    out = dict(os.environ, CI=os.environ.get("CI", ""))
+    # the subprocess resolves coreach from the same source folders as this test run
+    out["PYTHONPATH"] = os.pathsep.join([str(ROOT / "pipeline"), str(ROOT / "plugins"), str(ROOT / "conf"),
+                                         out.get("PYTHONPATH", "")])  # fmt: skip
+    return out
+
+
+def start_session(root: Path, code: str) -> tuple[subprocess.Popen, dict]:
+    """The real `coreach --json study session` on any free port; its one JSON line says where it listens."""
+    proc = subprocess.Popen(command("--json", "study", "session", STUDY, code, "--root", str(root), "--port", "0"),
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env())  # fmt: skip
+    line = proc.stdout.readline()
+    if not line:
+        proc.kill()
+        pytest.fail(f"study session did not start: {proc.stderr.read()}")
+    return proc, json.loads(line)
+
+
+def run_once(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run(command(*args), capture_output=True, text=True, env=env(), timeout=120)
+
+
+def one_line_error(proc: subprocess.CompletedProcess) -> str:
+    """The CLI's contract for bad input: exit 2, one line on stderr, no traceback, nothing on stdout."""
+    lines = proc.stderr.strip().splitlines()
+    assert proc.returncode == 2, proc.stderr
+    assert len(lines) == 1 and lines[0].startswith("coreach: error:"), proc.stderr
+    assert "Traceback" not in proc.stderr and proc.stdout == ""
+    return lines[0]
+
+
+@pytest.fixture(scope="module")
+def bundle(tmp_path_factory) -> Path:
+    return study_bundle(tmp_path_factory.mktemp("bundle") / "bundle")
+
+
+def test_an_unknown_code_is_one_line_and_writes_nothing(bundle, tmp_path):
+    make_plan(tmp_path, bundle)
+    line = one_line_error(run_once("study", "session", STUDY, "P99-NOPE", "--root", str(tmp_path), "--port", "0"))
+    assert "P99-NOPE" in line and "not a code" in line
+    assert not (tmp_path / STUDY / "v1" / "sessions").exists()
+
+
+def test_a_loosened_bundle_is_refused_outside_a_pilot(bundle, tmp_path):
+    plan = make_plan(tmp_path, bundle, pilot=False)
+    code = plan["participants"][0]["code"]
+    line = one_line_error(run_once("study", "session", STUDY, code, "--root", str(tmp_path), "--port", "0"))
+    assert "looser than shipped" in line and "pilot" in line and BUNDLE_CONDITION in line
+    # refused before the session existed: the plan can still be replaced
+    assert not (tmp_path / STUDY / "v1" / "sessions").exists()
+
+
+def test_a_second_server_for_the_same_participant_is_refused(bundle, tmp_path):
+    plan = make_plan(tmp_path, bundle)
+    code = plan["participants"][0]["code"]
+    first, info = start_session(tmp_path, code)
+    try:
+        assert info["participant"] == code and info["version"] == 1 and info["cautions"]
+        line = one_line_error(run_once("study", "session", STUDY, code, "--root", str(tmp_path), "--port", "0"))
+        assert "already running" in line and str(first.pid) in line
+        # the other participant's session is not blocked by it
+        other = plan["participants"][1]["code"]
+        second, _ = start_session(tmp_path, other)
+        second.terminate()
+        assert second.wait(timeout=20) == 0
+    finally:
+        first.terminate()
+        assert first.wait(timeout=20) == 0
+    assert not (tmp_path / STUDY / "v1" / "sessions" / code / ".lock").exists()  # released on SIGTERM
+
+
+def test_a_bad_port_is_one_line(bundle, tmp_path):
+    make_plan(tmp_path, bundle)
+    line = one_line_error(run_once("study", "session", STUDY, "P01-X", "--root", str(tmp_path), "--port", "70000"))
+    assert "--port" in line and "0..65535" in line
+
+
+def test_the_study_page_carries_the_cautions_and_the_shared_drawing():
+    """One copy of the cautions (coreach.runtime.cautions, with the consent and study lines) and one drawing
+    code (the test-drive page's draw.js), both filled in when the page is served."""
+    from coreach.runtime.cautions import CAUTIONS, RECORDING_CAUTION, STUDY_CAUTION
+    from coreach.study.server import study_page
+
+    page = " ".join(study_page().decode().split())
+    assert "<!--CAUTIONS-->" not in page and "/*SHARED*/" not in page
+    for caution in (*CAUTIONS, RECORDING_CAUTION, STUDY_CAUTION):
+        assert " ".join(caution.split()).replace("'", "&#x27;") in page, caution
+    assert "function drawScene()" in page and "SIMULATION ONLY" in page
