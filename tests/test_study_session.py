@@ -105,12 +105,14 @@ def test_an_unknown_code_is_one_line_and_writes_nothing(bundle, tmp_path):
 
 
 def test_a_loosened_bundle_is_refused_outside_a_pilot(bundle, tmp_path):
-    plan = make_plan(tmp_path, bundle, pilot=False)
-    code = plan["participants"][0]["code"]
-    line = one_line_error(run_once("study", "session", STUDY, code, "--root", str(tmp_path), "--port", "0"))
-    assert "looser than shipped" in line and "pilot" in line and BUNDLE_CONDITION in line
-    # refused before the session existed: the plan can still be replaced
-    assert not (tmp_path / STUDY / "v1" / "sessions").exists()
+    """Refused when the plan is made (the bundle folder is verified then), before any session exists; a
+    registry reference is checked the same way when a session resolves it (coreach.study.rig)."""
+    line = one_line_error(run_once(
+        "study", "plan", STUDY, "--root", str(tmp_path),
+        f"study.conditions=[{{kind:bundle,ref:'{bundle}',name:{BUNDLE_CONDITION}}},{{kind:direct}}]",
+        "study.tasks=[{name:lamp,goal:lamp_switch}]", "study.pilot=false"))  # fmt: skip
+    assert "looser than shipped" in line and "pilot" in line
+    assert not (tmp_path / STUDY).exists()
 
 
 def test_a_second_server_for_the_same_participant_is_refused(bundle, tmp_path):

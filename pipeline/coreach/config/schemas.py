@@ -178,6 +178,9 @@ class StudyPopulationConfig:
     tremor_std: List[float] = field(default_factory=lambda: [0.0, 0.1])  # stick units, band-limited
     tremor_cutoff_hz: List[float] = field(default_factory=lambda: [1.0, 4.0])
     delay_steps: List[int] = field(default_factory=lambda: [0, 2])  # control steps of reaction delay
+
+
+@dataclass
 class StudyPlantedEffectConfig:
     """A fixed effect planted in simulated outcomes: seconds added to the completion time, log-odds added to
     the success logit (coreach.study.planted)."""

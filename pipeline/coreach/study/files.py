@@ -12,8 +12,10 @@ FOLDER_MODE = 0o700
 
 def private_folder(path: Path) -> Path:
     """Create `path` (and its parents) owner-only; an existing folder is narrowed to owner-only too."""
+    missing = [p for p in (path, *path.parents) if not p.exists()]
     path.mkdir(parents=True, exist_ok=True, mode=FOLDER_MODE)
-    os.chmod(path, FOLDER_MODE)  # mkdir's mode is masked by the umask, and an existing folder keeps its own
+    for p in [path, *missing]:  # the parents this call made are the study's too (sessions/, v<N>/)
+        os.chmod(p, FOLDER_MODE)  # mkdir's mode is masked by the umask, and an existing folder keeps its own
     return path
 
 

@@ -37,8 +37,8 @@ class _Bar:
         self.bar = None
 
     def __call__(self, total: int):
-        from rich.console import Console
-        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+        from rich.console import Console  # late: rich only when a bar is shown
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn  # late: rich only when a bar is shown
 
         self.bar = Progress(TextColumn("simulated studies"), BarColumn(), MofNCompleteColumn(),
                             TimeRemainingColumn(), console=Console(stderr=True))  # fmt: skip

@@ -40,7 +40,7 @@ def save_drive(drive, rows: list[dict], goal: int, episode: int, path: Path, ext
         "stick": _fixed([r["stick"] for r in rows], d),  # as the Session used it (box, deadband)
         "input_age_s": pa.array([r["age"] for r in rows], type=pa.float64()),
         "qd_decoder": _fixed([r["qd_decoder"] for r in rows], m.action_dim),
-        **{k: pa.array([r["flags"][k] for r in rows], type=pa.bool_()) for k in FLAG_COLUMNS},
+        **{k: pa.array([r["flags"].get(k, False) for r in rows], type=pa.bool_()) for k in FLAG_COLUMNS},
         "workspace_scale": pa.array([r["workspace_scale"] for r in rows], type=pa.float64()),
         "fault": pa.array([r["fault"] for r in rows], type=pa.string()),
         "belief": _fixed([r["belief"] for r in rows], g),
