@@ -71,6 +71,9 @@ def session_command(args: list[str], as_json: bool) -> int:
             server = StudyServer(session, rig, ns.host, ns.port)
         except OSError as exc:
             raise ConfigError(f"coreach study session {ns.host}:{ns.port}", f"cannot listen: {exc.strerror}") from None
+        # the handler is in place before the ready line, so a SIGTERM sent on reading it stops cleanly
+        stop = threading.Event()
+        signal.signal(signal.SIGTERM, lambda *_: stop.set())
         server.start()
         if as_json:
             print(json.dumps({"url": server.url, "participant": session.code, "version": session.version,
@@ -87,8 +90,6 @@ def session_command(args: list[str], as_json: bool) -> int:
                       "session goes on with the next step")  # fmt: skip
             print(f"open {server.url} (reloading the page ends a running trial as incomplete; Ctrl-C stops)",
                   flush=True)  # fmt: skip
-        stop = threading.Event()
-        signal.signal(signal.SIGTERM, lambda *_: stop.set())
         try:
             stop.wait()
         except KeyboardInterrupt:

@@ -62,6 +62,9 @@ def test_drive_command(args: list[str], as_json: bool) -> int:
         server = TestDriveServer(drive, opts["--host"], opts["--port"])
     except OSError as exc:
         raise ConfigError(f"coreach test-drive {opts['--host']}:{opts['--port']}", f"cannot listen: {exc.strerror}")
+    # the handler is in place before the ready line, so a SIGTERM sent on reading it stops cleanly
+    done = threading.Event()
+    signal.signal(signal.SIGTERM, lambda *_: done.set())
     server.start()
     if as_json:
         print(json.dumps({"url": server.url, "session_id": drive.session_id, "bundle": str(session.manifest.folder),
@@ -73,8 +76,6 @@ def test_drive_command(args: list[str], as_json: bool) -> int:
         print("\n".join(caution_lines(recording=True)))
         print(f"bundle {session.manifest.folder} verified (manifest sha256 {drive.manifest_sha256[:16]}...)")
         print(f"test drive: open {server.url} (recordings go to {drive.record_dir}/; Ctrl-C stops)", flush=True)
-    done = threading.Event()
-    signal.signal(signal.SIGTERM, lambda *_: done.set())
     try:
         done.wait()
     except KeyboardInterrupt:
