@@ -110,13 +110,21 @@ def test_mixed_model_and_gee_match_statsmodels_called_directly():
         assert e["effect"] == pytest.approx(fit.params[name], rel=1e-6)
         assert (e["lo"], e["hi"]) == pytest.approx(tuple(fit.conf_int().loc[name]), rel=1e-6)
     ours = models.success_model(frame, conditions, "direct")
-    gee = smf.gee("success ~ C(condition, Treatment(reference='direct')) + C(task)", "participant", frame,
-                  family=sm.families.Binomial(), cov_struct=sm.cov_struct.Exchangeable()).fit()  # fmt: skip
+    model = smf.gee("success ~ C(condition, Treatment(reference='direct')) + C(task)", "participant", frame,
+                    family=sm.families.Binomial(), cov_struct=sm.cov_struct.Exchangeable())  # fmt: skip
+    # statsmodels' Mancl-DeRouen bias-reduced sandwich, and scipy's t quantile on G - 1 = 11 degrees of freedom
+    gee, robust = model.fit(cov_type="bias_reduced"), model.fit()
+    t = stats.t(df=frame["participant"].nunique() - 1)
     for e in ours["effects"]:
         name = f"C(condition, Treatment(reference='direct'))[T.{e['condition']}]"
         assert e["effect"] == pytest.approx(gee.params[name], rel=1e-5)
         assert e["odds_ratio"] == pytest.approx(np.exp(gee.params[name]), rel=1e-5)
-        assert (e["lo"], e["hi"]) == pytest.approx(tuple(gee.conf_int().loc[name]), rel=1e-5)
+        half = t.ppf(0.975) * gee.bse[name]
+        assert (e["lo"], e["hi"]) == pytest.approx((gee.params[name] - half, gee.params[name] + half), rel=1e-5)
+        assert e["p"] == pytest.approx(2 * t.sf(abs(gee.params[name]) / gee.bse[name]), rel=1e-5)
+        # the correction widens the interval over the plain robust one (Mancl and DeRouen 2001: the sandwich
+        # is biased low with few clusters)
+        assert e["hi"] - e["lo"] > float(np.diff(robust.conf_int().loc[name])[0])
 
 
 def test_a_planted_effect_is_found_with_the_right_sign_and_covered():

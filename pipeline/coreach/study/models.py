@@ -6,6 +6,7 @@ import math
 import warnings
 
 import pandas as pd
+from scipy import stats
 import statsmodels.api as sm
 import statsmodels.formula.api as smf
 
@@ -60,9 +61,16 @@ def time_model(frame: pd.DataFrame, conditions: list[str], reference: str, outco
 
 
 def success_model(frame: pd.DataFrame, conditions: list[str], reference: str) -> dict:
-    """GEE of success (binomial family, logit link, exchangeable working correlation within a participant,
-    robust standard errors); condition effects in log-odds against `reference` and as odds ratios, 95%
-    intervals."""
+    """GEE of success (binomial family, logit link, exchangeable working correlation within a participant);
+    condition effects in log-odds against `reference` and as odds ratios, with 95% intervals and p-values
+    from the bias-reduced sandwich covariance (Mancl and DeRouen 2001, statsmodels' cov_type="bias_reduced")
+    and t quantiles on G - 1 degrees of freedom for G participants.
+
+    Why not the plain robust covariance with normal quantiles: a study has about a dozen participants
+    (clusters), and with so few the sandwich estimate is biased low; over 200 simulated studies with a planted
+    success effect its 95% intervals covered the true log-odds in only 90-91.5% of them, against 96.5% with
+    this correction (`coreach study power`, docs/study.md). Both pieces are the usual small-sample remedies for
+    GEE (the t(G - 1) reference distribution is common practice, e.g. in cluster-randomised trials)."""
     data = _design(frame, conditions, reference)
     data["success"] = data["success"].astype(float)
     rates = data.groupby("condition", observed=True)["success"].mean()
@@ -76,11 +84,15 @@ def success_model(frame: pd.DataFrame, conditions: list[str], reference: str) ->
         warnings.simplefilter("always")
         model = smf.gee(_formula("success", data), "participant", data, family=sm.families.Binomial(),
                         cov_struct=sm.cov_struct.Exchangeable())  # fmt: skip
-        fit = model.fit()
-    return {"fitted": True, "n": int(len(data)), "groups": int(data["participant"].nunique()),
-            "formula": _formula("success", data), "within_correlation": float(model.cov_struct.dep_params),
+        fit = model.fit(cov_type="bias_reduced")
+    groups = int(data["participant"].nunique())
+    quantile = stats.t.ppf(0.975, groups - 1)
+    conf = pd.DataFrame({0: fit.params - quantile * fit.bse, 1: fit.params + quantile * fit.bse})
+    pvalues = pd.Series(2 * stats.t.sf(abs(fit.params / fit.bse), groups - 1), index=fit.params.index)
+    return {"fitted": True, "n": int(len(data)), "groups": groups, "formula": _formula("success", data),
+            "within_correlation": float(model.cov_struct.dep_params), "covariance": "bias-reduced, t(G-1)",
             "warnings": sorted({str(w.message).splitlines()[0] for w in caught}),
-            "effects": _condition_rows(fit.params, fit.conf_int(), fit.pvalues, reference, exp=True)}  # fmt: skip
+            "effects": _condition_rows(fit.params, conf, pvalues, reference, exp=True)}  # fmt: skip
 
 
 def effects_frame(result: dict, model: str) -> pd.DataFrame:

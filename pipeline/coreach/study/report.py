@@ -105,7 +105,8 @@ def render(result: dict, plan: dict, version: int, warnings: list[str]) -> str:
     parts.append("<h2>Models over all trials</h2>")
     parts.append(_model(result["time_model"], "Completion time: linear mixed model, random intercept per "
                                               "participant (successful trials)", "seconds"))  # fmt: skip
-    parts.append(_model(result["success_model"], "Success: GEE, binomial, exchangeable within participant",
+    parts.append(_model(result["success_model"], "Success: GEE, binomial, exchangeable within participant; "
+                        "bias-reduced (Mancl-DeRouen) covariance, t(participants - 1) intervals",
                         "log-odds (and odds ratios)"))  # fmt: skip
     items = "".join(f"<li>{html.escape(c)}</li>" for c in cautions(recording=True, study=True))
     parts.append(f"<h2>Cautions</h2><ul>{items}</ul>")
