@@ -5,6 +5,7 @@ from __future__ import annotations
 import os
 import sys
 
+from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
 
@@ -15,10 +16,11 @@ def interactive() -> bool:
 
 def progress_bar(total: int, label: str):
     """(bar, update(done, total=None)): a rich bar with a count on a terminal, (None, None) in CI and pipes.
-    The caller stops the bar."""
+    The caller stops the bar. It draws on stderr: stdout belongs to a command's --json output."""
     if not interactive():
         return None, None
-    bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn())
+    bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
+                   console=Console(stderr=True))  # fmt: skip
     bar.start()
     task = bar.add_task(label, total=total)
     return bar, lambda done, total=None: bar.update(task, completed=done, total=total)

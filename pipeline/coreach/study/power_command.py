@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import json
-import os
-import sys
 from pathlib import Path
 
 from coreach.errors import ConfigError
@@ -25,26 +23,20 @@ def _counts(text: str) -> list[int]:
                                             "e.g. 6,12,18") from None  # fmt: skip
 
 
-def _interactive() -> bool:
-    """A rich bar for a person at a terminal; CI (CI=true) and pipes stay quiet."""
-    return sys.stderr.isatty() and os.environ.get("CI", "").lower() not in ("1", "true", "yes")
-
-
 class _Bar:
-    """A rich progress bar on stderr (stdout belongs to --json), started on first use, stopped on exit."""
+    """The shared progress bar (coreach.progress), made once the run knows its total of simulated studies."""
 
     def __init__(self):
         self.bar = None
 
     def __call__(self, total: int):
-        from rich.console import Console  # late: rich only when a bar is shown
-        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn  # late: rich only when a bar is shown
+        from coreach.progress import progress_bar  # late: rich only when a bar is shown
 
-        self.bar = Progress(TextColumn("simulated studies"), BarColumn(), MofNCompleteColumn(),
-                            TimeRemainingColumn(), console=Console(stderr=True))  # fmt: skip
-        self.bar.start()
-        task = self.bar.add_task("studies", total=total)
-        return lambda: self.bar.update(task, advance=1)
+        self.bar, update = progress_bar(total, "simulated studies")
+        if update is None:  # CI or a pipe: quiet
+            return None
+        done = iter(range(1, total + 1))
+        return lambda: update(next(done))
 
     def stop(self):
         if self.bar is not None:
@@ -66,13 +58,12 @@ def power_command(args: list[str], as_json: bool) -> int:
     unknown = [o for o in overrides if not o.startswith("study.planted.") or "=" not in o]
     if unknown:
         p.error(f"unrecognized argument {unknown[0]!r}; only study.planted.KEY=VALUE overrides are taken")
-    bar = _Bar() if _interactive() else None
+    bar = _Bar()
     try:
         summary = run_power_study(ns.root, ns.name, version=ns.version, studies=ns.studies, counts=ns.participants,
                                   seed=ns.seed, out=ns.out, overrides=overrides, progress=bar)  # fmt: skip
     finally:
-        if bar:
-            bar.stop()
+        bar.stop()
     if as_json:
         print(json.dumps({**summary, "cautions": cautions(recording=False, study=True)}, indent=2, default=str))
         return 0
