@@ -10,7 +10,6 @@ import dataclasses
 import math
 
 import numpy as np
-import pytest
 
 from coreach.world.reach_check import ReachOptions, check_reach, suggest_base_shift
 from coreach.world.scenario import Goal, Scenario, load_scenario

@@ -11,7 +11,6 @@ no staging folder and no RUNNING release run; a following release must then succ
 from __future__ import annotations
 
 import json
-import os
 import shutil
 import signal
 import subprocess

@@ -8,7 +8,6 @@ import shutil
 from pathlib import Path
 from types import SimpleNamespace
 
-import numpy as np
 import pytest
 import torch
 from mlflow.tracking import MlflowClient

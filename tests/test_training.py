@@ -9,7 +9,7 @@ from mlflow.tracking import MlflowClient
 
 from coreach.decoder.policy import DecoderPolicy
 from coreach.tracking import resolve_uri
-from coreach.training.data import replay, split_by_episode
+from coreach.training.data import replay
 from coreach.training.run import prepare, train
 
 

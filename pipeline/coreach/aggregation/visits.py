@@ -79,7 +79,6 @@ def visits_from_record(record: RolloutRecord, plan: EpisodePlan, robot, position
         in_seg = segment == s
         reached |= in_seg & (torch.cummax((at & in_seg).long(), dim=1).values > 0)
     keep = visited_mask(record)
-    G = targets.shape[1]
     per_step = lambda x: x[:, None].expand(E, T, *x.shape[1:])[keep]  # noqa: E731
     return Visits(
         q=q_all[keep], ee_pos=pos[keep], ee_rot=rot[keep], goal=goal[keep], fine_phase=reached[keep],

@@ -7,11 +7,9 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
 if TYPE_CHECKING:  # keep this module importable without torch (the runtime reads it)
-    import numpy as np
     from torch import Tensor
 
     from coreach.episodes.episode_set import EpisodeSet  # the module itself: the package's loader reads Robot
-    from coreach.world.scenario import Scenario
 
 
 @runtime_checkable

@@ -58,7 +58,7 @@ def cached(client, mv, root: Path) -> Path:
     folder = root / mv.name / f"v{mv.version}"
     if folder.is_dir():
         _check(folder, expected, f"{where}: cached copy {folder}",
-               f"; it is only a cache of the tracking store: delete the folder and it is downloaded again")
+               "; it is only a cache of the tracking store: delete the folder and it is downloaded again")
         return folder
     folder.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=staging_prefix(str(mv.version), run_id) + "fetch.", suffix=PARTIAL,

@@ -14,7 +14,7 @@ import torch
 from torch import Tensor
 from torch.utils.data import DataLoader, Sampler
 
-from coreach.context import ContextSpec, build_context
+from coreach.context import build_context
 from coreach.control.belief_tracker import track
 from coreach.episodes import EpisodeSet
 from coreach.world.geometry import quat_to_matrix
