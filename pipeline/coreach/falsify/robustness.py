@@ -9,7 +9,12 @@ Two margins, the smaller wins:
   switch). Near the boundary the two sides meet at 0: finishing just in time and missing by a hair score about
   the same, which is what lets a search climb toward failures instead of sampling blindly;
 - the separation: the closest any link came to furniture, to another link, or to the person's keep-out zone,
-  over SEPARATION_SCALE, capped at 1; contact or an intrusion into the keep-out zone is negative.
+  over the world's clearance (the distance the safety filter is built to hold, 2 cm on the bedside shelf),
+  capped at 1; contact or an intrusion into the keep-out zone is negative. Once the filter holds its clearance
+  the episode counts as fully robust on this side. A cap at 5 cm made a self-distance of 3.7 cm, which the
+  bedside shelf's arm shows in about half of all episodes whatever the operator does, the smaller margin of
+  most successful episodes: the score then hid the task margin behind a plateau, and a search toward the
+  lamp switch settled on that plateau in 2 of 5 seeds instead of descending to the failures (docs/falsify.md).
 A pass/fail count would say only whether a failure was hit; the score also says how close each miss was.
 """
 
@@ -20,9 +25,8 @@ from torch import Tensor
 
 from coreach.vetting.records import RolloutRecord
 
-__all__ = ["robustness", "SEPARATION_SCALE", "FLOOR"]
+__all__ = ["robustness", "FLOOR"]
 
-SEPARATION_SCALE = 0.05  # m: a separation margin of 5 cm counts as fully robust (common practice: 2x clearance)
 FLOOR = 1e-3  # the smallest magnitude of a failure's score, so that a failed episode is never scored 0
 
 
@@ -48,5 +52,5 @@ def robustness(record: RolloutRecord) -> dict[str, Tensor]:
         closest = torch.stack([ex["sep_furniture"].to(torch.float64).amin(-1),
                                ex["sep_self"].to(torch.float64).amin(-1),
                                ex["sep_person"].to(torch.float64).amin(-1) - float(world["keep_out"])]).amin(0)
-        separation = (closest / SEPARATION_SCALE).clamp(max=1.0)  # inf (nothing measured) -> 1
+        separation = (closest / float(world["clearance"])).clamp(max=1.0)  # inf (nothing measured) -> 1
     return {"score": torch.minimum(task, separation), "task": task, "separation": separation}

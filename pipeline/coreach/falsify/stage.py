@@ -230,20 +230,23 @@ def _log(cfg: DictConfig, summary: dict, source: str, out: Path) -> str:
     return rid
 
 
-def gate_search(space_ref: str, budget: int, batch: int, seed: int, robot, interface, belief, limits) -> dict:
-    """The release gate's falsification step: TPE over the space with the budget; what the model card records
-    (space, budget, optimizer, the failures found and the worst case)."""
+def gate_search(space_ref: str, budget: int, batch: int, seed: int, robot, interface, belief, limits,
+                optimizer: str = "tpe") -> dict:
+    """The release gate's falsification step: the optimizer (a TPE) over the space with the budget; what the
+    model card records (space, budget, optimizer, the failures found and the worst case)."""
     if not isinstance(budget, int) or isinstance(budget, bool) or budget < 1:
         raise ConfigError("option falsification.budget", f"expected an integer >= 1 (or enabled=false), got {budget!r}")
+    if optimizer not in SAMPLERS or optimizer == "random":
+        raise ConfigError("option falsification.optimizer", f"expected tpe or tpe_per_goal, got {optimizer!r}")
     t0 = time.perf_counter()
     node, where = space_node(space_ref, "option falsification.space")
     base = load_suite(str(node.get("suite", "goal-switch")))
     space = space_from_config(node, base.goal_names, where)
     base.validate(robot, spec_n_goals=interface.policy_.spec.n_goals)
     evaluate = Evaluator(base, robot, interface, belief, limits, seed)
-    result = search(space, evaluate, budget, batch, seed, "tpe", robot.dof)
+    result = search(space, evaluate, budget, batch, seed, optimizer, robot.dof)
     worst = result.worst
-    return {"space": space.to_dict(), "budget": budget, "optimizer": "tpe (optuna)", "seed": seed,
+    return {"space": space.to_dict(), "budget": budget, "optimizer": f"{optimizer} (optuna)", "seed": seed,
             "scenarios": len(result.evaluations), "failures": len(result.failures),
             "worst": {"robustness": worst.score, "case": worst.case, "cause": worst.info.get("cause", "")},
             "seconds": time.perf_counter() - t0}  # fmt: skip
