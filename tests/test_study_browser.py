@@ -1,5 +1,5 @@
 """`coreach study session` end to end: the real command in a subprocess, its page in headless Chromium (Debian's,
-driven by Playwright's Python API) with the keyboard; a reload and a killed server mid-trial; what is stored.
+driven by Playwright's Python API) with the keyboard, and with a scripted gamepad; a reload and a killed server mid-trial; what is stored.
 
 The plan is tiny (two conditions, the lamp task, one practice and one measured trial per block, trials ending
 at 3 s), so every trial ends by the time limit while the test waits.
@@ -190,6 +190,55 @@ def test_a_participant_session_in_the_browser(study, browser):
             assert not any(d in data for d in BROWSER_DETAILS), path
     assert sorted(p.name for p in (folder / "drives").iterdir()) == sorted(
         [f"{first}-practice-1.parquet", f"{second}-practice-1.parquet", f"{second}-lamp-1.parquet"])
+
+
+# One scripted pad replaces navigator.getGamepads (Playwright cannot plug in a gamepad): the browser's Gamepad API
+# is the input, the page's own code reads it unchanged. Buttons follow the W3C Gamepad standard mapping.
+PAD_SCRIPT = """
+window.pad = {id: "scripted pad", index: 0, connected: true, mapping: "standard", timestamp: 0, axes: [0, 0, 0, 0],
+              buttons: Array.from({length: 16}, () => ({pressed: false, touched: false, value: 0}))};
+window.pad.press = i => {
+  window.pad.buttons[i] = {pressed: true, touched: true, value: 1};
+  setTimeout(() => { window.pad.buttons[i] = {pressed: false, touched: false, value: 0}; }, 300);
+};
+Object.defineProperty(Navigator.prototype, "getGamepads", {configurable: true, value: () => [window.pad]});
+"""
+
+
+def test_a_gamepad_drives_the_study_page(study, browser, tmp_path):
+    """With a gamepad: the bottom face button (buttons[0]) starts the trial, the left stick moves the arm (a stick
+    pushed forward reads negative on the pad, positive at the arm), the left face button (buttons[2]) switches
+    direct control's mode, and the page says which input drives."""
+    _, bundle, _ = study
+    plan = make_plan(tmp_path, bundle)
+    direct = next(c["letter"] for c in plan["conditions"] if c["kind"] == "direct")
+    code = next(p["code"] for p in plan["participants"] if p["order"][0] == direct)
+    proc, info = start_session(tmp_path, code)
+    try:
+        page = browser.new_page()
+        page.add_init_script(PAD_SCRIPT)
+        page.goto(info["url"])
+        page.wait_for_selector("#consent.on")
+        page.check("#consent-check")
+        page.click("#consent-button")
+        page.wait_for_selector("#trial.on")
+        _wait(page, "document.getElementById('input').textContent === 'gamepad connected: gamepad'")
+        page.evaluate("window.pad.press(0)")
+        _wait(page, "window.study.view().running")
+        page.evaluate("window.pad.axes[0] = 1; window.pad.axes[1] = -1")
+        _wait(page, "window.study.state() && window.study.state().input_source === 'gamepad' && "
+                    "window.study.state().stick_received[0] === 1 && window.study.state().stick_received[1] === 1")
+        page.evaluate("window.pad.press(2)")
+        _wait(page, "window.study.view().trial && window.study.view().trial.mode === 2")
+        # the stick at rest and a key held: the keyboard drives
+        page.evaluate("window.pad.axes[0] = 0; window.pad.axes[1] = 0")
+        page.keyboard.down("ArrowLeft")
+        _wait(page, "window.study.state().input_source === 'keyboard' && window.study.state().stick_received[0] === -1")
+        page.keyboard.up("ArrowLeft")
+        page.close()
+    finally:
+        proc.terminate()
+        proc.wait(timeout=20)
 
 
 def test_a_killed_server_resumes_at_the_next_step(study):

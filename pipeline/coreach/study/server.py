@@ -245,7 +245,8 @@ class StudyServer:
         """A stick sample; it reaches the arm only while a trial runs (between trials nothing moves)."""
         run = self.run
         if run is not None:
-            run.drive.set_stick(body.get("stick", []), "page")
+            source = body.get("source")  # which device drove, recorded with the drive; nothing else of it
+            run.drive.set_stick(body.get("stick", []), source if source in ("gamepad", "keyboard") else "page")
         return {"study": self.view(), "state": self.state()}
 
     def on_mode(self, body: dict) -> dict:

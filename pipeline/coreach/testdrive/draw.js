@@ -8,8 +8,25 @@ const FURNITURE_COLOUR = "#8c8478", PERSON_COLOUR = "#7a3fb0", PERSON_FILL = "rg
 const KEEP_OUT_COLOUR = "#9a6fcc", ZONE_COLOUR = "#d2bdea";
 const GOAL_COLOURS = ["#d33", "#36c", "#2a2", "#c6c", "#e90", "#0aa", "#963", "#666", "#39f"];
 
-// ---------------------------------------------------------------- input: the keyboard stick
+// ---------------------------------------------------------------- input: the gamepad and the keyboard stick
 function deadband(v, w) { const m = (Math.abs(v) - w) / (1 - w); return m > 0 ? Math.sign(v) * Math.min(m, 1) : 0; }
+// The first gamepad as a deadbanded stick and its buttons (null: none plugged in). `settings`: the axes to
+// read, whether a pushed-forward stick reads negative (most pads), the deadband.
+const PAD_DEFAULTS = {ax: 0, ay: 1, invertY: true, deadband: 0.1};
+function readPad(settings) {
+  const pads = navigator.getGamepads ? Array.from(navigator.getGamepads()).filter(p => p) : [];
+  if (!pads.length) return null;
+  const p = pads[0];
+  const x = deadband(p.axes[settings.ax] || 0, settings.deadband);
+  const y = deadband(p.axes[settings.ay] || 0, settings.deadband);
+  return {id: p.id, stick: [x, settings.invertY ? -y : y],
+          pressed: p.buttons.map(b => (typeof b === "object" ? b.pressed : b > 0.5))};
+}
+// Gamepad first, the keyboard when the pad's stick rests and a key is held: [stick, source]
+function chooseStick(pad, keys) {
+  const useKeys = !pad || (pad.stick[0] === 0 && pad.stick[1] === 0 && (keys[0] || keys[1]));
+  return useKeys ? [keys, "keyboard"] : [pad.stick, "gamepad"];
+}
 function readKeys() {
   const k = c => S.keys.has(c) ? 1 : 0;
   return [k("ArrowRight") + k("KeyD") - k("ArrowLeft") - k("KeyA"), k("ArrowUp") + k("KeyW") - k("ArrowDown") - k("KeyS")];
