@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import shutil
 from pathlib import Path
 
 import pytest
@@ -75,3 +76,23 @@ def third_party_robots() -> Path:
             pytest.fail("example-robot-data is not installed (pip install -e '.[test]')")
         pytest.skip("example-robot-data is not installed")
     return Path(dist.locate_file("cmeel.prefix/share/example-robot-data/robots"))
+
+
+# The browser tests' Chromium: Debian's package, driven headless by Playwright's Python API (one launch rule for
+# every page under test). In CI a missing browser or Playwright fails the test; elsewhere it is skipped.
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+@pytest.fixture(scope="module")
+def browser():
+    try:
+        from playwright.sync_api import sync_playwright
+    except ImportError:
+        pytest.fail("playwright is not installed") if os.environ.get("CI") else pytest.skip("playwright missing")
+    if CHROMIUM is None:
+        # .ci/run installs Debian's chromium; in CI a missing browser is a failure, never a skip
+        pytest.fail("chromium is not installed") if os.environ.get("CI") else pytest.skip("chromium missing")
+    with sync_playwright() as p:
+        b = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=["--no-sandbox"])
+        yield b
+        b.close()

@@ -9,9 +9,7 @@ from __future__ import annotations
 
 import csv
 import json
-import os
 import re
-import shutil
 import stat
 import time
 import urllib.request
@@ -19,23 +17,13 @@ from pathlib import Path
 
 import pytest
 
-from test_study_session import BUNDLE_CONDITION, STUDY, make_plan, start_session, study_bundle
+from study_fixtures import study_bundle
+from test_study_session import BUNDLE_CONDITION, STUDY, make_plan, start_session
 
 pytestmark = pytest.mark.slow
 
-CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 TLX_KEYS = ("mental", "physical", "temporal", "performance", "effort", "frustration")
 BROWSER_DETAILS = (b"Mozilla", b"HeadlessChrome", b"127.0.0.1")  # what a request carries; a session stores none
-
-
-def _need_browser():
-    try:
-        import playwright.sync_api  # noqa: F401  (only whether it imports)
-    except ImportError:
-        pytest.fail("playwright is not installed") if os.environ.get("CI") else pytest.skip("playwright missing")
-    if CHROMIUM is None:
-        # .ci/run installs Debian's chromium; in CI a missing browser is a failure, never a skip
-        pytest.fail("chromium is not installed") if os.environ.get("CI") else pytest.skip("chromium missing")
 
 
 @pytest.fixture(scope="module")
@@ -44,17 +32,6 @@ def study(tmp_path_factory):
     bundle = study_bundle(base / "bundle")
     plan = make_plan(base / "studies", bundle)
     return base / "studies", bundle, plan
-
-
-@pytest.fixture(scope="module")
-def browser():
-    _need_browser()
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as p:
-        b = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=["--no-sandbox"])
-        yield b
-        b.close()
 
 
 def _call(url: str, path: str, body: dict | None = None) -> dict:

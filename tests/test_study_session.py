@@ -1,6 +1,6 @@
 """`coreach study session`: bad input through the real command (one line, exit 2, nothing written), and the
-helpers the browser test shares (a small untrained bundle on the bedside shelf's goals, a tiny plan, the
-server started as the real command in a subprocess)."""
+helpers the browser test shares (a tiny plan on tests/study_fixtures.py's untrained bundle, the server
+started as the real command in a subprocess)."""
 
 from __future__ import annotations
 
@@ -11,37 +11,13 @@ import sys
 from pathlib import Path
 
 import pytest
-import torch
 
 from coreach import cli
-from coreach.context import ContextSpec
-from coreach.decoder.policy import DecoderPolicy
-from coreach.release.bundle_writer import write_bundle
-from coreach.release.metadata import _nominal_layout, _world_section
-from coreach.world.scenario import load_scenario
-from coreach.world.urdf_arm import SEVEN_JOINT_ARM_HOME, UrdfArm, shipped_urdf
+from study_fixtures import study_bundle
 
 ROOT = Path(__file__).resolve().parents[1]
 STUDY = "bedside_shelf"
 BUNDLE_CONDITION = "candidate"  # the bundle condition's name: the page must never show it
-
-
-def study_bundle(out: Path) -> Path:
-    """An untrained decoder released with write_bundle on the bedside shelf's goals and bodies (no training:
-    the session, not the decoder, is tested). Its gate is empty, which counts as loosened: plans using it
-    must be pilots."""
-    torch.manual_seed(0)
-    scene = load_scenario("bedside_shelf")
-    spec = ContextSpec(dof=7, n_goals=len(scene.goal_names))
-    policy = DecoderPolicy.build({"_target_": "coreach_plugins.model.cvae.BeliefCVAE", "latent_dim": 2,
-                                  "hidden": [32, 32]}, spec, 7)  # fmt: skip
-    policy.set_normalisation(torch.randn(400, spec.width) * 0.5, torch.randn(400, 7) * 0.3)
-    meta = {"goal_names": scene.goal_names, "nominal_layout": _nominal_layout(scene),
-            "dataset_fingerprint": "sha256:feed", "training_run_id": "run-study", "git_commit": "0" * 40,
-            "q_home": list(SEVEN_JOINT_ARM_HOME),
-            "safety": {"workspace_min": [-0.2, -0.8, 0.0], "workspace_max": [1.0, 0.8, 1.2]},
-            "parity_n": 200, "world": _world_section(UrdfArm(), scene)}  # fmt: skip
-    return write_bundle(out, policy, shipped_urdf(), meta, {}, {"passed": True})
 
 
 def make_plan(root: Path, bundle: Path, *overrides: str, pilot: bool = True, participants: int = 2) -> dict:

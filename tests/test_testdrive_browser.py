@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import os
 import re
 import shutil
@@ -35,21 +34,10 @@ pytestmark = pytest.mark.slow
 
 ROOT = Path(__file__).resolve().parents[1]
 SCREENSHOT = ROOT / "reports" / "testdrive.png"
-CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 GOALS = ["cup", "switch", "drawer", "bottle", "door", "book"]
 ARM_RGB = (0x4A, 0x5A, 0x70)  # the page's link colour
 FURNITURE_RGB = (0x8C, 0x84, 0x78)  # the page's furniture and person outline colours
 PERSON_RGB = (0x7A, 0x3F, 0xB0)
-
-
-def _need_browser():
-    try:
-        import playwright.sync_api  # noqa: F401  (only whether it imports)
-    except ImportError:
-        pytest.fail("playwright is not installed") if os.environ.get("CI") else pytest.skip("playwright missing")
-    if CHROMIUM is None:
-        # .ci/run installs Debian's chromium; in CI a missing browser is a failure, never a skip
-        pytest.fail("chromium is not installed") if os.environ.get("CI") else pytest.skip("chromium missing")
 
 
 @pytest.fixture(scope="module")
@@ -114,17 +102,6 @@ def server(bundle, tmp_path_factory):
     yield info["url"], info, drives
     proc.terminate()
     proc.wait(timeout=20)
-
-
-@pytest.fixture(scope="module")
-def browser():
-    _need_browser()
-    from playwright.sync_api import sync_playwright
-
-    with sync_playwright() as p:
-        b = p.chromium.launch(executable_path=CHROMIUM, headless=True, args=["--no-sandbox"])
-        yield b
-        b.close()
 
 
 def _get(url: str, path: str) -> dict:
