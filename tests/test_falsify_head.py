@@ -171,3 +171,19 @@ def test_a_bad_head_shift_space_is_one_line_and_exit_2(tmp_path, override, words
               tmp_path)  # fmt: skip
     assert res.returncode == 2 and len(res.stderr.strip().splitlines()) == 1, res.stderr
     assert words in res.stderr and "Traceback" not in res.stderr
+
+
+def test_the_report_row_and_the_model_card_print_the_head_shift():
+    from coreach.falsify.search import Evaluation
+    from coreach.falsify.stage import _failure_row
+    from coreach.runtime.model_card import model_card
+
+    case = {"goal": "bottle", "switch_to": "book", "switch_at": 0.5, "layout_shift": {}, "start_offset": [],
+            "body_shift": {"head": [0.03, -0.01, 0.0]}, "operator": {}}  # fmt: skip
+    row = _failure_row("tpe", Evaluation(0, case, -0.2, {"cause": "oscillating"}))
+    assert row[-1] == "head [+0.030, -0.010, +0.000]"
+    found = {"space": {"name": "s", "suite": "goal-switch", "bounds": {"head_shift_m": [-0.05, 0.05]}}, "budget": 10,
+             "optimizer": "tpe (optuna)", "seed": 0, "failures": 1,
+             "worst": {"robustness": -0.2, "case": case, "cause": "oscillating"}}  # fmt: skip
+    assert "switching to book at 0.50 of the horizon, head moved by [+0.030, -0.010, +0.000] m (oscillating)" in \
+        model_card({"name": "m", "falsification": found}, {}, {})
