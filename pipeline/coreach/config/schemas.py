@@ -53,13 +53,15 @@ class CaseOperatorConfig:
 @dataclass
 class CaseConfig:
     """One explicit episode of a suite (a counterexample found by `coreach falsify`, or a case a lab writes):
-    the goals, the switch, the layout shift of each goal and the start pose, and the operator's values."""
+    the goals, the switch, the layout shift of each goal and the start pose, the translation of named scene
+    bodies (furniture or the person's), and the operator's values."""
 
     goal: str = "???"  # initial goal
     switch_to: Optional[str] = None  # null: no switch
     switch_at: Optional[float] = number(None, 0.0, 1.0, "of the horizon", optional=True)
     layout_shift: Dict[str, Any] = field(default_factory=dict)  # goal name -> [dx, dy, dz] m
     start_offset: List[Any] = field(default_factory=list)  # rad per joint, added to the start pose; [] = none
+    body_shift: Dict[str, Any] = field(default_factory=dict)  # scene body name -> [dx, dy, dz] m (e.g. the head)
     operator: CaseOperatorConfig = field(default_factory=CaseOperatorConfig)
     robustness: Optional[float] = None  # what the search measured for it (a note; vetting measures anew)
 
@@ -144,6 +146,7 @@ class FalsifySpaceConfig:
     goals_to: Optional[List[str]] = None  # null = every goal of the scene; a case switches to another goal
     switch: bool = True  # false: cases without a goal switch
     bounds: Dict[str, Any] = field(default_factory=dict)  # parameter -> [low, high] (checked by coreach.falsify.space)
+    head_body: str = "head"  # the scene body (the person's head) that bounds.head_shift_m moves
 
 
 

@@ -69,7 +69,8 @@ class Primitive:
 @dataclass
 class PackedBodies:
     """O primitives as arrays, the form the distance functions take: rotations [O, 3, 3] (body -> world),
-    centres [O, 3], half extents [O, 3], radii [O], folded [O] bool (cylinders)."""
+    centres [O, 3], half extents [O, 3], radii [O], folded [O] bool (cylinders). `shifted` gives the same
+    bodies translated per episode (centres [E, O, 3]); only translations vary, so rotations stay shared."""
 
     names: list[str]
     rot: np.ndarray
@@ -95,14 +96,28 @@ class PackedBodies:
     def __len__(self) -> int:
         return len(self.names)
 
+    def shifted(self, shift) -> PackedBodies:
+        """The same bodies translated per episode by shift [E, O, 3] (m, world frame): centres [E, O, 3].
+        point_distances then takes points [E, S, 3] (one leading episode axis) and measures episode e's points
+        against episode e's bodies. The body-frame centres are the unshifted ones plus the shift's (R^T s), so
+        a zero shift gives exactly the unshifted numbers."""
+        shift = np.asarray(shift, dtype=np.float64)
+        out = PackedBodies(self.names, self.rot, self.centre + shift, self.half, self.radius, self.folded)
+        if self.centre_local is not None:
+            # [E, 1, O, 3]: broadcast over the S points of each episode in point_distances' one-product path
+            out.centre_local = (self.centre_local + (shift[..., None, :] @ self.rot)[..., 0, :])[:, None]
+        return out
+
     def take(self, index) -> PackedBodies:
         """Bodies index [K] as K groups of one ([K, 1, 1, ...] arrays): with points [K, 1, 3], point_distances
-        then measures point k against body index[k] only."""
+        then measures point k against body index[k] only. Per-episode bodies (`shifted`) keep their episode
+        axis: centres [E, K, 1, 1, 3], against points [E, K, 1, 3]."""
         keys = ("rot", "centre", "half", "radius", "folded", "keep", "radial", "planar")
         out = object.__new__(PackedBodies)
         out.names, out.rot_cat, out.centre_local = [], None, None  # [K, 1, 1, 3, 3] rotations: the per-point path
         for k in keys:
-            setattr(out, k, getattr(self, k)[index][:, None, None])
+            v = getattr(self, k)
+            setattr(out, k, v[:, index][:, :, None, None] if k == "centre" and v.ndim == 3 else v[index][:, None, None])
         return out
 
     def as_namespace(self, xp, like) -> PackedBodies:
@@ -163,7 +178,7 @@ def max3(x, xp):
 def point_distances(points, bodies: PackedBodies, grad: bool = True):
     """Signed distances from points [..., S, 3] (world frame) to every body: (d [..., S, O] m, negative
     inside; grad [..., S, O, 3] unit vectors, world frame, d's gradient with respect to the point, or None
-    when `grad` is false)."""
+    when `grad` is false). With per-episode bodies (PackedBodies.shifted) the points are [E, S, 3]."""
     xp = namespace(points)
     b = bodies.as_namespace(xp, points)
     # body frame: p_local = R^T (p - t), as the row vector (p - t)^T R; [..., S, O, 3]

@@ -32,6 +32,7 @@ robot, torch in vetting; `qd` may carry extra leading candidate axes ([..., B, n
 
 from __future__ import annotations
 
+import copy
 import threading
 from dataclasses import dataclass, field, replace
 
@@ -118,6 +119,25 @@ class World:
     @property
     def body_names(self) -> list[str]:
         return self.bodies.names
+
+    def shifted(self, offsets: dict) -> World:
+        """This world with named bodies translated per episode, for a batch of E episodes (vetting):
+        offsets {body name: [E, 3]} (m, world frame). The copy's bodies hold centres [E, O, 3]
+        (PackedBodies.shifted), so `measure` takes sphere centres [E, S, 3], episode e against its own bodies;
+        everything else (rule, settings, spheres) is shared. Unnamed bodies stay put, and a zero shift gives
+        exactly the unshifted distances. Not for `set_poses` (that repacks the unshifted bodies)."""
+        index = {name: i for i, name in enumerate(self.bodies.names)}
+        unknown = sorted(set(offsets) - set(index))
+        if unknown:
+            raise ValueError(f"unknown bodies {unknown}; the world has {self.bodies.names}")
+        E = len(np.asarray(next(iter(offsets.values()))))
+        shift = np.zeros((E, len(self.bodies), 3))
+        for name, value in offsets.items():
+            shift[:, index[name]] = np.asarray(value, dtype=np.float64).reshape(E, 3)
+        out = copy.copy(self)
+        out._lock = threading.Lock()
+        out.bodies = self.bodies.shifted(shift)
+        return out
 
     def set_poses(self, poses: dict[str, tuple]) -> None:
         """Move named bodies: {name: (xyz, rpy)} in the world frame (rpy in rad). The new bodies are built

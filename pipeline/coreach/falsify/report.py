@@ -77,7 +77,8 @@ def write_html(out_dir: Path, title: str, meta: dict, results: list[SearchResult
                       "lowest robustness"],
                      [[r.sampler, str(r.seed), str(len(r.evaluations)), str(len(r.failures)),
                        str(r.first_failure or "none"), f"{r.worst.score:.3f}"] for r in results])  # fmt: skip
-    failures = _table(["sampler", "robustness", "goal", "switch to", "at", "cause", "operator", "layout shift (m)"],
+    failures = _table(["sampler", "robustness", "goal", "switch to", "at", "cause", "operator", "layout shift (m)",
+                       "body shift (m)"],
                       failure_rows) if failure_rows else "<p>No scenario failed within the budget.</p>"  # fmt: skip
     page = f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>{html.escape(title)}</title><style>{STYLE}</style></head>

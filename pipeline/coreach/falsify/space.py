@@ -39,6 +39,7 @@ PARAMETERS: dict[str, Parameter] = {
     "delay_steps": Parameter("int", "control steps", 0, 100, "reaction delay"),
     "layout_shift_m": Parameter("float", "m", -0.2, 0.2, "per goal and axis, added to the approach point"),
     "start_offset_rad": Parameter("float", "rad", -math.pi, math.pi, "per joint, added to the start pose"),
+    "head_shift_m": Parameter("float", "m", -0.2, 0.2, "per axis, moves the person's head body (`head_body`)"),
 }
 
 # A point of the space is drawn through this: (name, low, high, kind) -> value. optuna's trial.suggest_float /
@@ -56,13 +57,14 @@ class Space:
     goals_to: list[str]
     switch: bool
     bounds: dict[str, tuple[float, float]]
+    head_body: str = "head"  # the scene body head_shift_m moves
 
     def case(self, pick: Callable[[str, list[str]], str], suggest: Suggest, dof: int) -> dict:
         """One case (CaseConfig as plain data) from a point of the space. A switch to the start goal itself
         becomes a switch to the next goal in `goals_to`, so every case with a switch changes goal."""
         goal = pick("goal_from", self.goals_from)
         case: dict[str, Any] = {"goal": goal, "switch_to": None, "switch_at": None, "layout_shift": {},
-                                "start_offset": [], "operator": {}}  # fmt: skip
+                                "start_offset": [], "body_shift": {}, "operator": {}}  # fmt: skip
         if self.switch:
             to = pick("goal_to", self.goals_to)
             if to == goal:
@@ -82,16 +84,21 @@ class Space:
         if "start_offset_rad" in self.bounds:
             lo, hi = self.bounds["start_offset_rad"]
             case["start_offset"] = [suggest(f"start_{j}", lo, hi, "float") for j in range(dof)]
+        if "head_shift_m" in self.bounds:
+            lo, hi = self.bounds["head_shift_m"]
+            case["body_shift"][self.head_body] = [suggest(f"head_{a}", lo, hi, "float") for a in AXES]
         return case
 
     def to_dict(self) -> dict:
         return {"name": self.name, "suite": self.suite, "goals_from": self.goals_from, "goals_to": self.goals_to,
-                "switch": self.switch, "bounds": {k: list(v) for k, v in self.bounds.items()}}  # fmt: skip
+                "switch": self.switch, "bounds": {k: list(v) for k, v in self.bounds.items()},
+                "head_body": self.head_body}  # fmt: skip
 
 
-def space_from_config(node: Any, goal_names: list[str], where: str) -> Space:
+def space_from_config(node: Any, goal_names: list[str], where: str, body_names: list[str] | None = None) -> Space:
     """A Space from the composed `falsify` node (or plain data), checked: known parameters, bounds [low, high]
-    with low < high inside each parameter's hard limits, goals of the scene. One ConfigError per problem."""
+    with low < high inside each parameter's hard limits, goals of the scene, and with head_shift_m a
+    `head_body` among the scene's `body_names` (checked when given). One ConfigError per problem."""
     data = OmegaConf.to_container(node, resolve=True) if isinstance(node, DictConfig) else node
     o = on_schema(FalsifySpaceConfig, data, where)
     bounds = {}
@@ -126,7 +133,10 @@ def space_from_config(node: Any, goal_names: list[str], where: str) -> Space:
         raise ConfigError(f"{where}.goals_to", "a space with switches needs at least 2 goals to switch to")
     if not o["switch"] and "switch_at" in bounds:
         raise ConfigError(f"{where}.bounds.switch_at", "the space has switch: false; leave switch_at out")
-    return Space(o["name"], o["suite"], goals["goals_from"], goals["goals_to"], bool(o["switch"]), bounds)
+    head = o["head_body"]
+    if "head_shift_m" in bounds and body_names is not None and head not in body_names:
+        raise ConfigError(f"{where}.head_body", f"unknown body {head!r}; the scene has {list(body_names)}")
+    return Space(o["name"], o["suite"], goals["goals_from"], goals["goals_to"], bool(o["switch"]), bounds, str(head))
 
 
 def space_node(ref: str, where: str) -> tuple[dict, str]:

@@ -104,8 +104,10 @@ def _failure_row(sampler: str, e) -> list[str]:
     c = e.case
     op = ", ".join(f"{k} {v:.3g}" for k, v in c["operator"].items())
     shift = "; ".join(f"{g} [{', '.join(f'{x:+.3f}' for x in v)}]" for g, v in c["layout_shift"].items())
+    moved = "; ".join(f"{b} [{', '.join(f'{x:+.3f}' for x in v)}]" for b, v in c.get("body_shift", {}).items())
     at = "–" if c["switch_at"] is None else f"{c['switch_at']:.2f}"
-    return [sampler, f"{e.score:.3f}", c["goal"], c["switch_to"] or "–", at, e.info.get("cause", ""), op, shift]
+    return [sampler, f"{e.score:.3f}", c["goal"], c["switch_to"] or "–", at, e.info.get("cause", ""), op, shift,
+            moved or "–"]
 
 
 def falsify(cfg: DictConfig) -> dict:
@@ -120,7 +122,7 @@ def falsify(cfg: DictConfig) -> dict:
     ref = decoder_reference(cfg.get("decoder"))
     where = f"falsify/{cfg.falsify.get('name', 'space')}.yaml"
     base = load_suite(str(cfg.falsify.suite))
-    space = space_from_config(cfg.falsify, base.goal_names, where)
+    space = space_from_config(cfg.falsify, base.goal_names, where, base.scene.body_names)
 
     uri = tracking.resolve_uri(cfg.tracking.get("uri"))
     robot = build_plugin(cfg.robot, "robot")
@@ -241,7 +243,7 @@ def gate_search(space_ref: str, budget: int, batch: int, seed: int, robot, inter
     t0 = time.perf_counter()
     node, where = space_node(space_ref, "option falsification.space")
     base = load_suite(str(node.get("suite", "goal-switch")))
-    space = space_from_config(node, base.goal_names, where)
+    space = space_from_config(node, base.goal_names, where, base.scene.body_names)
     base.validate(robot, spec_n_goals=interface.policy_.spec.n_goals)
     evaluate = Evaluator(base, robot, interface, belief, limits, seed)
     result = search(space, evaluate, budget, batch, seed, optimizer, robot.dof)

@@ -6,6 +6,8 @@ Shared by the demonstrator, vetting and the robot's Session: the spheres ride on
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 
 from coreach.control.arrays import namespace
@@ -30,6 +32,12 @@ class ArmWorld:
     def build(cls, chain: Chain, links: list[str], centres, radii, self_pairs, furniture: list[Primitive],
               person: list[Primitive], settings: SeparationSettings) -> ArmWorld:  # fmt: skip
         return cls(chain, links, centres, World(list(furniture), list(person), radii, settings, self_pairs))
+
+    def shifted(self, offsets: dict) -> ArmWorld:
+        """The same arm with named bodies translated per episode ({body name: [E, 3]} m; World.shifted)."""
+        out = copy.copy(self)
+        out.world = self.world.shifted(offsets)
+        return out
 
     def clear(self, geo: Geometry) -> np.ndarray:
         """[...] bool: every sphere at or beyond its protective distance (the clearance from furniture and

@@ -81,7 +81,10 @@ def falsification_lines(found: dict | None, counterexamples: list) -> list[str]:
                  f"- Failures found: {found['failures']}",
                  f"- Worst case: robustness {w['robustness']:+.3f}, goal {case.get('goal')}"
                  + (f" switching to {case['switch_to']} at {case['switch_at']:.2f} of the horizon"
-                    if case.get("switch_to") else "") + (f" ({w['cause']})" if w.get("cause") else "")]
+                    if case.get("switch_to") else "")
+                 + "".join(f", {b} moved by [{', '.join(f'{x:+.3f}' for x in v)}] m"
+                           for b, v in (case.get("body_shift") or {}).items())
+                 + (f" ({w['cause']})" if w.get("cause") else "")]
     if counterexamples:
         lines += ["", "Counterexample suites of earlier versions run as gate suites: " + ", ".join(counterexamples)]
     return lines

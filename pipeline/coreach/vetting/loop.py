@@ -182,6 +182,9 @@ def _simulate(robot, interface, operator, suite: Suite, belief_model, limits, pl
     rec_sep = torch.full((3, E, T + 1), math.inf, dtype=dtype)  # furniture, person, self (m)
     rec_excess = torch.zeros(E, T, dtype=torch.bool)  # a sphere approached the person faster than allowed
     sep_state, last_person = None, None
+    if world is not None and plan.body_shift:
+        # the cases move named bodies: each episode is measured against its own (one batch, one filter)
+        world = world.shifted({k: v.numpy() for k, v in plan.body_shift.items()})
     if world is not None:
         s = world.world.settings
         keep_out, person_tau = s.keep_out, max(s.person_tau, limits.lookahead_s or dt)

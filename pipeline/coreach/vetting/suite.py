@@ -42,6 +42,9 @@ class EpisodePlan:
     # per-episode operator values ({name: [E]}; nan, or -1 for delay_steps, = the operator's own value);
     # empty unless the suite lists cases that set them
     operator_values: dict = field(default_factory=dict)
+    # per-episode translation of named scene bodies ({name: [E, 3]} m, zero = where the scene puts it); empty
+    # unless the suite lists cases that set one (the loop then measures each episode against its own bodies)
+    body_shift: dict = field(default_factory=dict)
 
     def __len__(self) -> int:
         return int(self.goal_initial.shape[0])
@@ -52,7 +55,7 @@ class EpisodePlan:
         return EpisodePlan(
             self.goal_initial[idx], self.goal_final[idx], self.switch_step[idx], self.switch_fraction[idx],
             Layout(lay.names, lay.approach_pos[idx], lay.approach_rot[idx], lay.fine[idx]), self.q_start[idx],
-            {k: v[idx] for k, v in self.operator_values.items()},
+            {k: v[idx] for k, v in self.operator_values.items()}, {k: v[idx] for k, v in self.body_shift.items()},
         )  # fmt: skip
 
 
@@ -267,7 +270,8 @@ class Suite:
 
     def _cases_plan(self, generator: torch.Generator, robot) -> EpisodePlan:
         """The suite's cases, each `episodes` times (case-major): the case's goals and switch, its layout shift
-        on top of the drawn layout, its start offset on top of the drawn start, its operator values."""
+        on top of the drawn layout, its start offset on top of the drawn start, its operator values, its
+        body shifts."""
         names = self.goal_names
         R, T = self.episodes, self.steps
         E = R * len(self.cases)
@@ -298,7 +302,10 @@ class Suite:
         if any(c["operator"].get("delay_steps") is not None for c in self.cases):
             values["delay_steps"] = per_case([-1 if c["operator"].get("delay_steps") is None
                                               else int(c["operator"]["delay_steps"]) for c in self.cases], torch.long)
-        return EpisodePlan(initial, final, step, fraction, layout, q_start, values)
+        moved = sorted({b for c in self.cases for b in c.get("body_shift", {})})
+        bodies = {b: per_case([c.get("body_shift", {}).get(b, [0.0, 0.0, 0.0]) for c in self.cases], torch.float64)
+                  for b in moved}  # fmt: skip
+        return EpisodePlan(initial, final, step, fraction, layout, q_start, values, bodies)
 
 
 class _StartAt:
@@ -380,7 +387,8 @@ def build_suite(node: Any, scene: Scenario, operator: dict, where: str) -> Suite
 
 
 def _check_case(case: Any, scene: Scenario, where: str) -> dict:
-    """One case as plain data, checked against CaseConfig and the scene (goal names, switch, shift vectors)."""
+    """One case as plain data, checked against CaseConfig and the scene (goal names, switch, shift vectors,
+    body names)."""
     c = on_schema(CaseConfig, OmegaConf.to_container(case) if isinstance(case, DictConfig) else case, where)
     check_ranges(CaseConfig, c, where)
     check_ranges(CaseOperatorConfig, c["operator"], f"{where}.operator")
@@ -400,6 +408,12 @@ def _check_case(case: Any, scene: Scenario, where: str) -> dict:
             raise ConfigError(f"{where}.layout_shift.{g}", f"unknown goal; scenario {scene.name!r} has {names}")
         if len(v) != 3 or not all(is_number(x) for x in v):
             raise ConfigError(f"{where}.layout_shift.{g}", f"expected [dx, dy, dz] in m, got {list(v)!r}")
+    bodies = scene.body_names
+    for b, v in c["body_shift"].items():
+        if b not in bodies:
+            raise ConfigError(f"{where}.body_shift.{b}", f"unknown body; scenario {scene.name!r} has {bodies}")
+        if not isinstance(v, list) or len(v) != 3 or not all(is_number(x) for x in v):
+            raise ConfigError(f"{where}.body_shift.{b}", f"expected [dx, dy, dz] in m, got {v!r}")
     if not all(is_number(x) for x in c["start_offset"]):
         raise ConfigError(f"{where}.start_offset", f"expected joint offsets in rad, got {c['start_offset']!r}")
     delay = c["operator"].get("delay_steps")

@@ -107,6 +107,11 @@ class Scenario:
     def goal_names(self) -> list[str]:
         return [g.name for g in self.goals]
 
+    @property
+    def body_names(self) -> list[str]:
+        """Furniture then the person's bodies, the order of the separation filter's World."""
+        return [b.name for b in list(self.obstacles) + list(self.person)]
+
     def goal_index(self, name: str) -> int:
         """Position of goal `name` in `goals`."""
         for i, g in enumerate(self.goals):
