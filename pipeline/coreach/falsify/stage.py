@@ -100,11 +100,15 @@ class Evaluator:
         return scores["score"].tolist(), infos
 
 
+def _vectors(shifts: dict) -> str:
+    """{name: [dx, dy, dz]} as "name [+0.010, -0.020, +0.000]; ..." (m)."""
+    return "; ".join(f"{name} [{', '.join(f'{x:+.3f}' for x in v)}]" for name, v in shifts.items())
+
+
 def _failure_row(sampler: str, e) -> list[str]:
     c = e.case
     op = ", ".join(f"{k} {v:.3g}" for k, v in c["operator"].items())
-    shift = "; ".join(f"{g} [{', '.join(f'{x:+.3f}' for x in v)}]" for g, v in c["layout_shift"].items())
-    moved = "; ".join(f"{b} [{', '.join(f'{x:+.3f}' for x in v)}]" for b, v in c.get("body_shift", {}).items())
+    shift, moved = _vectors(c["layout_shift"]), _vectors(c.get("body_shift", {}))
     at = "–" if c["switch_at"] is None else f"{c['switch_at']:.2f}"
     return [sampler, f"{e.score:.3f}", c["goal"], c["switch_to"] or "–", at, e.info.get("cause", ""), op, shift,
             moved or "–"]

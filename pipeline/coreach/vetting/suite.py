@@ -386,6 +386,15 @@ def build_suite(node: Any, scene: Scenario, operator: dict, where: str) -> Suite
     return suite
 
 
+def _check_shifts(shifts: dict, known: list[str], kind: str, where: str, scene: Scenario) -> None:
+    """{name: [dx, dy, dz]} of a case: every name one of the scene's (goals or bodies), every value 3 numbers."""
+    for name, v in shifts.items():
+        if name not in known:
+            raise ConfigError(f"{where}.{name}", f"unknown {kind}; scenario {scene.name!r} has {known}")
+        if not isinstance(v, list) or len(v) != 3 or not all(is_number(x) for x in v):
+            raise ConfigError(f"{where}.{name}", f"expected [dx, dy, dz] in m, got {v!r}")
+
+
 def _check_case(case: Any, scene: Scenario, where: str) -> dict:
     """One case as plain data, checked against CaseConfig and the scene (goal names, switch, shift vectors,
     body names)."""
@@ -403,17 +412,8 @@ def _check_case(case: Any, scene: Scenario, where: str) -> dict:
     if c["switch_at"] is not None and not 0.0 < c["switch_at"] < 1.0:
         raise ConfigError(f"{where}.switch_at", f"expected a fraction of the horizon strictly between 0 and 1, "
                                                 f"got {c['switch_at']!r}")  # fmt: skip
-    for g, v in c["layout_shift"].items():
-        if g not in names:
-            raise ConfigError(f"{where}.layout_shift.{g}", f"unknown goal; scenario {scene.name!r} has {names}")
-        if len(v) != 3 or not all(is_number(x) for x in v):
-            raise ConfigError(f"{where}.layout_shift.{g}", f"expected [dx, dy, dz] in m, got {list(v)!r}")
-    bodies = scene.body_names
-    for b, v in c["body_shift"].items():
-        if b not in bodies:
-            raise ConfigError(f"{where}.body_shift.{b}", f"unknown body; scenario {scene.name!r} has {bodies}")
-        if not isinstance(v, list) or len(v) != 3 or not all(is_number(x) for x in v):
-            raise ConfigError(f"{where}.body_shift.{b}", f"expected [dx, dy, dz] in m, got {v!r}")
+    _check_shifts(c["layout_shift"], names, "goal", f"{where}.layout_shift", scene)
+    _check_shifts(c["body_shift"], scene.body_names, "body", f"{where}.body_shift", scene)
     if not all(is_number(x) for x in c["start_offset"]):
         raise ConfigError(f"{where}.start_offset", f"expected joint offsets in rad, got {c['start_offset']!r}")
     delay = c["operator"].get("delay_steps")
