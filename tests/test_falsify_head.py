@@ -187,3 +187,29 @@ def test_the_report_row_and_the_model_card_print_the_head_shift():
              "worst": {"robustness": -0.2, "case": case, "cause": "oscillating"}}  # fmt: skip
     assert "switching to book at 0.50 of the horizon, head moved by [+0.030, -0.010, +0.000] m (oscillating)" in \
         model_card({"name": "m", "falsification": found}, {}, {})
+
+
+def test_the_failure_plot_outlines_the_head_where_the_case_moved_it():
+    """Every point of the moved head's outline, from above and from the side, lies on the moved head sphere's
+    silhouette: coal's distance (coal 3.0.3) from that point, at the moved centre's depth, to the moved sphere
+    is 0 within 1e-9 m. A case without a shift draws no extra outline."""
+    from coreach.falsify.report import moved_outlines
+    from coreach.world.scenario import load_scenario
+
+    scene = load_scenario("bedside_shelf")
+    bodies = {b.name: b for b in (*scene.obstacles, *scene.person)}
+    head = bodies["head"]
+    shift = [0.04, -0.03, 0.05]
+    centre = np.add(head.xyz, shift)
+    sphere = coal.Sphere(head.size[0])
+    for plane in [(0, 1), (0, 2)]:
+        (hull,) = moved_outlines({"body_shift": {"head": shift}}, bodies, plane)
+        for p2 in hull:
+            p = centre.copy()
+            p[list(plane)] = p2
+            req, res = coal.DistanceRequest(), coal.DistanceResult()
+            d = coal.distance(coal.Sphere(1e-12), coal.Transform3s(np.eye(3), p), sphere,
+                              coal.Transform3s(np.eye(3), centre), req, res)
+            assert abs(d) < 1e-9, (plane, p2, d)
+        assert np.allclose(hull[:-1].mean(axis=0), centre[list(plane)], atol=1e-9)  # a regular polygon: mean = centre
+        assert moved_outlines({"body_shift": {}}, bodies, plane) == []

@@ -3,6 +3,7 @@ failures' tool paths over the scene, one self-contained HTML page."""
 
 from __future__ import annotations
 
+import dataclasses
 import html
 from pathlib import Path
 
@@ -13,7 +14,7 @@ from coreach.falsify.search import SearchResult
 from coreach.vetting.report import CAUTION, STYLE, _image, _save, _table, write_text
 from coreach.vetting.scene_plot import body_outline
 
-__all__ = ["plot_search_curves", "plot_robustness", "plot_failure_paths", "write_html"]
+__all__ = ["plot_search_curves", "plot_robustness", "plot_failure_paths", "moved_outlines", "write_html"]
 
 
 def plot_search_curves(results: list[SearchResult], path: Path) -> Path:
@@ -43,7 +44,9 @@ def plot_robustness(results: list[SearchResult], path: Path) -> Path:
 
 def plot_failure_paths(failures: list, scene, path: Path, most: int = 12) -> Path | None:
     """Tool paths of the worst failures from above (x-y) and from the side (x-z), with the furniture, the
-    person and the goals' approach points."""
+    person and the goals' approach points. A body a failure moved (`body_shift`, e.g. the person's head) is
+    outlined where that failure had it, dashed in the path's colour: the scene's own place alone would hide
+    the contact a failure met."""
     shown = [f for f in sorted(failures, key=lambda e: e.score) if f.info.get("path")][:most]
     if not shown:
         return None
@@ -59,15 +62,28 @@ def plot_failure_paths(failures: list, scene, path: Path, most: int = 12) -> Pat
         for g in scene.goals:
             ax.plot(g.position[plane[0]], g.position[plane[1]], "k*", ms=8)
             ax.annotate(g.name, (g.position[plane[0]], g.position[plane[1]]), fontsize=7)
+        bodies = {b.name: b for b in (*scene.obstacles, *scene.person)}
         for f in shown:
             p = np.asarray(f.info["path"])
-            ax.plot(p[:, plane[0]], p[:, plane[1]], lw=0.9)
+            (line,) = ax.plot(p[:, plane[0]], p[:, plane[1]], lw=0.9)
             ax.plot(p[-1, plane[0]], p[-1, plane[1]], "rx", ms=5)
+            for hull in moved_outlines(f.case, bodies, plane):
+                ax.plot(hull[:, 0], hull[:, 1], ls="--", lw=0.8, color=line.get_color())
         ax.set_xlabel("xyz"[plane[0]] + " (m)")
         ax.set_ylabel("xyz"[plane[1]] + " (m)")
         ax.set_aspect("equal", adjustable="datalim")
         ax.set_title("from above" if k == 0 else "from the side")
     return _save(fig, path)
+
+
+def moved_outlines(case: dict, bodies: dict, plane: tuple[int, int]) -> list[np.ndarray]:
+    """Closed outlines [K+1, 2] of the bodies a case moved (`body_shift`), where the case had them."""
+    out = []
+    for name, shift in (case.get("body_shift") or {}).items():
+        moved = dataclasses.replace(bodies[name], xyz=tuple(np.add(bodies[name].xyz, shift).tolist()))
+        hull = body_outline(moved, plane)
+        out.append(np.vstack([hull, hull[:1]]))
+    return out
 
 
 def write_html(out_dir: Path, title: str, meta: dict, results: list[SearchResult], failure_rows: list[list[str]],

@@ -23,6 +23,7 @@ import warnings
 from dataclasses import dataclass, field
 from typing import Callable
 
+import numpy as np
 import optuna
 
 from coreach.falsify.space import Space
@@ -81,6 +82,15 @@ def _sampler(name: str, seed: int, batch: int, budget: int, strata: int = 1) -> 
                                       multivariate=True, constant_liar=True)  # fmt: skip
 
 
+def _stratum_seed(seed: int, i: int, strata: int) -> int:
+    """The seed of stratum i. One search keeps the seed itself; strata draw theirs from numpy's SeedSequence of
+    (seed, i): seed + i would hand stratum 1 of seed s the random start of stratum 0 of seed s + 1, so the
+    searches of neighbouring seeds would not be independent."""
+    if strata == 1:
+        return seed
+    return int(np.random.SeedSequence([seed, i]).generate_state(1)[0])
+
+
 def _strata(space: Space, sampler: str) -> tuple[str | None, list]:
     """(the categorical a per-goal search fixes, its values); (None, [None]) for one search over everything."""
     if sampler != "tpe_per_goal":
@@ -107,8 +117,8 @@ def search(space: Space, evaluate: Evaluate, budget: int, batch: int, seed: int,
     optuna.logging.set_verbosity(logging.WARNING)
     warnings.filterwarnings("ignore", category=optuna.exceptions.ExperimentalWarning)  # multivariate, group
     key, values = _strata(space, sampler)
-    studies = [optuna.create_study(direction="minimize", sampler=_sampler(sampler, seed + i, batch, budget,
-                                                                          len(values)))
+    studies = [optuna.create_study(direction="minimize", sampler=_sampler(sampler, _stratum_seed(seed, i, len(values)),
+                                                                          batch, budget, len(values)))
                for i in range(len(values))]  # fmt: skip
     out: list[Evaluation] = []
     while len(out) < budget:
