@@ -191,3 +191,19 @@ def test_the_test_drive_page_carries_the_cautions_with_consent():
     assert "<!--CAUTIONS-->" not in page
     for caution in (*CAUTIONS, RECORDING_CAUTION):
         assert flat(caution).replace("'", "&#x27;") in page, caution
+
+
+def test_the_demo_says_a_relaxed_fielded_version_is_not_for_people():
+    """The demo fields a version its relaxed gate passed; its output says the alias is a demonstration on a
+    simulated robot, and says nothing of the kind for a version the shipped gate passed."""
+    from rich.console import Console
+
+    from coreach.commands.summaries import print_demo_release
+
+    for relaxed, shown in ((["episodes 10 < 50"], True), ([], False)):
+        console = Console(record=True, width=200)
+        print_demo_release(console, {"attempts": [], "release": {}, "fielded": {
+            "name": "m", "fielded": "3", "bundle": "b", "gate_relaxed": relaxed}})  # fmt: skip
+        text = console.export_text()
+        assert "fielded m version 3" in text
+        assert ("NOT vetted, so no robot near a person may fetch it" in text) is shown

@@ -224,6 +224,11 @@ def print_demo_release(console, r: dict) -> None:
     if r.get("fielded"):
         f = r["fielded"]
         console.print(f"fielded {f['name']} version {f['fielded']} (alias @fielded): {f['bundle']}", markup=False)
+        if f.get("gate_relaxed"):
+            # the demo fields a version its own relaxed gate passed, to show the alias and the runtime end to end;
+            # without this line the warning above and the word "fielded" read as a contradiction
+            console.print("this @fielded is the demo's own store and a simulated robot only: the version is NOT "
+                          "vetted, so no robot near a person may fetch it", markup=False)  # fmt: skip
     if r.get("tryout"):
         t = r["tryout"]
         acted = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in t["filters"].items())
