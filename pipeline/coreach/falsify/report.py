@@ -51,6 +51,7 @@ def plot_failure_paths(failures: list, scene, path: Path, most: int = 12) -> Pat
     if not shown:
         return None
     fig = Figure(figsize=(11, 5))
+    bodies = {b.name: b for b in (*scene.obstacles, *scene.person)}
     for k, plane in enumerate([(0, 1), (0, 2)]):
         ax = fig.add_subplot(1, 2, k + 1)
         for body in scene.obstacles:
@@ -62,7 +63,6 @@ def plot_failure_paths(failures: list, scene, path: Path, most: int = 12) -> Pat
         for g in scene.goals:
             ax.plot(g.position[plane[0]], g.position[plane[1]], "k*", ms=8)
             ax.annotate(g.name, (g.position[plane[0]], g.position[plane[1]]), fontsize=7)
-        bodies = {b.name: b for b in (*scene.obstacles, *scene.person)}
         for f in shown:
             p = np.asarray(f.info["path"])
             (line,) = ax.plot(p[:, plane[0]], p[:, plane[1]], lw=0.9)

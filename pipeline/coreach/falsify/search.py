@@ -117,9 +117,9 @@ def search(space: Space, evaluate: Evaluate, budget: int, batch: int, seed: int,
     optuna.logging.set_verbosity(logging.WARNING)
     warnings.filterwarnings("ignore", category=optuna.exceptions.ExperimentalWarning)  # multivariate, group
     key, values = _strata(space, sampler)
-    studies = [optuna.create_study(direction="minimize", sampler=_sampler(sampler, _stratum_seed(seed, i, len(values)),
-                                                                          batch, budget, len(values)))
-               for i in range(len(values))]  # fmt: skip
+    samplers = [_sampler(sampler, _stratum_seed(seed, i, len(values)), batch, budget, len(values))
+                for i in range(len(values))]
+    studies = [optuna.create_study(direction="minimize", sampler=s) for s in samplers]
     out: list[Evaluation] = []
     while len(out) < budget:
         n = min(batch, budget - len(out))
