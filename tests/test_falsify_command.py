@@ -49,6 +49,7 @@ def test_falsify_end_to_end_on_a_tiny_decoder(decoder):
 
 @pytest.mark.parametrize("args, words", [
     (["budget=0"], "option budget"),
+    (["restart_after=0"], "option restart_after"),
     (["decoder=direct"], "is a baseline interface, not a decoder"),
     (["falsify.bounds.beta=[800,100]"], "inverted bounds"),
     (["+falsify.bounds.head_tilt=[0,1]"], "unknown parameter"),

@@ -47,6 +47,20 @@ def _positive_int(cfg: DictConfig, key: str, lo: int = 1) -> int:
     return v
 
 
+def restart_option(value, key: str) -> int | None:
+    """restart_after: null (never) or a positive integer of a stratum's own trials."""
+    if value is None:
+        return None
+    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+        raise ConfigError(f"option {key}", f"expected null (no restarts) or an integer >= 1, got {value!r}")
+    return value
+
+
+def _optimizer_label(optimizer: str, restart_after: int | None) -> str:
+    """The optimizer as the summary, the report and the model card name it."""
+    return optimizer + ("" if restart_after is None else f", restarts after {restart_after} stalled trials")
+
+
 def decoder_reference(value) -> str:
     """The decoder to search: a run id, models:/..., NAME@ALIAS (read as models:/NAME@ALIAS) or a folder; a
     baseline's name is refused (a search is for a trained decoder)."""
@@ -120,6 +134,7 @@ def falsify(cfg: DictConfig) -> dict:
     budget, batch = _positive_int(cfg, "budget"), _positive_int(cfg, "batch")
     repeats, keep = _positive_int(cfg, "repeats"), _positive_int(cfg, "keep")
     seed = _positive_int(cfg, "seed", 0)
+    restart_after = restart_option(cfg.get("restart_after"), "restart_after")
     samplers = [str(cfg.optimizer)] + (["random"] if cfg.baseline and str(cfg.optimizer) != "random" else [])
     if samplers[0] not in SAMPLERS:
         raise ConfigError("option optimizer", f"expected one of {list(SAMPLERS)}, got {cfg.optimizer!r}")
@@ -151,7 +166,8 @@ def falsify(cfg: DictConfig) -> dict:
             # random search draws from its own seed: with TPE's, its first batch would be TPE's random start
             # point for point, and the two could not differ before TPE's model takes over
             own = seed if name == samplers[0] else seed + RANDOM_SEED_OFFSET
-            results.append(search(space, evaluate, budget, batch, own, name, robot.dof, tick))
+            results.append(search(space, evaluate, budget, batch, own, name, robot.dof, tick,
+                                  restart_after=restart_after))  # fmt: skip
         finally:
             if bar is not None:
                 bar.stop()
@@ -188,7 +204,8 @@ def falsify(cfg: DictConfig) -> dict:
     plots += [paths] if paths else []
     worst = min((e for r in results for e in r.evaluations), key=lambda e: e.score)
     meta = {"decoder": f"{interface.name} ({source})", "space": space.name, "base suite": base.name,
-            "budget per search": budget, "batch": batch, "seed": seed, "optimizer": samplers[0],
+            "budget per search": budget, "batch": batch, "seed": seed,
+            "optimizer": _optimizer_label(samplers[0], restart_after),
             "bounds": json.dumps(space.to_dict()["bounds"]),
             "scenarios per minute": ", ".join(f"{k} {v:.0f}" for k, v in speed.items()),
             "counterexample suite": str(suite_file) if suite_file else "none (no failure)"}  # fmt: skip
@@ -196,8 +213,9 @@ def falsify(cfg: DictConfig) -> dict:
                         [_failure_row(s, e) for s, e in failures[:50]], plots)  # fmt: skip
     summary = {
         "decoder": ref, "label": interface.name, "source": source, "space": space.to_dict(), "budget": budget,
-        "batch": batch, "seed": seed, "optimizer": samplers[0],
+        "batch": batch, "seed": seed, "optimizer": samplers[0], "restart_after": restart_after,
         "searches": {r.sampler: {"seed": r.seed, "failures": len(r.failures), "first_failure": r.first_failure,
+                                 "restarts": r.restarts,
                                  "lowest_robustness": r.worst.score, "worst_case": r.worst.case,
                                  "worst_cause": r.worst.info.get("cause", "")} for r in results},
         "worst": {"robustness": worst.score, "case": worst.case, "cause": worst.info.get("cause", "")},
@@ -229,7 +247,8 @@ def _log(cfg: DictConfig, summary: dict, source: str, out: Path) -> str:
         if s["first_failure"] is not None:
             metrics.append(Metric(f"{name}/first_failure", s["first_failure"], now, 0))
     params = {"space": summary["space"]["name"], "budget": summary["budget"], "batch": summary["batch"],
-              "seed": summary["seed"], "optimizer": summary["optimizer"], "decoder": summary["decoder"]}  # fmt: skip
+              "seed": summary["seed"], "optimizer": summary["optimizer"], "decoder": summary["decoder"],
+              "restart_after": summary["restart_after"]}  # fmt: skip
     client.log_batch(rid, metrics=metrics, params=[Param(k, str(v)) for k, v in params.items()])
     client.log_artifacts(rid, str(out), "falsify")
     client.set_terminated(rid)
@@ -237,9 +256,10 @@ def _log(cfg: DictConfig, summary: dict, source: str, out: Path) -> str:
 
 
 def gate_search(space_ref: str, budget: int, batch: int, seed: int, robot, interface, belief, limits,
-                optimizer: str = "tpe") -> dict:
+                optimizer: str = "tpe", restart_after: int | None = None) -> dict:
     """The release gate's falsification step: the optimizer (a TPE) over the space with the budget; what the
     model card records (space, budget, optimizer, the failures found and the worst case)."""
+    restart_after = restart_option(restart_after, "falsification.restart_after")
     if not isinstance(budget, int) or isinstance(budget, bool) or budget < 1:
         raise ConfigError("option falsification.budget", f"expected an integer >= 1 (or enabled=false), got {budget!r}")
     if optimizer not in SAMPLERS or optimizer == "random":
@@ -250,9 +270,10 @@ def gate_search(space_ref: str, budget: int, batch: int, seed: int, robot, inter
     space = space_from_config(node, base.goal_names, where, base.scene.body_names)
     base.validate(robot, spec_n_goals=interface.policy_.spec.n_goals)
     evaluate = Evaluator(base, robot, interface, belief, limits, seed)
-    result = search(space, evaluate, budget, batch, seed, optimizer, robot.dof)
+    result = search(space, evaluate, budget, batch, seed, optimizer, robot.dof, restart_after=restart_after)
     worst = result.worst
-    return {"space": space.to_dict(), "budget": budget, "optimizer": f"{optimizer} (optuna)", "seed": seed,
+    return {"space": space.to_dict(), "budget": budget, "optimizer": _optimizer_label(f"{optimizer} (optuna)",
+                                                                                      restart_after), "seed": seed,
             "scenarios": len(result.evaluations), "failures": len(result.failures),
             "worst": {"robustness": worst.score, "case": worst.case, "cause": worst.info.get("cause", "")},
             "seconds": time.perf_counter() - t0}  # fmt: skip

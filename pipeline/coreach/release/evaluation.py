@@ -110,7 +110,7 @@ def evaluate(cfg, policy, run, label: str, staging: Path) -> dict:
         f = cfg.falsification
         log.info("release gate: falsification of %s on %s (%d scenarios)", label, f.space, f.budget)
         falsification = gate_search(str(f.space), f.budget, int(f.batch), int(f.seed), robot, interface, belief,
-                                    limits, str(f.get("optimizer", "tpe")))  # fmt: skip
+                                    limits, str(f.get("optimizer", "tpe")), f.get("restart_after"))  # fmt: skip
         results.append(G.falsification_gate(falsification))
     keyed = {f"{label} on {k}": v for k, v in summaries.items()}
     plots = standard_plots(keyed, report_dir) + plots
