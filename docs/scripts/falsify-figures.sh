@@ -6,7 +6,7 @@
 # 3. a rarer weakness: the default recipe on demonstrations that never start far from home (dataset.spread_share=0),
 #    vetted on the shipped suites and searched in far starts (falsify-far-start.yaml) against the full-data decoder;
 #    one TPE per goal against random search, 10 search seeds (the target's median is over seeds 0-4), 1,500
-#    scenarios in batches of 20.
+#    scenarios in batches of 20, and the same with restarts after 20 stalled scenarios (restart_after=20).
 set -euo pipefail
 here="$(cd "$(dirname "$0")" && pwd)"
 run_id() { python3 -c "import json,sys; print(json.load(open(sys.argv[1]))['runs'][0]['run_id'])" "$1"; }
@@ -39,6 +39,9 @@ coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" bud
 for seed in 0 1 2 3 4 5 6 7 8 9; do
     coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" budget=1500 batch=20 seed=$seed \
         optimizer=tpe_per_goal log=false report_dir=far-per-goal-$seed > far-per-goal-$seed.json
+    coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" budget=1500 batch=20 seed=$seed \
+        optimizer=tpe_per_goal restart_after=20 baseline=false log=false report_dir=far-restart-$seed \
+        > far-restart-$seed.json
 done
 coreach --json falsify decoder="$(run_id default-0.json)" falsify="$here/falsify-far-start.yaml" budget=1000 batch=100 \
     seed=0 optimizer=random baseline=false log=false report_dir=far-default > far-default.json
@@ -57,7 +60,8 @@ for seed in range(3):
 print("far starts: success on the shipped suites, then (first failure, failures, lowest robustness) per search")
 for suite in ("nominal", "goal-switch", "held-out"):
     print(suite, round(next(iter(json.load(open(f"vet-far-{suite}.json"))["summaries"].values()))["success"]["value"], 3))
-for name in ("far-random", "far-tpe", "far-default", *(f"far-per-goal-{seed}" for seed in range(10))):
+for name in ("far-random", "far-tpe", "far-default", *(f"far-per-goal-{seed}" for seed in range(10)),
+             *(f"far-restart-{seed}" for seed in range(10))):
     s = json.load(open(f"{name}.json"))["searches"]
     print(name, {k: (v["first_failure"], v["failures"], round(v["lowest_robustness"], 3)) for k, v in s.items()})
 PY
