@@ -78,7 +78,7 @@ def test_the_gate_with_the_step_refuses_a_decoder_that_fails_inside_the_budget(d
              "gates.min_separation_m=0", "gates.max_excess=1000000"]  # fmt: skip
     res = run(["--json", "release", f"run={run_id}", f"gate_suites=[{short}]", "name=falsify-test",
                "latency.steps=300", "latency.warmup=20", *loose, "falsification.enabled=true",
-               "falsification.budget=20", "falsification.batch=10"], cwd)  # fmt: skip
+               "falsification.budget=20", "falsification.batch=10", "falsification.restart_after=5"], cwd)  # fmt: skip
     assert res.returncode == 3, res.stderr
     out = json.loads(res.stdout)
     gates = out["gates"]
