@@ -35,10 +35,12 @@ done
 coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" budget=1000 batch=100 seed=0 \
     optimizer=random baseline=false log=false report_dir=far-random > far-random.json
 coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" budget=1000 batch=20 seed=0 \
-    log=false report_dir=far-tpe > far-tpe.json
+    restart_after=null log=false report_dir=far-tpe > far-tpe.json
+coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" budget=1000 batch=20 seed=0 \
+    restart_after=20 baseline=false log=false report_dir=far-tpe-restart > far-tpe-restart.json
 for seed in 0 1 2 3 4 5 6 7 8 9; do
     coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" budget=1500 batch=20 seed=$seed \
-        optimizer=tpe_per_goal log=false report_dir=far-per-goal-$seed > far-per-goal-$seed.json
+        optimizer=tpe_per_goal restart_after=null log=false report_dir=far-per-goal-$seed > far-per-goal-$seed.json
     coreach --json falsify decoder="$far" falsify="$here/falsify-far-start.yaml" budget=1500 batch=20 seed=$seed \
         optimizer=tpe_per_goal restart_after=20 baseline=false log=false report_dir=far-restart-$seed \
         > far-restart-$seed.json
@@ -60,7 +62,7 @@ for seed in range(3):
 print("far starts: success on the shipped suites, then (first failure, failures, lowest robustness) per search")
 for suite in ("nominal", "goal-switch", "held-out"):
     print(suite, round(next(iter(json.load(open(f"vet-far-{suite}.json"))["summaries"].values()))["success"]["value"], 3))
-for name in ("far-random", "far-tpe", "far-default", *(f"far-per-goal-{seed}" for seed in range(10)),
+for name in ("far-random", "far-tpe", "far-tpe-restart", "far-default", *(f"far-per-goal-{seed}" for seed in range(10)),
              *(f"far-restart-{seed}" for seed in range(10))):
     s = json.load(open(f"{name}.json"))["searches"]
     print(name, {k: (v["first_failure"], v["failures"], round(v["lowest_robustness"], 3)) for k, v in s.items()})
