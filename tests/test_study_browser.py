@@ -120,6 +120,8 @@ def test_a_participant_session_in_the_browser(study, browser):
             if second == direct:
                 page.keyboard.press("m")
                 _wait(page, "window.study.view().trial && window.study.view().trial.mode === 2")
+                # the page draws the mode on its next frame, after the state has it: wait for the text itself
+                _wait(page, "document.getElementById('mode').textContent === 'mode 2 of 3 (M switches)'")
                 assert page.inner_text("#mode") == "mode 2 of 3 (M switches)"
             _wait(page, "!window.study.view().running", 10)
         page.wait_for_selector("#tlx.on")
